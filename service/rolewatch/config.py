@@ -1,0 +1,291 @@
+"""Service configuration: every option from ``ROLEWATCH_*`` environment variables or a TOML file.
+
+Precedence, highest first: explicit keyword arguments, environment variables, the TOML file
+named by ``--config`` (or ``ROLEWATCH_CONFIG``), the defaults written here. Durations are
+written like ``7d``, ``12h``, ``30m``, ``45s`` (or a plain number of seconds).
+"""
+
+from __future__ import annotations
+
+import re
+from datetime import timedelta
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import BeforeValidator, Field, PlainSerializer, field_validator, model_validator
+from pydantic_settings import (
+    BaseSettings,
+    PydanticBaseSettingsSource,
+    SettingsConfigDict,
+    TomlConfigSettingsSource,
+)
+
+_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(ms|s|m|h|d|w)?\s*$")
+_UNIT_SECONDS = {"ms": 0.001, "s": 1, "m": 60, "h": 3600, "d": 86400, "w": 604800, None: 1}
+
+
+def parse_duration(value: Any) -> timedelta:
+    """Turn ``"7d"``, ``"12h"``, ``"30m"``, ``"45s"``, ``"250ms"`` or seconds into a timedelta."""
+    if isinstance(value, timedelta):
+        return value
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return timedelta(seconds=float(value))
+    if isinstance(value, str):
+        match = _DURATION.match(value)
+        if match:
+            number, unit = match.groups()
+            return timedelta(seconds=float(number) * _UNIT_SECONDS[unit])
+    raise ValueError(
+        f"{value!r} is not a duration: write a number with a unit, like 7d, 12h, 30m, 45s or 250ms"
+    )
+
+
+def format_duration(value: timedelta) -> str:
+    """Write a timedelta back in the shortest exact unit (``604800 s`` → ``"7d"``)."""
+    seconds = value.total_seconds()
+    for unit in ("w", "d", "h", "m", "s"):
+        size = _UNIT_SECONDS[unit]
+        if seconds >= size and seconds % size == 0:
+            return f"{int(seconds // size)}{unit}"
+    return f"{int(round(seconds * 1000))}ms"
+
+
+Duration = Annotated[
+    timedelta,
+    BeforeValidator(parse_duration),
+    PlainSerializer(format_duration, return_type=str),
+]
+
+
+class Settings(BaseSettings):
+    """All rolewatch options. Each one can be set as ``ROLEWATCH_<NAME>`` or in the TOML file."""
+
+    model_config = SettingsConfigDict(
+        env_prefix="ROLEWATCH_",
+        extra="forbid",
+        validate_default=True,
+        toml_file=None,
+    )
+
+    # --- storage -----------------------------------------------------------------------
+    database_url: str = Field(
+        "sqlite:///rolewatch.db",
+        description="SQLAlchemy URL of the store: sqlite:///path.db (default) or "
+        "postgresql+psycopg://user@host:5432/db.",
+    )
+    sqlite_synchronous: Literal["FULL", "NORMAL"] = Field(
+        "FULL",
+        description="SQLite durability: FULL syncs every commit, so an acknowledged event "
+        "survives power loss; NORMAL is faster and survives a process crash but may lose the "
+        "last commits on power loss.",
+    )
+    sqlite_busy_timeout: Duration = Field(
+        "30s", description="How long a SQLite writer waits for a lock before failing."
+    )
+
+    # --- HTTP --------------------------------------------------------------------------
+    host: str = Field("127.0.0.1", description="Address the HTTP server binds to.")
+    port: int = Field(8000, ge=0, le=65535, description="Port the HTTP server listens on.")
+    public_url: str = Field(
+        "http://127.0.0.1:8000",
+        description="Base URL people use to reach this service; alert links point here.",
+    )
+    role: Literal["all", "api", "worker"] = Field(
+        "all",
+        description="What this process runs: all (API and background jobs), api (HTTP only) "
+        "or worker (window closing and delivery only).",
+    )
+
+    # --- ingest ------------------------------------------------------------------------
+    max_batch_events: int = Field(
+        10_000, ge=1, description="Largest number of events one POST /v1/events may carry."
+    )
+    max_batch_bytes: int = Field(
+        10_000_000, ge=1024, description="Largest request body of POST /v1/events, in bytes."
+    )
+    max_future_skew: Duration = Field(
+        "5m",
+        description="Events stamped further than this into the future (by this server's clock) "
+        "are rejected one by one.",
+    )
+
+    # --- windows -----------------------------------------------------------------------
+    window_period: Duration = Field(
+        "7d", description="How often a window closes; windows are aligned to UTC epoch multiples."
+    )
+    window_span: Duration = Field(
+        "7d", description="How much history one snapshot covers (≥ period; > period = hopping)."
+    )
+    window_lateness: Duration = Field(
+        "1h", description="How long after a window's end to wait for stragglers before closing it."
+    )
+    idle_close_after: Duration = Field(
+        "10m",
+        description="With no event received for this long, windows whose end plus lateness has "
+        "passed on the wall clock close even though no newer event moved the watermark.",
+    )
+    tick_interval: Duration = Field("10s", description="How often the background jobs run.")
+
+    # --- features and roles ------------------------------------------------------------
+    training_windows: int = Field(
+        4, ge=1, description="Closed windows used to fit the feature recipe and role basis."
+    )
+    feature_rounds: int = Field(3, ge=0, description="Maximum ReFeX recursive rounds.")
+    bin_fraction: float = Field(
+        0.5, gt=0, lt=1, description="ReFeX vertical logarithmic binning fraction p."
+    )
+    prune_tolerance: float = Field(
+        0.0, ge=0, description="ReFeX pruning tolerance s on binned values."
+    )
+    binning: Literal["frozen", "relative"] = Field(
+        "frozen",
+        description="frozen: bin edges learnt on the training windows; relative: each window "
+        "binned by its own quantiles.",
+    )
+    roles: int | None = Field(
+        None, ge=1, description="Number of roles; empty chooses it by minimum description length."
+    )
+    roles_min: int = Field(2, ge=1, description="Smallest number of roles MDL considers.")
+    roles_max: int = Field(12, ge=1, description="Largest number of roles MDL considers.")
+    seed: int = Field(0, description="Seed for the factorisation, so fits are repeatable.")
+
+    # --- scoring and alerts ------------------------------------------------------------
+    shift_measure: Literal[
+        "role_aware", "hellinger", "jensen_shannon", "total_variation", "cosine"
+    ] = Field("role_aware", description="Distance between an account's baseline and current mixture.")
+    shift_baseline: Literal["previous", "mean", "ewm"] = Field(
+        "previous",
+        description="Baseline mixture: the previous active window, the mean of the last "
+        "baseline_windows, or an exponentially weighted mean.",
+    )
+    baseline_windows: int = Field(4, ge=1, description="Windows the mean baseline averages.")
+    baseline_half_life: float = Field(
+        2.0, gt=0, description="Half-life, in windows, of the exponentially weighted baseline."
+    )
+    alert_mode: Literal["threshold", "budget"] = Field(
+        "threshold",
+        description="threshold: alert when the score reaches alert_threshold; budget: alert on "
+        "the top alert_budget share of scored accounts whose score reaches alert_floor.",
+    )
+    alert_threshold: float = Field(0.5, ge=0, description="Score an alert needs (threshold mode).")
+    alert_budget: float = Field(
+        0.01, gt=0, le=1, description="Share of active accounts alerted per window (budget mode)."
+    )
+    alert_floor: float = Field(0.2, ge=0, description="Lowest score alerted in budget mode.")
+    min_events: int = Field(
+        3, ge=0, description="Events an account needs in both windows before it is scored."
+    )
+
+    # --- delivery ----------------------------------------------------------------------
+    webhook_allow_http: bool = Field(
+        False, description="Allow plain http:// subscription URLs (https is required otherwise)."
+    )
+    webhook_allow_hosts: list[str] = Field(
+        default_factory=list,
+        description="Hosts, addresses or CIDR ranges that subscriptions may reach even though "
+        "they are private or loopback (for receivers inside your network).",
+    )
+    delivery_max_attempts: int = Field(
+        12, ge=1, description="Attempts before a delivery is marked failed."
+    )
+    delivery_backoff: Duration = Field(
+        "30s", description="First retry delay; doubles each attempt, with jitter, capped at 6h."
+    )
+    delivery_connect_timeout: Duration = Field("5s", description="Webhook connect timeout.")
+    delivery_timeout: Duration = Field("15s", description="Webhook total request timeout.")
+    subscription_pause_after: int = Field(
+        20, ge=1, description="Consecutive failed attempts after which a subscription is paused."
+    )
+    secret_overlap: Duration = Field(
+        "24h", description="How long a rotated-out signing secret keeps signing beside the new one."
+    )
+
+    # --- retention and logging ---------------------------------------------------------
+    retention_windows: int = Field(
+        0,
+        ge=0,
+        description="Purge raw events older than this many closed windows (0 keeps them all). "
+        "Memberships and alerts are kept.",
+    )
+    log_level: Literal["DEBUG", "INFO", "WARNING", "ERROR"] = Field(
+        "INFO", description="Log level."
+    )
+    log_json: bool = Field(True, description="Write logs as JSON lines (false: plain text).")
+
+    @field_validator("database_url")
+    @classmethod
+    def _known_database(cls, url: str) -> str:
+        if not url.startswith(("sqlite:", "postgresql")):
+            raise ValueError(
+                "database_url must start with sqlite:/// or postgresql+psycopg://"
+            )
+        return url
+
+    @model_validator(mode="after")
+    def _coherent(self) -> "Settings":
+        if self.window_span < self.window_period:
+            raise ValueError("window_span must be at least window_period")
+        if self.window_period.total_seconds() < 1:
+            raise ValueError("window_period must be at least 1s")
+        if self.roles_min > self.roles_max:
+            raise ValueError("roles_min must not exceed roles_max")
+        return self
+
+    @classmethod
+    def settings_customise_sources(
+        cls,
+        settings_cls: type[BaseSettings],
+        init_settings: PydanticBaseSettingsSource,
+        env_settings: PydanticBaseSettingsSource,
+        dotenv_settings: PydanticBaseSettingsSource,
+        file_secret_settings: PydanticBaseSettingsSource,
+    ) -> tuple[PydanticBaseSettingsSource, ...]:
+        toml_path = settings_cls.model_config.get("toml_file")
+        sources: list[PydanticBaseSettingsSource] = [init_settings, env_settings]
+        if toml_path:
+            sources.append(TomlConfigSettingsSource(settings_cls, toml_file=toml_path))
+        return tuple(sources)
+
+
+class ConfigError(Exception):
+    """A setting is missing or wrong; the message says which one and how to fix it."""
+
+
+def load_settings(config_file: str | Path | None = None, **overrides: Any) -> Settings:
+    """Read settings from the environment and an optional TOML file.
+
+    Raises ``ConfigError`` with a readable message (the CLI turns it into exit code 2).
+    """
+    import os
+
+    from pydantic import ValidationError
+
+    path = config_file or os.environ.get("ROLEWATCH_CONFIG")
+    if path is not None and not Path(path).is_file():
+        raise ConfigError(f"config file {path} does not exist: check the --config path")
+
+    class _FromFile(Settings):
+        model_config = SettingsConfigDict(toml_file=str(path) if path else None)
+
+    try:
+        loaded = _FromFile(**overrides)
+    except ValidationError as error:
+        lines = []
+        for problem in error.errors():
+            name = ".".join(str(part) for part in problem["loc"]) or "settings"
+            lines.append(f"{name} (ROLEWATCH_{name.upper()}): {problem['msg']}")
+        raise ConfigError("invalid configuration:\n  " + "\n  ".join(lines)) from None
+    except Exception as error:  # a TOML syntax error, for example
+        raise ConfigError(f"cannot read configuration: {error}") from None
+    return Settings.model_validate(loaded.model_dump())
+
+
+def describe_settings() -> list[tuple[str, str, str]]:
+    """(env variable, default, help) for every option: used to write the README's table."""
+    rows = []
+    for name, field in Settings.model_fields.items():
+        default = field.get_default(call_default_factory=True)
+        if isinstance(default, timedelta):
+            default = format_duration(default)
+        rows.append((f"ROLEWATCH_{name.upper()}", repr(default), field.description or ""))
+    return rows

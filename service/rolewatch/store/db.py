@@ -1,0 +1,51 @@
+"""Database engines for the store: SQLite (default) and PostgreSQL from one URL."""
+
+from __future__ import annotations
+
+from datetime import timedelta
+
+from sqlalchemy import event
+from sqlalchemy.engine import Engine, create_engine
+
+
+def make_engine(
+    url: str,
+    *,
+    sqlite_synchronous: str = "FULL",
+    sqlite_busy_timeout: timedelta = timedelta(seconds=30),
+) -> Engine:
+    """Create an engine for ``url``.
+
+    SQLite connections get WAL journaling (readers never block the writer), the chosen
+    ``synchronous`` level (FULL: a committed transaction survives power loss), a busy timeout
+    so concurrent writers wait instead of failing, and foreign keys on.
+    """
+    if url.startswith("sqlite"):
+        engine = create_engine(
+            url,
+            connect_args={
+                "timeout": sqlite_busy_timeout.total_seconds(),
+                "check_same_thread": False,
+            },
+        )
+        busy_ms = int(sqlite_busy_timeout.total_seconds() * 1000)
+
+        @event.listens_for(engine, "connect")
+        def _sqlite_pragmas(dbapi_connection, _record):  # pragma: no cover - trivial
+            # Python's sqlite3 opens transactions lazily; let SQLAlchemy issue BEGIN itself.
+            dbapi_connection.isolation_level = None
+            cursor = dbapi_connection.cursor()
+            cursor.execute("PRAGMA journal_mode=WAL")
+            cursor.execute(f"PRAGMA synchronous={sqlite_synchronous}")
+            cursor.execute(f"PRAGMA busy_timeout={busy_ms}")
+            cursor.execute("PRAGMA foreign_keys=ON")
+            cursor.close()
+
+        @event.listens_for(engine, "begin")
+        def _sqlite_begin(connection):  # pragma: no cover - trivial
+            # IMMEDIATE takes the write lock at BEGIN, so two writers queue on busy_timeout
+            # instead of failing later with "database is locked" on upgrade from a read.
+            connection.exec_driver_sql("BEGIN IMMEDIATE")
+
+        return engine
+    return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=10)
