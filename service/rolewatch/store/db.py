@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import timedelta
 
 from sqlalchemy import event
-from sqlalchemy.engine import Engine, create_engine
+from sqlalchemy.engine import Connection, Engine, create_engine
 
 
 def make_engine(
@@ -43,9 +45,25 @@ def make_engine(
 
         @event.listens_for(engine, "begin")
         def _sqlite_begin(connection):  # pragma: no cover - trivial
-            # IMMEDIATE takes the write lock at BEGIN, so two writers queue on busy_timeout
-            # instead of failing later with "database is locked" on upgrade from a read.
-            connection.exec_driver_sql("BEGIN IMMEDIATE")
+            # Writers take the lock at BEGIN IMMEDIATE, so two writers queue on busy_timeout
+            # instead of failing with "database is locked" when a read upgrades to a write.
+            if connection.get_execution_options().get("rolewatch_write"):
+                connection.exec_driver_sql("BEGIN IMMEDIATE")
+            else:
+                connection.exec_driver_sql("BEGIN")
 
         return engine
     return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=10)
+
+
+@contextmanager
+def write_transaction(engine: Engine) -> Iterator[Connection]:
+    """A transaction that will write: commits on success, rolls back on error.
+
+    On SQLite it begins IMMEDIATE (takes the write lock up front); on PostgreSQL it is an
+    ordinary transaction. Use ``engine.begin()`` for read-only work.
+    """
+    with engine.connect() as connection:
+        connection.execution_options(rolewatch_write=True)
+        with connection.begin():
+            yield connection
