@@ -65,6 +65,9 @@ windows = Table(
     Column("account_count", Integer, nullable=False, default=0),
     Column("late_count", Integer, nullable=False, default=0),
     Column("alert_count", Integer, nullable=False, default=0),
+    Column("new_count", Integer, nullable=False, default=0),  # accounts with no baseline
+    Column("inactive_count", Integer, nullable=False, default=0),  # active before, not now
+    Column("scored_count", Integer, nullable=False, default=0),
     Column("training", Boolean, nullable=False, default=False),
     Column("recipe_version", String(64), nullable=True),
     Column("basis_version", String(64), nullable=True),
