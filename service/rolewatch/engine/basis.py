@@ -1,0 +1,528 @@
+"""Role basis: RolX role extraction, frozen role profiles and membership refits.
+
+RolX (Henderson et al., "RolX: structural role extraction & mining in large graphs",
+KDD 2012) factorises the non-negative node-feature matrix V (n x f, the binned ReFeX
+features) as V ~ G F with G (n x k) node-role memberships and F (k x f) role profiles,
+choosing k by minimum description length.  Role dynamics (Rossi et al., WWW 2012 /
+WSDM 2013) learns one such F over reference snapshots, freezes it, and refits G per
+snapshot so that a role keeps its meaning over time; that is what :class:`RoleBasis`
+holds and what :meth:`RoleBasis.memberships` does.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import warnings
+from dataclasses import dataclass, field
+from typing import Any, Iterable, Sequence
+
+import numpy as np
+from scipy.optimize import linear_sum_assignment
+from sklearn.decomposition import NMF
+from sklearn.exceptions import ConvergenceWarning
+
+from .errors import EngineInputError, FeatureMismatch, RecipeMismatch, TooManyRoles
+from .nnls import nnls_rows
+
+__all__ = [
+    "Memberships",
+    "RoleBasis",
+    "description_length",
+    "default_bits_per_value",
+]
+
+_FORMAT = "rolewatch.role_basis"
+_FORMAT_VERSION = 1
+_EPS = 1e-12
+
+
+@dataclass(frozen=True, eq=False)
+class Memberships:
+    """Role memberships of the rows of one feature table.
+
+    Attributes
+    ----------
+    loadings : ndarray, shape (n, k)
+        G >= 0, the non-negative least-squares fit of each row on the frozen F.
+    mixture : ndarray, shape (n, k)
+        ``loadings`` normalised to sum 1 per row; an all-zero row becomes uniform
+        (a node with no structure is equally far from every role).  Rows of invalid
+        input (NaN, inf or negative features) are NaN.
+    error : ndarray, shape (n,)
+        Relative reconstruction error ``||v - g F|| / max(||v||, eps)`` (0 for an
+        all-zero row, NaN for invalid input).
+    """
+
+    loadings: np.ndarray
+    mixture: np.ndarray
+    error: np.ndarray
+
+
+# ---------------------------------------------------------------------------
+# input handling (duck-typed FeatureTable or plain ndarray)
+# ---------------------------------------------------------------------------
+
+def _table_parts(table: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]:
+    """Return (binned matrix, feature names or None, recipe version or None)."""
+    if isinstance(table, np.ndarray) or not hasattr(table, "binned"):
+        V = np.asarray(table, dtype=np.float64)
+        names, version = None, None
+    else:
+        V = np.asarray(table.binned, dtype=np.float64)
+        names = tuple(str(x) for x in table.names)
+        version = getattr(table, "recipe_version", None)
+    if V.ndim != 2:
+        raise EngineInputError(
+            f"a feature matrix must be 2-D (nodes x features), got shape {V.shape}")
+    if names is not None and len(names) != V.shape[1]:
+        raise FeatureMismatch(
+            f"feature table has {V.shape[1]} columns but {len(names)} feature names")
+    return V, names, version
+
+
+def _valid_rows(V: np.ndarray) -> np.ndarray:
+    return np.isfinite(V).all(axis=1) & (V >= 0).all(axis=1) if V.size else np.ones(
+        V.shape[0], dtype=bool)
+
+
+def _stack(tables: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]:
+    if isinstance(tables, np.ndarray) or hasattr(tables, "binned"):
+        tables = [tables]
+    parts = [_table_parts(t) for t in tables]
+    if not parts:
+        raise EngineInputError("no feature tables given; pass at least one table to fit")
+    names, version = parts[0][1], parts[0][2]
+    for V, n2, v2 in parts[1:]:
+        if v2 != version:
+            raise RecipeMismatch(v2, version)
+        if n2 != names or V.shape[1] != parts[0][0].shape[1]:
+            raise FeatureMismatch(
+                "the feature tables to stack have different feature columns; build them "
+                "all with the same feature recipe")
+    return np.vstack([p[0] for p in parts]), names, version
+
+
+# ---------------------------------------------------------------------------
+# minimum description length (RolX model selection)
+# ---------------------------------------------------------------------------
+
+def default_bits_per_value(V: np.ndarray) -> int:
+    """Bits b used to encode one value of G or F in the RolX model cost.
+
+    RolX quantises the entries of G and F before counting their cost (Henderson et al.,
+    KDD 2012, Section 3, recalled from memory).  We take b as the number of bits needed
+    to tell apart the distinct non-zero values of V, ``ceil(log2(#distinct + 1))``,
+    clipped to [1, 32]: a factorisation is never encoded more finely than the data it
+    explains.  For binned ReFeX features (small integers) this is a few bits.
+    """
+    nz = V[V > 0]
+    distinct = np.unique(nz).size if nz.size else 0
+    return int(min(32, max(1, math.ceil(math.log2(distinct + 1)))))
+
+
+def description_length(V: np.ndarray, G: np.ndarray, F: np.ndarray,
+                       bits_per_value: int) -> tuple[float, float]:
+    """Model and error description lengths (bits) of V ~ G F, as in RolX.
+
+    Parameters
+    ----------
+    V : ndarray, shape (n, f)
+    G : ndarray, shape (n, k)
+    F : ndarray, shape (k, f)
+    bits_per_value : int
+        b, the bits spent per entry of G and F.
+
+    Returns
+    -------
+    model_bits, error_bits : float
+        ``M = b * k * (n + f)`` and ``E = sum_ij V_ij log(V_ij / R_ij) - V_ij + R_ij``
+        (the generalised Kullback-Leibler divergence of V from R = G F) converted from
+        nats to bits.
+
+    Notes
+    -----
+    Henderson et al., KDD 2012, Section 3 ("model selection"), recalled from memory:
+    the total description length is L = M + E with M = b k (n + f) for the quantised
+    factors and E the KL-divergence cost of encoding V given G F; RolX picks the k with
+    the smallest L.  Entries where V = 0 contribute R_ij; entries where R_ij = 0 but
+    V_ij > 0 are floored at a tiny R to keep E finite.
+    """
+    n, f = V.shape
+    k = F.shape[0]
+    R = np.maximum(G @ F, _EPS)
+    pos = V > 0
+    err = float(np.sum(V[pos] * np.log(V[pos] / R[pos])) - V.sum() + R.sum())
+    return float(bits_per_value * k * (n + f)), max(err, 0.0) / math.log(2)
+
+
+def _fit_nmf(V: np.ndarray, k: int, seed: int) -> tuple[np.ndarray, np.ndarray, float]:
+    """One scikit-learn NMF fit (coordinate descent, Frobenius loss, NNDSVDa start)."""
+    model = NMF(n_components=k, init="nndsvda", solver="cd", beta_loss="frobenius",
+                max_iter=1000, tol=1e-6, random_state=seed)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        G = model.fit_transform(V)
+    return G, model.components_, float(model.reconstruction_err_)
+
+
+def _normalise_profiles(G: np.ndarray, F: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Scale each role profile to sum 1 and move the scale into G (V ~ G F unchanged)."""
+    sums = F.sum(axis=1)
+    keep = sums > 0
+    F = F[keep] / sums[keep, None]
+    G = G[:, keep] * sums[keep][None, :]
+    return G, F
+
+
+# ---------------------------------------------------------------------------
+# the frozen basis
+# ---------------------------------------------------------------------------
+
+def _frozen(a: np.ndarray) -> np.ndarray:
+    a = np.array(a, dtype=np.float64, copy=True)
+    a.setflags(write=False)
+    return a
+
+
+def _version_of(F: np.ndarray, role_ids: Sequence[int], names: Sequence[str],
+                recipe_version: str | None) -> str:
+    body = {
+        "F": [[float(x) for x in row] for row in F],
+        "role_ids": [int(r) for r in role_ids],
+        "feature_names": list(names),
+        "recipe_version": recipe_version,
+    }
+    text = json.dumps(body, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+
+
+@dataclass(frozen=True, eq=False)
+class RoleBasis:
+    """A frozen set of roles: profiles F with stable ids, fitted by RolX.
+
+    Attributes
+    ----------
+    F : ndarray, shape (k, f)
+        Non-negative role profiles in binned feature space, each row summing to 1 (the
+        scale lives in the memberships).  Read-only.
+    role_ids : tuple of int
+        Stable role ids, one per row of F; kept across refits by :meth:`aligned_to`.
+    feature_names : tuple of str
+        Feature column names (``f0, f1, ...`` when fitted on a plain array).
+    recipe_version : str or None
+        Version of the feature recipe the basis was fitted on (None for plain arrays).
+    version : str
+        Short sha256 of F, role ids, feature names and recipe version.
+    summary : dict
+        Training summary: rows, features, chosen k, how k was chosen, the MDL table
+        (one entry per candidate k), bits per value, relative reconstruction error.
+
+    Notes
+    -----
+    Henderson et al., KDD 2012 (RolX) for the factorisation and model selection;
+    Rossi et al., WWW 2012 / WSDM 2013 for keeping one global basis over snapshots and
+    refitting memberships per snapshot.
+    """
+
+    F: np.ndarray
+    role_ids: tuple[int, ...]
+    feature_names: tuple[str, ...]
+    recipe_version: str | None
+    version: str = ""
+    summary: dict = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        F = np.asarray(self.F, dtype=np.float64)
+        if F.ndim != 2:
+            raise EngineInputError(f"role profiles F must be 2-D (roles x features), got {F.shape}")
+        if not np.isfinite(F).all() or (F < 0).any():
+            raise EngineInputError("role profiles F must be finite and non-negative")
+        k, f = F.shape
+        ids = tuple(int(r) for r in self.role_ids)
+        names = tuple(str(x) for x in self.feature_names)
+        if len(ids) != k or len(set(ids)) != k:
+            raise EngineInputError(f"need {k} distinct role ids, got {self.role_ids!r}")
+        if len(names) != f:
+            raise FeatureMismatch(f"F has {f} feature columns but {len(names)} names")
+        if k > f:
+            raise TooManyRoles(
+                f"a basis with {k} roles over {f} features cannot be identified; use at "
+                f"most {f} roles or a feature recipe with more features")
+        object.__setattr__(self, "F", _frozen(F))
+        object.__setattr__(self, "role_ids", ids)
+        object.__setattr__(self, "feature_names", names)
+        object.__setattr__(self, "version",
+                           _version_of(F, ids, names, self.recipe_version))
+        object.__setattr__(self, "summary", dict(self.summary))
+
+    @property
+    def n_roles(self) -> int:
+        """Number of roles k."""
+        return self.F.shape[0]
+
+    # -- fitting ------------------------------------------------------------------
+
+    @classmethod
+    def fit(cls, tables: Any, *, n_roles: int | None = None,
+            k_range: tuple[int, int] = (2, 12), seed: int = 0,
+            bits_per_value: int | None = None) -> "RoleBasis":
+        """Fit a role basis on one or more reference feature tables (RolX).
+
+        Parameters
+        ----------
+        tables : FeatureTable, ndarray, or sequence of them
+            Reference tables; their ``binned`` matrices are stacked row-wise.  All must
+            come from the same recipe.  Rows with NaN, inf or negative values are left
+            out (counted in ``summary["rows_dropped"]``).
+        n_roles : int, optional
+            Fixed number of roles.  None chooses k by minimum description length over
+            ``k_range`` (inclusive), as RolX does.
+        k_range : (int, int)
+            Smallest and largest k tried by MDL; clipped to the number of features and
+            rows.
+        seed : int
+            Random state for scikit-learn's NMF; the fit is deterministic given it.
+        bits_per_value : int, optional
+            b in the model cost; default :func:`default_bits_per_value`.
+
+        Returns
+        -------
+        RoleBasis
+
+        Raises
+        ------
+        TooManyRoles
+            ``n_roles`` exceeds the number of features (or rows).
+        RecipeMismatch, FeatureMismatch
+            Tables from different recipes.
+        EngineInputError
+            No usable rows, or V is all zeros.
+
+        Notes
+        -----
+        V ~ G F by scikit-learn ``NMF`` (Henderson et al., KDD 2012, Section 3); the
+        model selection follows :func:`description_length`.
+        """
+        V, names, recipe_version = _stack(tables)
+        n_all, f = V.shape
+        valid = _valid_rows(V)
+        V = V[valid]
+        n = V.shape[0]
+        if names is None:
+            names = tuple(f"f{j}" for j in range(f))
+        if n == 0 or f == 0:
+            raise EngineInputError(
+                "no usable rows to fit roles on (every row has NaN, inf or negative "
+                "values, or the table is empty)")
+        if not (V > 0).any():
+            raise EngineInputError(
+                "every feature value is zero; roles need a reference period with activity")
+        b = int(bits_per_value) if bits_per_value is not None else default_bits_per_value(V)
+        if n_roles is not None:
+            k = int(n_roles)
+            if k < 1:
+                raise EngineInputError(f"n_roles must be at least 1, got {k}")
+            if k > f or k > n:
+                raise TooManyRoles(
+                    f"asked for {k} roles but the reference matrix has only {f} features "
+                    f"and {n} usable rows; ask for at most {min(f, n)} roles")
+            candidates = [k]
+        else:
+            lo, hi = int(k_range[0]), int(k_range[1])
+            if lo < 1 or hi < lo:
+                raise EngineInputError(f"k_range must be (lo, hi) with 1 <= lo <= hi, got {k_range}")
+            hi = min(hi, f, n)
+            lo = min(lo, hi)
+            candidates = list(range(lo, hi + 1))
+        table, fits = [], {}
+        for k in candidates:
+            G, F, _ = _fit_nmf(V, k, seed)
+            model_bits, error_bits = description_length(V, G, F, b)
+            table.append({"k": k, "model_bits": model_bits, "error_bits": error_bits,
+                          "total_bits": model_bits + error_bits})
+            fits[k] = (G, F)
+        best = min(table, key=lambda row: (row["total_bits"], row["k"]))["k"]
+        G, F = _normalise_profiles(*fits[best])
+        norm_v = float(np.linalg.norm(V))
+        rel_err = float(np.linalg.norm(V - G @ F) / max(norm_v, _EPS))
+        summary = {
+            "rows": int(n), "rows_dropped": int(n_all - n), "features": int(f),
+            "n_roles": int(F.shape[0]),
+            "selection": "fixed" if n_roles is not None else "mdl",
+            "bits_per_value": b, "seed": int(seed), "mdl": table,
+            "relative_error": rel_err,
+        }
+        return cls(F=F, role_ids=tuple(range(F.shape[0])), feature_names=names,
+                   recipe_version=recipe_version, summary=summary)
+
+    # -- refitting memberships ----------------------------------------------------
+
+    def _check_table(self, table: Any) -> np.ndarray:
+        V, names, version = _table_parts(table)
+        if version is not None and self.recipe_version is not None \
+                and version != self.recipe_version:
+            raise RecipeMismatch(version, self.recipe_version)
+        if V.shape[1] != len(self.feature_names):
+            raise FeatureMismatch(
+                f"table has {V.shape[1]} features but the basis expects "
+                f"{len(self.feature_names)} ({self.recipe_version=}); transform the snapshot "
+                "with the recipe the basis was fitted on")
+        if names is not None and names != self.feature_names and version is None:
+            raise FeatureMismatch("table feature names differ from the basis feature names")
+        return V
+
+    def memberships(self, table: Any) -> Memberships:
+        """Refit role memberships of every row of ``table`` against the frozen F.
+
+        Solves ``min ||v_i - g_i F||_2, g_i >= 0`` for all rows at once by block
+        principal pivoting (exact NNLS; see :mod:`rolewatch.engine.nnls`), as role
+        dynamics does per snapshot (Rossi et al., WWW 2012 / WSDM 2013) with the RolX
+        factorisation (Henderson et al., KDD 2012).
+
+        Parameters
+        ----------
+        table : FeatureTable or ndarray, shape (n, f)
+
+        Returns
+        -------
+        Memberships
+            Rows with NaN, inf or negative features get NaN results; the other rows are
+            unaffected.
+
+        Raises
+        ------
+        RecipeMismatch
+            The table's recipe version differs from the basis's.
+        FeatureMismatch
+            Wrong number of feature columns.
+        """
+        V = self._check_table(table)
+        n, k = V.shape[0], self.n_roles
+        valid = _valid_rows(V)
+        Vv = V[valid] if not valid.all() else V
+        G = nnls_rows(self.F, Vv)
+        resid = np.linalg.norm(Vv - G @ self.F, axis=1)
+        err = resid / np.maximum(np.linalg.norm(Vv, axis=1), _EPS)
+        sums = G.sum(axis=1, keepdims=True)
+        mix = np.divide(G, sums, out=np.full_like(G, 1.0 / k), where=sums > 0)
+        if valid.all():
+            return Memberships(loadings=G, mixture=mix, error=err)
+        out_g = np.full((n, k), np.nan)
+        out_m = np.full((n, k), np.nan)
+        out_e = np.full(n, np.nan)
+        out_g[valid], out_m[valid], out_e[valid] = G, mix, err
+        return Memberships(loadings=out_g, mixture=out_m, error=out_e)
+
+    # -- keeping ids across refits ----------------------------------------------
+
+    def aligned_to(self, previous: "RoleBasis", *,
+                   max_distance: float | None = None) -> "RoleBasis":
+        """Return this basis with role ids matched to ``previous`` where roles persist.
+
+        Roles are matched by :func:`scipy.optimize.linear_sum_assignment` on the
+        Hellinger distance between role profiles (rows of F, each a distribution over
+        features).  When the feature names differ, the match uses the features both
+        bases share (profiles renormalised on them).  Matched roles take the previous
+        id; unmatched roles (more roles than before, or a match farther than
+        ``max_distance``) get fresh ids above the largest previous id.  Rows are
+        returned in ascending id order.  Keeping one role basis meaningful over time
+        follows Rossi et al. (WWW 2012 / WSDM 2013).
+
+        Raises
+        ------
+        FeatureMismatch
+            The two bases share no feature.
+        """
+        cur_F, prev_F = self.F, previous.F
+        if self.feature_names != previous.feature_names:
+            common = [x for x in self.feature_names if x in set(previous.feature_names)]
+            if not common:
+                raise FeatureMismatch(
+                    "the new and previous bases share no feature; role ids cannot be "
+                    "matched (fit both on tables of a shared recipe)")
+            ci = {x: i for i, x in enumerate(self.feature_names)}
+            pi = {x: i for i, x in enumerate(previous.feature_names)}
+            cur_F = cur_F[:, [ci[x] for x in common]]
+            prev_F = prev_F[:, [pi[x] for x in common]]
+        cost = role_profile_distances(cur_F, prev_F)
+        rows, cols = linear_sum_assignment(cost)
+        prev_ids = np.asarray(previous.role_ids)
+        new_ids = np.full(self.n_roles, -1, dtype=np.int64)
+        matches = []
+        for r, c in zip(rows, cols):
+            if max_distance is not None and cost[r, c] > max_distance:
+                continue
+            new_ids[r] = prev_ids[c]
+            matches.append({"role_id": int(prev_ids[c]), "distance": float(cost[r, c])})
+        next_id = int(max(prev_ids.max(initial=-1), max(self.role_ids, default=-1))) + 1
+        for r in np.flatnonzero(new_ids < 0):
+            new_ids[r] = next_id
+            next_id += 1
+        order = np.argsort(new_ids, kind="stable")
+        summary = dict(self.summary)
+        summary["aligned_to"] = {"version": previous.version, "matches": matches}
+        return RoleBasis(F=self.F[order], role_ids=tuple(int(x) for x in new_ids[order]),
+                         feature_names=self.feature_names,
+                         recipe_version=self.recipe_version, summary=summary)
+
+    # -- serialisation ------------------------------------------------------------
+
+    def to_dict(self) -> dict:
+        """Plain-JSON form (lists and numbers); :meth:`from_dict` restores it exactly."""
+        return {
+            "format": _FORMAT,
+            "format_version": _FORMAT_VERSION,
+            "version": self.version,
+            "recipe_version": self.recipe_version,
+            "feature_names": list(self.feature_names),
+            "role_ids": list(self.role_ids),
+            "F": [[float(x) for x in row] for row in self.F],
+            "summary": json.loads(json.dumps(self.summary)),
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "RoleBasis":
+        """Rebuild a basis from :meth:`to_dict` output.
+
+        Raises
+        ------
+        EngineInputError
+            Not a role basis document, or its version hash does not match its content
+            (the document was edited or corrupted).
+        """
+        if not isinstance(d, dict) or d.get("format") != _FORMAT:
+            raise EngineInputError("not a rolewatch role basis document (missing format tag)")
+        if d.get("format_version") != _FORMAT_VERSION:
+            raise EngineInputError(
+                f"role basis format version {d.get('format_version')!r} is not supported "
+                f"(expected {_FORMAT_VERSION})")
+        F = np.asarray(d["F"], dtype=np.float64)
+        if F.ndim != 2:
+            F = F.reshape(len(d["role_ids"]), len(d["feature_names"]))
+        basis = cls(F=F, role_ids=tuple(d["role_ids"]),
+                    feature_names=tuple(d["feature_names"]),
+                    recipe_version=d.get("recipe_version"), summary=d.get("summary", {}))
+        if d.get("version") and d["version"] != basis.version:
+            raise EngineInputError(
+                f"role basis document says version {d['version']!r} but its content hashes "
+                f"to {basis.version!r}; the document was changed or corrupted")
+        return basis
+
+
+def role_profile_distances(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """Hellinger distances between every row of A and every row of B (each row L1-normalised).
+
+    Used to match roles across bases and as the ground cost between roles.  Hellinger
+    distance H(p, q) = (1/sqrt 2) ||sqrt p - sqrt q||_2 (Hellinger 1909; standard
+    statistics texts; recalled from memory).  All-zero rows count as uniform.
+    """
+    def norm(X: np.ndarray) -> np.ndarray:
+        X = np.asarray(X, dtype=np.float64)
+        s = X.sum(axis=1, keepdims=True)
+        return np.divide(X, s, out=np.full_like(X, 1.0 / max(X.shape[1], 1)), where=s > 0)
+
+    SA, SB = np.sqrt(norm(A)), np.sqrt(norm(B))
+    sq = (SA ** 2).sum(1)[:, None] + (SB ** 2).sum(1)[None, :] - 2 * SA @ SB.T
+    return np.sqrt(np.clip(sq, 0.0, None) / 2.0)
