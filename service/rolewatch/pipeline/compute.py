@@ -1,0 +1,292 @@
+"""One window's numbers: snapshot → features → memberships → shift scores → alert evidence.
+
+No database access here: the closer loads the inputs and stores the result, so this step can
+also run in the detection benchmark with the very same code.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from rolewatch.engine.activity import Activity, activity_counts, top_counterparts
+from rolewatch.engine.scoring import ShiftPolicy, score_window
+from rolewatch.engine.shift import baseline_mixture, feature_moves
+from rolewatch.engine.snapshot import Snapshot
+from rolewatch.pipeline.loading import WindowEvents
+from rolewatch.pipeline.model import FrozenModel
+
+REVIEW_NOTICE = (
+    "A lead for human review, not a verdict: check the evidence before acting on this "
+    "account, and follow your data-protection obligations and your organisation's policy."
+)
+
+
+@dataclass(frozen=True)
+class PastWindow:
+    """Stored memberships of one earlier window, mapped onto the model's role ids."""
+
+    accounts: np.ndarray  # str
+    mixture: np.ndarray  # m x k, columns in model.basis.role_ids order
+    events: np.ndarray  # m
+
+
+@dataclass
+class WindowResult:
+    nodes: np.ndarray
+    mixture: np.ndarray
+    dominant: np.ndarray
+    score: np.ndarray
+    status: np.ndarray
+    error: np.ndarray
+    activity: Activity
+    alerts: list[dict]
+    reconstruction_error: float | None
+    new_count: int
+    inactive_count: int
+    scored_count: int
+
+
+def policy_from_settings(settings) -> ShiftPolicy:
+    return ShiftPolicy(
+        measure=settings.shift_measure,
+        baseline=settings.shift_baseline,
+        last_k=settings.baseline_windows,
+        half_life=settings.baseline_half_life,
+        mode=settings.alert_mode,
+        threshold=settings.alert_threshold,
+        budget=settings.alert_budget,
+        floor=settings.alert_floor,
+        min_events=settings.min_events,
+    )
+
+
+def history_tensor(snapshot: Snapshot, past: list[PastWindow], n_roles: int):
+    """(t x n x k mixtures with NaN rows where inactive, t x n events) for the snapshot's nodes.
+
+    ``past`` runs from the oldest window to the newest.
+    """
+    n = snapshot.n_nodes
+    mixtures = np.full((len(past), n, n_roles), np.nan)
+    events = np.full((len(past), n), np.nan)
+    for step, window in enumerate(past):
+        rows = snapshot.index_of(window.accounts)
+        present = rows >= 0
+        mixtures[step, rows[present]] = window.mixture[present]
+        events[step, rows[present]] = window.events[present]
+    return mixtures, events
+
+
+def _latest_events(events_history: np.ndarray) -> np.ndarray:
+    """Each node's event count in its most recent active past window (NaN when none)."""
+    latest = np.full(events_history.shape[1], np.nan)
+    for step in range(events_history.shape[0]):
+        seen = ~np.isnan(events_history[step])
+        latest[seen] = events_history[step, seen]
+    return latest
+
+
+def compute_window(
+    model: FrozenModel,
+    settings,
+    current: WindowEvents,
+    previous: WindowEvents | None,
+    past: list[PastWindow],
+    *,
+    window: dict,
+    raise_alerts: bool,
+) -> WindowResult:
+    """Measure every active account of one window against its own history.
+
+    Parameters
+    ----------
+    window
+        ``{"id", "start", "end"}`` of the window (RFC 3339), copied into the evidence.
+    raise_alerts
+        False for training windows: they are scored for the record but never alert.
+    """
+    snapshot = current.snapshot()
+    previous_snapshot = previous.snapshot() if previous is not None else None
+    role_ids = np.asarray(model.basis.role_ids)
+    k = len(role_ids)
+    n = snapshot.n_nodes
+    activity = activity_counts(snapshot, previous_snapshot)
+    if n == 0:
+        return WindowResult(
+            nodes=snapshot.nodes,
+            mixture=np.zeros((0, k)),
+            dominant=np.zeros(0, dtype=np.int64),
+            score=np.zeros(0),
+            status=np.array([], dtype=object),
+            error=np.zeros(0),
+            activity=activity,
+            alerts=[],
+            reconstruction_error=None,
+            new_count=0,
+            inactive_count=len(past[-1].accounts) if past else 0,
+            scored_count=0,
+        )
+    table = model.recipe.transform(snapshot)
+    members = model.basis.memberships(table)
+    history, events_history = history_tensor(snapshot, past, k)
+    policy = policy_from_settings(settings)
+    if len(past):
+        baseline = baseline_mixture(
+            history, mode=policy.baseline, last_k=policy.last_k, half_life=policy.half_life
+        )
+    else:
+        baseline = np.full((n, k), np.nan)
+    baseline_events = _latest_events(events_history)
+    scores = score_window(
+        members.mixture,
+        baseline,
+        activity.events.astype(np.float64),
+        baseline_events,
+        members.error,
+        model.basis.F,
+        policy,
+    )
+    dominant = role_ids[np.argmax(members.mixture, axis=1)]
+    status = np.asarray(scores.status, dtype=object)
+    inactive_count = 0
+    if past:
+        still_here = snapshot.index_of(past[-1].accounts) >= 0
+        inactive_count = int((~still_here).sum())
+
+    alerts: list[dict] = []
+    if raise_alerts and np.any(scores.alert):
+        previous_table = (
+            model.recipe.transform(previous_snapshot)
+            if previous_snapshot is not None and previous_snapshot.n_nodes
+            else None
+        )
+        previous_activity = (
+            activity_counts(previous_snapshot) if previous_table is not None else None
+        )
+        threshold = settings.alert_threshold if policy.mode == "threshold" else settings.alert_floor
+        for row in np.flatnonzero(scores.alert):
+            alerts.append(
+                _alert_record(
+                    model,
+                    settings,
+                    row=int(row),
+                    snapshot=snapshot,
+                    previous_snapshot=previous_snapshot,
+                    table=table,
+                    previous_table=previous_table,
+                    previous_activity=previous_activity,
+                    mixture=members.mixture[row],
+                    baseline=baseline[row],
+                    scores=scores,
+                    activity=activity,
+                    baseline_events=baseline_events[row],
+                    current=current,
+                    window=window,
+                    threshold=threshold,
+                    policy=policy,
+                )
+            )
+    return WindowResult(
+        nodes=snapshot.nodes,
+        mixture=members.mixture,
+        dominant=dominant,
+        score=np.asarray(scores.score, dtype=np.float64),
+        status=status,
+        error=members.error,
+        activity=activity,
+        alerts=alerts,
+        reconstruction_error=float(np.mean(members.error)),
+        new_count=int(np.sum(status == "new")),
+        inactive_count=inactive_count,
+        scored_count=int(np.sum(status == "scored")),
+    )
+
+
+def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> list[dict]:
+    entries = [
+        {"role_id": int(role_id), "name": model.role_name(int(role_id)), "weight": round(float(w), 4)}
+        for role_id, w in zip(model.basis.role_ids, mixture)
+    ]
+    return sorted(entries, key=lambda entry: -entry["weight"])
+
+
+def _alert_record(
+    model,
+    settings,
+    *,
+    row,
+    snapshot,
+    previous_snapshot,
+    table,
+    previous_table,
+    previous_activity,
+    mixture,
+    baseline,
+    scores,
+    activity,
+    baseline_events,
+    current,
+    window,
+    threshold,
+    policy,
+) -> dict:
+    account = str(snapshot.nodes[row])
+    role_ids = model.basis.role_ids
+    role_after = int(role_ids[int(np.argmax(mixture))])
+    role_before = int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
+    before_raw = np.zeros(table.raw.shape[1])
+    before_counts = {"events_out_before": 0, "events_in_before": 0, "counterparts_before": 0}
+    if previous_table is not None:
+        previous_row = previous_snapshot.index_of([account])[0]
+        if previous_row >= 0:
+            before_raw = previous_table.raw[previous_row]
+            before_counts = {
+                "events_out_before": int(previous_activity.events_out[previous_row]),
+                "events_in_before": int(previous_activity.events_in[previous_row]),
+                "counterparts_before": int(previous_activity.counterparts[previous_row]),
+            }
+    involved = (current.actor == account) | (current.target == account)
+    sample_ids = [str(event_id) for event_id in current.event_id[involved][:5]]
+    base_url = settings.public_url.rstrip("/")
+    from urllib.parse import quote
+
+    evidence = {
+        "threshold": float(threshold),
+        "measure": policy.measure,
+        "mode": policy.mode,
+        "components": {
+            "composition": _finite(scores.composition[row]),
+            "magnitude": _finite(scores.magnitude[row]),
+            "error": _finite(scores.error[row]),
+        },
+        "mixture_before": _mixture_list(model, np.nan_to_num(baseline)),
+        "mixture_after": _mixture_list(model, mixture),
+        "feature_moves": feature_moves(table.names, before_raw, table.raw[row], top=5),
+        "activity": {
+            "events_out": int(activity.events_out[row]),
+            "events_in": int(activity.events_in[row]),
+            "counterparts": int(activity.counterparts[row]),
+            "new_counterparts": int(activity.new_counterparts[row]),
+            **before_counts,
+        },
+        "top_counterparts": top_counterparts(snapshot, row, previous_snapshot, top=10),
+        "sample_event_ids": sample_ids,
+        "history_url": f"{base_url}/v1/accounts/{quote(account, safe='')}/roles",
+        "page_url": f"{base_url}/accounts/{quote(account, safe='')}",
+        "notice": REVIEW_NOTICE,
+        "window": window,
+        "basis_version": model.basis.version,
+    }
+    return {
+        "account": account,
+        "score": float(scores.score[row]),
+        "role_before": role_before,
+        "role_after": role_after,
+        "evidence": evidence,
+    }
+
+
+def _finite(value) -> float | None:
+    value = float(value)
+    return value if np.isfinite(value) else None
