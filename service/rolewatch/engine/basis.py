@@ -456,7 +456,7 @@ class RoleBasis:
                 continue
             new_ids[r] = prev_ids[c]
             matches.append({"role_id": int(prev_ids[c]), "distance": float(cost[r, c])})
-        next_id = int(max(prev_ids.max(initial=-1), max(self.role_ids, default=-1))) + 1
+        next_id = int(prev_ids.max(initial=-1)) + 1
         for r in np.flatnonzero(new_ids < 0):
             new_ids[r] = next_id
             next_id += 1
