@@ -90,6 +90,11 @@ class Settings(BaseSettings):
         "http://127.0.0.1:8000",
         description="Base URL people use to reach this service; alert links point here.",
     )
+    metrics_public: bool = Field(
+        False,
+        description="Serve GET /metrics without an API key (for a scraper on a private "
+        "network); by default it needs a key with the read scope.",
+    )
     role: Literal["all", "api", "worker"] = Field(
         "all",
         description="What this process runs: all (API and background jobs), api (HTTP only) "
@@ -198,6 +203,17 @@ class Settings(BaseSettings):
     )
     secret_overlap: Duration = Field(
         "24h", description="How long a rotated-out signing secret keeps signing beside the new one."
+    )
+    delivery_batch_size: int = Field(
+        50, ge=1, description="Most deliveries one worker run claims and sends."
+    )
+    delivery_concurrency: int = Field(
+        4, ge=1, description="Webhook requests one worker run sends at the same time."
+    )
+    delivery_ca_bundle: str | None = Field(
+        None,
+        description="PEM file of certificate authorities trusted for https webhooks, for "
+        "receivers behind an internal CA (empty: the system's trusted authorities).",
     )
 
     # --- retention and logging ---------------------------------------------------------

@@ -1,0 +1,121 @@
+"""The delivery outbox: one ``deliveries`` row per (alert, matching subscription).
+
+``enqueue_alerts`` runs inside the window's transaction, so alerts and their deliveries are
+committed together or not at all. Each row holds the exact body bytes, built now, so every
+retry sends identical bytes under the same ``webhook-id``; the worker only signs and sends.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from collections.abc import Iterable
+from typing import Any
+
+from sqlalchemy import select
+from sqlalchemy.engine import Connection
+
+from rolewatch.delivery.ids import message_id
+from rolewatch.delivery.payloads import ALERT_RAISED, ALERT_TEST, build_body, rfc3339
+from rolewatch.delivery.subscriptions import _live
+from rolewatch.store.schema import deliveries, subscriptions
+
+
+def _now_us() -> int:
+    return time.time_ns() // 1000
+
+
+def matches(subscription: Any, alert: dict[str, Any]) -> bool:
+    """True when ``alert`` passes the subscription's filters: score at least ``min_score`` and,
+    when a role list is set, the new dominant role (``role_after.id``) in it."""
+    score = alert.get("score")
+    if score is None or float(score) < float(subscription.min_score or 0.0):
+        return False
+    if subscription.roles:
+        wanted = set(json.loads(subscription.roles))
+        role_after = (alert.get("role_after") or {}).get("id")
+        return role_after in wanted
+    return True
+
+
+def _row(subscription: Any, alert: dict[str, Any], event_type: str, now_us: int) -> dict:
+    return {
+        "id": message_id(now_us),
+        "subscription_id": subscription.id,
+        "alert_id": alert.get("id") if event_type == ALERT_RAISED else None,
+        "event_type": event_type,
+        "body": build_body(subscription.format, alert, event_type, now_us).decode("utf-8"),
+        "status": "pending",
+        "attempts": 0,
+        "next_attempt_us": now_us,
+        "created_us": now_us,
+        "delivered_us": None,
+        "last_status_code": None,
+        "last_error": None,
+    }
+
+
+def enqueue_alerts(
+    connection: Connection,
+    settings,
+    alerts: Iterable[dict[str, Any]],
+    *,
+    now_us: int | None = None,
+) -> list[str]:
+    """Queue one delivery per alert and live subscription whose filters it passes.
+
+    ``alerts`` are dicts in the API alert form (docs/CONTRACTS.md). Paused subscriptions get
+    their deliveries queued too; the worker holds them until the subscription is resumed.
+    Returns the new delivery (``webhook-id``) ids. Runs in the caller's transaction.
+    """
+    alerts = list(alerts)
+    if not alerts:
+        return []
+    now_us = _now_us() if now_us is None else now_us
+    live = connection.execute(
+        select(subscriptions).where(subscriptions.c.deleted_us.is_(None))
+    ).all()
+    rows = [
+        _row(subscription, alert, ALERT_RAISED, now_us)
+        for alert in alerts
+        for subscription in live
+        if matches(subscription, alert)
+    ]
+    if rows:
+        connection.execute(deliveries.insert(), rows)
+    return [row["id"] for row in rows]
+
+
+def sample_alert(settings, now_us: int) -> dict[str, Any]:
+    """A clearly fictional alert for ``POST /v1/subscriptions/{id}/test``."""
+    base = settings.public_url.rstrip("/")
+    week_us = 7 * 86_400 * 1_000_000
+    end_us = now_us - now_us % week_us
+    return {
+        "id": 0,
+        "account": "test-account",
+        "window_id": 0,
+        "window_start": rfc3339(end_us - week_us),
+        "window_end": rfc3339(end_us),
+        "created": rfc3339(now_us),
+        "score": 1.0,
+        "basis_version": "test",
+        "role_before": {"id": 0, "name": "TEST role before"},
+        "role_after": {"id": 1, "name": "TEST role after"},
+        "evidence": {
+            "test": True,
+            "notice": "TEST message: no account changed role. Alerts are leads for human "
+            "review, not verdicts.",
+            "feature_moves": [{"feature": "out_degree", "before": 2.0, "after": 30.0}],
+            "activity": {"counterparts": 30, "new_counterparts": 28},
+            "page_url": f"{base}/accounts/test-account",
+        },
+    }
+
+
+def enqueue_test(connection: Connection, settings, subscription_id: str, *, now_us: int) -> str:
+    """Queue a test delivery (event type ``alert.test``) to one subscription, filters aside."""
+    subscription = _live(connection, subscription_id)
+    row = _row(subscription, sample_alert(settings, now_us), ALERT_TEST, now_us)
+    connection.execute(deliveries.insert().values(**row))
+    return row["id"]

@@ -1,0 +1,377 @@
+"""The delivery worker: claim due deliveries, sign and send them, record every attempt.
+
+One run of ``deliver_due`` has three steps, and only the first and last touch the database:
+
+1. *Claim* (one short write transaction): pick due ``pending`` rows of live, unpaused
+   subscriptions — on PostgreSQL with ``SELECT … FOR UPDATE SKIP LOCKED`` so concurrent
+   workers never pick the same row, on SQLite under the write lock — count the attempt and
+   push ``next_attempt_us`` past a lease, so no other worker takes the row while it is sent.
+2. *Send* (no transaction open): re-check the URL against the SSRF guard, connect to the
+   checked address, sign with the subscription's active secrets, never follow redirects,
+   read at most a short snippet of the answer.
+3. *Record* (one short write transaction per delivery): the attempt row, then the delivery's
+   new state — delivered, retried later with exponential backoff and jitter, or failed after
+   ``delivery_max_attempts``; the subscription's consecutive failures, pausing it after
+   ``subscription_pause_after`` of them or at once on ``410 Gone``.
+
+A worker that dies between claim and record leaves the row pending; it is sent again once the
+lease runs out (at-least-once delivery, same ``webhook-id``).
+"""
+
+from __future__ import annotations
+
+import logging
+import random
+import ssl
+import threading
+import time
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+
+import httpx
+from sqlalchemy import select, update
+from sqlalchemy.engine import Engine
+
+from rolewatch import metrics
+from rolewatch.delivery.payloads import plain
+from rolewatch.delivery.signing import webhook_headers
+from rolewatch.delivery.subscriptions import active_secrets
+from rolewatch.delivery.urlguard import Resolver, UnsafeURL, check_url_for
+from rolewatch.store.db import write_transaction
+from rolewatch.store.schema import deliveries, delivery_attempts, subscriptions
+
+log = logging.getLogger(__name__)
+
+BACKOFF_CAP_S = 6 * 3600
+SNIPPET_BYTES = 256
+SNIPPET_CHARS = 200
+USER_AGENT = "rolewatch-webhooks/0.1"
+
+
+@dataclass(frozen=True)
+class Claim:
+    """A delivery this worker holds for one attempt."""
+
+    delivery_id: str
+    subscription_id: str
+    attempt: int  # the attempt number this claim counts (1 for the first send)
+    body: bytes
+    url: str
+    secrets: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class AttemptResult:
+    """What one send did: an HTTP status, or an error that says what went wrong."""
+
+    status_code: int | None
+    error: str | None
+    duration_ms: float
+
+    @property
+    def ok(self) -> bool:
+        return self.status_code is not None and 200 <= self.status_code < 300
+
+    @property
+    def gone(self) -> bool:
+        return self.status_code == 410
+
+
+@dataclass
+class DeliveryReport:
+    """Counts of what one ``deliver_due`` run did."""
+
+    attempted: int = 0
+    delivered: int = 0
+    retrying: int = 0
+    failed: int = 0
+    paused: list[str] = field(default_factory=list)
+
+
+def backoff_seconds(attempt: int, base_s: float, *, rng: random.Random | None = None) -> float:
+    """Delay after failed attempt number ``attempt``: base · 2^(attempt-1), ±20 % jitter,
+    capped at 6 hours. Jitter spreads retries of many deliveries that failed together."""
+    rng = rng or random
+    delay = base_s * (2 ** min(attempt - 1, 40))
+    return min(delay * rng.uniform(0.8, 1.2), BACKOFF_CAP_S)
+
+
+def _lease_us(settings) -> int:
+    per_send = settings.delivery_connect_timeout + settings.delivery_timeout
+    rounds = -(-settings.delivery_batch_size // settings.delivery_concurrency)
+    return int((per_send.total_seconds() * rounds + 60) * 1_000_000)
+
+
+def claim_due(engine: Engine, settings, now_us: int) -> list[Claim]:
+    """Take up to ``delivery_batch_size`` due deliveries for this worker (step 1)."""
+    query = (
+        select(
+            deliveries.c.id,
+            deliveries.c.attempts,
+            deliveries.c.body,
+            deliveries.c.subscription_id,
+            subscriptions.c.url,
+            subscriptions.c.secret,
+            subscriptions.c.previous_secret,
+            subscriptions.c.previous_secret_until_us,
+        )
+        .join(subscriptions, subscriptions.c.id == deliveries.c.subscription_id)
+        .where(
+            deliveries.c.status == "pending",
+            deliveries.c.next_attempt_us <= now_us,
+            subscriptions.c.paused.is_(False),
+            subscriptions.c.deleted_us.is_(None),
+        )
+        .order_by(deliveries.c.next_attempt_us, deliveries.c.id)
+        .limit(settings.delivery_batch_size)
+        # PostgreSQL: rows another worker is claiming are skipped, not waited for.
+        # SQLite ignores this; BEGIN IMMEDIATE already serialises claimers.
+        .with_for_update(of=deliveries, skip_locked=True)
+    )
+    lease_until = now_us + _lease_us(settings)
+    claims = []
+    with write_transaction(engine) as connection:
+        for row in connection.execute(query).all():
+            attempt = row.attempts + 1
+            connection.execute(
+                update(deliveries)
+                .where(deliveries.c.id == row.id)
+                .values(attempts=attempt, next_attempt_us=lease_until)
+            )
+            claims.append(
+                Claim(
+                    delivery_id=row.id,
+                    subscription_id=row.subscription_id,
+                    attempt=attempt,
+                    body=row.body.encode("utf-8"),
+                    url=row.url,
+                    secrets=tuple(active_secrets(row, now_us)),
+                )
+            )
+    return claims
+
+
+def _ssl_context(settings) -> ssl.SSLContext:
+    context = ssl.create_default_context(cafile=settings.delivery_ca_bundle or None)
+    return context
+
+
+def make_client(settings) -> httpx.Client:
+    """An HTTP client for webhooks: timeouts, no redirects, no proxies from the environment
+    (a proxy would defeat the address pinning), certificates checked."""
+    return httpx.Client(
+        timeout=httpx.Timeout(
+            settings.delivery_timeout.total_seconds(),
+            connect=settings.delivery_connect_timeout.total_seconds(),
+        ),
+        follow_redirects=False,
+        trust_env=False,
+        verify=_ssl_context(settings),
+        headers={"user-agent": USER_AGENT},
+    )
+
+
+def _snippet(response: httpx.Response, deadline: float) -> str:
+    """At most ``SNIPPET_BYTES`` of the answer, read as a stream and cut off at the deadline."""
+    collected = b""
+    for chunk in response.iter_raw(SNIPPET_BYTES):
+        collected += chunk
+        if len(collected) >= SNIPPET_BYTES or time.monotonic() > deadline:
+            break
+    text = collected[:SNIPPET_BYTES].decode("utf-8", errors="replace")
+    return plain(text, SNIPPET_CHARS)
+
+
+def send_one(
+    claim: Claim, settings, client: httpx.Client, resolver: Resolver | None = None
+) -> AttemptResult:
+    """Check, sign and POST one delivery (step 2). Never raises; errors become the result."""
+    started = time.monotonic()
+    total_s = settings.delivery_timeout.total_seconds()
+    deadline = started + total_s
+
+    def result(status: int | None, error: str | None) -> AttemptResult:
+        return AttemptResult(status, error, round((time.monotonic() - started) * 1000, 1))
+
+    try:
+        checked = check_url_for(claim.url, settings, resolver)
+    except UnsafeURL as refused:
+        return result(None, f"not sent: {refused}")
+    headers = webhook_headers(claim.secrets, claim.delivery_id, int(time.time()), claim.body)
+    headers["content-type"] = "application/json"
+    headers["host"] = checked.host_header
+    extensions = {}
+    if checked.scheme == "https" and not checked.is_ip_literal:
+        extensions["sni_hostname"] = checked.host  # TLS name = the URL's host, not the IP
+    request = client.build_request(
+        "POST", checked.pinned_url(), content=claim.body, headers=headers, extensions=extensions
+    )
+    try:
+        response = client.send(request, stream=True)
+    except httpx.TimeoutException as error:
+        return result(None, f"timed out ({type(error).__name__}) after at most {total_s:g}s")
+    except httpx.ConnectError as error:
+        return result(None, f"could not connect: {plain(error, SNIPPET_CHARS) or 'refused'}")
+    except httpx.HTTPError as error:
+        return result(None, f"{type(error).__name__}: {plain(error, SNIPPET_CHARS)}")
+    try:
+        code = response.status_code
+        if 200 <= code < 300:
+            return result(code, None)
+        if 300 <= code < 400:
+            location = plain(response.headers.get("location", "(none)"), SNIPPET_CHARS)
+            return result(
+                code,
+                f"redirect {code} to {location} not followed: set the subscription URL to "
+                "the final address",
+            )
+        try:
+            snippet = _snippet(response, deadline)
+        except httpx.HTTPError:
+            snippet = ""
+        reason = "gone: the receiver asked to stop; subscription paused" if code == 410 else ""
+        return result(code, " — ".join(p for p in (f"HTTP {code}", reason, snippet) if p))
+    finally:
+        response.close()
+
+
+def record_attempt(
+    engine: Engine, settings, claim: Claim, outcome: AttemptResult, now_us: int, report: DeliveryReport
+) -> None:
+    """Store the attempt and move the delivery and its subscription on (step 3)."""
+    with write_transaction(engine) as connection:
+        connection.execute(
+            delivery_attempts.insert().values(
+                delivery_id=claim.delivery_id,
+                attempted_us=now_us,
+                status_code=outcome.status_code,
+                error=outcome.error,
+                duration_ms=outcome.duration_ms,
+            )
+        )
+        current = connection.execute(
+            select(deliveries.c.status, deliveries.c.attempts).where(
+                deliveries.c.id == claim.delivery_id
+            )
+        ).first()
+        # Redelivered, deleted or re-claimed after our lease ran out: the attempt is history,
+        # the row belongs to whoever holds it now.
+        if current is None or current.status != "pending" or current.attempts != claim.attempt:
+            return
+        sub = connection.execute(
+            select(subscriptions.c.consecutive_failures, subscriptions.c.paused).where(
+                subscriptions.c.id == claim.subscription_id
+            )
+        ).first()
+        common = {"last_status_code": outcome.status_code, "last_error": outcome.error}
+        if outcome.ok:
+            connection.execute(
+                update(deliveries)
+                .where(deliveries.c.id == claim.delivery_id)
+                .values(status="delivered", delivered_us=now_us, **common)
+            )
+            connection.execute(
+                update(subscriptions)
+                .where(subscriptions.c.id == claim.subscription_id)
+                .values(consecutive_failures=0)
+            )
+            report.delivered += 1
+            metrics.DELIVERIES.labels(outcome="delivered").inc()
+            return
+        if claim.attempt >= settings.delivery_max_attempts:
+            values = {"status": "failed", **common}
+            report.failed += 1
+            metrics.DELIVERIES.labels(outcome="failed").inc()
+        else:
+            delay = backoff_seconds(claim.attempt, settings.delivery_backoff.total_seconds())
+            values = {"next_attempt_us": now_us + int(delay * 1_000_000), **common}
+            report.retrying += 1
+            metrics.DELIVERIES.labels(outcome="retry").inc()
+        connection.execute(
+            update(deliveries).where(deliveries.c.id == claim.delivery_id).values(**values)
+        )
+        failures = (sub.consecutive_failures if sub else 0) + 1
+        sub_values: dict = {"consecutive_failures": failures}
+        if sub is not None and not sub.paused:
+            if outcome.gone:
+                sub_values.update(paused=True, paused_reason="the receiver answered 410 Gone")
+            elif failures >= settings.subscription_pause_after:
+                sub_values.update(
+                    paused=True,
+                    paused_reason=f"{failures} consecutive failed attempts; last: "
+                    f"{(outcome.error or '')[:SNIPPET_CHARS]}",
+                )
+            if sub_values.get("paused"):
+                report.paused.append(claim.subscription_id)
+                log.warning(
+                    "webhook subscription paused",
+                    extra={"fields": {"subscription": claim.subscription_id, "failures": failures}},
+                )
+        connection.execute(
+            update(subscriptions)
+            .where(subscriptions.c.id == claim.subscription_id)
+            .values(**sub_values)
+        )
+
+
+def release(engine: Engine, claim: Claim, now_us: int) -> None:
+    """Give a claimed delivery back unsent: attempt count and due time as before the claim."""
+    with write_transaction(engine) as connection:
+        connection.execute(
+            update(deliveries)
+            .where(deliveries.c.id == claim.delivery_id, deliveries.c.attempts == claim.attempt)
+            .values(attempts=claim.attempt - 1, next_attempt_us=now_us)
+        )
+
+
+def deliver_due(
+    engine: Engine,
+    settings,
+    now_us: int | None = None,
+    *,
+    resolver: Resolver | None = None,
+) -> DeliveryReport:
+    """Send every delivery due at ``now_us`` (default: now); the scheduler calls this each tick.
+
+    ``now_us`` drives scheduling (what is due, backoff, rotation overlap); the
+    ``webhook-timestamp`` header is always the wall clock at the moment of sending, because
+    receivers compare it with their own clock. ``resolver`` replaces ``socket.getaddrinfo``.
+    """
+    now_us = time.time_ns() // 1000 if now_us is None else now_us
+    report = DeliveryReport()
+    claims = claim_due(engine, settings, now_us)
+    if not claims:
+        return report
+    report.attempted = len(claims)
+    recording = threading.Lock()  # one recorder at a time: the report is shared
+    with make_client(settings) as client:
+
+        def attempt(claim: Claim) -> None:
+            if claim.subscription_id in report.paused:  # paused earlier in this run (410...)
+                release(engine, claim, now_us)
+                return
+            outcome = send_one(claim, settings, client, resolver)
+            with recording:
+                record_attempt(engine, settings, claim, outcome, now_us, report)
+            log.info(
+                "webhook attempt",
+                extra={
+                    "fields": {
+                        "delivery": claim.delivery_id,
+                        "subscription": claim.subscription_id,
+                        "attempt": claim.attempt,
+                        "status_code": outcome.status_code,
+                        "ok": outcome.ok,
+                        "duration_ms": outcome.duration_ms,
+                    }
+                },
+            )
+
+        workers = max(1, min(settings.delivery_concurrency, len(claims)))
+        if workers == 1:
+            for claim in claims:
+                attempt(claim)
+        else:
+            with ThreadPoolExecutor(workers, thread_name_prefix="rolewatch-deliver") as pool:
+                list(pool.map(attempt, claims))
+    return report
