@@ -130,11 +130,18 @@ class _Week:
         self.always_active = np.zeros(pop.size, dtype=bool)
         self.always_active[planted] = True
         self.steady = np.zeros(pop.size, dtype=bool)  # volume controls: fixed habits
+        reversed_shops = {p.account: p.partner for p in self.by_change["reversal"]}
         for p in self.by_change["volume_control"]:
+            # Up to three distinct favourites that keep selling all run, so the control's
+            # counterparts never change; a shop that will reverse is swapped for its
+            # replacement from the start.
+            keep = list(dict.fromkeys(reversed_shops.get(int(f), int(f))
+                                      for f in pop.favourites[p.account]))[:3]
+            pop.favourites[p.account, : len(keep)] = keep
+            pop.n_favourites[p.account] = len(keep)
             self.steady[p.account] = True
             pop.p_explore[p.account] = 0.0
             pop.p_deliver[p.account] = 0.0
-            pop.n_favourites[p.account] = 3
         self.ordinary_buyers = (pop.rate > 0) & ~self.always_active
         self.cycle = np.zeros(pop.size, dtype=np.int64)
         self.fresh_state: dict[int, dict] = {}
@@ -182,6 +189,10 @@ class _Week:
             if week >= p.week:
                 rate[p.account] *= 3.0
         count = rng.poisson(rate)
+        # Volume controls are steady: within a fifth of their rate every week, so that
+        # tripling stands out from week-to-week noise.
+        steady = np.flatnonzero(self.steady)
+        count[steady] = np.rint(rate[steady] * rng.uniform(0.8, 1.2, len(steady))).astype(count.dtype)
         floor = (self.always_active & active) | ((pop.joined == week) & (week > 0) & (pop.rate > 0))
         count[floor] = np.maximum(count[floor], 1)
         buyer = np.repeat(np.arange(pop.size), count)
