@@ -67,3 +67,57 @@ def write_transaction(engine: Engine) -> Iterator[Connection]:
         connection.execution_options(rolewatch_write=True)
         with connection.begin():
             yield connection
+
+
+# An arbitrary constant that names rolewatch's schema-upgrade lock among PostgreSQL advisory
+# locks ("rw" + "sc" in ASCII), so two processes starting at once upgrade one after the other.
+_MIGRATION_LOCK_ID = 0x7277_7363
+
+
+def alembic_config(connection: Connection | None = None):
+    """An Alembic ``Config`` pointing at the migrations shipped inside the installed package.
+
+    Built in code (no ``alembic.ini`` lookup, no dependence on the working directory).
+    """
+    from pathlib import Path
+
+    from alembic.config import Config
+
+    config = Config()
+    config.set_main_option("script_location", str(Path(__file__).resolve().parent / "migrations"))
+    if connection is not None:
+        config.attributes["connection"] = connection
+    return config
+
+
+def upgrade_to_head(engine: Engine) -> None:
+    """Run the Alembic migrations up to the newest revision.
+
+    On PostgreSQL a session advisory lock serialises concurrent upgrades: the second process
+    waits, then finds the schema at head and does nothing.
+    """
+    from alembic import command
+
+    with engine.connect() as connection:
+        postgres = connection.dialect.name == "postgresql"
+        if postgres:
+            connection.exec_driver_sql(f"SELECT pg_advisory_lock({_MIGRATION_LOCK_ID})")
+            connection.commit()
+        try:
+            command.upgrade(alembic_config(connection), "head")
+            connection.commit()
+        finally:
+            if postgres:
+                connection.exec_driver_sql(f"SELECT pg_advisory_unlock({_MIGRATION_LOCK_ID})")
+                connection.commit()
+
+
+def open_store(settings) -> Engine:
+    """Make the engine named by ``settings.database_url`` and upgrade its schema to head."""
+    engine = make_engine(
+        settings.database_url,
+        sqlite_synchronous=settings.sqlite_synchronous,
+        sqlite_busy_timeout=settings.sqlite_busy_timeout,
+    )
+    upgrade_to_head(engine)
+    return engine

@@ -1,0 +1,168 @@
+"""Pydantic v2 models of the wire format (DESIGN.md "Wire format"), used for validation of
+small request bodies and for the OpenAPI document at /docs.
+
+Events themselves are validated by :mod:`rolewatch.store.events` in plain Python (one model
+per event would cost more than the whole insert); :class:`Event` documents their form.
+Times are RFC 3339 strings in UTC with a "Z".
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict, Field
+
+
+class Event(BaseModel):
+    """One interaction event (documentation of the wire form)."""
+
+    model_config = ConfigDict(extra="forbid")
+    id: str | None = Field(None, max_length=200, description="Idempotency key; absent: a hash of the other fields.")
+    time: str = Field(..., description="RFC 3339 timestamp with an offset, e.g. 2026-02-12T09:30:00Z.")
+    actor: str = Field(..., max_length=200, description="The account that acted.")
+    target: str = Field(..., max_length=200, description="The account acted upon; differs from actor.")
+    kind: str | None = Field(None, max_length=64, description="e.g. payment, message.")
+    weight: float = Field(1.0, ge=0, description="Finite, ≥ 0, e.g. an amount.")
+
+
+class EventBatch(BaseModel):
+    events: list[Event]
+
+
+class Rejection(BaseModel):
+    index: int = Field(..., description="Position of the event in the batch (or NDJSON line, from 0).")
+    error: str
+
+
+class IngestResponse(BaseModel):
+    accepted: int = Field(..., description="Events newly stored.")
+    duplicates: int = Field(..., description="Events whose id was already stored.")
+    late: int = Field(0, description="Accepted events whose window had already closed.")
+    rejected: list[Rejection]
+
+
+class Problem(BaseModel):
+    detail: str
+
+
+class RoleRef(BaseModel):
+    id: int
+    name: str
+
+
+class Activity(BaseModel):
+    events_out: int
+    events_in: int
+    counterparts: int
+    new_counterparts: int
+
+
+class HistoryEntry(BaseModel):
+    window_id: int
+    window_start: str
+    window_end: str
+    basis_version: str
+    mixture: dict[str, float] = Field(..., description="{role_id: weight}, sums to 1.")
+    dominant_role: RoleRef
+    score: float | None = Field(..., description="Shift score; null on first appearance or when not scored.")
+    status: str = Field(..., description="new | scored | low_activity")
+    activity: Activity
+    reconstruction_error: float
+
+
+class AccountHistory(BaseModel):
+    account: str
+    windows: list[HistoryEntry]
+
+
+class Role(BaseModel):
+    id: int
+    name: str
+    description: str
+    profile: dict[str, Any]
+
+
+class RolesResponse(BaseModel):
+    basis_version: str | None
+    recipe_version: str | None = None
+    created: str | None = None
+    trained_from: str | None = None
+    trained_to: str | None = None
+    roles: list[Role]
+    message: str | None = None
+
+
+class RenameRole(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    name: str = Field(..., min_length=1, max_length=100, pattern=r"^[^\x00-\x1f\x7f-\x9f]+$")
+
+
+class ClosedWindow(BaseModel):
+    id: int
+    start: str
+    end: str
+    status: str
+    closed: str
+    event_count: int
+    account_count: int
+    late_count: int
+    alert_count: int
+    training: bool
+    recipe_version: str | None
+    basis_version: str | None
+    reconstruction_error: float | None
+    close_seconds: float | None
+
+
+class OpenWindow(BaseModel):
+    start: str
+    end: str
+    status: str = Field(..., description="open, or due: the closer will close it at its next tick.")
+    event_count: int
+
+
+class WindowsResponse(BaseModel):
+    watermark: str | None = Field(..., description="max(event time) - lateness; null before any event.")
+    latest_event: str | None
+    open: list[OpenWindow]
+    closed: list[ClosedWindow]
+
+
+class Alert(BaseModel):
+    """An alert, in the form of docs/CONTRACTS.md (also the webhook ``json`` payload data)."""
+
+    id: int
+    account: str
+    window_id: int
+    window_start: str
+    window_end: str
+    created: str
+    score: float
+    basis_version: str
+    role_before: RoleRef | None
+    role_after: RoleRef
+    evidence: dict[str, Any]
+
+
+class AlertsPage(BaseModel):
+    alerts: list[Alert]
+    next_cursor: str | None = Field(..., description="Pass as cursor= for the next (older) page.")
+
+
+class RefitRequest(BaseModel):
+    model_config = ConfigDict(extra="forbid", populate_by_name=True)
+    from_: str = Field(..., alias="from", description="Start of the reference period (RFC 3339).")
+    to: str = Field(..., description="End of the reference period (RFC 3339), exclusive.")
+
+
+class KeyInfo(BaseModel):
+    key_id: str
+    scopes: list[str]
+    label: str | None
+    created: str
+    revoked: str | None
+
+
+class Health(BaseModel):
+    status: str
+    database: str

@@ -1,0 +1,187 @@
+"""POST /v1/events: a batch of events as JSON (``{"events": [...]}``) or NDJSON.
+
+The whole batch is refused, with nothing stored, when it is too large (413: more than
+``max_batch_events`` events or ``max_batch_bytes`` bytes, checked on Content-Length and again
+while reading the body), not UTF-8 or not parseable at all (400), or of another content type
+(415). Otherwise each event is validated on its own: 202 with the counts and the rejected
+events' indexes and reasons. For NDJSON the index counts non-blank lines from 0, and a line
+that is not JSON is rejected alone.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import time
+
+import orjson
+from fastapi import APIRouter, Depends, HTTPException, Request, Response, status
+from starlette.concurrency import run_in_threadpool
+
+from rolewatch.api.auth import require_scope
+from rolewatch.api.models import IngestResponse, Problem
+from rolewatch.store.events import InvalidEvent, ingest
+
+router = APIRouter(tags=["events"])
+log = logging.getLogger(__name__)
+
+JSON_TYPES = ("application/json",)
+NDJSON_TYPES = ("application/x-ndjson", "application/ndjson", "application/jsonl")
+
+_EVENT_SCHEMA = {
+    "type": "object",
+    "required": ["time", "actor", "target"],
+    "additionalProperties": False,
+    "properties": {
+        "id": {"type": "string", "maxLength": 200},
+        "time": {"type": "string", "format": "date-time"},
+        "actor": {"type": "string", "maxLength": 200},
+        "target": {"type": "string", "maxLength": 200},
+        "kind": {"type": "string", "maxLength": 64},
+        "weight": {"type": "number", "minimum": 0, "default": 1},
+    },
+}
+_OPENAPI = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            "application/json": {
+                "schema": {
+                    "type": "object",
+                    "required": ["events"],
+                    "properties": {"events": {"type": "array", "items": _EVENT_SCHEMA}},
+                }
+            },
+            "application/x-ndjson": {
+                "schema": {"type": "string", "description": "One event object per line."}
+            },
+        },
+    }
+}
+
+
+def _too_large(message: str) -> HTTPException:
+    return HTTPException(status.HTTP_413_REQUEST_ENTITY_TOO_LARGE, detail=message + "; nothing was stored: split the batch")
+
+
+def _bad(message: str) -> HTTPException:
+    return HTTPException(status.HTTP_400_BAD_REQUEST, detail=message + "; nothing was stored")
+
+
+async def _read_body(request: Request, max_bytes: int) -> bytes:
+    declared = request.headers.get("content-length")
+    if declared is not None:
+        try:
+            declared_bytes = int(declared)
+        except ValueError:
+            raise _bad("Content-Length is not a number") from None
+        if declared_bytes > max_bytes:
+            raise _too_large(f"the body has {declared_bytes} bytes, at most {max_bytes} allowed")
+    chunks = []
+    size = 0
+    async for chunk in request.stream():
+        size += len(chunk)
+        if size > max_bytes:
+            raise _too_large(f"the body has more than {max_bytes} bytes allowed")
+        chunks.append(chunk)
+    return b"".join(chunks)
+
+
+def _utf8_problem(body: bytes) -> str | None:
+    try:
+        body.decode("utf-8")
+    except UnicodeDecodeError as error:
+        return f"the body is not valid UTF-8 (byte {error.start})"
+    return None
+
+
+def parse_json_batch(body: bytes, max_events: int) -> list:
+    """``{"events": [...]}`` → the list of raw events; HTTPException 400/413 otherwise."""
+    try:
+        document = orjson.loads(body)
+    except orjson.JSONDecodeError:
+        problem = _utf8_problem(body)
+        if problem:
+            raise _bad(problem) from None
+        try:  # the standard library also reads NaN/Infinity and huge integers, which then
+            document = json.loads(body)  # get a per-event reason instead of failing the batch
+        except ValueError as error:
+            raise _bad(f"the body is not valid JSON: {error}") from None
+    if not isinstance(document, dict) or not isinstance(document.get("events"), list):
+        raise _bad('the body must be a JSON object {"events": [...]}')
+    extra = sorted(set(document) - {"events"})
+    if extra:
+        raise _bad(f'unexpected field {extra[0]!r} beside "events"')
+    events = document["events"]
+    if len(events) > max_events:
+        raise _too_large(f"the batch has {len(events)} events, at most {max_events} allowed")
+    return events
+
+
+def parse_ndjson_batch(body: bytes, max_events: int) -> list:
+    """One JSON event per line → raw events; a line that is not JSON becomes an InvalidEvent."""
+    try:
+        text = body.decode("utf-8")
+    except UnicodeDecodeError as error:
+        raise _bad(f"the body is not valid UTF-8 (byte {error.start})") from None
+    lines = [line for line in text.splitlines() if line.strip()]
+    if len(lines) > max_events:
+        raise _too_large(f"the batch has {len(lines)} events, at most {max_events} allowed")
+    events: list = []
+    for number, line in enumerate(lines):
+        try:
+            events.append(orjson.loads(line))
+        except orjson.JSONDecodeError:
+            try:
+                events.append(json.loads(line))
+            except ValueError as error:
+                events.append(InvalidEvent(f"event {number} is not valid JSON: {error}"))
+    return events
+
+
+@router.post(
+    "/v1/events",
+    status_code=status.HTTP_202_ACCEPTED,
+    response_model=IngestResponse,
+    summary="Post a batch of interaction events",
+    responses={
+        400: {"model": Problem, "description": "Not UTF-8, not JSON, or not {\"events\": [...]}."},
+        401: {"model": Problem},
+        403: {"model": Problem},
+        413: {"model": Problem, "description": "Too many events or bytes."},
+        415: {"model": Problem, "description": "Not application/json or application/x-ndjson."},
+    },
+    openapi_extra=_OPENAPI,
+)
+async def post_events(request: Request, _key=Depends(require_scope("ingest"))) -> Response:
+    """Store a batch: JSON ``{"events": [...]}`` or NDJSON. Idempotent on event id."""
+    settings = request.app.state.settings
+    content_type = request.headers.get("content-type", "")
+    media, _, params = content_type.partition(";")
+    media = media.strip().lower()
+    charset = params.strip().lower()
+    if charset.startswith("charset=") and charset[8:].strip('"') not in ("utf-8", "utf8"):
+        raise HTTPException(status.HTTP_415_UNSUPPORTED_MEDIA_TYPE, detail="only UTF-8 bodies are accepted")
+    if media not in JSON_TYPES and media not in NDJSON_TYPES:
+        raise HTTPException(
+            status.HTTP_415_UNSUPPORTED_MEDIA_TYPE,
+            detail=f"content type {media or '(none)'!r} is not accepted: send application/json "
+            '({"events": [...]}) or application/x-ndjson (one event per line)',
+        )
+    body = await _read_body(request, settings.max_batch_bytes)
+    if media in JSON_TYPES:
+        raw_events = parse_json_batch(body, settings.max_batch_events)
+    else:
+        raw_events = parse_ndjson_batch(body, settings.max_batch_events)
+    now_us = time.time_ns() // 1000
+    result = await run_in_threadpool(
+        ingest, request.app.state.engine, settings, raw_events, now_us
+    )
+    log.debug(
+        "batch ingested",
+        extra={"fields": {"accepted": result.accepted, "duplicates": result.duplicates,
+                          "late": result.late, "rejected": len(result.rejected)}},
+    )
+    return Response(
+        orjson.dumps(result.to_dict()), status_code=status.HTTP_202_ACCEPTED, media_type="application/json"
+    )

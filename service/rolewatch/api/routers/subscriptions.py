@@ -1,0 +1,191 @@
+"""Webhook subscriptions (admin scope): create, list, read, delete, rotate, resume, test.
+
+The signing secret (Standard Webhooks ``whsec_<base64>``) is shown once, in the answer to
+create and rotate; no other answer carries it.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from typing import Literal
+
+from fastapi import APIRouter, Depends, HTTPException, Request, Response, status
+from pydantic import BaseModel, Field, field_validator
+from starlette.concurrency import run_in_threadpool
+
+from rolewatch.api.auth import require_scope
+from rolewatch.api.models import Problem
+from rolewatch.delivery import subscriptions as store
+from rolewatch.delivery.outbox import enqueue_test
+from rolewatch.delivery.urlguard import UnsafeURL
+from rolewatch.store.db import write_transaction
+
+router = APIRouter(tags=["subscriptions"])
+ADMIN = Depends(require_scope("admin"))
+ERRORS = {401: {"model": Problem}, 403: {"model": Problem}}
+NOT_FOUND = {**ERRORS, 404: {"model": Problem}}
+
+
+class SubscriptionCreate(BaseModel):
+    url: str = Field(..., max_length=2000, description="https:// URL that receives the webhooks.")
+    format: Literal["json", "text"] = Field(
+        "json", description='json: {"type", "timestamp", "data": alert}; text: {"text": summary} '
+        "for chat channels."
+    )
+    min_score: float = Field(0.0, ge=0, description="Only alerts scoring at least this much.")
+    roles: list[int] | None = Field(
+        None, max_length=1000,
+        description="Only alerts whose new dominant role is one of these role ids.",
+    )
+
+    @field_validator("min_score")
+    @classmethod
+    def _finite(cls, value: float) -> float:
+        if not math.isfinite(value):
+            raise ValueError("min_score must be a finite number")
+        return value
+
+
+class Subscription(BaseModel):
+    id: str
+    url: str
+    format: str
+    min_score: float
+    roles: list[int] | None
+    created: str
+    paused: bool
+    paused_reason: str | None
+    consecutive_failures: int
+    rotating_until: str | None = Field(
+        None, description="While set, the previous secret still signs beside the new one."
+    )
+
+
+class SubscriptionWithSecret(Subscription):
+    secret: str = Field(
+        ..., description="Signing secret, shown only now: keep it to verify webhook-signature."
+    )
+
+
+class SubscriptionList(BaseModel):
+    subscriptions: list[Subscription]
+
+
+class TestQueued(BaseModel):
+    delivery_id: str
+    status: str
+
+
+def _now_us() -> int:
+    return time.time_ns() // 1000
+
+
+def _engine(request: Request):
+    return request.app.state.engine
+
+
+def _settings(request: Request):
+    return request.app.state.settings
+
+
+def _not_found(error: LookupError) -> HTTPException:
+    return HTTPException(status.HTTP_404_NOT_FOUND, detail=str(error).strip("'\""))
+
+
+@router.post("/v1/subscriptions", status_code=201, response_model=SubscriptionWithSecret,
+             summary="Subscribe a URL to alerts; the answer shows the signing secret once",
+             responses={**ERRORS, 422: {"model": Problem}})
+async def create(request: Request, body: SubscriptionCreate, _key=ADMIN) -> dict:
+    def work():
+        with write_transaction(_engine(request)) as connection:
+            return store.create_subscription(
+                connection, _settings(request), url=body.url, fmt=body.format,
+                min_score=body.min_score, roles=body.roles, now_us=_now_us(),
+            )
+
+    try:
+        made = await run_in_threadpool(work)
+    except (UnsafeURL, ValueError) as error:
+        raise HTTPException(status.HTTP_422_UNPROCESSABLE_ENTITY, detail=str(error)) from None
+    return {**made.subscription, "secret": made.secret}
+
+
+@router.get("/v1/subscriptions", response_model=SubscriptionList, responses=ERRORS,
+            summary="Every subscription (without secrets)")
+async def list_all(request: Request, _key=ADMIN) -> dict:
+    def work():
+        with _engine(request).connect() as connection:
+            return store.list_subscriptions(connection)
+
+    return {"subscriptions": await run_in_threadpool(work)}
+
+
+@router.get("/v1/subscriptions/{sub_id}", response_model=Subscription, responses=NOT_FOUND,
+            summary="One subscription (without its secret)")
+async def get_one(request: Request, sub_id: str, _key=ADMIN) -> dict:
+    def work():
+        with _engine(request).connect() as connection:
+            return store.get_subscription(connection, sub_id)
+
+    try:
+        return await run_in_threadpool(work)
+    except store.SubscriptionNotFound as error:
+        raise _not_found(error) from None
+
+
+@router.delete("/v1/subscriptions/{sub_id}", status_code=204, responses=NOT_FOUND,
+               summary="Delete a subscription; its pending deliveries are dropped")
+async def delete(request: Request, sub_id: str, _key=ADMIN) -> Response:
+    def work():
+        with write_transaction(_engine(request)) as connection:
+            store.delete_subscription(connection, sub_id, now_us=_now_us())
+
+    try:
+        await run_in_threadpool(work)
+    except store.SubscriptionNotFound as error:
+        raise _not_found(error) from None
+    return Response(status_code=204)
+
+
+@router.post("/v1/subscriptions/{sub_id}/rotate", response_model=SubscriptionWithSecret,
+             responses=NOT_FOUND,
+             summary="New signing secret (shown once); the old one keeps signing for the overlap")
+async def rotate(request: Request, sub_id: str, _key=ADMIN) -> dict:
+    def work():
+        with write_transaction(_engine(request)) as connection:
+            return store.rotate_secret(connection, sub_id, _settings(request), now_us=_now_us())
+
+    try:
+        made = await run_in_threadpool(work)
+    except store.SubscriptionNotFound as error:
+        raise _not_found(error) from None
+    return {**made.subscription, "secret": made.secret}
+
+
+@router.post("/v1/subscriptions/{sub_id}/resume", response_model=Subscription,
+             responses=NOT_FOUND, summary="Unpause a subscription; held deliveries go out again")
+async def resume(request: Request, sub_id: str, _key=ADMIN) -> dict:
+    def work():
+        with write_transaction(_engine(request)) as connection:
+            return store.resume_subscription(connection, sub_id)
+
+    try:
+        return await run_in_threadpool(work)
+    except store.SubscriptionNotFound as error:
+        raise _not_found(error) from None
+
+
+@router.post("/v1/subscriptions/{sub_id}/test", status_code=202, response_model=TestQueued,
+             responses=NOT_FOUND,
+             summary="Queue a clearly marked test alert (event type alert.test)")
+async def send_test(request: Request, sub_id: str, _key=ADMIN) -> dict:
+    def work():
+        with write_transaction(_engine(request)) as connection:
+            return enqueue_test(connection, _settings(request), sub_id, now_us=_now_us())
+
+    try:
+        delivery_id = await run_in_threadpool(work)
+    except store.SubscriptionNotFound as error:
+        raise _not_found(error) from None
+    return {"delivery_id": delivery_id, "status": "pending"}

@@ -1,0 +1,67 @@
+"""GET /v1/windows: closed windows with their counts, and the windows still open."""
+
+from __future__ import annotations
+
+import time
+
+from fastapi import APIRouter, Depends, Query, Request
+from starlette.concurrency import run_in_threadpool
+
+from rolewatch.api.auth import require_scope
+from rolewatch.api.models import Problem, WindowsResponse
+from rolewatch.store import queries
+from rolewatch.store.events import format_time_us
+
+router = APIRouter(tags=["windows"])
+
+
+def _opt(value):
+    return None if value is None else format_time_us(value)
+
+
+def windows_document(engine, settings, now_us: int, limit: int) -> dict:
+    closed = queries.list_windows(engine, limit=limit)
+    pending = queries.open_windows(engine, settings, now_us=now_us)
+    return {
+        "watermark": _opt(pending["watermark_us"]),
+        "latest_event": _opt(pending["max_event_us"]),
+        "open": [
+            {"start": format_time_us(w["start_us"]), "end": format_time_us(w["end_us"]),
+             "status": w["status"], "event_count": w["event_count"]}
+            for w in pending["windows"]
+        ],
+        "closed": [
+            {
+                "id": w["id"],
+                "start": format_time_us(w["start_us"]),
+                "end": format_time_us(w["end_us"]),
+                "status": w["status"],
+                "closed": format_time_us(w["closed_us"]),
+                "event_count": w["event_count"],
+                "account_count": w["account_count"],
+                "late_count": w["late_count"],
+                "alert_count": w["alert_count"],
+                "training": bool(w["training"]),
+                "recipe_version": w["recipe_version"],
+                "basis_version": w["basis_version"],
+                "reconstruction_error": w["reconstruction_error"],
+                "close_seconds": w["close_seconds"],
+            }
+            for w in closed
+        ],
+    }
+
+
+@router.get("/v1/windows", response_model=WindowsResponse, summary="Closed and open windows",
+            responses={401: {"model": Problem}, 403: {"model": Problem}})
+async def get_windows(
+    request: Request,
+    limit: int = Query(200, ge=1, le=5000, description="Most recent closed windows to list."),
+    _key=Depends(require_scope("read")),
+) -> dict:
+    """Closed windows newest first (counts, late counts, reconstruction error) and the open
+    windows computed from the settings and the watermark, with their events so far."""
+    return await run_in_threadpool(
+        windows_document, request.app.state.engine, request.app.state.settings,
+        time.time_ns() // 1000, limit,
+    )

@@ -1,0 +1,336 @@
+"""The ``rolewatch`` command: serve, keys, replay, bench, demo, evaluate.
+
+Exit codes: 0 success; 2 usage or configuration error (the message says what to fix);
+1 anything else. Every command takes ``--config FILE`` (a TOML file of settings); every
+setting can also come from a ``ROLEWATCH_*`` environment variable.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import importlib
+import inspect
+import json
+import os
+import sys
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+
+class UsageError(Exception):
+    """A wrong command line or input path: exit code 2."""
+
+
+def _now_us() -> int:
+    return time.time_ns() // 1000
+
+
+def _settings(args, **overrides):
+    from rolewatch.config import load_settings
+
+    return load_settings(getattr(args, "config", None), **overrides)
+
+
+def _store(settings):
+    from rolewatch.store.db import open_store
+
+    return open_store(settings)
+
+
+# --- serve -----------------------------------------------------------------------------------
+
+
+def cmd_serve(args) -> int:
+    """Run the HTTP service (and, by role, the background jobs) with uvicorn."""
+    import uvicorn
+
+    from rolewatch.api.app import create_app
+    from rolewatch.logs import configure_logging
+
+    overrides = {k: v for k, v in (("host", args.host), ("port", args.port), ("role", args.role)) if v is not None}
+    settings = _settings(args, **overrides)
+    configure_logging(settings.log_level, json_lines=settings.log_json)
+    app = create_app(settings)
+    uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
+                timeout_graceful_shutdown=30, access_log=False)
+    return 0
+
+
+# --- keys ------------------------------------------------------------------------------------
+
+
+def cmd_keys(args) -> int:
+    from rolewatch.store import keys
+    from rolewatch.store.events import format_time_us
+
+    settings = _settings(args)
+    engine = _store(settings)
+    try:
+        if args.keys_command == "create":
+            try:
+                _, key = keys.create_key(engine, args.scope, label=args.label, now_us=_now_us())
+            except ValueError as error:
+                raise UsageError(str(error)) from None
+            print(key)  # only the key on stdout, so `KEY=$(rolewatch keys create ...)` works
+            print("store this key now: it is shown only once", file=sys.stderr)
+        elif args.keys_command == "list":
+            for record in keys.list_keys(engine):
+                state = "revoked " + format_time_us(record.revoked_us) if record.revoked_us else "active"
+                print("\t".join([record.key_id, ",".join(record.scopes), state,
+                                 format_time_us(record.created_us), record.label or ""]))
+        elif args.keys_command == "revoke":
+            if not keys.revoke_key(engine, args.key_id, now_us=_now_us()):
+                raise UsageError(f"no active key with id {args.key_id!r}: see 'rolewatch keys list'")
+            print(f"revoked {args.key_id}", file=sys.stderr)
+    finally:
+        engine.dispose()
+    return 0
+
+
+# --- replay ----------------------------------------------------------------------------------
+
+
+def _counting(handle, bar) -> Iterator[str]:
+    """The lines of ``handle``, advancing the progress bar by each line's length."""
+    for line in handle:
+        bar.update(len(line))
+        yield line
+
+
+def _ndjson_items(lines) -> Iterator[tuple[int, object]]:
+    """(line number, parsed event or InvalidEvent) for each non-blank line."""
+    import orjson
+
+    from rolewatch.store.events import InvalidEvent
+
+    for number, line in enumerate(lines, start=1):
+        if not line.strip():
+            continue
+        try:
+            item = orjson.loads(line)
+        except orjson.JSONDecodeError:
+            try:
+                item = json.loads(line)
+            except ValueError as error:
+                item = InvalidEvent(f"line {number} is not valid JSON: {error}")
+        yield number, item
+
+
+def _csv_cell(name: str, value: str):
+    if name == "weight":
+        try:
+            return float(value)
+        except ValueError:
+            return value  # rejected by validation with a readable reason
+    return value
+
+
+def _csv_items(lines) -> Iterator[tuple[int, object]]:
+    """(line number, event) for each CSV row; the header names the fields, empty cells are
+    absent fields."""
+    reader = csv.DictReader(lines)
+    if reader.fieldnames is None:
+        return
+    for row in reader:
+        event = {k: _csv_cell(k, v) for k, v in row.items() if k is not None and v not in (None, "")}
+        if None in row:
+            event["(extra cells)"] = row[None]
+        yield reader.line_num, event
+
+
+def cmd_replay(args) -> int:
+    """Feed a file of events through the same ingest path as the API, then close windows."""
+    from tqdm import tqdm
+
+    from rolewatch.store.events import ingest
+
+    path = Path(args.file)
+    if not path.is_file():
+        raise UsageError(f"{path} does not exist or is not a file: check the path")
+    settings = _settings(args)
+    fmt = args.format or ("csv" if path.suffix.lower() == ".csv" else "ndjson")
+    batch_size = args.batch_size or min(settings.max_batch_events, 5000)
+    engine = _store(settings)
+    totals = {"accepted": 0, "duplicates": 0, "late": 0, "rejected": 0}
+    shown = 0
+    try:
+        handle = path.open("r", encoding="utf-8", errors="strict", newline="" if fmt == "csv" else None)
+        with handle, tqdm(total=path.stat().st_size, unit="B", unit_scale=True, file=sys.stderr,
+                          desc=f"replay {path.name}", disable=args.no_progress) as bar:
+            counted = _counting(handle, bar)
+            items = _csv_items(counted) if fmt == "csv" else _ndjson_items(counted)
+            batch: list = []
+            lines: list[int] = []
+
+            def flush() -> None:
+                nonlocal shown
+                result = ingest(engine, settings, batch, _now_us())
+                totals["accepted"] += result.accepted
+                totals["duplicates"] += result.duplicates
+                totals["late"] += result.late
+                totals["rejected"] += len(result.rejected)
+                for rejected in result.rejected:
+                    if shown < 20:
+                        print(f"line {lines[rejected['index']]}: {rejected['error']}", file=sys.stderr)
+                        shown += 1
+                batch.clear()
+                lines.clear()
+
+            for number, item in items:
+                batch.append(item)
+                lines.append(number)
+                if len(batch) >= batch_size:
+                    flush()
+            if batch:
+                flush()
+            bar.update(max(0, path.stat().st_size - bar.n))
+        if totals["rejected"] > shown:
+            print(f"... and {totals['rejected'] - shown} more rejected lines", file=sys.stderr)
+        closed = None
+        if not args.no_close:
+            from rolewatch.pipeline.closer import close_due_windows
+
+            closed = close_due_windows(engine, settings, now_us=_now_us(), drain=True)
+        summary = dict(totals, file=str(path), format=fmt)
+        if closed is not None:
+            try:
+                summary["windows_closed"] = len(closed)
+            except TypeError:
+                summary["windows_closed"] = closed
+        print(json.dumps(summary))
+    except UnicodeDecodeError as error:
+        raise UsageError(f"{path} is not UTF-8 text ({error}); convert it to UTF-8") from None
+    finally:
+        engine.dispose()
+    return 0
+
+
+# --- bench -----------------------------------------------------------------------------------
+
+BENCH_MODULES = ("ingest", "history", "engine_features", "engine_roles")
+
+
+def _bench_modules() -> dict[str, object]:
+    found = {}
+    for name in BENCH_MODULES:
+        try:
+            found[name] = importlib.import_module(f"rolewatch.bench.{name}")
+        except ImportError:
+            continue
+    return found
+
+
+def cmd_bench(args) -> int:
+    """Run one benchmark case (or every case of a module, or ``all``): one JSON line each."""
+    modules = _bench_modules()
+    plan: list[tuple[object, str]] = []
+    wanted = args.case.replace("-", "_")
+    for name, module in modules.items():
+        cases = tuple(getattr(module, "CASES", ()))
+        if args.case == "all" or wanted == name or (wanted == "engine" and name.startswith("engine")):
+            plan.extend((module, case) for case in cases)
+        elif args.case in cases:
+            plan.append((module, args.case))
+    if not plan:
+        known = sorted({c for m in modules.values() for c in getattr(m, "CASES", ())})
+        raise UsageError(f"unknown bench case {args.case!r}; choose one of: all, "
+                         + ", ".join(sorted(modules)) + ", " + ", ".join(known))
+    for module, case in plan:
+        run = module.run
+        kwargs = {"quick": True} if args.quick and "quick" in inspect.signature(run).parameters else {}
+        for record in run(case, **kwargs):
+            print(json.dumps(record), flush=True)
+    return 0
+
+
+# --- demo / evaluate (other modules) ----------------------------------------------------------
+
+
+def _delegate(module_name: str):
+    def command(args) -> int:
+        module = importlib.import_module(module_name)
+        outcome = module.main(args)
+        return int(outcome or 0)
+
+    return command
+
+
+# --- parser ----------------------------------------------------------------------------------
+
+
+def build_parser() -> argparse.ArgumentParser:
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--config", metavar="FILE", default=argparse.SUPPRESS,
+                        help="TOML file of settings (also ROLEWATCH_CONFIG)")
+    parser = argparse.ArgumentParser(
+        prog="rolewatch", parents=[common],
+        description="Streaming detection of structural role changes in an interaction graph.",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    serve = sub.add_parser("serve", parents=[common], help="run the HTTP service")
+    serve.add_argument("--host", help="address to bind (default: setting host)")
+    serve.add_argument("--port", type=int, help="port to listen on (default: setting port)")
+    serve.add_argument("--role", choices=("all", "api", "worker"),
+                       help="all: API and jobs; api: HTTP only; worker: jobs (and health)")
+    serve.set_defaults(handler=cmd_serve)
+
+    keys = sub.add_parser("keys", parents=[common], help="manage API keys")
+    keys_sub = keys.add_subparsers(dest="keys_command", metavar="ACTION", required=True)
+    create = keys_sub.add_parser("create", parents=[common], help="make a key; prints only the key")
+    create.add_argument("--scope", action="append", required=True, choices=("ingest", "read", "admin"),
+                        help="a scope the key gets (repeat for several; admin implies the others)")
+    create.add_argument("--label", help="a note saying who or what uses the key")
+    keys_sub.add_parser("list", parents=[common], help="list keys (id, scopes, state, created, label)")
+    revoke = keys_sub.add_parser("revoke", parents=[common], help="revoke a key by its id")
+    revoke.add_argument("key_id", metavar="KEY_ID")
+    keys.set_defaults(handler=cmd_keys)
+
+    replay = sub.add_parser("replay", parents=[common], help="feed a file of events, then close windows")
+    replay.add_argument("file", metavar="FILE")
+    replay.add_argument("--format", choices=("ndjson", "csv"),
+                        help="file format (default: csv for *.csv, else ndjson)")
+    replay.add_argument("--batch-size", type=int, help="events per ingest transaction (default 5000)")
+    replay.add_argument("--no-close", action="store_true", help="only store the events")
+    replay.add_argument("--no-progress", action="store_true", help="no progress bar")
+    replay.set_defaults(handler=cmd_replay)
+
+    bench = sub.add_parser("bench", parents=[common], help="run a benchmark; one JSON object per line")
+    bench.add_argument("case", metavar="CASE", help="a case name, a module (ingest, history, engine) or all")
+    bench.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
+    bench.set_defaults(handler=cmd_bench)
+
+    demo = sub.add_parser("demo", parents=[common], help="run the demo scenario")
+    demo.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    demo.set_defaults(handler=_delegate("rolewatch.scenario.demo"))
+    evaluate = sub.add_parser("evaluate", parents=[common], help="evaluate detection on the scenario")
+    evaluate.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    evaluate.set_defaults(handler=_delegate("rolewatch.scenario.evaluate"))
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``rolewatch`` script; returns the exit code."""
+    from rolewatch.config import ConfigError
+
+    parser = build_parser()
+    args = parser.parse_args(argv)  # argparse exits 2 with its own message on usage errors
+    try:
+        return args.handler(args)
+    except (ConfigError, UsageError) as error:
+        print(f"rolewatch: {error}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("rolewatch: interrupted", file=sys.stderr)
+        return 1
+    except Exception as error:  # anything else: exit 1 with the reason
+        if os.environ.get("ROLEWATCH_DEBUG"):
+            raise
+        print(f"rolewatch: error: {type(error).__name__}: {error}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

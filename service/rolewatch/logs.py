@@ -1,0 +1,73 @@
+"""Structured logging: one JSON object per line, each carrying the request id when there is one.
+
+Log records never carry secrets (API keys, signing secrets) or event payloads at INFO: only
+counts, ids the service itself made, durations and outcomes. Use ``extra={"fields": {...}}``
+to add structured fields to a record.
+"""
+
+from __future__ import annotations
+
+import contextvars
+import json
+import logging
+import sys
+import time
+
+REQUEST_ID: contextvars.ContextVar[str | None] = contextvars.ContextVar(
+    "rolewatch_request_id", default=None
+)
+
+_STANDARD = set(logging.makeLogRecord({}).__dict__) | {"message", "asctime"}
+
+
+class JsonFormatter(logging.Formatter):
+    """Format a record as one JSON line: time (RFC 3339 UTC), level, logger, message, fields."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        document = {
+            "time": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created))
+            + f".{int(record.msecs):03d}Z",
+            "level": record.levelname,
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        request_id = REQUEST_ID.get()
+        if request_id:
+            document["request_id"] = request_id
+        fields = getattr(record, "fields", None)
+        if isinstance(fields, dict):
+            document.update(fields)
+        if record.exc_info:
+            document["exception"] = self.formatException(record.exc_info)
+        return json.dumps(document, default=str, ensure_ascii=False)
+
+
+class _PlainFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        line = super().format(record)
+        request_id = REQUEST_ID.get()
+        fields = getattr(record, "fields", None)
+        extra = " ".join(f"{k}={v}" for k, v in (fields or {}).items())
+        return " ".join(part for part in (line, f"request_id={request_id}" if request_id else "", extra) if part)
+
+
+def configure_logging(level: str = "INFO", *, json_lines: bool = True, stream=None) -> None:
+    """Send rolewatch's (and uvicorn's) logs to ``stream`` (stderr) in one format."""
+    handler = logging.StreamHandler(stream or sys.stderr)
+    handler.setFormatter(
+        JsonFormatter() if json_lines else _PlainFormatter("%(asctime)s %(levelname)s %(name)s %(message)s")
+    )
+    root = logging.getLogger()
+    for existing in list(root.handlers):
+        if getattr(existing, "_rolewatch", False):
+            root.removeHandler(existing)
+    handler._rolewatch = True  # type: ignore[attr-defined]
+    root.addHandler(handler)
+    root.setLevel(level)
+    for name in ("uvicorn", "uvicorn.error", "uvicorn.access", "apscheduler"):
+        logger = logging.getLogger(name)
+        logger.handlers = []
+        logger.propagate = True
+    # Access lines repeat what the request log below says; keep them at WARNING.
+    logging.getLogger("uvicorn.access").setLevel("WARNING")
+    logging.getLogger("apscheduler").setLevel("WARNING")

@@ -1,0 +1,341 @@
+"""Ingest: validate interaction events and store them, idempotently, in one transaction.
+
+This is the one path by which events enter the store: ``POST /v1/events``, ``rolewatch
+replay`` and the demo all call :func:`ingest`. Each event is checked on its own; valid events
+are stored and invalid ones reported by their index with a readable reason, so bad input
+never loses the good input around it. Storing is ``INSERT ... ON CONFLICT (event_id) DO
+NOTHING`` with one ``executemany`` per batch, so a retried batch is harmless.
+
+Wire form of an event (see DESIGN.md "Wire format"): ``id`` (optional, ≤ 200 chars),
+``time`` (RFC 3339 with an offset, required), ``actor`` and ``target`` (≤ 200 chars,
+different), ``kind`` (optional, ≤ 64 chars), ``weight`` (finite number ≥ 0, default 1).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import re
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta, timezone
+from typing import Any
+
+from sqlalchemy import func, select
+from sqlalchemy.engine import Connection, Engine
+
+from rolewatch import metrics
+from rolewatch.store.db import write_transaction
+from rolewatch.store.schema import service_state, windows
+
+MAX_ID_CHARS = 200
+MAX_ACCOUNT_CHARS = 200
+MAX_KIND_CHARS = 64
+FIELDS = ("id", "time", "actor", "target", "kind", "weight")
+_FIELD_SET = frozenset(FIELDS)
+
+EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
+_ONE_US = timedelta(microseconds=1)
+# RFC 3339 section 5.6 date-time; "T" may be written "t" or a space (section 5.6, NOTE).
+_RFC3339 = re.compile(
+    r"(\d{4})-(\d{2})-(\d{2})[Tt ](\d{2}):(\d{2}):(\d{2})(\.\d{1,9})?([Zz]|[+-]\d{2}:\d{2})?"
+)
+# C0 and C1 control characters, and lone UTF-16 surrogates (not encodable as UTF-8).
+_FORBIDDEN = re.compile("[\x00-\x1f\x7f-\x9f\ud800-\udfff]")
+
+
+class InvalidEvent:
+    """Stands for an item that could not even be parsed (an NDJSON line that is not JSON).
+
+    :func:`ingest` reports it under its index with ``message``, like any other invalid event.
+    """
+
+    __slots__ = ("message",)
+
+    def __init__(self, message: str) -> None:
+        self.message = message
+
+
+@dataclass
+class IngestResult:
+    """What happened to one batch: counts, and each rejected event's index and reason."""
+
+    accepted: int = 0
+    duplicates: int = 0
+    late: int = 0
+    rejected: list[dict[str, Any]] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "accepted": self.accepted,
+            "duplicates": self.duplicates,
+            "late": self.late,
+            "rejected": self.rejected,
+        }
+
+
+class _Reject(ValueError):
+    pass
+
+
+def parse_time_us(value: Any) -> int:
+    """RFC 3339 timestamp with an offset → integer microseconds since the epoch, UTC.
+
+    Raises ``ValueError`` with a readable reason. Digits beyond microseconds are truncated.
+    """
+    if not isinstance(value, str):
+        raise _Reject(
+            f"time: must be an RFC 3339 string such as 2026-02-12T09:30:00Z, got {_kind_of(value)}"
+        )
+    match = _RFC3339.fullmatch(value)
+    if match is None:
+        raise _Reject(f"time: {_show(value)} is not an RFC 3339 timestamp with offset")
+    offset = match.group(8)
+    if offset is None:
+        raise _Reject(
+            f"time: {_show(value)} has no UTC offset; add Z (UTC) or an offset like +01:00"
+        )
+    year, month, day, hour, minute, second = (int(match.group(i)) for i in range(1, 7))
+    fraction = match.group(7) or ""
+    micro = int((fraction[1:] + "000000")[:6]) if fraction else 0
+    if offset in ("Z", "z"):
+        tz = timezone.utc
+    else:
+        sign = 1 if offset[0] == "+" else -1
+        hours, minutes = int(offset[1:3]), int(offset[4:6])
+        if hours > 23 or minutes > 59:
+            raise _Reject(f"time: {_show(value)} has an impossible UTC offset")
+        tz = timezone(sign * timedelta(hours=hours, minutes=minutes))
+    try:
+        moment = datetime(year, month, day, hour, minute, second, micro, tzinfo=tz)
+    except ValueError as error:
+        raise _Reject(
+            f"time: {_show(value)} is not an RFC 3339 timestamp with offset ({error})"
+        ) from None
+    return (moment - EPOCH) // _ONE_US
+
+
+def format_time_us(time_us: int) -> str:
+    """Microseconds since the epoch → RFC 3339 UTC with "Z" (microseconds shown when not 0)."""
+    moment = EPOCH + timedelta(microseconds=time_us)
+    if moment.microsecond:
+        return moment.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    return moment.strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _canonical_time(time_us: int) -> str:
+    return (EPOCH + timedelta(microseconds=time_us)).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def derived_event_id(time_us: int, actor: str, target: str, kind: str | None, weight: float) -> str:
+    """The id of an event sent without one: ``ev_`` + 32 hex chars of a sha256.
+
+    The hash covers the canonical JSON (sorted keys, no spaces, UTF-8) of the other fields with
+    the time normalised to UTC microseconds and defaults applied, so the same event written
+    with another offset, key order or an explicit default weight gets the same id.
+    """
+    body = json.dumps(
+        {
+            "actor": actor,
+            "kind": kind,
+            "target": target,
+            "time": _canonical_time(time_us),
+            "weight": float(weight),
+        },
+        sort_keys=True,
+        separators=(",", ":"),
+        ensure_ascii=False,
+    )
+    return "ev_" + hashlib.sha256(body.encode("utf-8")).hexdigest()[:32]
+
+
+def _kind_of(value: Any) -> str:
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, (int, float)):
+        return "a number"
+    if isinstance(value, str):
+        return "a string"
+    if isinstance(value, list):
+        return "a list"
+    if isinstance(value, dict):
+        return "an object"
+    return type(value).__name__
+
+
+def _show(value: str, limit: int = 60) -> str:
+    """Quote a client value for an error message, shortened and with controls escaped."""
+    text = value if len(value) <= limit else value[:limit] + "…"
+    return repr(text)
+
+
+def _text(event: dict, name: str, limit: int, *, required: bool) -> str | None:
+    value = event.get(name)
+    if value is None:
+        if required:
+            raise _Reject(f"{name}: required")
+        return None
+    if not isinstance(value, str):
+        raise _Reject(f"{name}: must be a string, got {_kind_of(value)}")
+    if not value:
+        raise _Reject(f"{name}: must not be empty")
+    if len(value) > limit:
+        raise _Reject(f"{name}: {len(value)} characters, at most {limit} allowed")
+    bad = _FORBIDDEN.search(value)
+    if bad is not None:
+        raise _Reject(
+            f"{name}: contains the control character U+{ord(bad.group()):04X} at position "
+            f"{bad.start()}; remove it"
+        )
+    return value
+
+
+def _weight(event: dict) -> float:
+    value = event.get("weight", 1.0)
+    if value is None:
+        return 1.0
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise _Reject(f"weight: must be a number, got {_kind_of(value)}")
+    try:
+        number = float(value)
+    except OverflowError:
+        raise _Reject("weight: too large") from None
+    if not math.isfinite(number):
+        raise _Reject(f"weight: must be a finite number, got {value!r}")
+    if number < 0:
+        raise _Reject(f"weight: must be 0 or more, got {value!r}")
+    return number
+
+
+def validate_event(event: Any, max_time_us: int) -> tuple[str, int, str, str, str | None, float]:
+    """Check one wire event; return ``(event_id, time_us, actor, target, kind, weight)``.
+
+    Raises ``ValueError`` whose message names the field and what is wrong with it.
+    """
+    if isinstance(event, InvalidEvent):
+        raise _Reject(event.message)
+    if not isinstance(event, dict):
+        raise _Reject(f"an event must be a JSON object, got {_kind_of(event)}")
+    if not _FIELD_SET.issuperset(event):
+        unknown = sorted(str(k) for k in event if k not in _FIELD_SET)
+        raise _Reject(
+            f"unknown field {_show(unknown[0])}; allowed fields: {', '.join(FIELDS)}"
+        )
+    time_value = event.get("time")
+    if time_value is None:
+        raise _Reject("time: required")
+    time_us = parse_time_us(time_value)
+    actor = _text(event, "actor", MAX_ACCOUNT_CHARS, required=True)
+    target = _text(event, "target", MAX_ACCOUNT_CHARS, required=True)
+    if actor == target:
+        raise _Reject(f"target: same account as actor ({_show(actor)}); self-interactions are not events")
+    kind = _text(event, "kind", MAX_KIND_CHARS, required=False)
+    weight = _weight(event)
+    if time_us > max_time_us:
+        raise _Reject(
+            f"time: {_show(time_value)} is in the future beyond the allowed clock skew "
+            f"(latest accepted now: {format_time_us(max_time_us)}); check the sender's clock"
+        )
+    event_id = _text(event, "id", MAX_ID_CHARS, required=False)
+    if event_id is None:
+        event_id = derived_event_id(time_us, actor, target, kind, weight)
+    return event_id, time_us, actor, target, kind, weight
+
+
+_INSERT_COLUMNS = "(event_id, time_us, actor, target, kind, weight, received_us, late)"
+_INSERT_SQL = {
+    "sqlite": f"INSERT INTO events {_INSERT_COLUMNS} VALUES (?, ?, ?, ?, ?, ?, ?, ?) "
+    "ON CONFLICT (event_id) DO NOTHING",
+    "postgresql": f"INSERT INTO events {_INSERT_COLUMNS} VALUES (%s, %s, %s, %s, %s, %s, %s, %s) "
+    "ON CONFLICT (event_id) DO NOTHING",
+}
+_LATE_COUNT_SQL = {
+    "sqlite": "UPDATE windows SET late_count = late_count + 1 WHERE start_us <= ? AND end_us > ?",
+    "postgresql": "UPDATE windows SET late_count = late_count + 1 "
+    "WHERE start_us <= %s AND end_us > %s",
+}
+
+
+def latest_closed_end_us(connection: Connection) -> int | None:
+    """End of the latest closed window: events before it are late."""
+    return connection.execute(
+        select(func.max(windows.c.end_us)).where(windows.c.status == "closed")
+    ).scalar()
+
+
+def set_state(connection: Connection, key: str, value: str) -> None:
+    """Upsert one ``service_state`` row."""
+    if connection.dialect.name == "postgresql":
+        from sqlalchemy.dialects.postgresql import insert
+    else:
+        from sqlalchemy.dialects.sqlite import insert
+    statement = insert(service_state).values(key=key, value=value)
+    connection.execute(
+        statement.on_conflict_do_update(
+            index_elements=[service_state.c.key], set_={"value": statement.excluded.value}
+        )
+    )
+
+
+def _store(connection: Connection, rows: list[tuple], now_us: int, result: IngestResult) -> None:
+    dialect = connection.dialect.name
+    insert_sql = _INSERT_SQL[dialect]
+    closed_end = latest_closed_end_us(connection)
+    if closed_end is None:
+        on_time = [row + (now_us, False) for row in rows]
+        late: list[tuple] = []
+    else:
+        on_time = [row + (now_us, False) for row in rows if row[1] >= closed_end]
+        late = [row + (now_us, True) for row in rows if row[1] < closed_end]
+    cursor = connection.connection.cursor()
+    try:
+        inserted = 0
+        if on_time:
+            cursor.executemany(insert_sql, on_time)
+            inserted = max(cursor.rowcount, 0)
+        late_times = []
+        for row in late:  # rare: one statement each, to know which were new
+            cursor.execute(insert_sql, row)
+            if cursor.rowcount == 1:
+                late_times.append((row[1], row[1]))
+        if late_times:
+            cursor.executemany(_LATE_COUNT_SQL[dialect], late_times)
+    finally:
+        cursor.close()
+    result.accepted = inserted + len(late_times)
+    result.late = len(late_times)
+    result.duplicates = len(rows) - result.accepted
+    set_state(connection, "last_ingest_us", str(now_us))
+
+
+def ingest(engine: Engine, settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int) -> IngestResult:
+    """Validate ``raw_events`` (parsed wire events) and store the valid ones in one transaction.
+
+    ``now_us`` is the receive time (microseconds, UTC): it bounds the future clock skew,
+    is stored as each event's ``received_us`` and becomes ``service_state.last_ingest_us``
+    when the batch holds at least one valid event. Returns counts of accepted (newly stored),
+    duplicate (id already stored, or repeated in the batch) and late events, and the rejected
+    ones as ``{"index": i, "error": "..."}`` in input order.
+    """
+    result = IngestResult()
+    max_time_us = now_us + settings.max_future_skew // _ONE_US
+    rows: list[tuple] = []
+    rejected = result.rejected
+    for index, event in enumerate(raw_events):
+        try:
+            rows.append(validate_event(event, max_time_us))
+        except _Reject as error:
+            rejected.append({"index": index, "error": str(error)})
+    if rows:
+        with write_transaction(engine) as connection:
+            _store(connection, rows, now_us, result)
+        metrics.EVENTS_ACCEPTED.inc(result.accepted)
+        metrics.EVENTS_DUPLICATE.inc(result.duplicates)
+        metrics.EVENTS_LATE.inc(result.late)
+        metrics.LAST_INGEST.set(now_us / 1e6)
+    metrics.EVENTS_REJECTED.inc(len(rejected))
+    metrics.INGEST_BATCHES.inc()
+    return result
