@@ -147,7 +147,7 @@ class _Week:
         self.fresh_state: dict[int, dict] = {}
 
     def run(self, week: int, week_start: int) -> None:
-        rng, pop = self.rng, self.pop
+        pop = self.pop
         self.week, self.t0, self.t1 = week, week_start, week_start + WEEK_SECONDS
         self.mult = SEASON_FACTOR if week == self.season else 1.0
         self.remap = np.arange(pop.size)
