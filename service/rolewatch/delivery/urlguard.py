@@ -86,10 +86,10 @@ def blocked_reason(address: IPAddress) -> str | None:
         return "a multicast address"
     if isinstance(address, ipaddress.IPv4Address) and address in SHARED_ADDRESS_SPACE:
         return "a shared (carrier-grade NAT) address"
-    if address.is_private:
-        return "a private address"
     if address.is_reserved:
         return "a reserved address"
+    if address.is_private:
+        return "a private address"
     if not address.is_global:
         return "a non-public address"
     return None
