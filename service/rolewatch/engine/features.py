@@ -1,0 +1,836 @@
+"""ReFeX recursive structural features (Henderson et al., KDD 2011).
+
+Henderson, Gallagher, Li, Akoglu, Eliassi-Rad, Tong, Faloutsos, "It's who you know:
+graph mining using recursive structural features", KDD 2011. The method:
+
+1. *Base features* per node: local (degrees, strengths, event counts, reciprocity) and
+   egonet features (edges inside the egonet and edges leaving it).
+2. *Recursive features*: sums and means of existing features over a node's in-, out- and
+   all neighbours, computed round after round.
+3. *Vertical logarithmic binning* with fraction ``p``: the ``p`` fraction of nodes with
+   the lowest values get bin 0, the lowest ``p`` fraction of the rest bin 1, and so on.
+4. *Pruning*: features whose binned values agree within ``s`` on every node are joined in
+   an agreement graph; of each connected component only the earliest feature is kept.
+   Discovery stops when a round keeps no new feature, or after ``max_rounds``.
+
+:meth:`FeatureRecipe.discover` runs this on reference snapshots and freezes the outcome
+(kept features and bin edges) so that :meth:`FeatureRecipe.transform` produces exactly the
+same columns, binned on the same scale, for every later window.
+
+Definitions used here (``N(v)`` = counterparts of ``v`` ignoring direction; the *egonet*
+of ``v`` is ``{v} ∪ N(v)``; "arc" = distinct ordered pair with at least one event):
+
+============================  ==========================================================
+``in_degree``                 number of distinct accounts with an arc into ``v``
+``out_degree``                number of distinct accounts ``v`` has an arc to
+``degree``                    ``|N(v)|``, distinct counterparts in either direction
+``in_strength``               summed weight of events into ``v``
+``out_strength``              summed weight of events out of ``v``
+``in_events``                 number of events into ``v``
+``out_events``                number of events out of ``v``
+``reciprocity``               share of ``N(v)`` with arcs both ways (0 when isolated)
+``ego_edges``                 undirected edges with both ends in the egonet
+                              ``= degree(v) + triangles(v)``
+``ego_boundary_edges``        undirected edges with exactly one end in the egonet
+                              ``= Σ_{u∈N(v)} degree(u) − degree(v) − 2·triangles(v)``
+``ego_arcs_within``           arcs with both ends in the egonet
+                              ``= in_degree(v) + out_degree(v) + arcs among N(v)``
+``ego_arcs_out``              arcs from inside the egonet to outside it
+                              ``= Σ_{u∈N(v)} out_degree(u) − in_degree(v) − arcs among N(v)``
+``ego_arcs_in``               arcs from outside the egonet into it
+                              ``= Σ_{u∈N(v)} in_degree(u) − out_degree(v) − arcs among N(v)``
+============================  ==========================================================
+
+Recursive features are named ``op(parent)`` with ``op`` one of ``sum_in``, ``mean_in``
+(over in-neighbours, accounts with an arc into ``v``), ``sum_out``, ``mean_out`` (over
+out-neighbours) and ``sum_all``, ``mean_all`` (over ``N(v)``); a mean over no neighbour
+is 0. Example: ``mean_out(sum_in(out_degree))``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from .snapshot import Snapshot
+
+__all__ = [
+    "AGGREGATES",
+    "BASE_FEATURES",
+    "FeatureRecipe",
+    "FeatureTable",
+    "bin_edges",
+    "apply_bins",
+    "prune_agreeing",
+    "triangles_per_node",
+]
+
+FORMAT = "rolewatch.feature-recipe"
+FORMAT_VERSION = 1
+
+LOCAL_FEATURES = (
+    "in_degree",
+    "out_degree",
+    "degree",
+    "in_strength",
+    "out_strength",
+    "in_events",
+    "out_events",
+    "reciprocity",
+)
+EGONET_FEATURES = (
+    "ego_edges",
+    "ego_boundary_edges",
+    "ego_arcs_within",
+    "ego_arcs_out",
+    "ego_arcs_in",
+)
+BASE_FEATURES = LOCAL_FEATURES + EGONET_FEATURES
+AGGREGATES = ("sum_in", "mean_in", "sum_out", "mean_out", "sum_all", "mean_all")
+BINNING_MODES = ("frozen", "relative")
+
+
+# --------------------------------------------------------------------------- kernels
+
+
+def _binary(m: sp.spmatrix) -> sp.csr_matrix:
+    """Pattern of ``m`` as a float64 CSR matrix of ones (explicit entries kept)."""
+    m = sp.csr_matrix(m)
+    return sp.csr_matrix((np.ones(m.nnz), m.indices, m.indptr), shape=m.shape)
+
+
+def _oriented(S: sp.csr_matrix) -> sp.csr_matrix:
+    """Keep each undirected edge once, pointing from lower to higher ``(degree, id)`` rank.
+
+    Each node then points to at most ``sqrt(2m)`` higher-ranked nodes, which bounds the
+    wedges the triangle products enumerate; a hub has the highest rank and points nowhere.
+    """
+    n = S.shape[0]
+    deg = np.diff(S.indptr)
+    order = np.lexsort((np.arange(n), deg))
+    rank = np.empty(n, dtype=np.int64)
+    rank[order] = np.arange(n)
+    rows = np.repeat(np.arange(n, dtype=S.indices.dtype), deg)
+    keep = rank[rows] < rank[S.indices]
+    kept_rows = rows[keep]
+    indptr = np.zeros(n + 1, dtype=S.indptr.dtype)
+    np.cumsum(np.bincount(kept_rows, minlength=n), out=indptr[1:])
+    return sp.csr_matrix((np.ones(int(keep.sum())), S.indices[keep], indptr), shape=S.shape)
+
+
+def _masked(product: sp.csr_matrix, mask: sp.csr_matrix) -> sp.csr_matrix:
+    """Entries of ``product`` on the pattern of ``mask`` (a 0/1 matrix)."""
+    return sp.csr_matrix(product.multiply(mask))
+
+
+def _triangle_parts(S: sp.csr_matrix, R: sp.csr_matrix | None) -> tuple[np.ndarray, np.ndarray]:
+    """Triangles per node, and triangles whose edge opposite the node lies in ``R``.
+
+    Every triangle ``a < b < c`` (by rank) appears once in the oriented matrix ``U`` as
+    ``a→b, b→c, a→c``. ``((U @ U) ∘ U)[a, c]`` counts the middles ``b`` of triangles on
+    edge ``a→c`` (row sums credit ``a``, column sums credit ``c``) and
+    ``((Uᵀ @ U) ∘ U)[b, c]`` counts the lowest ``a`` of triangles on ``b→c`` (row sums
+    credit ``b``). ``U @ U.T`` is never formed: it is quadratic in a hub's degree.
+    """
+    n = S.shape[0]
+    if n == 0 or S.nnz == 0:
+        z = np.zeros(n)
+        return z, z.copy()
+    U = _oriented(S)
+    UT = U.T.tocsr()
+    low_high = _masked(U @ U, U)
+    mid = _masked(UT @ U, U)
+    tri = (
+        np.asarray(low_high.sum(axis=1)).ravel()
+        + np.asarray(low_high.sum(axis=0)).ravel()
+        + np.asarray(mid.sum(axis=1)).ravel()
+    )
+    opposite = np.zeros(n)
+    if R is not None and R.nnz:
+        UR = _masked(U, R)
+        # a gets (b,c) in R; c gets (a,b) in R; b gets (a,c) in R.
+        opposite += np.asarray(_masked(U @ UR, U).sum(axis=1)).ravel()
+        opposite += np.asarray(_masked(UR @ U, U).sum(axis=0)).ravel()
+        opposite += np.asarray(_masked(UT @ UR, U).sum(axis=1)).ravel()
+    return tri, opposite
+
+
+def triangles_per_node(adjacency: sp.spmatrix) -> np.ndarray:
+    """Number of triangles through each node of the undirected view of ``adjacency``.
+
+    Parameters
+    ----------
+    adjacency : scipy.sparse matrix
+        Square; any non-zero ``(i, j)`` or ``(j, i)`` makes ``i`` and ``j`` neighbours.
+        The diagonal is ignored.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64 counts, same as ``networkx.triangles`` on the undirected simple graph.
+
+    Notes
+    -----
+    Degree-ordered orientation and sparse products (see ``_triangle_parts``); used for the
+    egonet features of ReFeX (Henderson et al., KDD 2011).
+    """
+    A = _binary(adjacency)
+    A.setdiag(0)
+    A.eliminate_zeros()
+    S = _binary(A + A.T)
+    S.sort_indices()
+    return _triangle_parts(S, None)[0]
+
+
+class _Graph:
+    """Lazily built sparse views of one snapshot, shared by all feature computations."""
+
+    def __init__(self, snapshot: Snapshot) -> None:
+        self.snapshot = snapshot
+        self.n = snapshot.n_nodes
+        self._cache: dict[str, Any] = {}
+
+    def _get(self, key: str, build):
+        if key not in self._cache:
+            self._cache[key] = build()
+        return self._cache[key]
+
+    @property
+    def A(self) -> sp.csr_matrix:
+        return self._get("A", lambda: _binary(self.snapshot.counts))
+
+    @property
+    def AT(self) -> sp.csr_matrix:
+        return self._get("AT", lambda: self.A.T.tocsr())
+
+    @property
+    def S(self) -> sp.csr_matrix:
+        def build():
+            S = _binary(self.A + self.AT)
+            S.sort_indices()
+            return S
+
+        return self._get("S", build)
+
+    @property
+    def R(self) -> sp.csr_matrix:
+        return self._get("R", lambda: sp.csr_matrix(self.A.multiply(self.AT)))
+
+    def degree_of(self, direction: str) -> np.ndarray:
+        m = {"in": self.AT, "out": self.A, "all": self.S}[direction]
+        return self._get(f"deg_{direction}", lambda: np.diff(m.indptr).astype(np.float64))
+
+    def adjacency_of(self, direction: str) -> sp.csr_matrix:
+        return {"in": self.AT, "out": self.A, "all": self.S}[direction]
+
+    def triangles(self) -> tuple[np.ndarray, np.ndarray]:
+        return self._get("tri", lambda: _triangle_parts(self.S, self.R))
+
+    def base(self, name: str) -> np.ndarray:
+        """One base feature column (float64, length n)."""
+        return self._get(f"base:{name}", lambda: self._compute_base(name))
+
+    def _compute_base(self, name: str) -> np.ndarray:
+        s = self.snapshot
+        if name == "in_degree":
+            return self.degree_of("in")
+        if name == "out_degree":
+            return self.degree_of("out")
+        if name == "degree":
+            return self.degree_of("all")
+        if name == "in_strength":
+            return np.asarray(s.weights.sum(axis=0), dtype=np.float64).ravel()
+        if name == "out_strength":
+            return np.asarray(s.weights.sum(axis=1), dtype=np.float64).ravel()
+        if name == "in_events":
+            return np.asarray(s.counts.sum(axis=0), dtype=np.float64).ravel()
+        if name == "out_events":
+            return np.asarray(s.counts.sum(axis=1), dtype=np.float64).ravel()
+        if name == "reciprocity":
+            both = np.diff(self.R.indptr).astype(np.float64)
+            return _safe_divide(both, self.degree_of("all"))
+        tri, opposite_reciprocal = self.triangles()
+        deg, din, dout = self.degree_of("all"), self.degree_of("in"), self.degree_of("out")
+        arcs_among = tri + opposite_reciprocal  # each neighbour-neighbour edge holds 1 or 2 arcs
+        if name == "ego_edges":
+            return deg + tri
+        if name == "ego_boundary_edges":
+            return self.S @ deg - deg - 2.0 * tri
+        if name == "ego_arcs_within":
+            return din + dout + arcs_among
+        if name == "ego_arcs_out":
+            return self.S @ dout - din - arcs_among
+        if name == "ego_arcs_in":
+            return self.S @ din - dout - arcs_among
+        raise KeyError(f"unknown base feature {name!r}")
+
+    def inverse_degree(self, direction: str) -> np.ndarray:
+        """``1 / degree`` with 0 for isolated nodes (a mean over no neighbour is 0)."""
+
+        def build():
+            deg = self.degree_of(direction)
+            return np.divide(1.0, deg, out=np.zeros_like(deg), where=deg > 0)
+
+        return self._get(f"inv_{direction}", build)
+
+    def aggregate(self, op: str, columns: Sequence[np.ndarray]) -> list[np.ndarray]:
+        """Apply one ReFeX aggregate to every column at once; returns contiguous columns."""
+        kind, direction = op.split("_")
+        if not columns:
+            return []
+        if self.n == 0:
+            return [np.zeros(0) for _ in columns]
+        if len(columns) == 1:
+            total = self.adjacency_of(direction) @ columns[0]
+            if kind == "mean":
+                total *= self.inverse_degree(direction)
+            return [total]
+        total = np.asarray(self.adjacency_of(direction) @ np.stack(columns, axis=1))
+        if kind == "mean":
+            total *= self.inverse_degree(direction)[:, None]
+        return list(np.ascontiguousarray(total.T))
+
+
+def _safe_divide(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+    """``num / den`` with 0 where ``den`` is 0 (a mean over no neighbour)."""
+    den = np.broadcast_to(den, num.shape)
+    return np.divide(num, den, out=np.zeros(num.shape, dtype=np.float64), where=den > 0)
+
+
+# --------------------------------------------------------------------------- binning
+
+
+def bin_edges(values: np.ndarray, fraction: float = 0.5) -> np.ndarray:
+    """Vertical logarithmic bin edges of one feature (Henderson et al., KDD 2011).
+
+    The ``ceil(fraction · r)`` lowest of the ``r`` values not yet binned form the next bin,
+    extended to every value tied with its largest member. The returned edges are the
+    largest value of each bin except the last: a value ``x`` gets bin
+    ``#{edges < x}``, so values above the reference maximum stay in the top bin.
+
+    Parameters
+    ----------
+    values : numpy.ndarray
+        1-D raw feature values (finite).
+    fraction : float
+        ``p`` in (0, 1).
+
+    Returns
+    -------
+    numpy.ndarray
+        Increasing float64 edges (empty for a constant or empty column).
+
+    Examples
+    --------
+    Values 1..8 with p = 0.5 (worked by hand): the lowest 4 (1-4) are bin 0, the lowest
+    2 of the remaining 4 (5, 6) bin 1, then 7 is bin 2 and 8 is bin 3; edges [4, 6, 7].
+    """
+    v = np.sort(np.asarray(values, dtype=np.float64).ravel())
+    n = v.size
+    cuts: list[float] = []
+    start = 0
+    while start < n:
+        take = max(1, math.ceil(fraction * (n - start)))
+        top = v[start + take - 1]
+        cuts.append(float(top))
+        start = int(np.searchsorted(v, top, side="right"))
+    return np.asarray(cuts[:-1], dtype=np.float64)
+
+
+def apply_bins(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
+    """Bin index ``#{edges < x}`` of every value, as float64."""
+    return np.searchsorted(edges, values, side="left").astype(np.float64)
+
+
+def prune_agreeing(binned: np.ndarray, tolerance: float = 0.0, *, n_fixed: int = 0) -> np.ndarray:
+    """Indices of the columns ReFeX keeps after pruning (Henderson et al., KDD 2011).
+
+    Two columns agree when their binned values differ by at most ``tolerance`` on every
+    row. Columns are joined in an agreement graph; of each connected component the
+    earliest column is kept. The first ``n_fixed`` columns were kept in earlier rounds:
+    they always stay, and any later column agreeing with one of them is dropped.
+
+    Parameters
+    ----------
+    binned : numpy.ndarray
+        rows x features bin indices, columns in generation order.
+    tolerance : float
+        ``s`` >= 0.
+    n_fixed : int
+
+    Returns
+    -------
+    numpy.ndarray
+        Sorted int indices of kept columns (including the fixed ones).
+    """
+    rows, f = binned.shape
+    if f == 0:
+        return np.zeros(0, dtype=np.int64)
+    if tolerance < 1.0 and np.array_equal(binned, np.round(binned)):
+        # Integer bins within s < 1 agree only when equal: the components are the
+        # classes of identical columns, found by sorting the columns as byte strings.
+        cols = np.ascontiguousarray(np.asarray(binned, dtype=np.int16).T)
+        keys = cols.view(np.dtype((np.void, cols.dtype.itemsize * rows))).ravel() if rows else np.zeros(f, "V1")
+        _, label = np.unique(keys, return_inverse=True)
+        label = label.reshape(-1)
+    else:
+        ii, jj = _agreeing_pairs(binned, tolerance)
+        # Fixed columns never merge with each other (they were kept before).
+        both_fixed = (ii < n_fixed) & (jj < n_fixed)
+        ii, jj = ii[~both_fixed], jj[~both_fixed]
+        graph = sp.csr_matrix((np.ones(ii.size), (ii, jj)), shape=(f, f))
+        _, label = sp.csgraph.connected_components(graph, directed=False)
+    first = np.full(label.max() + 1, f, dtype=np.int64)
+    np.minimum.at(first, label, np.arange(f))
+    keep = np.zeros(f, dtype=bool)
+    keep[first] = True
+    keep[:n_fixed] = True
+    return np.flatnonzero(keep)
+
+
+def _agreeing_pairs(binned: np.ndarray, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
+    """All column pairs ``i < j`` with ``max |b_i - b_j| <= tolerance``.
+
+    Pairs are screened on growing row samples (a pair that disagrees on a sample
+    disagrees overall) and the survivors are verified on every row, in chunks.
+    """
+    rows, f = binned.shape
+    b = np.asarray(binned, dtype=np.float32)
+    ii, jj = np.triu_indices(f, k=1)
+    samples = [np.unique(np.linspace(0, rows - 1, k).astype(np.int64)) for k in (256, 4096) if k < rows]
+    samples.append(None)
+    for sample in samples:
+        if ii.size == 0:
+            break
+        sub = b if sample is None else b[sample]
+        ok = np.empty(ii.size, dtype=bool)
+        chunk = max(1, 16_000_000 // max(sub.shape[0], 1))
+        for lo in range(0, ii.size, chunk):
+            sl = slice(lo, lo + chunk)
+            diff = np.abs(sub[:, ii[sl]] - sub[:, jj[sl]])
+            ok[sl] = diff.max(axis=0, initial=0.0) <= tolerance
+        ii, jj = ii[ok], jj[ok]
+    return ii, jj
+
+
+# --------------------------------------------------------------------------- recipe
+
+
+@dataclass(frozen=True)
+class FeatureTable:
+    """ReFeX features of one snapshot, computed by a :class:`FeatureRecipe`.
+
+    Attributes
+    ----------
+    nodes : numpy.ndarray
+        Account ids, same order as the snapshot.
+    names : tuple of str
+        Column names, the recipe's features in order.
+    raw : numpy.ndarray
+        n x f float64 unbinned values (shown as evidence).
+    binned : numpy.ndarray
+        n x f float64 >= 0 vertical logarithmic bins (Henderson et al., KDD 2011); the
+        matrix RolX factorises.
+    recipe_version : str
+    """
+
+    nodes: np.ndarray
+    names: tuple[str, ...]
+    raw: np.ndarray
+    binned: np.ndarray
+    recipe_version: str
+
+    def column(self, name: str, *, binned: bool = False) -> np.ndarray:
+        """One feature column by name."""
+        if name not in self.names:
+            raise KeyError(f"feature {name!r} is not in this table (recipe {self.recipe_version})")
+        j = self.names.index(name)
+        return (self.binned if binned else self.raw)[:, j]
+
+
+@dataclass(frozen=True)
+class _Def:
+    name: str
+    op: str  # a base feature name, or an aggregate
+    parent: str | None
+    round: int
+
+
+def _compute(graph: _Graph, defs: Sequence[_Def]) -> list[np.ndarray]:
+    """Raw value columns of ``defs`` (and of their ancestors, cached) on one graph.
+
+    Features are evaluated round by round; within a round all features sharing one
+    aggregate are one sparse-dense product over their stacked parents.
+    """
+    values: dict[str, np.ndarray] = {}
+    needed = _with_ancestors(defs)
+    for rnd in sorted({d.round for d in needed}):
+        layer = [d for d in needed if d.round == rnd]
+        if rnd == 0:
+            for d in layer:
+                values[d.name] = graph.base(d.op)
+            continue
+        for op in AGGREGATES:
+            group = [d for d in layer if d.op == op]
+            for d, col in zip(group, graph.aggregate(op, [values[d.parent] for d in group])):
+                values[d.name] = col
+    return [values[d.name] for d in defs]
+
+
+def _as_matrix(columns: Sequence[np.ndarray], n: int) -> np.ndarray:
+    """n x f matrix from contiguous columns (Fortran order: no transposing copy)."""
+    if not columns:
+        return np.zeros((n, 0))
+    return np.vstack(columns).T
+
+
+def _with_ancestors(defs: Sequence[_Def]) -> list[_Def]:
+    by_name = {d.name: d for d in defs}
+    out: dict[str, _Def] = {}
+    stack = list(defs)
+    while stack:
+        d = stack.pop()
+        if d.name in out:
+            continue
+        out[d.name] = d
+        if d.parent is not None:
+            if d.parent in by_name:
+                stack.append(by_name[d.parent])
+            else:
+                stack.append(_parse(d.parent))
+    return list(out.values())
+
+
+def _parse(name: str) -> _Def:
+    """Feature definition from its readable name, e.g. ``mean_out(sum_in(degree))``."""
+    if name in BASE_FEATURES:
+        return _Def(name, name, None, 0)
+    op, sep, rest = name.partition("(")
+    if not sep or not rest.endswith(")") or op not in AGGREGATES:
+        raise ValueError(f"unknown feature {name!r}; expected a base feature or op(parent) with op in {AGGREGATES}")
+    parent = _parse(rest[:-1])
+    return _Def(name, op, parent.name, parent.round + 1)
+
+
+def _canonical(body: dict) -> str:
+    return json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+
+
+def _as_snapshots(snapshots: Snapshot | Iterable[Snapshot]) -> list[Snapshot]:
+    if isinstance(snapshots, Snapshot):
+        return [snapshots]
+    out = list(snapshots)
+    if not out:
+        raise ValueError("discover needs at least one reference snapshot")
+    for s in out:
+        if not isinstance(s, Snapshot):
+            raise TypeError(f"expected Snapshot objects, got {type(s).__name__}")
+    return out
+
+
+class FeatureRecipe:
+    """Frozen ReFeX feature set and binning learnt on reference snapshots.
+
+    Build with :meth:`discover` (Henderson et al., KDD 2011) or :meth:`from_dict`; apply
+    with :meth:`transform`. The recipe is immutable, JSON-serialisable and versioned by a
+    short sha256 of its canonical JSON body.
+
+    Attributes
+    ----------
+    names : tuple of str
+        Kept features in generation order (base first, then round by round).
+    version : str
+        12 hex digits of sha256 over the canonical JSON body.
+    binning : str
+        ``"frozen"`` (apply the reference bin edges) or ``"relative"`` (re-bin each
+        snapshot by its own values).
+    """
+
+    __slots__ = ("_defs", "_edges", "bin_fraction", "tolerance", "binning", "max_rounds", "reference", "version")
+
+    def __init__(
+        self,
+        defs: Sequence[_Def],
+        edges: Sequence[np.ndarray],
+        *,
+        bin_fraction: float,
+        tolerance: float,
+        binning: str,
+        max_rounds: int,
+        reference: dict,
+    ) -> None:
+        _check_params(bin_fraction, tolerance, binning, max_rounds)
+        object.__setattr__(self, "_defs", tuple(defs))
+        object.__setattr__(self, "_edges", tuple(np.asarray(e, dtype=np.float64).copy() for e in edges))
+        for e in self._edges:
+            e.setflags(write=False)
+        object.__setattr__(self, "bin_fraction", float(bin_fraction))
+        object.__setattr__(self, "tolerance", float(tolerance))
+        object.__setattr__(self, "binning", binning)
+        object.__setattr__(self, "max_rounds", int(max_rounds))
+        object.__setattr__(self, "reference", dict(reference))
+        digest = hashlib.sha256(_canonical(self._body()).encode()).hexdigest()[:12]
+        object.__setattr__(self, "version", digest)
+
+    def __setattr__(self, name, value):
+        raise AttributeError("FeatureRecipe is frozen")
+
+    def __repr__(self) -> str:
+        return f"FeatureRecipe(version={self.version!r}, features={len(self._defs)}, binning={self.binning!r})"
+
+    def __eq__(self, other: object) -> bool:
+        return isinstance(other, FeatureRecipe) and self.to_dict() == other.to_dict()
+
+    def __hash__(self) -> int:
+        return hash(self.version)
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return tuple(d.name for d in self._defs)
+
+    @property
+    def edges(self) -> dict[str, np.ndarray]:
+        """Frozen bin edges per feature (read-only arrays)."""
+        return {d.name: e for d, e in zip(self._defs, self._edges)}
+
+    # ---------------------------------------------------------------- discovery
+
+    @classmethod
+    def discover(
+        cls,
+        snapshots: Snapshot | Iterable[Snapshot],
+        *,
+        max_rounds: int = 3,
+        bin_fraction: float = 0.5,
+        tolerance: float = 0.0,
+        binning: str = "frozen",
+    ) -> "FeatureRecipe":
+        """Run ReFeX feature discovery on reference snapshots (Henderson et al., KDD 2011).
+
+        Parameters
+        ----------
+        snapshots : Snapshot or iterable of Snapshot
+            Reference windows; their node rows are pooled for binning and pruning.
+        max_rounds : int
+            Maximum recursive rounds after the base features (>= 0).
+        bin_fraction : float
+            ``p`` of vertical logarithmic binning, in (0, 1).
+        tolerance : float
+            ``s``: binned columns differing by at most this on every node agree.
+        binning : {"frozen", "relative"}
+            How :meth:`transform` bins later snapshots.
+
+        Returns
+        -------
+        FeatureRecipe
+        """
+        _check_params(bin_fraction, tolerance, binning, max_rounds)
+        snaps = _as_snapshots(snapshots)
+        graphs = [_Graph(s) for s in snaps]
+
+        kept_defs: list[_Def] = []
+        kept_edges: list[np.ndarray] = []
+        kept_bin = np.zeros((sum(g.n for g in graphs), 0), dtype=np.uint8)
+        # raw columns of the features kept in the previous round, per snapshot
+        frontier: list[dict[str, np.ndarray]] = [{} for _ in graphs]
+        candidates = [_Def(name, name, None, 0) for name in BASE_FEATURES]
+        rounds_run = 0
+        for rnd in range(max_rounds + 1):
+            cand_bin, cand_edges = cls._bin_candidates(graphs, candidates, frontier, bin_fraction)
+            n_fixed = len(kept_defs)
+            keep = prune_agreeing(np.hstack([kept_bin, cand_bin]), tolerance, n_fixed=n_fixed)
+            new = [int(j) - n_fixed for j in keep if j >= n_fixed]
+            rounds_run = rnd
+            if not new:
+                break
+            new_defs = [candidates[j] for j in new]
+            kept_defs.extend(new_defs)
+            kept_edges.extend(cand_edges[j] for j in new)
+            kept_bin = np.hstack([kept_bin, cand_bin[:, new]])
+            if rnd == max_rounds:
+                break
+            frontier = [
+                dict(zip((d.name for d in new_defs), cls._candidate_values(g, new_defs, frontier[k])))
+                for k, g in enumerate(graphs)
+            ]
+            candidates = [_Def(f"{op}({d.name})", op, d.name, rnd + 1) for d in new_defs for op in AGGREGATES]
+        reference = {
+            "snapshots": len(snaps),
+            "rows": int(sum(s.n_nodes for s in snaps)),
+            "rounds": rounds_run,
+        }
+        return cls(
+            kept_defs,
+            kept_edges,
+            bin_fraction=bin_fraction,
+            tolerance=tolerance,
+            binning=binning,
+            max_rounds=max_rounds,
+            reference=reference,
+        )
+
+    @classmethod
+    def _bin_candidates(
+        cls,
+        graphs: Sequence[_Graph],
+        candidates: Sequence[_Def],
+        frontier: Sequence[dict[str, np.ndarray]],
+        bin_fraction: float,
+        chunk: int = 64,
+    ) -> tuple[np.ndarray, list[np.ndarray]]:
+        """Binned candidate columns pooled over the reference graphs, and their edges.
+
+        Candidates are computed in chunks so that only a few raw float columns are alive
+        at once; bins are kept as uint8.
+        """
+        rows = sum(g.n for g in graphs)
+        out = np.zeros((rows, len(candidates)), dtype=np.uint8)
+        edges: list[np.ndarray] = []
+        for lo in range(0, len(candidates), chunk):
+            part = candidates[lo : lo + chunk]
+            per_graph = [cls._candidate_values(g, part, frontier[k]) for k, g in enumerate(graphs)]
+            for j in range(len(part)):
+                pooled = np.concatenate([cols[j] for cols in per_graph]) if len(graphs) > 1 else per_graph[0][j]
+                e = bin_edges(pooled, bin_fraction)
+                edges.append(e)
+                out[:, lo + j] = np.searchsorted(e, pooled, side="left")
+        return out, edges
+
+    @staticmethod
+    def _candidate_values(graph: _Graph, candidates: Sequence[_Def], parents: dict[str, np.ndarray]) -> list[np.ndarray]:
+        """Raw candidate columns on one graph, aggregating already computed parents."""
+        out: list[np.ndarray | None] = [None] * len(candidates)
+        by_op: dict[str, list[int]] = {}
+        for j, d in enumerate(candidates):
+            if d.parent is None:
+                out[j] = graph.base(d.op)
+            else:
+                by_op.setdefault(d.op, []).append(j)
+        for op, idx in by_op.items():
+            cols = graph.aggregate(op, [parents[candidates[j].parent] for j in idx])
+            for j, col in zip(idx, cols):
+                out[j] = col
+        return out  # type: ignore[return-value]
+
+    # ---------------------------------------------------------------- transform
+
+    def transform(self, snapshot: Snapshot, *, binning: str | None = None) -> FeatureTable:
+        """Compute exactly this recipe's features on ``snapshot``.
+
+        Only the recipe's features (and their parents) are computed; egonet kernels run
+        only when an egonet feature is needed.
+
+        Parameters
+        ----------
+        snapshot : Snapshot
+        binning : {"frozen", "relative"}, optional
+            Overrides the recipe's mode for this call.
+
+        Returns
+        -------
+        FeatureTable
+        """
+        if not isinstance(snapshot, Snapshot):
+            raise TypeError(f"transform expects a Snapshot, got {type(snapshot).__name__}")
+        mode = self.binning if binning is None else binning
+        if mode not in BINNING_MODES:
+            raise ValueError(f"binning must be one of {BINNING_MODES}, got {mode!r}")
+        columns = _compute(_Graph(snapshot), self._defs)
+        if mode == "frozen":
+            edges = self._edges
+        else:
+            edges = [bin_edges(col, self.bin_fraction) for col in columns]
+        raw = _as_matrix(columns, snapshot.n_nodes)
+        binned = _as_matrix([apply_bins(col, e) for col, e in zip(columns, edges)], snapshot.n_nodes)
+        return FeatureTable(
+            nodes=snapshot.nodes,
+            names=self.names,
+            raw=raw,
+            binned=binned,
+            recipe_version=self.version,
+        )
+
+    # ---------------------------------------------------------------- serialisation
+
+    def _body(self) -> dict:
+        return {
+            "format": FORMAT,
+            "format_version": FORMAT_VERSION,
+            "bin_fraction": self.bin_fraction,
+            "tolerance": self.tolerance,
+            "binning": self.binning,
+            "max_rounds": self.max_rounds,
+            "reference": self.reference,
+            "features": [
+                {"name": d.name, "op": d.op, "parent": d.parent, "round": d.round, "edges": e.tolist()}
+                for d, e in zip(self._defs, self._edges)
+            ],
+        }
+
+    def to_dict(self) -> dict:
+        """Plain JSON-serialisable dict (the body plus ``version``)."""
+        body = self._body()
+        body["version"] = self.version
+        return body
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "FeatureRecipe":
+        """Rebuild a recipe from :meth:`to_dict` output; checks format and version.
+
+        Raises
+        ------
+        ValueError
+            When the dict is not a feature recipe, names an unknown feature, or its
+            ``version`` does not match its content.
+        """
+        if not isinstance(d, dict) or d.get("format") != FORMAT:
+            raise ValueError(f"not a feature recipe: expected format {FORMAT!r}")
+        if d.get("format_version") != FORMAT_VERSION:
+            raise ValueError(f"unsupported feature recipe format_version {d.get('format_version')!r}")
+        defs, edges = [], []
+        seen: set[str] = set()
+        for f in d["features"]:
+            parsed = _parse(f["name"])
+            if parsed.op != f["op"] or parsed.parent != f["parent"]:
+                raise ValueError(f"feature {f['name']!r} does not match its op/parent")
+            if parsed.parent is not None and parsed.parent not in seen:
+                raise ValueError(f"feature {f['name']!r} comes before its parent {parsed.parent!r}")
+            seen.add(parsed.name)
+            defs.append(parsed)
+            e = np.asarray(f["edges"], dtype=np.float64)
+            if e.ndim != 1 or (e.size > 1 and np.any(np.diff(e) <= 0)) or not np.all(np.isfinite(e)):
+                raise ValueError(f"feature {f['name']!r} has invalid bin edges")
+            edges.append(e)
+        recipe = cls(
+            defs,
+            edges,
+            bin_fraction=d["bin_fraction"],
+            tolerance=d["tolerance"],
+            binning=d["binning"],
+            max_rounds=d["max_rounds"],
+            reference=d.get("reference", {}),
+        )
+        if "version" in d and d["version"] != recipe.version:
+            raise ValueError(
+                f"feature recipe version {d['version']!r} does not match its content ({recipe.version!r}); "
+                "the recipe was edited or corrupted"
+            )
+        return recipe
+
+
+def _check_params(bin_fraction: float, tolerance: float, binning: str, max_rounds: int) -> None:
+    if not (0.0 < float(bin_fraction) < 1.0):
+        raise ValueError(f"bin_fraction must be between 0 and 1 (exclusive), got {bin_fraction!r}")
+    if not (float(tolerance) >= 0.0) or not math.isfinite(float(tolerance)):
+        raise ValueError(f"tolerance must be a finite number >= 0, got {tolerance!r}")
+    if binning not in BINNING_MODES:
+        raise ValueError(f"binning must be one of {BINNING_MODES}, got {binning!r}")
+    if int(max_rounds) != max_rounds or max_rounds < 0:
+        raise ValueError(f"max_rounds must be an integer >= 0, got {max_rounds!r}")
