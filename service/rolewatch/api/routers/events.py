@@ -61,7 +61,7 @@ _OPENAPI = {
 
 
 def _too_large(message: str) -> HTTPException:
-    return HTTPException(status.HTTP_413_REQUEST_ENTITY_TOO_LARGE, detail=message + "; nothing was stored: split the batch")
+    return HTTPException(status.HTTP_413_CONTENT_TOO_LARGE, detail=message + "; nothing was stored: split the batch")
 
 
 def _bad(message: str) -> HTTPException:
