@@ -107,7 +107,7 @@ async def create(request: Request, body: SubscriptionCreate, _key=ADMIN) -> dict
     try:
         made = await run_in_threadpool(work)
     except (UnsafeURL, ValueError) as error:
-        raise HTTPException(status.HTTP_422_UNPROCESSABLE_ENTITY, detail=str(error)) from None
+        raise HTTPException(422, detail=str(error)) from None
     return {**made.subscription, "secret": made.secret}
 
 
