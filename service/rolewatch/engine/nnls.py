@@ -18,33 +18,41 @@ nodes.
 from __future__ import annotations
 
 import numpy as np
-import scipy.linalg
 
 __all__ = ["nnls_rows"]
 
 
 def _solve_groups(gram: np.ndarray, rhs: np.ndarray, passive: np.ndarray,
                   rows: np.ndarray, out: np.ndarray) -> None:
-    """Unconstrained least squares on the passive set, one solve per distinct pattern."""
+    """Unconstrained least squares on the passive set, one k x k solve per distinct pattern.
+
+    Rows are sorted by pattern so each group is a contiguous slice; the group's solution
+    is ``rhs_slice @ M`` with M the inverse of the passive block of the Gram matrix,
+    embedded in a k x k matrix of zeros (so inactive variables come out exactly 0).
+    """
     k = gram.shape[0]
     codes = passive[rows] @ (1 << np.arange(k, dtype=np.int64))
     order = np.argsort(codes, kind="stable")
+    sorted_rows = rows[order]
     sorted_codes = codes[order]
     starts = np.flatnonzero(np.r_[True, sorted_codes[1:] != sorted_codes[:-1]])
     ends = np.r_[starts[1:], len(order)]
+    block = rhs[sorted_rows]
+    result = np.zeros_like(block)
     for start, end in zip(starts, ends):
-        group = rows[order[start:end]]
-        pset = passive[group[0]]
-        out[group] = 0.0
+        pset = passive[sorted_rows[start]]
         if not pset.any():
             continue
-        sub = gram[np.ix_(pset, pset)]
-        b = rhs[np.ix_(group, np.flatnonzero(pset))]
+        idx = np.flatnonzero(pset)
+        sub = gram[np.ix_(idx, idx)]
         try:
-            sol = scipy.linalg.solve(sub, b.T, assume_a="pos", check_finite=False).T
-        except (np.linalg.LinAlgError, scipy.linalg.LinAlgError):
-            sol = b @ np.linalg.pinv(sub, hermitian=True)
-        out[np.ix_(group, np.flatnonzero(pset))] = sol
+            inv = np.linalg.solve(sub, np.eye(idx.size))
+        except np.linalg.LinAlgError:  # singular: duplicate roles
+            inv = np.linalg.pinv(sub, hermitian=True)
+        M = np.zeros((k, k))
+        M[np.ix_(idx, idx)] = inv
+        result[start:end] = block[start:end] @ M
+    out[sorted_rows] = result
 
 
 def nnls_rows(F: np.ndarray, V: np.ndarray, *, max_iter: int | None = None) -> np.ndarray:
