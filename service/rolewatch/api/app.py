@@ -21,6 +21,7 @@ from rolewatch.api.models import Health
 from rolewatch.api.routers import accounts, admin, alerts, events, roles, windows
 from rolewatch.api.routers import deliveries, subscriptions
 from rolewatch.logs import REQUEST_ID
+from rolewatch.web.pages import include_pages
 
 log = logging.getLogger("rolewatch.http")
 _REQUEST_ID_OK = re.compile(r"[A-Za-z0-9._-]{1,64}")
@@ -120,6 +121,7 @@ def create_app(settings, *, run_jobs: bool | None = None) -> FastAPI:
         app.include_router(module.router)
     app.include_router(subscriptions.router)
     app.include_router(deliveries.router)
+    include_pages(app)  # the HTML pages and /static
 
     @app.get("/healthz", response_model=Health, tags=["service"], summary="Liveness and database check (no key)")
     async def healthz(request: Request):

@@ -1,0 +1,46 @@
+"""Reads the web pages need beyond :mod:`rolewatch.store.queries` (read-only, SQLAlchemy Core)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from sqlalchemy import func, select
+from sqlalchemy.engine import Engine
+
+from rolewatch.store import queries
+from rolewatch.store.schema import memberships, windows
+
+
+def all_windows(engine: Engine, *, limit: int = 520) -> list[dict[str, Any]]:
+    """Closed windows, oldest first (at most ``limit``, the newest ones)."""
+    return list(reversed(queries.list_windows(engine, limit=limit)))
+
+
+def dominant_counts(engine: Engine, window_id: int) -> dict[int, int]:
+    """``{role_id: number of accounts whose dominant role it is}`` in one window."""
+    query = (
+        select(memberships.c.dominant_role, func.count())
+        .where(memberships.c.window_id == window_id)
+        .group_by(memberships.c.dominant_role)
+    )
+    with engine.connect() as connection:
+        return {int(role): int(count) for role, count in connection.execute(query)}
+
+
+def latest_window_with_members(engine: Engine) -> dict[str, Any] | None:
+    """The newest closed window that holds memberships, or None."""
+    query = (
+        select(windows)
+        .where(windows.c.id.in_(select(memberships.c.window_id).distinct()))
+        .order_by(windows.c.end_us.desc())
+        .limit(1)
+    )
+    with engine.connect() as connection:
+        row = connection.execute(query).first()
+    return None if row is None else dict(row._mapping)
+
+
+def alerts_by_window(engine: Engine, account: str, *, limit: int = 1000) -> dict[int, dict[str, Any]]:
+    """The account's alerts in the API form, keyed by window id."""
+    found, _ = queries.list_alerts(engine, queries.AlertFilters(account=account), limit=limit)
+    return {alert["window_id"]: alert for alert in found}
