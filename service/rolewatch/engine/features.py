@@ -307,13 +307,24 @@ def _safe_divide(num: np.ndarray, den: np.ndarray) -> np.ndarray:
 # --------------------------------------------------------------------------- binning
 
 
+RELATIVE_TIE = 1e-9
+"""Values within this relative distance of each other count as tied when binning, so that
+rounding differences (summation order in sums and means) never move a node across a bin
+edge (common practice, no source)."""
+
+
+def _tie_slack(x: np.ndarray | float) -> np.ndarray | float:
+    return RELATIVE_TIE * np.maximum(np.abs(x), 1.0)
+
+
 def bin_edges(values: np.ndarray, fraction: float = 0.5) -> np.ndarray:
     """Vertical logarithmic bin edges of one feature (Henderson et al., KDD 2011).
 
     The ``ceil(fraction · r)`` lowest of the ``r`` values not yet binned form the next bin,
-    extended to every value tied with its largest member. The returned edges are the
-    largest value of each bin except the last: a value ``x`` gets bin
-    ``#{edges < x}``, so values above the reference maximum stay in the top bin.
+    extended to every value tied with its largest member (equal within a relative
+    ``1e-9``). The returned edges are the largest value of each bin except the last: a
+    value ``x`` gets bin ``#{edges < x}``, so values above the reference maximum stay in
+    the top bin.
 
     Parameters
     ----------
@@ -339,14 +350,15 @@ def bin_edges(values: np.ndarray, fraction: float = 0.5) -> np.ndarray:
     while start < n:
         take = max(1, math.ceil(fraction * (n - start)))
         top = v[start + take - 1]
-        cuts.append(float(top))
-        start = int(np.searchsorted(v, top, side="right"))
+        start = int(np.searchsorted(v, top + _tie_slack(top), side="right"))
+        cuts.append(float(v[start - 1]))
     return np.asarray(cuts[:-1], dtype=np.float64)
 
 
 def apply_bins(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
-    """Bin index ``#{edges < x}`` of every value, as float64."""
-    return np.searchsorted(edges, values, side="left").astype(np.float64)
+    """Bin index ``#{edges < x}`` of every value (ties within ``1e-9`` relative), as float64."""
+    values = np.asarray(values, dtype=np.float64)
+    return np.searchsorted(edges, values - _tie_slack(values), side="left").astype(np.float64)
 
 
 def prune_agreeing(binned: np.ndarray, tolerance: float = 0.0, *, n_fixed: int = 0) -> np.ndarray:
@@ -700,7 +712,7 @@ class FeatureRecipe:
                 pooled = np.concatenate([cols[j] for cols in per_graph]) if len(graphs) > 1 else per_graph[0][j]
                 e = bin_edges(pooled, bin_fraction)
                 edges.append(e)
-                out[:, lo + j] = np.searchsorted(e, pooled, side="left")
+                out[:, lo + j] = apply_bins(pooled, e)
         return out, edges
 
     @staticmethod
