@@ -165,3 +165,18 @@ def test_send_is_pinned_to_the_checked_address_with_tls_for_the_host_name(
             )
         ).scalar_one()
     assert "certificate" in error.lower() and name in error
+
+
+def test_send_falls_back_to_the_next_checked_address(db_url, engine, receiver, make_alert):
+    # 127.0.0.2 refuses (the receiver listens on 127.0.0.1 only); the second answer works.
+    hook = receiver().start()
+    dns = fake_dns({"hooks.rolewatch.test": ["127.0.0.2", "127.0.0.1"]})
+    settings = delivery_settings(db_url, webhook_allow_hosts=["127.0.0.0/8"])
+    with write_transaction(engine) as connection:
+        create_subscription(connection, settings, url=f"http://hooks.rolewatch.test:{hook.port}/x",
+                            now_us=now_us(), resolver=dns)
+    alert = make_alert()
+    with write_transaction(engine) as connection:
+        enqueue_alerts(connection, settings, [alert])
+    assert deliver_due(engine, settings, resolver=dns).delivered == 1
+    assert hook.received[0].headers["host"] == f"hooks.rolewatch.test:{hook.port}"

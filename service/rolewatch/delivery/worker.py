@@ -203,17 +203,23 @@ def send_one(
     extensions = {}
     if checked.scheme == "https" and not checked.is_ip_literal:
         extensions["sni_hostname"] = checked.host  # TLS name = the URL's host, not the IP
-    request = client.build_request(
-        "POST", checked.pinned_url(), content=claim.body, headers=headers, extensions=extensions
-    )
-    try:
-        response = client.send(request, stream=True)
-    except httpx.TimeoutException as error:
-        return result(None, f"timed out ({type(error).__name__}) after at most {total_s:g}s")
-    except httpx.ConnectError as error:
-        return result(None, f"could not connect: {plain(error, SNIPPET_CHARS) or 'refused'}")
-    except httpx.HTTPError as error:
-        return result(None, f"{type(error).__name__}: {plain(error, SNIPPET_CHARS)}")
+    response = None
+    for address in checked.addresses:  # every one was checked; try the next if one refuses
+        request = client.build_request(
+            "POST", checked.pinned_url(address), content=claim.body, headers=headers,
+            extensions=extensions,
+        )
+        try:
+            response = client.send(request, stream=True)
+            break
+        except httpx.ConnectError as error:
+            failure = f"could not connect: {plain(error, SNIPPET_CHARS) or 'refused'}"
+        except httpx.TimeoutException as error:
+            return result(None, f"timed out ({type(error).__name__}) after at most {total_s:g}s")
+        except httpx.HTTPError as error:
+            return result(None, f"{type(error).__name__}: {plain(error, SNIPPET_CHARS)}")
+    if response is None:
+        return result(None, failure)
     try:
         code = response.status_code
         if 200 <= code < 300:
