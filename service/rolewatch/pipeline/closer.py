@@ -20,7 +20,7 @@ import numpy as np
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
 
-from rolewatch.pipeline.compute import PastWindow, WindowResult, compute_window
+from rolewatch.pipeline.compute import PastWindow, WindowResult, compute_window, past_from_result
 from rolewatch.pipeline.loading import WindowEvents, load_window_events
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
 from rolewatch.pipeline.windows import (
@@ -155,7 +155,7 @@ def _close_once(engine: Engine, settings, end_us: int, now_us: int) -> list[dict
     if model is None:
         return _close_training(engine, settings, geometry, end_us, now_us, current, training)
     with engine.connect() as connection:
-        past = load_past_windows(connection, model, before_end_us=end_us, limit=_lookback(settings))
+        past = load_past_windows(connection, model, before_end_us=end_us, limit=lookback_windows(settings))
     window = {"id": None, "start": to_rfc3339(start_us), "end": to_rfc3339(end_us)}
     started = time.perf_counter()
     result = compute_window(
@@ -184,7 +184,8 @@ def _close_once(engine: Engine, settings, end_us: int, now_us: int) -> list[dict
     return [_summary(window_id, start_us, end_us, len(current), result, training=False)]
 
 
-def _lookback(settings) -> int:
+def lookback_windows(settings) -> int:
+    """How many past windows the baseline may look back over."""
     return max(settings.baseline_windows, int(np.ceil(4 * settings.baseline_half_life)), 8)
 
 
@@ -278,8 +279,7 @@ def _close_training(
             model, settings, window_events, previous, past, window=window, raise_alerts=False
         )
         results.append((window_id, w_start, w_end, window_events, result, time.perf_counter() - started))
-        if len(result.nodes):
-            past = (past + [_as_past(result)])[-_lookback(settings):]
+        past = (past + [past_from_result(result)])[-lookback_windows(settings):]
         previous = window_events
     summaries = []
     with write_transaction(engine) as connection:
@@ -316,14 +316,6 @@ def _close_training(
                 _summary(window_id, w_start, w_end, len(window_events), result, training=True)
             )
     return summaries
-
-
-def _as_past(result: WindowResult) -> PastWindow:
-    return PastWindow(
-        accounts=result.nodes,
-        mixture=result.mixture,
-        events=result.activity.events.astype(np.float64),
-    )
 
 
 def load_past_windows(
@@ -419,6 +411,7 @@ def _store_result(
     """Insert memberships and alerts; return the alerts in their API form."""
     if len(result.nodes):
         role_ids = [str(role_id) for role_id in model.basis.role_ids]
+        rounded = np.round(result.mixture, 6)  # as_stored() applies the same rounding
         rows = []
         for index, account in enumerate(result.nodes):
             score = float(result.score[index])
@@ -428,7 +421,7 @@ def _store_result(
                     "window_id": window_id,
                     "basis_version": model.basis.version,
                     "mixture": json.dumps(
-                        {rid: round(float(w), 6) for rid, w in zip(role_ids, result.mixture[index])}
+                        {rid: float(w) for rid, w in zip(role_ids, rounded[index])}
                     ),
                     "dominant_role": int(result.dominant[index]),
                     "score": score if np.isfinite(score) else None,

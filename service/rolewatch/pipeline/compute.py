@@ -48,13 +48,30 @@ class WindowResult:
     scored_count: int
 
 
+def as_stored(mixture: np.ndarray) -> np.ndarray:
+    """Mixtures exactly as they read back from the store (6 decimals, renormalised), so a
+    baseline built in memory equals one loaded from stored memberships."""
+    rounded = np.round(np.asarray(mixture, dtype=np.float64), 6)
+    totals = rounded.sum(axis=1, keepdims=True)
+    return np.divide(rounded, totals, out=rounded, where=totals > 0)
+
+
+def past_from_result(result: "WindowResult") -> PastWindow:
+    """The history entry a measured window leaves for the windows after it."""
+    return PastWindow(
+        accounts=result.nodes,
+        mixture=as_stored(result.mixture),
+        events=result.activity.events.astype(np.float64),
+    )
+
+
 def policy_from_settings(settings) -> ShiftPolicy:
     return ShiftPolicy(
         measure=settings.shift_measure,
         baseline=settings.shift_baseline,
         last_k=settings.baseline_windows,
         half_life=settings.baseline_half_life,
-        mode=settings.alert_mode,
+        alert_mode=settings.alert_mode,
         threshold=settings.alert_threshold,
         budget=settings.alert_budget,
         floor=settings.alert_floor,
@@ -164,7 +181,7 @@ def compute_window(
         previous_activity = (
             activity_counts(previous_snapshot) if previous_table is not None else None
         )
-        threshold = settings.alert_threshold if policy.mode == "threshold" else settings.alert_floor
+        threshold = settings.alert_threshold if policy.alert_mode == "threshold" else settings.alert_floor
         for row in np.flatnonzero(scores.alert):
             alerts.append(
                 _alert_record(
@@ -254,7 +271,7 @@ def _alert_record(
     evidence = {
         "threshold": float(threshold),
         "measure": policy.measure,
-        "mode": policy.mode,
+        "mode": policy.alert_mode,
         "components": {
             "composition": _finite(scores.composition[row]),
             "magnitude": _finite(scores.magnitude[row]),

@@ -1,0 +1,174 @@
+"""Closing windows end to end on a real store: training, back-fill, scoring, late events,
+crash safety, and the same results whether events come in bulk, trickle or by file.
+
+The events are the fictional marketplace sample in fixtures/sample (invented data).
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime
+
+import pytest
+import sqlalchemy as sa
+
+from rolewatch.pipeline import closer as closer_module
+from rolewatch.pipeline.closer import close_due_windows
+from rolewatch.store.db import open_store
+from rolewatch.store.events import ingest
+from rolewatch.store.schema import alerts, deliveries, events, memberships, windows
+
+from .conftest import sample_events, sample_truth
+
+NOW = int(datetime(2026, 12, 1).timestamp() * 1_000_000)  # long after the sample's weeks
+
+
+def _time_us(event: dict) -> int:
+    return int(datetime.fromisoformat(event["time"].replace("Z", "+00:00")).timestamp() * 1_000_000)
+
+
+def _snapshot_of_results(engine) -> dict:
+    """Everything a close writes, without ids and wall-clock times, for comparisons."""
+    with engine.connect() as connection:
+        window_rows = connection.execute(
+            sa.select(
+                windows.c.start_us, windows.c.end_us, windows.c.event_count, windows.c.account_count,
+                windows.c.alert_count, windows.c.training, windows.c.basis_version,
+                windows.c.reconstruction_error, windows.c.new_count, windows.c.inactive_count,
+            ).order_by(windows.c.end_us)
+        ).all()
+        member_rows = connection.execute(
+            sa.select(
+                windows.c.end_us, memberships.c.account, memberships.c.mixture, memberships.c.score,
+                memberships.c.status, memberships.c.dominant_role, memberships.c.new_counterparts,
+            ).join(windows, windows.c.id == memberships.c.window_id)
+            .order_by(windows.c.end_us, memberships.c.account)
+        ).all()
+        alert_rows = connection.execute(
+            sa.select(alerts.c.window_end_us, alerts.c.account, alerts.c.score, alerts.c.role_before, alerts.c.role_after)
+            .order_by(alerts.c.window_end_us, alerts.c.account)
+        ).all()
+    return {
+        "windows": [tuple(row) for row in window_rows],
+        "memberships": [tuple(row) for row in member_rows],
+        "alerts": [tuple(row) for row in alert_rows],
+    }
+
+
+def test_sample_closes_into_training_then_scored_windows(store):
+    engine, settings = store
+    result = ingest(engine, settings, sample_events(), NOW)
+    assert result.accepted > 10_000 and not result.rejected
+    closed = close_due_windows(engine, settings, now_us=NOW, drain=True)
+    truth = sample_truth()
+    # training windows report twice: when recorded, and again when back-filled
+    assert len({summary["id"] for summary in closed}) == truth["meta"]["weeks"]
+    with engine.connect() as connection:
+        rows = connection.execute(sa.select(windows).order_by(windows.c.end_us)).all()
+        assert [row.training for row in rows] == [True] * 4 + [False] * (len(rows) - 4)
+        # training windows were back-filled: every window carries the basis version
+        assert all(row.basis_version for row in rows)
+        assert sum(row.event_count for row in rows) == result.accepted
+        mixtures = connection.execute(sa.select(memberships.c.mixture)).scalars().all()
+        for mixture in mixtures[:500]:
+            assert sum(json.loads(mixture).values()) == pytest.approx(1.0, abs=1e-4)
+        statuses = set(connection.execute(sa.select(memberships.c.status).distinct()).scalars())
+        assert {"new", "scored"} <= statuses
+        # training windows never alert
+        training_ids = [row.id for row in rows if row.training]
+        assert not connection.execute(sa.select(alerts).where(alerts.c.window_id.in_(training_ids))).first()
+    # closing again is a no-op
+    assert close_due_windows(engine, settings, now_us=NOW, drain=True) == []
+
+
+def test_bulk_trickle_and_out_of_order_give_identical_windows(make_settings, tmp_path):
+    every = sample_events()
+    stores = {}
+    for mode in ("bulk", "trickle", "shuffled"):
+        settings = make_settings(database_url=f"sqlite:///{tmp_path / (mode + '.db')}")
+        engine = open_store(settings)
+        if mode == "bulk":
+            ingest(engine, settings, every, NOW)
+            close_due_windows(engine, settings, now_us=NOW, drain=True)
+        elif mode == "trickle":
+            # a live stream: batches arrive in time order and the wall clock moves with them
+            ordered = sorted(every, key=_time_us)
+            for start in range(0, len(ordered), 500):
+                batch = ordered[start : start + 500]
+                arrival = _time_us(batch[-1]) + 1
+                ingest(engine, settings, batch, arrival)
+                close_due_windows(engine, settings, now_us=arrival)
+            close_due_windows(engine, settings, now_us=NOW)  # idle long after the last event
+        else:
+            import random
+
+            shuffled = list(every)
+            random.Random(3).shuffle(shuffled)
+            for start in range(0, len(shuffled), 2_000):
+                ingest(engine, settings, shuffled[start : start + 2_000], NOW)
+            close_due_windows(engine, settings, now_us=NOW, drain=True)
+        stores[mode] = _snapshot_of_results(engine)
+        engine.dispose()
+    assert stores["bulk"]["windows"] == stores["trickle"]["windows"] == stores["shuffled"]["windows"]
+    assert stores["bulk"]["memberships"] == stores["trickle"]["memberships"] == stores["shuffled"]["memberships"]
+    assert stores["bulk"]["alerts"] == stores["trickle"]["alerts"] == stores["shuffled"]["alerts"]
+
+
+def test_late_event_is_stored_and_counted_but_never_changes_a_closed_window(store):
+    engine, settings = store
+    every = sample_events()
+    ingest(engine, settings, every, NOW)
+    close_due_windows(engine, settings, now_us=NOW, drain=True)
+    before = _snapshot_of_results(engine)
+    with engine.connect() as connection:
+        first = connection.execute(sa.select(windows).order_by(windows.c.end_us)).first()
+    straggler = {
+        "id": "late-1",
+        "time": "2026-01-02T12:00:00Z",
+        "actor": "m-00001",
+        "target": "m-00002",
+        "weight": 5,
+    }
+    outcome = ingest(engine, settings, [straggler], NOW)
+    assert outcome.accepted == 1 and outcome.late == 1
+    close_due_windows(engine, settings, now_us=NOW, drain=True)
+    with engine.connect() as connection:
+        stored = connection.execute(sa.select(events.c.late).where(events.c.event_id == "late-1")).scalar_one()
+        late_count = connection.execute(sa.select(windows.c.late_count).where(windows.c.id == first.id)).scalar_one()
+    assert stored is True and late_count == 1
+    assert _snapshot_of_results(engine) == before
+
+
+def test_a_crash_mid_close_leaves_no_partial_window_and_the_next_tick_redoes_it(store, monkeypatch):
+    engine, settings = store
+    ingest(engine, settings, sample_events(), NOW)
+    # close the training windows and one more, then make the next close fail inside its
+    # write transaction (after memberships and alerts were inserted)
+    closed = close_due_windows(engine, settings, now_us=NOW, drain=True)
+    assert closed
+    with engine.begin() as connection:
+        last = connection.execute(sa.select(sa.func.max(windows.c.id))).scalar_one()
+        connection.execute(deliveries.delete())
+        connection.execute(alerts.delete().where(alerts.c.window_id == last))
+        connection.execute(memberships.delete().where(memberships.c.window_id == last))
+        connection.execute(windows.delete().where(windows.c.id == last))
+    original_store = closer_module._store_result
+
+    def store_then_crash(*args, **kwargs):
+        original_store(*args, **kwargs)
+        raise RuntimeError("simulated crash inside the window transaction")
+
+    monkeypatch.setattr(closer_module, "_store_result", store_then_crash)
+    with pytest.raises(RuntimeError, match="simulated crash"):
+        close_due_windows(engine, settings, now_us=NOW, drain=True)
+    with engine.connect() as connection:
+        assert connection.execute(sa.select(sa.func.max(windows.c.id))).scalar_one() < last
+        assert not connection.execute(sa.select(memberships).where(memberships.c.window_id >= last)).first()
+    monkeypatch.setattr(closer_module, "_store_result", original_store)
+    redone = close_due_windows(engine, settings, now_us=NOW, drain=True)
+    assert len(redone) == 1
+    with engine.connect() as connection:
+        count = connection.execute(
+            sa.select(sa.func.count()).select_from(memberships).where(memberships.c.window_id == redone[0]["id"])
+        ).scalar_one()
+    assert count == redone[0]["accounts"] > 0
