@@ -2,7 +2,8 @@
 
 ``Receiver`` is a threaded ``http.server`` on 127.0.0.1 that records every request and answers
 from a script of actions: an int status code, ``("sleep", seconds)`` to stall past the
-sender's timeout, or ``("redirect", location)``. It can be started late and stopped and
+sender's timeout, ``("trickle", seconds)`` to dribble the answer's headers a byte at a time,
+or ``("redirect", location)``. It can be started late and stopped and
 restarted on the same port, to play a receiver that is down.
 """
 
@@ -59,6 +60,19 @@ class Receiver:
                 action = owner.script.pop(0) if owner.script else owner.default
                 if owner.chat:
                     action = 200 if _chat_acceptable(self.headers, body) else 400
+                if isinstance(action, tuple) and action[0] == "trickle":
+                    # One header byte every 0.2 s: each read is quick, the whole answer slow.
+                    owner.received.append(Received(self.path, {k.lower(): v for k, v in self.headers.items()}, body, 200))
+                    try:
+                        self.wfile.write(b"HTTP/1.1 200 OK\r\nX-Slow: ")
+                        until = time.monotonic() + action[1]
+                        while time.monotonic() < until:
+                            self.wfile.write(b"z")
+                            time.sleep(0.2)
+                        self.wfile.write(b"\r\ncontent-length: 0\r\n\r\n")
+                    except OSError:
+                        pass
+                    return
                 if isinstance(action, tuple) and action[0] == "sleep":
                     time.sleep(action[1])
                     action = 200

@@ -201,3 +201,15 @@ def test_backoff_doubles_with_jitter_and_is_capped():
         assert 0.8 * 30 * 2 ** (n - 1) <= delay <= 1.2 * 30 * 2 ** (n - 1)
     assert max(delays) == 6 * 3600 and delays[-1] == 6 * 3600
     assert len(set(round(d, 6) for d in delays[:8])) == 8
+
+
+def test_total_timeout_cuts_off_a_receiver_that_trickles(engine, settings, receiver, make_alert):
+    # Each header byte comes within the per-read timeout, but the whole answer would take 5 s;
+    # the total delivery_timeout (1 s here) still ends the attempt.
+    hook = receiver(script=[("trickle", 5)]).start()
+    subscribe(engine, settings, hook.url)
+    [delivery_id] = enqueue(engine, settings, [make_alert()])
+    deliver_due(engine, settings)
+    _, tries = delivery(engine, delivery_id)
+    assert "total timeout of 1s" in tries[0].error
+    assert tries[0].duration_ms < 3000

@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import logging
 import random
+import socket
 import ssl
 import threading
 import time
@@ -166,20 +167,69 @@ def make_client(settings) -> httpx.Client:
         ),
         follow_redirects=False,
         trust_env=False,
+        # A fresh connection per send, so TotalDeadline always sees the socket it must cut.
+        limits=httpx.Limits(max_keepalive_connections=0),
         verify=_ssl_context(settings),
         headers={"user-agent": USER_AGENT},
     )
 
 
-def _snippet(response: httpx.Response, deadline: float) -> str:
-    """At most ``SNIPPET_BYTES`` of the answer, read as a stream and cut off at the deadline."""
+def _snippet(response: httpx.Response) -> str:
+    """At most ``SNIPPET_BYTES`` of the answer: read as a stream, the rest is never read."""
     collected = b""
     for chunk in response.iter_raw(SNIPPET_BYTES):
         collected += chunk
-        if len(collected) >= SNIPPET_BYTES or time.monotonic() > deadline:
+        if len(collected) >= SNIPPET_BYTES:
             break
     text = collected[:SNIPPET_BYTES].decode("utf-8", errors="replace")
     return plain(text, SNIPPET_CHARS)
+
+
+class TotalDeadline:
+    """Cut a request off when its total time runs out, whatever phase it is in.
+
+    httpx timeouts bound each connect, read or write separately, so a receiver that trickles
+    a byte at a time could hold a worker for hours. The request's ``trace`` extension hands
+    over the socket as soon as it is connected; a timer shuts it down at the deadline, which
+    makes the blocked read fail at once.
+    """
+
+    def __init__(self, seconds: float) -> None:
+        self.expired = False
+        self._sockets: list[socket.socket] = []
+        self._lock = threading.Lock()
+        self._timer = threading.Timer(seconds, self._expire)
+        self._timer.daemon = True
+        self._timer.start()
+
+    def trace(self, event: str, info: dict) -> None:
+        """httpcore ``trace`` callback: remember each socket it connects."""
+        if event != "connection.connect_tcp.complete":
+            return
+        stream = info.get("return_value")
+        sock = stream.get_extra_info("socket") if stream is not None else None
+        if sock is None:
+            return
+        with self._lock:
+            self._sockets.append(sock)
+            if self.expired:
+                self._shut(sock)
+
+    @staticmethod
+    def _shut(sock: socket.socket) -> None:
+        try:
+            sock.shutdown(socket.SHUT_RDWR)
+        except OSError:  # already closed
+            pass
+
+    def _expire(self) -> None:
+        with self._lock:
+            self.expired = True
+            for sock in self._sockets:
+                self._shut(sock)
+
+    def cancel(self) -> None:
+        self._timer.cancel()
 
 
 def send_one(
@@ -188,7 +238,6 @@ def send_one(
     """Check, sign and POST one delivery (step 2). Never raises; errors become the result."""
     started = time.monotonic()
     total_s = settings.delivery_timeout.total_seconds()
-    deadline = started + total_s
 
     def result(status: int | None, error: str | None) -> AttemptResult:
         return AttemptResult(status, error, round((time.monotonic() - started) * 1000, 1))
@@ -200,27 +249,29 @@ def send_one(
     headers = webhook_headers(claim.secrets, claim.delivery_id, int(time.time()), claim.body)
     headers["content-type"] = "application/json"
     headers["host"] = checked.host_header
-    extensions = {}
+    deadline = TotalDeadline(total_s)
+    extensions: dict = {"trace": deadline.trace}
     if checked.scheme == "https" and not checked.is_ip_literal:
         extensions["sni_hostname"] = checked.host  # TLS name = the URL's host, not the IP
+    timed_out = f"timed out: no complete answer within the total timeout of {total_s:g}s"
     response = None
-    for address in checked.addresses:  # every one was checked; try the next if one refuses
-        request = client.build_request(
-            "POST", checked.pinned_url(address), content=claim.body, headers=headers,
-            extensions=extensions,
-        )
-        try:
-            response = client.send(request, stream=True)
-            break
-        except httpx.ConnectError as error:
-            failure = f"could not connect: {plain(error, SNIPPET_CHARS) or 'refused'}"
-        except httpx.TimeoutException as error:
-            return result(None, f"timed out ({type(error).__name__}) after at most {total_s:g}s")
-        except httpx.HTTPError as error:
-            return result(None, f"{type(error).__name__}: {plain(error, SNIPPET_CHARS)}")
-    if response is None:
-        return result(None, failure)
     try:
+        for address in checked.addresses:  # every one was checked; try the next if one refuses
+            request = client.build_request(
+                "POST", checked.pinned_url(address), content=claim.body, headers=headers,
+                extensions=extensions,
+            )
+            try:
+                response = client.send(request, stream=True)
+                break
+            except httpx.HTTPError as error:
+                if deadline.expired or isinstance(error, httpx.TimeoutException):
+                    return result(None, timed_out)
+                if not isinstance(error, httpx.ConnectError):
+                    return result(None, f"{type(error).__name__}: {plain(error, SNIPPET_CHARS)}")
+                failure = f"could not connect: {plain(error, SNIPPET_CHARS) or 'refused'}"
+        if response is None:
+            return result(None, failure)
         code = response.status_code
         if 200 <= code < 300:
             return result(code, None)
@@ -232,13 +283,15 @@ def send_one(
                 "the final address",
             )
         try:
-            snippet = _snippet(response, deadline)
+            snippet = _snippet(response)
         except httpx.HTTPError:
             snippet = ""
         reason = "gone: the receiver asked to stop; subscription paused" if code == 410 else ""
         return result(code, " — ".join(p for p in (f"HTTP {code}", reason, snippet) if p))
     finally:
-        response.close()
+        deadline.cancel()
+        if response is not None:
+            response.close()
 
 
 def record_attempt(
