@@ -168,3 +168,28 @@ def test_deliveries_list_detail_redeliver_and_resume(service, receiver):
 
     service.delete(f"/v1/subscriptions/{sub_id}", headers=admin)
     assert service.post(f"/v1/deliveries/{delivery_id}/redeliver", headers=admin).status_code == 409
+
+
+@pytest.fixture
+def app_settings(store_url):
+    """tests/conftest.py's app settings (SQLite file, or a PostgreSQL schema when configured),
+    with loopback receivers allowed."""
+    return delivery_settings(store_url)
+
+
+def test_test_delivery_on_each_migrated_store(app_client, receiver):
+    # Runs on SQLite and, when ROLEWATCH_TEST_POSTGRES_URL is set, on PostgreSQL, both with
+    # the schema made by the Alembic migrations (open_store), not by create_all.
+    hook = receiver(script=[503]).start()
+    client, admin = app_client.client, app_client.headers("admin")
+    made = client.post("/v1/subscriptions", headers=admin, json={"url": hook.url, "format": "text"})
+    assert made.status_code == 201, made.text
+    delivery_id = client.post(f"/v1/subscriptions/{made.json()['id']}/test", headers=admin).json()["delivery_id"]
+    t = now_us()
+    deliver_due(app_client.engine, app_client.settings, now_us=t)
+    deliver_due(app_client.engine, app_client.settings, now_us=t + 3_600_000_000)
+    detail = client.get(f"/v1/deliveries/{delivery_id}", headers=app_client.headers("read")).json()
+    assert detail["status"] == "delivered" and [a["status_code"] for a in detail["attempt_log"]] == [503, 200]
+    assert [r.headers["webhook-id"] for r in hook.received] == [delivery_id, delivery_id]
+    assert json.loads(hook.received[1].body)["text"].startswith("TEST")
+    assert Webhook(made.json()["secret"]).verify(hook.received[1].body, hook.received[1].headers)
