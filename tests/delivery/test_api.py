@@ -117,6 +117,7 @@ def test_bad_fields_answer_422(service):
     for body in ({"url": "https://8.8.8.8/x", "format": "xml"},
                  {"url": "https://8.8.8.8/x", "min_score": -1},
                  {"url": "https://8.8.8.8/x", "roles": ["three"]},
+                 {"url": "https://8.8.8.8/x", "roles": []},
                  {"format": "json"}):
         assert service.post("/v1/subscriptions", headers=admin, json=body).status_code == 422
 

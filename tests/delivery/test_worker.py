@@ -213,3 +213,14 @@ def test_total_timeout_cuts_off_a_receiver_that_trickles(engine, settings, recei
     _, tries = delivery(engine, delivery_id)
     assert "total timeout of 1s" in tries[0].error
     assert tries[0].duration_ms < 3000
+
+
+def test_claims_never_print_secrets_or_urls(engine, settings, make_alert):
+    from rolewatch.delivery.worker import claim_due
+
+    made = subscribe(engine, settings, "http://127.0.0.1:9/hook/token-in-path")
+    enqueue(engine, settings, [make_alert()])
+    [claim] = claim_due(engine, settings, now_us())
+    assert claim.secrets == (made.secret,)
+    shown = repr(claim)
+    assert made.secret[6:] not in shown and "token-in-path" not in shown

@@ -73,6 +73,8 @@ def _validate(fmt: str, min_score: float, roles: list[int] | None) -> None:
         raise ValueError("min_score must be a number ≥ 0")
     if roles is not None and not all(isinstance(r, int) and not isinstance(r, bool) for r in roles):
         raise ValueError("roles must be a list of integer role ids")
+    if roles is not None and not roles:
+        raise ValueError("roles must list at least one role id, or be left out for every role")
 
 
 def create_subscription(

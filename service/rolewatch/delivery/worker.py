@@ -56,9 +56,9 @@ class Claim:
     delivery_id: str
     subscription_id: str
     attempt: int  # the attempt number this claim counts (1 for the first send)
-    body: bytes
-    url: str
-    secrets: tuple[str, ...]
+    body: bytes = field(repr=False)
+    url: str = field(repr=False)  # may carry a receiver's token in its path
+    secrets: tuple[str, ...] = field(repr=False)  # never printed or logged
 
 
 @dataclass(frozen=True)
