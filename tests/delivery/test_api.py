@@ -122,6 +122,15 @@ def test_bad_fields_answer_422(service):
         assert service.post("/v1/subscriptions", headers=admin, json=body).status_code == 422
 
 
+def test_routes_are_in_the_openapi_document(service):
+    paths = service.get("/openapi.json").json()["paths"]
+    for path in ("/v1/subscriptions", "/v1/subscriptions/{sub_id}", "/v1/subscriptions/{sub_id}/rotate",
+                 "/v1/subscriptions/{sub_id}/resume", "/v1/subscriptions/{sub_id}/test",
+                 "/v1/deliveries", "/v1/deliveries/{delivery_id}",
+                 "/v1/deliveries/{delivery_id}/redeliver"):
+        assert path in paths
+
+
 def test_scopes(service):
     for scope in ("read", "ingest"):
         headers = service.as_(scope)

@@ -224,3 +224,36 @@ def test_claims_never_print_secrets_or_urls(engine, settings, make_alert):
     assert claim.secrets == (made.secret,)
     shown = repr(claim)
     assert made.secret[6:] not in shown and "token-in-path" not in shown
+
+
+def test_two_workers_on_one_sqlite_file_never_send_a_row_twice(db_url, settings, receiver, make_alert, engine):
+    import threading
+    from collections import Counter
+
+    hook = receiver(default=("sleep", 0.01)).start()
+    subscribe(engine, settings, hook.url)
+    ids = enqueue(engine, settings, [make_alert(account=f"m-{i:05d}") for i in range(30)])
+    from .conftest import delivery_settings
+
+    small = delivery_settings(db_url, delivery_batch_size=3, delivery_concurrency=2)
+    engines = [make_engine(db_url), make_engine(db_url)]
+    errors = []
+
+    def work(worker_engine):
+        try:
+            for _ in range(50):
+                if deliver_due(worker_engine, small).attempted == 0:
+                    return
+        except Exception as error:  # surfaced below
+            errors.append(error)
+
+    threads = [threading.Thread(target=work, args=(e,)) for e in engines]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join(120)
+    assert errors == []
+    sent = Counter(r.headers["webhook-id"] for r in hook.received)
+    assert set(sent) == set(ids) and max(sent.values()) == 1
+    for worker_engine in engines:
+        worker_engine.dispose()
