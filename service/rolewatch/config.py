@@ -237,6 +237,13 @@ class Settings(BaseSettings):
             )
         return url
 
+    @field_validator("delivery_ca_bundle")
+    @classmethod
+    def _readable_ca_bundle(cls, path: str | None) -> str | None:
+        if path and not Path(path).is_file():
+            raise ValueError(f"{path} is not a file: name a PEM file of certificate authorities")
+        return path or None
+
     @model_validator(mode="after")
     def _coherent(self) -> "Settings":
         if self.window_span < self.window_period:
