@@ -106,60 +106,86 @@ def _binary(m: sp.spmatrix) -> sp.csr_matrix:
     return sp.csr_matrix((np.ones(m.nnz), m.indices, m.indptr), shape=m.shape)
 
 
-def _oriented(S: sp.csr_matrix) -> sp.csr_matrix:
-    """Keep each undirected edge once, pointing from lower to higher ``(degree, id)`` rank.
-
-    Each node then points to at most ``sqrt(2m)`` higher-ranked nodes, which bounds the
-    wedges the triangle products enumerate; a hub has the highest rank and points nowhere.
-    """
-    n = S.shape[0]
-    deg = np.diff(S.indptr)
-    order = np.lexsort((np.arange(n), deg))
-    rank = np.empty(n, dtype=np.int64)
-    rank[order] = np.arange(n)
-    rows = np.repeat(np.arange(n, dtype=S.indices.dtype), deg)
-    keep = rank[rows] < rank[S.indices]
-    kept_rows = rows[keep]
-    indptr = np.zeros(n + 1, dtype=S.indptr.dtype)
-    np.cumsum(np.bincount(kept_rows, minlength=n), out=indptr[1:])
-    return sp.csr_matrix((np.ones(int(keep.sum())), S.indices[keep], indptr), shape=S.shape)
+def _edge_keys(m: sp.csr_matrix) -> np.ndarray:
+    """``row * n + col`` of every stored entry, increasing for a CSR matrix with sorted indices."""
+    n = m.shape[0]
+    rows = np.repeat(np.arange(n, dtype=np.int64), np.diff(m.indptr))
+    return rows * n + m.indices
 
 
-def _masked(product: sp.csr_matrix, mask: sp.csr_matrix) -> sp.csr_matrix:
-    """Entries of ``product`` on the pattern of ``mask`` (a 0/1 matrix)."""
-    return sp.csr_matrix(product.multiply(mask))
+def _contains(sorted_keys: np.ndarray, query: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Membership of ``query`` in ``sorted_keys``: (hit mask, position where hit)."""
+    if sorted_keys.size == 0:
+        return np.zeros(query.shape, dtype=bool), np.zeros(query.shape, dtype=np.int64)
+    pos = np.searchsorted(sorted_keys, query)
+    np.minimum(pos, sorted_keys.size - 1, out=pos)
+    return sorted_keys[pos] == query, pos
 
 
-def _triangle_parts(S: sp.csr_matrix, R: sp.csr_matrix | None) -> tuple[np.ndarray, np.ndarray]:
+def _triangle_parts(
+    S: sp.csr_matrix, R: sp.csr_matrix | None, *, max_wedges: int = 4_000_000
+) -> tuple[np.ndarray, np.ndarray]:
     """Triangles per node, and triangles whose edge opposite the node lies in ``R``.
 
-    Every triangle ``a < b < c`` (by rank) appears once in the oriented matrix ``U`` as
-    ``a→b, b→c, a→c``. ``((U @ U) ∘ U)[a, c]`` counts the middles ``b`` of triangles on
-    edge ``a→c`` (row sums credit ``a``, column sums credit ``c``) and
-    ``((Uᵀ @ U) ∘ U)[b, c]`` counts the lowest ``a`` of triangles on ``b→c`` (row sums
-    credit ``b``). ``U @ U.T`` is never formed: it is quadratic in a hub's degree.
+    Degree-ordered ("forward") triangle listing: nodes are ranked by ``(degree, id)`` and
+    each undirected edge is kept once, pointing to the higher rank (``U``). Every
+    triangle then appears exactly once as a node ``a`` with two out-neighbours ``b, c``
+    in ``U`` that are joined by an edge of ``U``. The pairs of out-neighbours ("wedges") are generated with
+    array arithmetic in chunks and looked up among ``U``'s sorted edge keys. A node points
+    to at most ``sqrt(2m)`` higher-ranked nodes, so a hub (highest rank, no out-edges)
+    adds no wedges; ``A @ A`` is never formed.
     """
     n = S.shape[0]
-    if n == 0 or S.nnz == 0:
-        z = np.zeros(n)
-        return z, z.copy()
-    U = _oriented(S)
-    UT = U.T.tocsr()
-    low_high = _masked(U @ U, U)
-    mid = _masked(UT @ U, U)
-    tri = (
-        np.asarray(low_high.sum(axis=1)).ravel()
-        + np.asarray(low_high.sum(axis=0)).ravel()
-        + np.asarray(mid.sum(axis=1)).ravel()
-    )
+    tri = np.zeros(n)
     opposite = np.zeros(n)
+    if n == 0 or S.nnz == 0:
+        return tri, opposite
+    # Relabel nodes by rank: U is then the strict upper triangle, its edge keys are
+    # sorted, and the wedge queries of one node come out sorted too (cache-friendly).
+    deg = np.diff(S.indptr)
+    order = np.lexsort((np.arange(n), deg))
+    U = sp.triu(S[order][:, order], k=1, format="csr")
+    U.sort_indices()
+    keys = _edge_keys(U)
     if R is not None and R.nnz:
-        UR = _masked(U, R)
-        # a gets (b,c) in R; c gets (a,b) in R; b gets (a,c) in R.
-        opposite += np.asarray(_masked(U @ UR, U).sum(axis=1)).ravel()
-        opposite += np.asarray(_masked(UR @ U, U).sum(axis=0)).ravel()
-        opposite += np.asarray(_masked(UT @ UR, U).sum(axis=1)).ravel()
-    return tri, opposite
+        R_ranked = sp.csr_matrix(R)[order][:, order]
+        R_ranked.sort_indices()
+        reciprocal_by_key = _contains(_edge_keys(R_ranked), keys)[0]
+    else:
+        reciprocal_by_key = np.zeros(U.nnz, dtype=bool)
+    heads = U.indices.astype(np.int64)
+    owner = np.repeat(np.arange(n, dtype=np.int64), np.diff(U.indptr))  # a of every edge position
+    positions = np.arange(U.nnz, dtype=np.int64)
+    later = U.indptr[owner + 1] - positions - 1  # partners after each position in a's row
+    cum = np.concatenate([[0], np.cumsum(later)])
+    lo = 0
+    while lo < U.nnz:
+        hi = int(np.searchsorted(cum, cum[lo] + max_wedges, side="right")) - 1
+        hi = min(max(hi, lo + 1), U.nnz)
+        counts = later[lo:hi]
+        total = int(cum[hi] - cum[lo])
+        if total:
+            first = np.repeat(positions[lo:hi], counts)
+            # second = first + 1 + rank of the wedge within its first position
+            second = np.arange(total, dtype=np.int64)
+            second += np.repeat(positions[lo:hi] + 1 - (cum[lo:hi] - cum[lo]), counts)
+            query = heads[first] * n
+            query += heads[second]
+            hit, pos = _contains(keys, query)  # b < c: both come later in a's sorted row
+            first, second, pos = first[hit], second[hit], pos[hit]
+            a, b, c = owner[first], heads[first], heads[second]
+            tri += np.bincount(a, minlength=n)
+            tri += np.bincount(b, minlength=n)
+            tri += np.bincount(c, minlength=n)
+            opposite += np.bincount(a, weights=reciprocal_by_key[pos], minlength=n)
+            opposite += np.bincount(b, weights=reciprocal_by_key[second], minlength=n)
+            opposite += np.bincount(c, weights=reciprocal_by_key[first], minlength=n)
+        lo = hi
+    # back from rank labels to snapshot rows: the node of rank r is order[r]
+    tri_rows, opposite_rows = np.empty(n), np.empty(n)
+    tri_rows[order] = tri
+    opposite_rows[order] = opposite
+    return tri_rows, opposite_rows
 
 
 def triangles_per_node(adjacency: sp.spmatrix) -> np.ndarray:
@@ -410,14 +436,18 @@ def prune_agreeing(binned: np.ndarray, tolerance: float = 0.0, *, n_fixed: int =
 def _agreeing_pairs(binned: np.ndarray, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
     """All column pairs ``i < j`` with ``max |b_i - b_j| <= tolerance``.
 
-    Pairs are screened on growing row samples (a pair that disagrees on a sample
-    disagrees overall) and the survivors are verified on every row, in chunks.
+    Pairs are screened on growing row samples, starting with the rows where the columns
+    spread most (a pair that disagrees on a sample disagrees overall), and the survivors
+    are verified on every row, in chunks.
     """
     rows, f = binned.shape
-    b = np.asarray(binned, dtype=np.float32)
+    integral = np.array_equal(binned, np.round(binned)) and np.abs(binned).max(initial=0) < 2**15
+    b = np.asarray(binned, dtype=np.int16 if integral else np.float64)
     ii, jj = np.triu_indices(f, k=1)
-    samples = [np.unique(np.linspace(0, rows - 1, k).astype(np.int64)) for k in (256, 4096) if k < rows]
-    samples.append(None)
+    # rows where the features spread most rule out the most pairs
+    spread = np.asarray(b.max(axis=1, initial=0), dtype=np.float64) - b.min(axis=1, initial=0) if f else np.zeros(rows)
+    order = np.argsort(-spread, kind="stable")
+    samples = [order[:k] for k in (16, 128, 2048) if k < rows] + [None]
     for sample in samples:
         if ii.size == 0:
             break
@@ -427,7 +457,7 @@ def _agreeing_pairs(binned: np.ndarray, tolerance: float) -> tuple[np.ndarray, n
         for lo in range(0, ii.size, chunk):
             sl = slice(lo, lo + chunk)
             diff = np.abs(sub[:, ii[sl]] - sub[:, jj[sl]])
-            ok[sl] = diff.max(axis=0, initial=0.0) <= tolerance
+            ok[sl] = diff.max(axis=0, initial=0) <= tolerance
         ii, jj = ii[ok], jj[ok]
     return ii, jj
 
