@@ -16,7 +16,7 @@ import json
 import math
 import warnings
 from dataclasses import dataclass, field
-from typing import Any, Iterable, Sequence
+from typing import Any, Sequence
 
 import numpy as np
 from scipy.optimize import linear_sum_assignment
