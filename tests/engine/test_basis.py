@@ -200,3 +200,26 @@ def test_aligned_to_gives_fresh_ids_to_new_roles_and_uses_shared_features():
                          recipe_version=None)
     with pytest.raises(FeatureMismatch):
         new.aligned_to(disjoint)
+
+
+def test_memberships_satisfy_the_nnls_optimality_conditions():
+    # Karush-Kuhn-Tucker conditions of min ||v - gF||^2, g >= 0 (Lawson & Hanson,
+    # "Solving Least Squares Problems", 1974; recalled from memory): g >= 0, gradient
+    # (gF - v)F^T >= 0, and g * gradient = 0.
+    rng = np.random.default_rng(21)
+    F = rng.gamma(0.5, 1.0, (7, 30))
+    V = rng.gamma(0.8, 1.0, (2000, 30)) * (rng.random((2000, 30)) < 0.4)
+    basis = RoleBasis(F=F, role_ids=range(7), feature_names=[f"x{j}" for j in range(30)],
+                      recipe_version=None)
+    G = basis.memberships(V).loadings
+    grad = (G @ basis.F - V) @ basis.F.T
+    scale = np.abs(V @ basis.F.T).max()
+    assert (G >= 0).all()
+    assert grad.min() >= -1e-10 * scale
+    assert np.abs(G * grad).max() <= 1e-10 * scale * max(1.0, G.max())
+
+
+def test_bad_k_range_is_a_clear_error():
+    V, _, _ = planted_roles(2, seed=0)
+    with pytest.raises(ValueError, match="k_range"):
+        RoleBasis.fit(V, k_range=(5, 2))

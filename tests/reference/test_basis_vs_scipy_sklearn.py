@@ -51,6 +51,7 @@ def test_memberships_no_worse_than_sklearn_fixed_h():
     assert (ours <= theirs + 1e-9).all()
 
 
+@pytest.mark.filterwarnings("ignore::sklearn.exceptions.ConvergenceWarning")
 def test_basis_fit_no_worse_than_sklearn_nmf():
     # Source: scikit-learn NMF, same matrix and rank.
     rng = np.random.default_rng(3)
