@@ -64,10 +64,11 @@ def configure_logging(level: str = "INFO", *, json_lines: bool = True, stream=No
     handler._rolewatch = True  # type: ignore[attr-defined]
     root.addHandler(handler)
     root.setLevel(level)
-    for name in ("uvicorn", "uvicorn.error", "uvicorn.access", "apscheduler"):
+    for name in ("uvicorn", "uvicorn.error", "uvicorn.access", "apscheduler", "alembic"):
         logger = logging.getLogger(name)
         logger.handlers = []
         logger.propagate = True
     # Access lines repeat what the request log below says; keep them at WARNING.
     logging.getLogger("uvicorn.access").setLevel("WARNING")
     logging.getLogger("apscheduler").setLevel("WARNING")
+    logging.getLogger("alembic").setLevel("WARNING")

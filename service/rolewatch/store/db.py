@@ -93,13 +93,18 @@ def alembic_config(connection: Connection | None = None):
 def upgrade_to_head(engine: Engine) -> None:
     """Run the Alembic migrations up to the newest revision.
 
-    On PostgreSQL a session advisory lock serialises concurrent upgrades: the second process
-    waits, then finds the schema at head and does nothing.
+    On PostgreSQL a session advisory lock serialises concurrent upgrades (on SQLite the
+    write lock taken at BEGIN IMMEDIATE does): the second process waits, then finds the
+    schema at head and does nothing.
     """
     from alembic import command
 
     with engine.connect() as connection:
         postgres = connection.dialect.name == "postgresql"
+        if not postgres:
+            # SQLite: BEGIN IMMEDIATE, so a second process waits for the first upgrade to
+            # commit instead of failing when both read "no version" and then both write.
+            connection.execution_options(rolewatch_write=True)
         if postgres:
             connection.exec_driver_sql(f"SELECT pg_advisory_lock({_MIGRATION_LOCK_ID})")
             connection.commit()
