@@ -403,8 +403,10 @@ class RoleBasis:
         valid = _valid_rows(V)
         Vv = V[valid] if not valid.all() else V
         G = nnls_rows(self.F, Vv)
-        resid = np.linalg.norm(Vv - G @ self.F, axis=1)
-        err = resid / np.maximum(np.linalg.norm(Vv, axis=1), _EPS)
+        R = G @ self.F
+        np.subtract(Vv, R, out=R)
+        resid = np.sqrt(np.einsum("ij,ij->i", R, R))
+        err = resid / np.maximum(np.sqrt(np.einsum("ij,ij->i", Vv, Vv)), _EPS)
         sums = G.sum(axis=1, keepdims=True)
         mix = np.divide(G, sums, out=np.full_like(G, 1.0 / k), where=sums > 0)
         if valid.all():

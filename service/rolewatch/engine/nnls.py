@@ -23,12 +23,13 @@ __all__ = ["nnls_rows"]
 
 
 def _solve_groups(gram: np.ndarray, rhs: np.ndarray, passive: np.ndarray,
-                  rows: np.ndarray, out: np.ndarray) -> None:
+                  rows: np.ndarray, out: np.ndarray, cache: dict) -> None:
     """Unconstrained least squares on the passive set, one k x k solve per distinct pattern.
 
     Rows are sorted by pattern so each group is a contiguous slice; the group's solution
     is ``rhs_slice @ M`` with M the inverse of the passive block of the Gram matrix,
     embedded in a k x k matrix of zeros (so inactive variables come out exactly 0).
+    ``cache`` maps a pattern code to its matrix, so each pattern is factorised once.
     """
     k = gram.shape[0]
     codes = passive[rows] @ (1 << np.arange(k, dtype=np.int64))
@@ -40,17 +41,20 @@ def _solve_groups(gram: np.ndarray, rhs: np.ndarray, passive: np.ndarray,
     block = rhs[sorted_rows]
     result = np.zeros_like(block)
     for start, end in zip(starts, ends):
-        pset = passive[sorted_rows[start]]
-        if not pset.any():
+        code = int(sorted_codes[start])
+        if code == 0:
             continue
-        idx = np.flatnonzero(pset)
-        sub = gram[np.ix_(idx, idx)]
-        try:
-            inv = np.linalg.solve(sub, np.eye(idx.size))
-        except np.linalg.LinAlgError:  # singular: duplicate roles
-            inv = np.linalg.pinv(sub, hermitian=True)
-        M = np.zeros((k, k))
-        M[np.ix_(idx, idx)] = inv
+        M = cache.get(code)
+        if M is None:
+            idx = np.flatnonzero(passive[sorted_rows[start]])
+            sub = gram[np.ix_(idx, idx)]
+            try:
+                inv = np.linalg.solve(sub, np.eye(idx.size))
+            except np.linalg.LinAlgError:  # singular: duplicate roles
+                inv = np.linalg.pinv(sub, hermitian=True)
+            M = np.zeros((k, k))
+            M[np.ix_(idx, idx)] = inv
+            cache[code] = M
         result[start:end] = block[start:end] @ M
     out[sorted_rows] = result
 
@@ -92,25 +96,29 @@ def nnls_rows(F: np.ndarray, V: np.ndarray, *, max_iter: int | None = None) -> n
     if n == 0 or k == 0:
         return G
     scale = max(float(np.abs(gram).max()), 1e-300)
-    tol = 1e-12 * scale * max(1.0, float(np.abs(G).max(initial=1.0)))
     # Warm start: the passive set is where the unconstrained solution is positive.
     unconstrained = rhs @ np.linalg.pinv(gram, hermitian=True)
     passive = unconstrained > 0
-    _solve_groups(gram, rhs, passive, np.arange(n), G)
+    cache: dict = {}
+    _solve_groups(gram, rhs, passive, np.arange(n), G, cache)
     Y = G @ gram - rhs
     Y[passive] = 0.0
+    tol = 1e-12 * scale * max(1.0, float(np.abs(G).max(initial=1.0)))
     alpha = np.full(n, 3, dtype=np.int64)
     beta = np.full(n, k + 1, dtype=np.int64)
     limit = max_iter if max_iter is not None else 10 * (k + 1)
     col = np.arange(k)
+    pending = np.arange(n)  # rows that changed last round; the others are optimal
     for _ in range(limit):
-        tol = 1e-12 * scale * max(1.0, float(np.abs(G).max(initial=1.0)))
-        infeasible = (passive & (G < -tol)) | (~passive & (Y < -tol))
+        Gp, Yp, Pp = G[pending], Y[pending], passive[pending]
+        infeasible = (Pp & (Gp < -tol)) | (~Pp & (Yp < -tol))
         counts = infeasible.sum(axis=1)
-        rows = np.flatnonzero(counts > 0)
+        keep = counts > 0
+        rows = pending[keep]
         if rows.size == 0:
             break
-        c = counts[rows]
+        infeasible = infeasible[keep]
+        c = counts[keep]
         improved = c < beta[rows]
         beta[rows[improved]] = c[improved]
         alpha[rows[improved]] = 3
@@ -118,16 +126,17 @@ def nnls_rows(F: np.ndarray, V: np.ndarray, *, max_iter: int | None = None) -> n
         alpha[rows[stalled]] -= 1
         full = improved | stalled
         flip = np.zeros((rows.size, k), dtype=bool)
-        flip[full] = infeasible[rows[full]]
+        flip[full] = infeasible[full]
         backup = ~full
         if backup.any():
-            last = (k - 1) - np.argmax(infeasible[rows[backup]][:, ::-1], axis=1)
+            last = (k - 1) - np.argmax(infeasible[backup][:, ::-1], axis=1)
             flip[np.flatnonzero(backup)[:, None], col[None, :]] = (
                 col[None, :] == last[:, None])
         passive[rows] ^= flip
-        _solve_groups(gram, rhs, passive, rows, G)
+        _solve_groups(gram, rhs, passive, rows, G, cache)
         Yr = G[rows] @ gram - rhs[rows]
         Yr[passive[rows]] = 0.0
         Y[rows] = Yr
+        pending = rows
     np.maximum(G, 0.0, out=G)
     return G
