@@ -74,6 +74,25 @@ def write_transaction(engine: Engine) -> Iterator[Connection]:
 _MIGRATION_LOCK_ID = 0x7277_7363
 
 
+# Names the lock that orders ingest against window closing on PostgreSQL ("rw" + "wi").
+_WINDOW_LOCK_ID = 0x7277_7769
+
+
+def lock_windows(connection: Connection, *, exclusive: bool) -> None:
+    """Order event ingest against window closing, until the transaction ends.
+
+    Ingest takes the lock shared (batches run side by side); the window closer takes it
+    exclusive in the transaction that reads a window's events and records it closed. So a
+    batch either commits before the closer reads (its events are in the window) or sees the
+    window closed (its events are stored as late), never in between. PostgreSQL only: on
+    SQLite every writer already holds the single write lock from BEGIN IMMEDIATE.
+    """
+    if connection.dialect.name != "postgresql":
+        return
+    function = "pg_advisory_xact_lock" if exclusive else "pg_advisory_xact_lock_shared"
+    connection.exec_driver_sql(f"SELECT {function}({_WINDOW_LOCK_ID})")
+
+
 def alembic_config(connection: Connection | None = None):
     """An Alembic ``Config`` pointing at the migrations shipped inside the installed package.
 

@@ -26,7 +26,7 @@ from sqlalchemy import func, select
 from sqlalchemy.engine import Connection, Engine
 
 from rolewatch import metrics
-from rolewatch.store.db import write_transaction
+from rolewatch.store.db import lock_windows, write_transaction
 from rolewatch.store.schema import service_state, windows
 
 MAX_ID_CHARS = 200
@@ -359,6 +359,7 @@ def set_state(connection: Connection, key: str, value: str) -> None:
 def _store(connection: Connection, rows: list[tuple], now_us: int, result: IngestResult) -> None:
     dialect = connection.dialect.name
     insert_sql = _INSERT_SQL[dialect]
+    lock_windows(connection, exclusive=False)
     closed_end = latest_closed_end_us(connection)
     if closed_end is None:
         on_time = [row + (now_us, False) for row in rows]
