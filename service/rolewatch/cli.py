@@ -303,10 +303,10 @@ def build_parser() -> argparse.ArgumentParser:
     bench.set_defaults(handler=cmd_bench)
 
     demo = sub.add_parser("demo", parents=[common], help="run the demo scenario")
-    demo.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    demo.set_defaults(rest=[])
     demo.set_defaults(handler=_delegate("rolewatch.scenario.demo"))
     evaluate = sub.add_parser("evaluate", parents=[common], help="evaluate detection on the scenario")
-    evaluate.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    evaluate.set_defaults(rest=[])
     evaluate.set_defaults(handler=_delegate("rolewatch.scenario.evaluate"))
     return parser
 
@@ -316,7 +316,14 @@ def main(argv: list[str] | None = None) -> int:
     from rolewatch.config import ConfigError
 
     parser = build_parser()
-    args = parser.parse_args(argv)  # argparse exits 2 with its own message on usage errors
+    # argparse exits 2 with its own message on usage errors. demo and evaluate parse their
+    # own options, so whatever the main parser does not know is passed on to them.
+    args, unknown = parser.parse_known_args(argv)
+    if unknown:
+        if args.command in ("demo", "evaluate"):
+            args.rest = list(getattr(args, "rest", None) or []) + unknown
+        else:
+            parser.error(f"unrecognized arguments: {' '.join(unknown)}")
     try:
         return args.handler(args)
     except (ConfigError, UsageError) as error:
