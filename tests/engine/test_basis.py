@@ -223,3 +223,10 @@ def test_bad_k_range_is_a_clear_error():
     V, _, _ = planted_roles(2, seed=0)
     with pytest.raises(ValueError, match="k_range"):
         RoleBasis.fit(V, k_range=(5, 2))
+
+
+def test_mdl_on_a_row_sample_still_recovers_k():
+    V, _, _ = planted_roles(3, n=1500, seed=12)
+    basis = RoleBasis.fit(V, k_range=(1, 6), mdl_max_rows=600)
+    assert basis.summary["mdl_rows"] == 600 and basis.summary["rows"] == 1500
+    assert basis.n_roles == 3

@@ -267,7 +267,8 @@ class RoleBasis:
     @classmethod
     def fit(cls, tables: Any, *, n_roles: int | None = None,
             k_range: tuple[int, int] = (2, 12), seed: int = 0,
-            bits_per_value: int | None = None) -> "RoleBasis":
+            bits_per_value: int | None = None,
+            mdl_max_rows: int | None = 50_000) -> "RoleBasis":
         """Fit a role basis on one or more reference feature tables (RolX).
 
         Parameters
@@ -286,6 +287,10 @@ class RoleBasis:
             Random state for scikit-learn's NMF; the fit is deterministic given it.
         bits_per_value : int, optional
             b in the model cost; default :func:`default_bits_per_value`.
+        mdl_max_rows : int, optional
+            When choosing k by MDL on more rows than this, the candidates are compared on
+            a seeded uniform sample of this many rows (every candidate on the same
+            sample); the chosen k is then fitted on all rows.  None uses all rows.
 
         Returns
         -------
@@ -336,14 +341,20 @@ class RoleBasis:
             hi = min(hi, f, n)
             lo = min(lo, hi)
             candidates = list(range(lo, hi + 1))
+        sample = V
+        if len(candidates) > 1 and mdl_max_rows is not None and n > mdl_max_rows:
+            pick = np.random.default_rng(seed).choice(n, size=int(mdl_max_rows), replace=False)
+            sample = V[np.sort(pick)]
         table, fits = [], {}
         for k in candidates:
-            G, F, _ = _fit_nmf(V, k, seed)
-            model_bits, error_bits = description_length(V, G, F, b)
+            G, F, _ = _fit_nmf(sample, k, seed)
+            model_bits, error_bits = description_length(sample, G, F, b)
             table.append({"k": k, "model_bits": model_bits, "error_bits": error_bits,
                           "total_bits": model_bits + error_bits})
             fits[k] = (G, F)
         best = min(table, key=lambda row: (row["total_bits"], row["k"]))["k"]
+        if sample is not V:
+            fits[best] = _fit_nmf(V, best, seed)[:2]
         G, F = _normalise_profiles(*fits[best])
         norm_v = float(np.linalg.norm(V))
         rel_err = float(np.linalg.norm(V - G @ F) / max(norm_v, _EPS))
@@ -352,6 +363,7 @@ class RoleBasis:
             "n_roles": int(F.shape[0]),
             "selection": "fixed" if n_roles is not None else "mdl",
             "bits_per_value": b, "seed": int(seed), "mdl": table,
+            "mdl_rows": int(sample.shape[0]),
             "relative_error": rel_err,
         }
         return cls(F=F, role_ids=tuple(range(F.shape[0])), feature_names=names,
