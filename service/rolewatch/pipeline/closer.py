@@ -113,10 +113,15 @@ def close_due_windows(
 def close_window(engine: Engine, settings, end_us: int, *, now_us: int) -> list[dict]:
     """Close the window ending at ``end_us`` (and back-fill training windows when it ends
     training). Returns the summaries of the windows written."""
+    from threadpoolctl import threadpool_limits
+
     started = time.perf_counter()
     for _attempt in range(MAX_RECOMPUTES):
         try:
-            summaries = _close_once(engine, settings, end_us, now_us)
+            # The engine's dense products are small: one BLAS thread is much faster than two
+            # threads competing with the API for this machine's cores.
+            with threadpool_limits(limits=1, user_api="blas"):
+                summaries = _close_once(engine, settings, end_us, now_us)
         except WindowAlreadyClosed:
             return []
         except WindowChanged:
