@@ -52,9 +52,13 @@ def cmd_serve(args) -> int:
     overrides = {k: v for k, v in (("host", args.host), ("port", args.port), ("role", args.role)) if v is not None}
     settings = _settings(args, **overrides)
     configure_logging(settings.log_level, json_lines=settings.log_json)
+    _store(settings).dispose()  # fail here, with a clear message, when the store is unusable
     app = create_app(settings)
-    uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
-                timeout_graceful_shutdown=30, access_log=False)
+    try:
+        uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
+                    timeout_graceful_shutdown=30, access_log=False)
+    except SystemExit as stop:  # uvicorn exits 3 when startup fails: report it as 1
+        return 0 if not stop.code else 1
     return 0
 
 

@@ -10,7 +10,7 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import and_, func, select, update
+from sqlalchemy import and_, func, or_, select, update
 from sqlalchemy.engine import Engine
 
 from rolewatch.store.db import write_transaction
@@ -26,16 +26,24 @@ def _us(value) -> int:
 
 
 def account_exists(engine: Engine, account: str) -> bool:
-    """True when ``account`` appears in a closed window or in any stored event."""
+    """True when ``account`` was active in a closed window or has an event not yet closed.
+
+    Every account of a closed window has a membership row (primary key lookup); events after
+    the latest closed window are searched through the time index, so an unknown account
+    never costs a scan of the whole event table. (An account seen only in late events is
+    not found.)
+    """
     with engine.connect() as connection:
-        for query in (
-            select(memberships.c.account).where(memberships.c.account == account).limit(1),
-            select(events.c.seq).where(events.c.actor == account).limit(1),
-            select(events.c.seq).where(events.c.target == account).limit(1),
-        ):
-            if connection.execute(query).first() is not None:
-                return True
-    return False
+        query = select(memberships.c.account).where(memberships.c.account == account).limit(1)
+        if connection.execute(query).first() is not None:
+            return True
+        closed_end = connection.execute(
+            select(func.max(windows.c.end_us)).where(windows.c.status == "closed")
+        ).scalar()
+        recent = select(events.c.seq).where(or_(events.c.actor == account, events.c.target == account))
+        if closed_end is not None:
+            recent = recent.where(events.c.time_us >= closed_end)
+        return connection.execute(recent.limit(1)).first() is not None
 
 
 def account_history(
