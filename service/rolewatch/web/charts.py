@@ -134,6 +134,8 @@ def mixture_chart(windows, history, roles, alert_ids, selected_id) -> MixtureCha
                 continue
             band.rects.append(
                 {
+                    "window_id": column.window_id,
+                    "share": share,
                     "x": round(column.x, 2),
                     "y": round(base, 2),
                     "width": round(column.width, 2),
@@ -198,16 +200,27 @@ def activity_chart(windows, history, selected_id) -> ActivityChart:
     )
 
 
-def profile_bars(features: dict[str, float], *, top: int = 6) -> list[dict[str, Any]]:
-    """The role's largest feature weights as horizontal bars (share of the whole profile)."""
-    items = [(str(k), float(v)) for k, v in (features or {}).items() if v is not None and v > 0]
-    total = sum(value for _, value in items)
-    if total <= 0:
-        return []
-    items.sort(key=lambda item: -item[1])
-    chosen = items[:top]
-    largest = chosen[0][1]
-    return [
-        {"feature": name, "share": value / total, "length": value / largest}
-        for name, value in chosen
-    ]
+def profile_levels(profiles: list[dict[str, float]], *, top: int = 6) -> list[list[dict[str, Any]]]:
+    """Each role's most characteristic features, as horizontal bars.
+
+    ``profiles``: one ``{feature: weight}`` per role (rows of the RolX role matrix F). A bar's
+    length is the role's weight on the feature divided by the largest weight any role has on
+    it (1 = this role has the most of it), so the bars say what sets a role apart. Base
+    features come first because they read plainly (recursive aggregates such as
+    ``sum_in(out_degree)`` follow only when fewer than ``top`` base features apply).
+    """
+    largest: dict[str, float] = {}
+    for profile in profiles:
+        for name, value in (profile or {}).items():
+            if value is not None and float(value) > largest.get(name, 0.0):
+                largest[name] = float(value)
+    result = []
+    for profile in profiles:
+        items = [
+            (str(name), float(value) / largest[name], float(value))
+            for name, value in (profile or {}).items()
+            if value is not None and float(value) > 0 and largest.get(name, 0) > 0
+        ]
+        items.sort(key=lambda item: ("(" in item[0], -item[1], -item[2]))
+        result.append([{"feature": name, "level": level} for name, level, _ in items[:top]])
+    return result

@@ -223,7 +223,7 @@ def _mixture_rows(mixture, roles, names) -> list[dict[str, Any]]:
             "style": styles.get(role_id, charts.role_style(len(styles))),
         }
         for role_id, weight in items
-        if weight > 0.0005
+        if weight >= 0.005
     ]
     return sorted(rows, key=lambda row: -row["weight"])
 
@@ -339,6 +339,16 @@ def account_page(request: Request, account: str, window: str | None = None):
 # --- role catalogue --------------------------------------------------------------------------
 
 
+def _profile_parts(role) -> tuple[dict[str, float], dict[str, float]]:
+    """A role's stored profile → (feature weights, sense-making measure affinities)."""
+    profile = role.get("profile") or {}
+    if not isinstance(profile, dict):
+        return {}, {}
+    features = profile.get("features", profile)
+    measures = profile.get("measures") or {}
+    return (features if isinstance(features, dict) else {}), (measures if isinstance(measures, dict) else {})
+
+
 def _roles_context(request: Request) -> dict[str, Any]:
     engine = _engine(request)
     found = queries.list_roles(engine)
@@ -346,15 +356,15 @@ def _roles_context(request: Request) -> dict[str, Any]:
     counts = data.dominant_counts(engine, latest["id"]) if latest else {}
     total = sum(counts.values())
     rows = []
+    profiles = [_profile_parts(role) for role in found["roles"]]
+    levels = charts.profile_levels([features for features, _ in profiles])
     for index, role in enumerate(found["roles"]):
-        profile = role.get("profile") or {}
-        features = profile.get("features", profile) if isinstance(profile, dict) else {}
-        measures = profile.get("measures", {}) if isinstance(profile, dict) else {}
+        measures = profiles[index][1]
         rows.append(
             {
                 "role": role,
                 "style": charts.role_style(index),
-                "bars": charts.profile_bars(features if isinstance(features, dict) else {}),
+                "bars": levels[index],
                 "measures": sorted(
                     ((name, value) for name, value in (measures or {}).items() if value is not None),
                     key=lambda item: -abs(float(item[1])),

@@ -37,32 +37,52 @@ def feature_label(name: str) -> str:
     return str(name).replace("_", " ")
 
 
-def strongest_evidence(alert: dict[str, Any]) -> str:
-    """The one piece of evidence that moved most: new counterparts or the top feature move.
+def _slog(value: float) -> float:
+    return math.copysign(math.log1p(abs(value)), value)
 
-    Both are compared on the same log scale the feature moves are ranked by
-    (``|log1p(after) - log1p(before)|``), new counterparts counting from zero.
+
+def strongest_evidence(alert: dict[str, Any]) -> str:
+    """The one readable piece of evidence that moved most.
+
+    Candidates: new counterparts (counted from zero), events out, events in and counterparts
+    (previous window → this one), and the moved features that are not recursive aggregates
+    (those read poorly in one line; the account page lists them all). They are compared on
+    the scale the feature moves are ranked by, ``|slog(after) - slog(before)|`` with
+    ``slog(x) = sign(x) log(1 + |x|)``. With no candidate left, the top feature move is used.
     """
     evidence = alert.get("evidence") or {}
     activity = evidence.get("activity") or {}
     moves = evidence.get("feature_moves") or []
+    candidates: list[tuple[float, str]] = []
     new = int(activity.get("new_counterparts") or 0)
-    new_strength = math.log1p(new) if new > 0 else 0.0
-    move = moves[0] if moves else None
-    move_strength = 0.0
-    if move is not None:
-        move_strength = abs(
-            float(move.get("log_ratio"))
-            if move.get("log_ratio") is not None
-            else math.log1p(abs(float(move["after"]))) - math.log1p(abs(float(move["before"])))
-        )
-    if new > 0 and new_strength >= move_strength:
+    if new > 0:
         total = activity.get("counterparts")
-        plural = "" if new == 1 else "s"
-        tail = f" (of {total})" if total else ""
-        return f"{new} new counterpart{plural}{tail}"
-    if move is not None:
-        return (
-            f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}"
+        tail = f" (of {number(total)})" if total else ""
+        candidates.append((_slog(new), f"{number(new)} new counterpart{'' if new == 1 else 's'}{tail}"))
+    for label, now_key, before_key in (
+        ("events out", "events_out", "events_out_before"),
+        ("events in", "events_in", "events_in_before"),
+        ("counterparts", "counterparts", "counterparts_before"),
+    ):
+        after, before = activity.get(now_key), activity.get(before_key)
+        if after is None or before is None or after == before:
+            continue
+        candidates.append(
+            (abs(_slog(float(after)) - _slog(float(before))),
+             f"{label}: {number(before)} → {number(after)}")
         )
+    for move in moves:
+        if "(" in str(move.get("feature", "")):
+            continue
+        strength = abs(_slog(float(move["after"])) - _slog(float(move["before"])))
+        candidates.append(
+            (strength, f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}")
+        )
+    if candidates:
+        # Ties keep the first candidate: new counterparts, then activity, then features.
+        best = max(range(len(candidates)), key=lambda i: (candidates[i][0], -i))
+        return candidates[best][1]
+    if moves:
+        move = moves[0]
+        return f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}"
     return "role mixture changed"

@@ -6,7 +6,7 @@
 
   function windowLink(target) {
     while (target && target !== document) {
-      if (target.hasAttribute && target.hasAttribute("data-window")) {
+      if (target.localName === "a" && target.hasAttribute("data-window")) {
         return target;
       }
       target = target.parentNode;
