@@ -57,12 +57,13 @@ def base_features(g: nx.DiGraph) -> dict[str, np.ndarray]:
         out["reciprocity"][v] = len(preds & succs) / len(nbrs) if nbrs else 0.0
         ego = set(nx.ego_graph(und, v, radius=1).nodes)
         inside_und = und.subgraph(ego).number_of_edges()
-        leaving_und = sum(1 for a, b in und.edges() if (a in ego) != (b in ego))
+        # every edge leaving the egonet touches one of its members, so walk their edges
+        leaving_und = sum(1 for a in ego for b in und[a] if b not in ego)
         out["ego_edges"][v] = inside_und
         out["ego_boundary_edges"][v] = leaving_und
         out["ego_arcs_within"][v] = g.subgraph(ego).number_of_edges()
-        out["ego_arcs_out"][v] = sum(1 for a, b in g.edges() if a in ego and b not in ego)
-        out["ego_arcs_in"][v] = sum(1 for a, b in g.edges() if a not in ego and b in ego)
+        out["ego_arcs_out"][v] = sum(1 for a in ego for b in g.successors(a) if b not in ego)
+        out["ego_arcs_in"][v] = sum(1 for b in ego for a in g.predecessors(b) if a not in ego)
         # triangles through v counted by networkx, kept for the triangle check
         assert inside_und == len(nbrs) + tri[v]
     return out
