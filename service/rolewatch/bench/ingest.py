@@ -106,6 +106,7 @@ def _raw_sqlite(path: Path, rows: list[tuple], now_us: int) -> float:
     connection = sqlite3.connect(path, isolation_level=None)
     connection.execute("PRAGMA journal_mode=WAL")
     connection.execute("PRAGMA synchronous=FULL")
+    connection.execute("PRAGMA cache_size=-65536")  # as make_engine sets it
     sql = ("INSERT INTO events (event_id, time_us, actor, target, kind, weight, received_us, late) "
            "VALUES (?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT (event_id) DO NOTHING")
     started = time.perf_counter()
@@ -129,7 +130,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     if case not in CASES:
         raise ValueError(f"unknown case {case!r}")
     total = 50_000 if quick else 300_000
-    clients = 4
+    clients = int(os.environ.get("ROLEWATCH_BENCH_CLIENTS", "4"))
     events = _events(total)
     bodies = [orjson.dumps({"events": events[i:i + BATCH]}) for i in range(0, total, BATCH)]
     with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
