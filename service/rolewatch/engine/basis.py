@@ -158,9 +158,13 @@ def description_length(V: np.ndarray, G: np.ndarray, F: np.ndarray,
 
 
 def _fit_nmf(V: np.ndarray, k: int, seed: int) -> tuple[np.ndarray, np.ndarray, float]:
-    """One scikit-learn NMF fit (coordinate descent, Frobenius loss, NNDSVDa start)."""
+    """One scikit-learn NMF fit (coordinate descent, Frobenius loss, NNDSVDa start).
+
+    scikit-learn's default stopping rule (tol 1e-4, 500 iterations); the memberships are
+    refitted exactly afterwards, so F only needs to be a good basis.
+    """
     model = NMF(n_components=k, init="nndsvda", solver="cd", beta_loss="frobenius",
-                max_iter=1000, tol=1e-6, random_state=seed)
+                max_iter=500, tol=1e-4, random_state=seed)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         G = model.fit_transform(V)
@@ -268,7 +272,7 @@ class RoleBasis:
     def fit(cls, tables: Any, *, n_roles: int | None = None,
             k_range: tuple[int, int] = (2, 12), seed: int = 0,
             bits_per_value: int | None = None,
-            mdl_max_rows: int | None = 50_000) -> "RoleBasis":
+            mdl_max_rows: int | None = 20_000) -> "RoleBasis":
         """Fit a role basis on one or more reference feature tables (RolX).
 
         Parameters
