@@ -84,3 +84,11 @@ for _job in ("close_windows", "deliver"):
 def exposition() -> tuple[bytes, str]:
     """The registry in Prometheus text format, and its content type."""
     return generate_latest(REGISTRY), CONTENT_TYPE_LATEST
+
+
+def record_window_closed(*, seconds: float, alerts: int = 0) -> None:
+    """Count one closed window: its close duration and the alerts it raised."""
+    WINDOWS_CLOSED.inc()
+    WINDOW_CLOSE_SECONDS.observe(seconds)
+    if alerts:
+        ALERTS_RAISED.inc(alerts)

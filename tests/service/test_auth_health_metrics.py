@@ -104,6 +104,14 @@ def test_request_id_is_echoed(app_client):
 def test_metrics_exposition_parses(app_client, make_event):
     app_client.client.post("/v1/events", json={"events": [make_event(), make_event(), {"bad": 1}]},
                            headers=app_client.headers("ingest"))
+    from rolewatch import metrics
+
+    def value(families, name, suffix):
+        return sum(s.value for s in families[name].samples if s.name.endswith(suffix))
+
+    before = {f.name: f for f in text_string_to_metric_families(
+        app_client.client.get("/metrics", headers=app_client.headers("read")).text)}
+    metrics.record_window_closed(seconds=0.3, alerts=2)  # as the window closer reports
     response = app_client.client.get("/metrics", headers=app_client.headers("read"))
     assert response.status_code == 200
     assert response.headers["content-type"].startswith("text/plain")
@@ -115,6 +123,9 @@ def test_metrics_exposition_parses(app_client, make_event):
         assert name in families, name
     accepted = sum(s.value for s in families["rolewatch_events_accepted"].samples if s.name.endswith("_total"))
     assert accepted >= 2
+    assert value(families, "rolewatch_windows_closed", "_total") == value(before, "rolewatch_windows_closed", "_total") + 1
+    assert value(families, "rolewatch_alerts_raised", "_total") == value(before, "rolewatch_alerts_raised", "_total") + 2
+    assert value(families, "rolewatch_window_close_seconds", "_count") == value(before, "rolewatch_window_close_seconds", "_count") + 1
     outcomes = {s.labels.get("outcome") for s in families["rolewatch_deliveries"].samples}
     assert {"delivered", "retry", "failed"} <= outcomes
     routes = {s.labels.get("route") for s in families["rolewatch_http_requests"].samples}

@@ -107,6 +107,9 @@ class ClosedWindow(BaseModel):
     account_count: int
     late_count: int
     alert_count: int
+    new_count: int | None = Field(None, description="Accounts seen without a baseline.")
+    inactive_count: int | None = Field(None, description="Accounts active before, not in this window.")
+    scored_count: int | None = Field(None, description="Accounts whose shift was scored.")
     training: bool
     recipe_version: str | None
     basis_version: str | None
