@@ -1,0 +1,76 @@
+"""Sign-in cookie attributes and page headers, over HTTP without a browser.
+
+The cookie attributes follow RFC 6265 (Secure, HttpOnly) and RFC 6265bis (SameSite=Strict);
+the app runs for real on a SQLite file, reached through Starlette's TestClient.
+"""
+
+from __future__ import annotations
+
+import time
+from http.cookies import SimpleCookie
+
+import pytest
+from fastapi.testclient import TestClient
+
+from rolewatch.api.app import create_app
+from rolewatch.config import load_settings
+from rolewatch.store.db import open_store
+from rolewatch.store.keys import create_key, revoke_key
+
+
+@pytest.fixture(params=["https://rolewatch.example.test", "http://127.0.0.1:8000"])
+def served(request, tmp_path):
+    settings = load_settings(
+        database_url=f"sqlite:///{tmp_path / 'rolewatch.db'}", public_url=request.param,
+        log_json=False,
+    )
+    engine = open_store(settings)
+    now = time.time_ns() // 1000
+    record, key = create_key(engine, ["read"], label="web session test", now_us=now)
+    with TestClient(create_app(settings, run_jobs=False), base_url=request.param) as client:
+        yield client, engine, record, key, request.param.startswith("https://")
+    engine.dispose()
+
+
+def _set_cookie(response) -> SimpleCookie:
+    cookie = SimpleCookie()
+    cookie.load(response.headers["set-cookie"])
+    return cookie
+
+
+def test_sign_in_cookie_attributes(served):
+    client, _, _, key, https = served
+    response = client.post("/signin", data={"key": key, "next": "/roles"}, follow_redirects=False)
+    assert response.status_code == 303 and response.headers["location"] == "/roles"
+    morsel = _set_cookie(response)["rolewatch_key"]
+    assert morsel["httponly"] is True
+    assert morsel["samesite"] == "strict"
+    assert bool(morsel["secure"]) is https  # Secure exactly when public_url is https
+    assert morsel["path"] == "/"
+
+
+def test_next_never_leaves_the_site(served):
+    client, _, _, key, _ = served
+    for target in ("https://elsewhere.example.test/", "//elsewhere.example.test/", "/\\evil"):
+        response = client.post("/signin", data={"key": key, "next": target}, follow_redirects=False)
+        assert response.headers["location"] == "/"
+
+
+def test_pages_send_protective_headers_and_no_secret(served):
+    client, _, record, key, _ = served
+    client.post("/signin", data={"key": key, "next": "/"}, follow_redirects=False)
+    response = client.get("/alerts")
+    assert response.status_code == 200
+    assert "script-src 'self'" in response.headers["content-security-policy"]
+    assert response.headers["x-content-type-options"] == "nosniff"
+    assert key not in response.text and record.key_id in response.text
+    assert "leads for human review, not verdicts" in response.text
+
+
+def test_revoked_key_is_signed_out(served):
+    client, engine, record, key, _ = served
+    client.post("/signin", data={"key": key, "next": "/"}, follow_redirects=False)
+    assert client.get("/roles", follow_redirects=False).status_code == 200
+    revoke_key(engine, record.key_id, now_us=time.time_ns() // 1000)
+    response = client.get("/roles", follow_redirects=False)
+    assert response.status_code == 303 and response.headers["location"].startswith("/signin")
