@@ -105,7 +105,9 @@ def run(case: str) -> Iterator[dict]:
 
 
 def _child(case: str) -> dict:
-    result = {"case": case, "cores": os.cpu_count()}
+    result = {"case": case, "cores": os.cpu_count(),
+              "blas_threads": os.environ.get("OPENBLAS_NUM_THREADS")
+              or os.environ.get("OMP_NUM_THREADS") or "default"}
     result.update(_measure(case))
     result["peak_rss_mb"] = round(_peak_rss_mb(), 1)
     return result
