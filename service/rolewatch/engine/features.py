@@ -382,9 +382,12 @@ def bin_edges(values: np.ndarray, fraction: float = 0.5) -> np.ndarray:
 
 
 def apply_bins(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
-    """Bin index ``#{edges < x}`` of every value (ties within ``1e-9`` relative), as float64."""
-    values = np.asarray(values, dtype=np.float64)
-    return np.searchsorted(edges, values - _tie_slack(values), side="left").astype(np.float64)
+    """Bin index ``#{edges e : e < x}`` of every value, as float64.
+
+    ``x`` within a relative ``1e-9`` of an edge counts as equal to it (stays in that bin).
+    """
+    edges = np.asarray(edges, dtype=np.float64)
+    return np.searchsorted(edges + _tie_slack(edges), values, side="left").astype(np.float64)
 
 
 def prune_agreeing(binned: np.ndarray, tolerance: float = 0.0, *, n_fixed: int = 0) -> np.ndarray:
@@ -505,49 +508,33 @@ class _Def:
     round: int
 
 
-def _compute(graph: _Graph, defs: Sequence[_Def]) -> list[np.ndarray]:
-    """Raw value columns of ``defs`` (and of their ancestors, cached) on one graph.
+def _compute(graph: _Graph, defs: Sequence[_Def], *, chunk: int = 64) -> np.ndarray:
+    """Raw values of ``defs`` on one graph as an n x f Fortran-ordered matrix.
 
-    Features are evaluated round by round; within a round all features sharing one
-    aggregate are one sparse-dense product over their stacked parents.
+    ``defs`` must hold every ancestor of its recursive features (a recipe always does).
+    Features are evaluated round by round straight into their output column; within a
+    round, features sharing one aggregate are sparse-dense products over their stacked
+    parents, ``chunk`` columns at a time.
     """
-    values: dict[str, np.ndarray] = {}
-    needed = _with_ancestors(defs)
-    for rnd in sorted({d.round for d in needed}):
-        layer = [d for d in needed if d.round == rnd]
+    index = {d.name: j for j, d in enumerate(defs)}
+    missing = [d.parent for d in defs if d.parent is not None and d.parent not in index]
+    if missing:
+        raise ValueError(f"feature {missing[0]!r} is needed as a parent but is not defined before its children")
+    out = np.zeros((graph.n, len(defs)), order="F")
+    for rnd in sorted({d.round for d in defs}):
+        layer = [d for d in defs if d.round == rnd]
         if rnd == 0:
             for d in layer:
-                values[d.name] = graph.base(d.op)
+                out[:, index[d.name]] = graph.base(d.op)
             continue
         for op in AGGREGATES:
             group = [d for d in layer if d.op == op]
-            for d, col in zip(group, graph.aggregate(op, [values[d.parent] for d in group])):
-                values[d.name] = col
-    return [values[d.name] for d in defs]
-
-
-def _as_matrix(columns: Sequence[np.ndarray], n: int) -> np.ndarray:
-    """n x f matrix from contiguous columns (Fortran order: no transposing copy)."""
-    if not columns:
-        return np.zeros((n, 0))
-    return np.vstack(columns).T
-
-
-def _with_ancestors(defs: Sequence[_Def]) -> list[_Def]:
-    by_name = {d.name: d for d in defs}
-    out: dict[str, _Def] = {}
-    stack = list(defs)
-    while stack:
-        d = stack.pop()
-        if d.name in out:
-            continue
-        out[d.name] = d
-        if d.parent is not None:
-            if d.parent in by_name:
-                stack.append(by_name[d.parent])
-            else:
-                stack.append(_parse(d.parent))
-    return list(out.values())
+            for lo in range(0, len(group), chunk):
+                part = group[lo : lo + chunk]
+                cols = graph.aggregate(op, [out[:, index[d.parent]] for d in part])
+                for d, col in zip(part, cols):
+                    out[:, index[d.name]] = col
+    return out
 
 
 def _parse(name: str) -> _Def:
@@ -784,13 +771,11 @@ class FeatureRecipe:
         mode = self.binning if binning is None else binning
         if mode not in BINNING_MODES:
             raise ValueError(f"binning must be one of {BINNING_MODES}, got {mode!r}")
-        columns = _compute(_Graph(snapshot), self._defs)
-        if mode == "frozen":
-            edges = self._edges
-        else:
-            edges = [bin_edges(col, self.bin_fraction) for col in columns]
-        raw = _as_matrix(columns, snapshot.n_nodes)
-        binned = _as_matrix([apply_bins(col, e) for col, e in zip(columns, edges)], snapshot.n_nodes)
+        raw = _compute(_Graph(snapshot), self._defs)
+        binned = np.empty_like(raw, order="F")
+        for j in range(raw.shape[1]):
+            e = self._edges[j] if mode == "frozen" else bin_edges(raw[:, j], self.bin_fraction)
+            binned[:, j] = apply_bins(raw[:, j], e)
         return FeatureTable(
             nodes=snapshot.nodes,
             names=self.names,
