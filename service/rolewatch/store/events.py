@@ -356,19 +356,26 @@ def set_state(connection: Connection, key: str, value: str) -> None:
     )
 
 
+_PARAM = {"sqlite": "?", "postgresql": "%s"}
+
+
 def _store(connection: Connection, rows: list[tuple], now_us: int, result: IngestResult) -> None:
+    """Insert validated rows; the work done here holds the write lock, so it is kept short."""
     dialect = connection.dialect.name
     insert_sql = _INSERT_SQL[dialect]
+    mark = _PARAM[dialect]
+    received = (now_us, False)
     lock_windows(connection, exclusive=False)
-    closed_end = latest_closed_end_us(connection)
-    if closed_end is None:
-        on_time = [row + (now_us, False) for row in rows]
-        late: list[tuple] = []
-    else:
-        on_time = [row + (now_us, False) for row in rows if row[1] >= closed_end]
-        late = [row + (now_us, True) for row in rows if row[1] < closed_end]
     cursor = connection.connection.cursor()
     try:
+        cursor.execute("SELECT max(end_us) FROM windows WHERE status = 'closed'")
+        closed_end = cursor.fetchone()[0]
+        if closed_end is None or min(row[1] for row in rows) >= closed_end:
+            on_time = [row + received for row in rows]
+            late: list[tuple] = []
+        else:
+            on_time = [row + received for row in rows if row[1] >= closed_end]
+            late = [row + (now_us, True) for row in rows if row[1] < closed_end]
         inserted = 0
         if on_time:
             cursor.executemany(insert_sql, on_time)
@@ -380,12 +387,16 @@ def _store(connection: Connection, rows: list[tuple], now_us: int, result: Inges
                 late_times.append((row[1], row[1]))
         if late_times:
             cursor.executemany(_LATE_COUNT_SQL[dialect], late_times)
+        cursor.execute(
+            f"INSERT INTO service_state (key, value) VALUES ({mark}, {mark}) "
+            "ON CONFLICT (key) DO UPDATE SET value = excluded.value",
+            ("last_ingest_us", str(now_us)),
+        )
     finally:
         cursor.close()
     result.accepted = inserted + len(late_times)
     result.late = len(late_times)
     result.duplicates = len(rows) - result.accepted
-    set_state(connection, "last_ingest_us", str(now_us))
 
 
 def ingest(engine: Engine, settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int) -> IngestResult:
