@@ -41,6 +41,7 @@ class Column:
     active: bool
     alert: bool
     selected: bool
+    summary: str = ""
 
 
 @dataclass
@@ -123,8 +124,16 @@ def mixture_chart(windows, history, roles, alert_ids, selected_id) -> MixtureCha
     for column in columns:
         entry = history.get(column.window_id)
         if entry is None:
+            column.summary = f"{column.title}: not active"
             continue
         mixture = entry["mixture"]
+        shares = sorted(
+            ((float(mixture.get(str(band.role_id), 0.0) or 0.0), band.name) for band in bands),
+            reverse=True,
+        )
+        column.summary = f"{column.title}: " + "; ".join(
+            f"{name} {share:.0%}" for share, name in shares[:3] if share >= 0.005
+        )
         base = top + plot_height
         for band in bands:
             share = float(mixture.get(str(band.role_id), mixture.get(band.role_id, 0.0)) or 0.0)
