@@ -17,7 +17,6 @@ REQUEST_ID: contextvars.ContextVar[str | None] = contextvars.ContextVar(
     "rolewatch_request_id", default=None
 )
 
-_STANDARD = set(logging.makeLogRecord({}).__dict__) | {"message", "asctime"}
 
 
 class JsonFormatter(logging.Formatter):
