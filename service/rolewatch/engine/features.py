@@ -306,22 +306,25 @@ class _Graph:
 
         return self._get(f"inv_{direction}", build)
 
-    def aggregate(self, op: str, columns: Sequence[np.ndarray]) -> list[np.ndarray]:
-        """Apply one ReFeX aggregate to every column at once; returns contiguous columns."""
+    def aggregate_block(self, op: str, columns: Sequence[np.ndarray]) -> np.ndarray:
+        """Apply one ReFeX aggregate to every column at once; returns an n x k matrix."""
         kind, direction = op.split("_")
-        if not columns:
-            return []
-        if self.n == 0:
-            return [np.zeros(0) for _ in columns]
-        if len(columns) == 1:
-            total = self.adjacency_of(direction) @ columns[0]
-            if kind == "mean":
-                total *= self.inverse_degree(direction)
-            return [total]
+        if not columns or self.n == 0:
+            return np.zeros((self.n, len(columns)))
         total = np.asarray(self.adjacency_of(direction) @ np.stack(columns, axis=1))
         if kind == "mean":
             total *= self.inverse_degree(direction)[:, None]
-        return list(np.ascontiguousarray(total.T))
+        return total
+
+    def aggregate(self, op: str, columns: Sequence[np.ndarray]) -> list[np.ndarray]:
+        """Apply one ReFeX aggregate to every column at once; returns contiguous columns."""
+        if len(columns) == 1 and self.n:
+            kind, direction = op.split("_")
+            total = self.adjacency_of(direction) @ np.ascontiguousarray(columns[0])
+            if kind == "mean":
+                total *= self.inverse_degree(direction)
+            return [total]
+        return list(np.ascontiguousarray(self.aggregate_block(op, columns).T))
 
 
 def _safe_divide(num: np.ndarray, den: np.ndarray) -> np.ndarray:
@@ -531,9 +534,8 @@ def _compute(graph: _Graph, defs: Sequence[_Def], *, chunk: int = 64) -> np.ndar
             group = [d for d in layer if d.op == op]
             for lo in range(0, len(group), chunk):
                 part = group[lo : lo + chunk]
-                cols = graph.aggregate(op, [out[:, index[d.parent]] for d in part])
-                for d, col in zip(part, cols):
-                    out[:, index[d.name]] = col
+                block = graph.aggregate_block(op, [out[:, index[d.parent]] for d in part])
+                out[:, [index[d.name] for d in part]] = block
     return out
 
 
