@@ -417,10 +417,12 @@ def prune_agreeing(binned: np.ndarray, tolerance: float = 0.0, *, n_fixed: int =
     rows, f = binned.shape
     if f == 0:
         return np.zeros(0, dtype=np.int64)
-    if tolerance < 1.0 and np.array_equal(binned, np.round(binned)):
+    integral = binned.dtype.kind in "ui" or np.array_equal(binned, np.round(binned))
+    if tolerance < 1.0 and integral:
         # Integer bins within s < 1 agree only when equal: the components are the
         # classes of identical columns, found by sorting the columns as byte strings.
-        cols = np.ascontiguousarray(np.asarray(binned, dtype=np.int16).T)
+        fits_byte = binned.min(initial=0) >= 0 and binned.max(initial=0) < 256
+        cols = np.ascontiguousarray(np.asarray(binned, dtype=np.uint8 if fits_byte else np.int32).T)
         keys = cols.view(np.dtype((np.void, cols.dtype.itemsize * rows))).ravel() if rows else np.zeros(f, "V1")
         _, label = np.unique(keys, return_inverse=True)
         label = label.reshape(-1)
@@ -447,8 +449,9 @@ def _agreeing_pairs(binned: np.ndarray, tolerance: float) -> tuple[np.ndarray, n
     are verified on every row, in chunks.
     """
     rows, f = binned.shape
-    integral = np.array_equal(binned, np.round(binned)) and np.abs(binned).max(initial=0) < 2**15
-    b = np.asarray(binned, dtype=np.int16 if integral else np.float64)
+    integral = binned.dtype.kind in "ui" or np.array_equal(binned, np.round(binned))
+    small = np.abs(binned).max(initial=0) < 2**6  # differences then fit int8 too
+    b = np.asarray(binned, dtype=(np.int8 if small else np.int32) if integral else np.float64)
     ii, jj = np.triu_indices(f, k=1)
     # rows where the features spread most rule out the most pairs
     spread = np.asarray(b.max(axis=1, initial=0), dtype=np.float64) - b.min(axis=1, initial=0) if f else np.zeros(rows)
