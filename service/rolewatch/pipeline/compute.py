@@ -279,7 +279,7 @@ def _alert_record(
         },
         "mixture_before": _mixture_list(model, np.nan_to_num(baseline)),
         "mixture_after": _mixture_list(model, mixture),
-        "feature_moves": feature_moves(table.names, before_raw, table.raw[row], top=5),
+        "feature_moves": _readable_moves(table.names, before_raw, table.raw[row]),
         "activity": {
             "events_out": int(activity.events_out[row]),
             "events_in": int(activity.events_in[row]),
@@ -302,6 +302,23 @@ def _alert_record(
         "role_after": role_after,
         "evidence": evidence,
     }
+
+
+def _readable_moves(names, before: np.ndarray, after: np.ndarray, top: int = 5) -> list[dict]:
+    """The features that moved most, base features first: an analyst reads "out_degree 2 →
+    37" at once, while a third-round recursive aggregate needs a manual to decode. Recursive
+    features fill the list only when fewer than ``top`` base features moved."""
+    depth = np.array([name.count("(") for name in names])
+    moves: list[dict] = []
+    for level in range(int(depth.max(initial=0)) + 1):
+        columns = np.flatnonzero(depth == level)
+        if len(columns) == 0:
+            continue
+        picked = feature_moves([names[c] for c in columns], before[columns], after[columns], top=top)
+        moves.extend(picked[: top - len(moves)])
+        if len(moves) >= top:
+            break
+    return moves
 
 
 def _finite(value) -> float | None:
