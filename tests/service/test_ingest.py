@@ -299,3 +299,16 @@ def test_rfc3339_leap_second_example_is_refused_with_a_reason():
 def test_wrong_scope_cannot_ingest(app_client, make_event):
     assert post(app_client, [make_event()], scope="read").status_code == 403
     assert post(app_client, [make_event()], scope="admin").status_code == 202
+
+
+def test_ndjson_lines_split_only_on_newline(app_client, make_event):
+    # U+2028 and U+0085 may appear unescaped inside JSON strings (RFC 8259 section 7); a line
+    # separator there must not cut the line. (U+0085 is a C1 control, so that event is refused.)
+    lines = [json.dumps(make_event(id="a\u2028b"), ensure_ascii=False),
+             json.dumps(make_event(id="c\u0085d"), ensure_ascii=False) + "\r"]
+    response = app_client.client.post("/v1/events", content="\n".join(lines).encode(), headers=app_client.headers(
+        "ingest", **{"Content-Type": "application/x-ndjson"}))
+    result = response.json()
+    assert result["accepted"] == 1
+    assert [r["index"] for r in result["rejected"]] == [1] and "U+0085" in result["rejected"][0]["error"]
+    assert [r.event_id for r in stored(app_client)] == ["a\u2028b"]

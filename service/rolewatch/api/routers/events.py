@@ -124,7 +124,9 @@ def parse_ndjson_batch(body: bytes, max_events: int) -> list:
         text = body.decode("utf-8")
     except UnicodeDecodeError as error:
         raise _bad(f"the body is not valid UTF-8 (byte {error.start})") from None
-    lines = [line for line in text.splitlines() if line.strip()]
+    # Split on "\n" only: str.splitlines would also cut at U+2028 or U+0085, which JSON
+    # strings may hold unescaped.
+    lines = [line for line in text.split("\n") if line.strip()]
     if len(lines) > max_events:
         raise _too_large(f"the batch has {len(lines)} events, at most {max_events} allowed")
     events: list = []
