@@ -18,6 +18,7 @@ log = logging.getLogger(__name__)
 JOBS = {
     "close_windows": ("rolewatch.pipeline.closer", "close_due_windows"),
     "deliver": ("rolewatch.delivery.worker", "deliver_due"),
+    "retention": ("rolewatch.store.retention", "purge_expired"),  # no-op when retention_windows=0
 }
 _missing_reported: set[str] = set()
 
@@ -46,7 +47,7 @@ def run_job(name: str, engine, settings) -> None:
 
 
 def start_scheduler(engine, settings):
-    """A started APScheduler 3.x BackgroundScheduler with both jobs (threads, off the loop)."""
+    """A started APScheduler 3.x BackgroundScheduler with the jobs (threads, off the loop)."""
     from apscheduler.schedulers.background import BackgroundScheduler
 
     scheduler = BackgroundScheduler(timezone="UTC")
