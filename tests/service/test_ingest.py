@@ -312,3 +312,35 @@ def test_ndjson_lines_split_only_on_newline(app_client, make_event):
     assert result["accepted"] == 1
     assert [r["index"] for r in result["rejected"]] == [1] and "U+0085" in result["rejected"][0]["error"]
     assert [r.event_id for r in stored(app_client)] == ["a\u2028b"]
+
+
+def test_concurrent_batches_share_commits_and_count_exactly(app_settings, make_event):
+    # Six threads post overlapping batches at once through ingest (the API's path): every
+    # event is stored once, and accepted + duplicates add up across all callers.
+    import threading
+
+    from rolewatch.store.db import open_store
+    from rolewatch.store.events import ingest
+
+    engine = open_store(app_settings)
+    events = [make_event(id=f"c-{i}") for i in range(600)]
+    batches = [events[start:start + 200] for start in range(0, 600, 100)]  # each id in two batches
+    results, errors = [], []
+
+    def post(batch):
+        try:
+            results.append(ingest(engine, app_settings, batch, time.time_ns() // 1000))
+        except Exception as error:  # pragma: no cover - reported below
+            errors.append(error)
+
+    threads = [threading.Thread(target=post, args=(batch,)) for batch in batches]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert errors == []
+    assert sum(r.accepted for r in results) == 600
+    assert sum(r.accepted + r.duplicates for r in results) == sum(len(b) for b in batches)
+    with engine.connect() as connection:
+        assert connection.execute(sa.select(sa.func.count()).select_from(events_table)).scalar() == 600
+    engine.dispose()

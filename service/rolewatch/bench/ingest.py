@@ -1,7 +1,7 @@
 """Ingest throughput through HTTP, next to a raw sqlite3 executemany of the same rows.
 
 ``ingest-http``: a real ``rolewatch serve --role api`` in a subprocess on a loopback port
-(SQLite file, default durability: synchronous FULL), fed by two httpx clients (ROLEWATCH_BENCH_CLIENTS) posting JSON
+(SQLite file, default durability: synchronous FULL), fed by four concurrent httpx clients (ROLEWATCH_BENCH_CLIENTS) posting JSON
 batches of 1,000 events; then the same rows written by plain ``sqlite3`` ``executemany``
 (one transaction per 1,000 rows, same schema and pragmas) in the same run. Prints events/s
 of both and their ratio. Target: ≥ 20,000 events/s through HTTP (one server process).
@@ -130,7 +130,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     if case not in CASES:
         raise ValueError(f"unknown case {case!r}")
     total = 50_000 if quick else 300_000
-    clients = int(os.environ.get("ROLEWATCH_BENCH_CLIENTS", "2"))
+    clients = int(os.environ.get("ROLEWATCH_BENCH_CLIENTS", "4"))
     events = _events(total)
     bodies = [orjson.dumps({"events": events[i:i + BATCH]}) for i in range(0, total, BATCH)]
     with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:

@@ -17,6 +17,8 @@ import hashlib
 import json
 import math
 import re
+import threading
+import weakref
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
@@ -399,8 +401,89 @@ def _store(connection: Connection, rows: list[tuple], now_us: int, result: Inges
     result.duplicates = len(rows) - result.accepted
 
 
+class _Job:
+    __slots__ = ("rows", "now_us", "result", "done", "error")
+
+    def __init__(self, rows: list[tuple], now_us: int, result: IngestResult) -> None:
+        self.rows, self.now_us, self.result = rows, now_us, result
+        self.done = False
+        self.error: BaseException | None = None
+
+
+class _GroupWriter:
+    """Group commit: batches that arrive while another is being written share one transaction.
+
+    A caller that finds no write in progress becomes the writer: it takes every waiting batch
+    (its own included), stores each with its own counts in one transaction, commits, and wakes
+    their callers; the others wait. Every caller returns only after the commit that holds its
+    rows, so an acknowledged event is still durable, while concurrent requests pay for one
+    commit (one fsync) instead of one each. If a shared transaction fails, each batch is
+    retried alone, so one batch's failure never loses another's events.
+    """
+
+    def __init__(self, engine: Engine) -> None:
+        self.engine = engine
+        self.condition = threading.Condition()
+        self.pending: list[_Job] = []
+        self.busy = False
+
+    def write(self, rows: list[tuple], now_us: int, result: IngestResult) -> None:
+        job = _Job(rows, now_us, result)
+        with self.condition:
+            self.pending.append(job)
+            while not job.done and self.busy:
+                self.condition.wait()
+            if job.done:
+                if job.error is not None:
+                    raise job.error
+                return
+            self.busy = True
+            group, self.pending = self.pending, []
+        try:
+            self._write_group(group)
+        finally:
+            with self.condition:
+                for member in group:
+                    member.done = True
+                self.busy = False
+                self.condition.notify_all()
+        if job.error is not None:
+            raise job.error
+
+    def _write_group(self, group: list[_Job]) -> None:
+        try:
+            with write_transaction(self.engine) as connection:
+                for member in group:
+                    _store(connection, member.rows, member.now_us, member.result)
+            return
+        except Exception as error:
+            if len(group) == 1:
+                group[0].error = error
+                return
+        for member in group:  # the shared transaction failed: each batch on its own
+            member.result.accepted = member.result.duplicates = member.result.late = 0
+            try:
+                with write_transaction(self.engine) as connection:
+                    _store(connection, member.rows, member.now_us, member.result)
+            except Exception as error:
+                member.error = error
+
+
+_WRITERS: "weakref.WeakKeyDictionary[Engine, _GroupWriter]" = weakref.WeakKeyDictionary()
+_WRITERS_LOCK = threading.Lock()
+
+
+def _group_writer(engine: Engine) -> _GroupWriter:
+    with _WRITERS_LOCK:
+        writer = _WRITERS.get(engine)
+        if writer is None:
+            writer = _WRITERS[engine] = _GroupWriter(engine)
+        return writer
+
+
 def ingest(engine: Engine, settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int) -> IngestResult:
-    """Validate ``raw_events`` (parsed wire events) and store the valid ones in one transaction.
+    """Validate ``raw_events`` (parsed wire events) and store the valid ones in one transaction
+    (shared with batches arriving at the same moment: see :class:`_GroupWriter`).
 
     ``now_us`` is the receive time (microseconds, UTC): it bounds the future clock skew,
     is stored as each event's ``received_us`` and becomes ``service_state.last_ingest_us``
@@ -418,8 +501,7 @@ def ingest(engine: Engine, settings, raw_events: Sequence[Any] | Iterable[Any], 
         except _Reject as error:
             rejected.append({"index": index, "error": str(error)})
     if rows:
-        with write_transaction(engine) as connection:
-            _store(connection, rows, now_us, result)
+        _group_writer(engine).write(rows, now_us, result)
         metrics.EVENTS_ACCEPTED.inc(result.accepted)
         metrics.EVENTS_DUPLICATE.inc(result.duplicates)
         metrics.EVENTS_LATE.inc(result.late)
