@@ -14,7 +14,7 @@ from sqlalchemy import and_, func, or_, select, update
 from sqlalchemy.engine import Engine
 
 from rolewatch.store.db import write_transaction
-from rolewatch.store.events import format_time_us
+from rolewatch.store.events import _FORBIDDEN, MAX_ACCOUNT_CHARS, format_time_us
 from rolewatch.store.schema import alerts, bases, events, memberships, roles, service_state, windows
 
 
@@ -25,6 +25,12 @@ def _us(value) -> int:
 # --- accounts --------------------------------------------------------------------------------
 
 
+def _could_be_stored(account: str) -> bool:
+    """False for ids ingest never stores (too long, control characters): such an account
+    cannot exist, and PostgreSQL refuses NUL in a query parameter."""
+    return len(account) <= MAX_ACCOUNT_CHARS and not _FORBIDDEN.search(account)
+
+
 def account_exists(engine: Engine, account: str) -> bool:
     """True when ``account`` was active in a closed window or has an event not yet closed.
 
@@ -33,6 +39,8 @@ def account_exists(engine: Engine, account: str) -> bool:
     never costs a scan of the whole event table. (An account seen only in late events is
     not found.)
     """
+    if not _could_be_stored(account):
+        return False
     with engine.connect() as connection:
         query = select(memberships.c.account).where(memberships.c.account == account).limit(1)
         if connection.execute(query).first() is not None:
@@ -56,6 +64,8 @@ def account_history(
     dominant role, shift score (None on first appearance or when not scored), status,
     activity counts and the relative reconstruction error.
     """
+    if not _could_be_stored(account):
+        return []
     query = (
         select(
             memberships.c.window_id,

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Depends, HTTPException, Query, Request, status
+from fastapi import APIRouter, Depends, HTTPException, Path, Query, Request, status
 from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
@@ -41,7 +41,7 @@ async def get_alerts(
 
 @router.get("/v1/alerts/{alert_id}", response_model=Alert, summary="One alert with its evidence",
             responses={401: {"model": Problem}, 403: {"model": Problem}, 404: {"model": Problem}})
-async def get_alert(request: Request, alert_id: int, _key=Depends(require_scope("read"))) -> dict:
+async def get_alert(request: Request, alert_id: int = Path(ge=1, le=2**63 - 1), _key=Depends(require_scope("read"))) -> dict:
     found = await run_in_threadpool(queries.get_alert, request.app.state.engine, alert_id)
     if found is None:
         raise HTTPException(status.HTTP_404_NOT_FOUND, detail=f"no alert {alert_id}")

@@ -105,6 +105,8 @@ def parse_json_batch(body: bytes, max_events: int) -> list:
             raise _bad(problem) from None
         try:  # the standard library also reads NaN/Infinity and huge integers, which then
             document = json.loads(body)  # get a per-event reason instead of failing the batch
+        except RecursionError:
+            raise _bad("the body is nested too deeply") from None
         except ValueError as error:
             raise _bad(f"the body is not valid JSON: {error}") from None
     if not isinstance(document, dict) or not isinstance(document.get("events"), list):
@@ -136,6 +138,8 @@ def parse_ndjson_batch(body: bytes, max_events: int) -> list:
         except orjson.JSONDecodeError:
             try:
                 events.append(json.loads(line))
+            except RecursionError:
+                events.append(InvalidEvent(f"event {number} is nested too deeply"))
             except ValueError as error:
                 events.append(InvalidEvent(f"event {number} is not valid JSON: {error}"))
     return events

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Body, Depends, HTTPException, Request, status
+from fastapi import APIRouter, Body, Depends, HTTPException, Path, Request, status
 from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
@@ -40,7 +40,7 @@ async def get_roles(request: Request, _key=Depends(require_scope("read"))) -> di
 @router.patch("/v1/roles/{role_id}", response_model=Role, summary="Rename a role (admin)",
               responses={401: {"model": Problem}, 403: {"model": Problem}, 404: {"model": Problem}})
 async def patch_role(
-    request: Request, role_id: int, body: RenameRole = Body(...),
+    request: Request, role_id: int = Path(ge=0, le=2**31 - 1), body: RenameRole = Body(...),
     _key=Depends(require_scope("admin")),
 ) -> dict:
     """Give a role of the active basis a new name (shown in alerts, history and pages)."""
