@@ -141,6 +141,8 @@ def test_alerts_filters_and_pages(seeded):
     windowed = get(seeded, "/v1/alerts", **{"from": "2026-01-15T00:00:00Z", "to": "2026-01-16T00:00:00Z"}).json()
     assert [a["window_end"] for a in windowed["alerts"]] == ["2026-01-15T00:00:00Z"]
     assert get(seeded, "/v1/alerts", cursor="abc").status_code == 400
+    # An id ingest never stores (a NUL; PostgreSQL refuses it as a parameter) matches nothing.
+    assert get(seeded, "/v1/alerts", account="m\x00").json() == {"alerts": [], "next_cursor": None}
 
 
 def test_alert_by_id_in_contract_form(seeded):

@@ -337,6 +337,8 @@ def list_alerts(
     older alerts (smaller ids), so pages stay stable while new alerts arrive.
     """
     filters = filters or AlertFilters()
+    if filters.account is not None and not _could_be_stored(filters.account):
+        return [], None
     conditions = []
     if filters.from_us is not None:
         conditions.append(alerts.c.window_end_us >= filters.from_us)
