@@ -306,25 +306,23 @@ class _Graph:
 
         return self._get(f"inv_{direction}", build)
 
-    def aggregate_block(self, op: str, columns: Sequence[np.ndarray]) -> np.ndarray:
-        """Apply one ReFeX aggregate to every column at once; returns an n x k matrix."""
+    def aggregate_into(self, op: str, column: np.ndarray, out: np.ndarray) -> np.ndarray:
+        """One ReFeX aggregate of one contiguous column, written into ``out``.
+
+        One sparse matrix-vector product per column: cheaper than stacking columns into
+        a row-major block for a matrix-matrix product and scattering the result back.
+        """
         kind, direction = op.split("_")
-        if not columns or self.n == 0:
-            return np.zeros((self.n, len(columns)))
-        total = np.asarray(self.adjacency_of(direction) @ np.stack(columns, axis=1))
+        if self.n == 0:
+            return out
+        out[...] = self.adjacency_of(direction) @ column
         if kind == "mean":
-            total *= self.inverse_degree(direction)[:, None]
-        return total
+            out *= self.inverse_degree(direction)
+        return out
 
     def aggregate(self, op: str, columns: Sequence[np.ndarray]) -> list[np.ndarray]:
-        """Apply one ReFeX aggregate to every column at once; returns contiguous columns."""
-        if len(columns) == 1 and self.n:
-            kind, direction = op.split("_")
-            total = self.adjacency_of(direction) @ np.ascontiguousarray(columns[0])
-            if kind == "mean":
-                total *= self.inverse_degree(direction)
-            return [total]
-        return list(np.ascontiguousarray(self.aggregate_block(op, columns).T))
+        """Apply one ReFeX aggregate to every column; returns new contiguous columns."""
+        return [self.aggregate_into(op, np.ascontiguousarray(c), np.empty(self.n)) for c in columns]
 
 
 def _safe_divide(num: np.ndarray, den: np.ndarray) -> np.ndarray:
@@ -390,7 +388,15 @@ def apply_bins(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
     ``x`` within a relative ``1e-9`` of an edge counts as equal to it (stays in that bin).
     """
     edges = np.asarray(edges, dtype=np.float64)
-    return np.searchsorted(edges + _tie_slack(edges), values, side="left").astype(np.float64)
+    upper = edges + _tie_slack(edges)
+    values = np.asarray(values, dtype=np.float64)
+    if upper.size > 64:
+        return np.searchsorted(upper, values, side="left").astype(np.float64)
+    # a few comparisons beat a branchy binary search per value
+    bins = np.zeros(values.shape, dtype=np.uint8)
+    for edge in upper:
+        bins += values > edge
+    return bins.astype(np.float64)
 
 
 def prune_agreeing(binned: np.ndarray, tolerance: float = 0.0, *, n_fixed: int = 0) -> np.ndarray:
@@ -514,13 +520,12 @@ class _Def:
     round: int
 
 
-def _compute(graph: _Graph, defs: Sequence[_Def], *, chunk: int = 64) -> np.ndarray:
+def _compute(graph: _Graph, defs: Sequence[_Def]) -> np.ndarray:
     """Raw values of ``defs`` on one graph as an n x f Fortran-ordered matrix.
 
     ``defs`` must hold every ancestor of its recursive features (a recipe always does).
-    Features are evaluated round by round straight into their output column; within a
-    round, features sharing one aggregate are sparse-dense products over their stacked
-    parents, ``chunk`` columns at a time.
+    Features are evaluated round by round, each straight into its output column from
+    its parent's column (both contiguous in the Fortran-ordered matrix).
     """
     index = {d.name: j for j, d in enumerate(defs)}
     missing = [d.parent for d in defs if d.parent is not None and d.parent not in index]
@@ -533,12 +538,8 @@ def _compute(graph: _Graph, defs: Sequence[_Def], *, chunk: int = 64) -> np.ndar
             for d in layer:
                 out[:, index[d.name]] = graph.base(d.op)
             continue
-        for op in AGGREGATES:
-            group = [d for d in layer if d.op == op]
-            for lo in range(0, len(group), chunk):
-                part = group[lo : lo + chunk]
-                block = graph.aggregate_block(op, [out[:, index[d.parent]] for d in part])
-                out[:, [index[d.name] for d in part]] = block
+        for d in layer:
+            graph.aggregate_into(d.op, out[:, index[d.parent]], out[:, index[d.name]])
     return out
 
 
