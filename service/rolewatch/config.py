@@ -140,7 +140,16 @@ class Settings(BaseSettings):
         0.5, gt=0, lt=1, description="ReFeX vertical logarithmic binning fraction p."
     )
     prune_tolerance: float = Field(
-        0.0, ge=0, description="ReFeX pruning tolerance s on binned values."
+        1.0,
+        ge=0,
+        description="ReFeX pruning tolerance s on binned values in the base round: features "
+        "whose bins differ by at most s on every node count as one.",
+    )
+    prune_tolerance_step: float = Field(
+        1.0,
+        ge=0,
+        description="Added to the pruning tolerance at each recursive round, so deeper rounds "
+        "keep only features that say something new.",
     )
     binning: Literal["frozen", "relative"] = Field(
         "frozen",

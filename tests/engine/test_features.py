@@ -14,6 +14,9 @@ from rolewatch.engine.features import (
     triangles_per_node,
 )
 
+# Tolerance 0 in every round: every feature a test compares stays in the recipe.
+UNPRUNED = {"tolerance": 0.0, "tolerance_step": 0.0}
+
 
 def random_snapshot(seed, n=60, m=300, extra_isolated=3):
     rng = np.random.default_rng(seed)
@@ -90,7 +93,7 @@ def test_pruning_exact_and_pairwise_paths_agree():
 
 def test_discover_and_transform_on_reference():
     snaps = [random_snapshot(s) for s in range(3)]
-    recipe = FeatureRecipe.discover(snaps, max_rounds=2)
+    recipe = FeatureRecipe.discover(snaps, max_rounds=2, **UNPRUNED)
     assert recipe.names[: len(BASE_FEATURES)] == BASE_FEATURES
     assert any(name.startswith("mean_out(") for name in recipe.names)
     table = recipe.transform(snaps[0])
@@ -106,7 +109,7 @@ def test_discover_and_transform_on_reference():
 
 def test_recursive_names_compute_from_parents():
     snap = random_snapshot(7)
-    recipe = FeatureRecipe.discover([snap], max_rounds=2)
+    recipe = FeatureRecipe.discover([snap], max_rounds=2, **UNPRUNED)
     table = recipe.transform(snap)
     deep = [n for n in recipe.names if n.count("(") == 2][0]
     op, inner = deep.split("(", 1)
@@ -123,7 +126,7 @@ def test_recursive_names_compute_from_parents():
 
 def test_recipe_round_trip_and_version():
     snap = random_snapshot(1)
-    recipe = FeatureRecipe.discover([snap], max_rounds=1, binning="relative")
+    recipe = FeatureRecipe.discover([snap], max_rounds=1, **UNPRUNED, binning="relative")
     d = json.loads(json.dumps(recipe.to_dict()))
     again = FeatureRecipe.from_dict(d)
     assert again == recipe and again.version == recipe.version and len(recipe.version) == 12
@@ -140,7 +143,7 @@ def test_recipe_round_trip_and_version():
 def test_frozen_vs_relative_binning_on_a_later_window():
     reference = random_snapshot(2)
     later = random_snapshot(3, n=80, m=900)  # busier window
-    frozen = FeatureRecipe.discover([reference], max_rounds=1, binning="frozen")
+    frozen = FeatureRecipe.discover([reference], max_rounds=1, **UNPRUNED, binning="frozen")
     body = frozen.to_dict()
     body.pop("version")
     body["binning"] = "relative"
@@ -158,7 +161,7 @@ def test_frozen_vs_relative_binning_on_a_later_window():
 
 def test_transform_computes_only_needed_features():
     snap = random_snapshot(4)
-    full = FeatureRecipe.discover([snap], max_rounds=1)
+    full = FeatureRecipe.discover([snap], max_rounds=1, **UNPRUNED)
     body = full.to_dict()
     body["features"] = [f for f in body["features"] if not f["name"].startswith("ego") and "ego" not in f["name"]]
     body.pop("version")
@@ -176,7 +179,7 @@ def test_transform_computes_only_needed_features():
 
 def test_empty_snapshot_features():
     empty = Snapshot.from_events([], [])
-    recipe = FeatureRecipe.discover([random_snapshot(0)], max_rounds=1)
+    recipe = FeatureRecipe.discover([random_snapshot(0)], max_rounds=1, **UNPRUNED)
     table = recipe.transform(empty)
     assert table.raw.shape == (0, len(recipe.names))
     # discovery on an empty window: every column is empty, so all agree; the first stays
@@ -186,7 +189,7 @@ def test_empty_snapshot_features():
 
 def test_one_edge_and_isolated_nodes():
     s = Snapshot.from_events(["a"], ["b"], [5.0], nodes=["a", "b", "c"])
-    recipe = FeatureRecipe.discover([s], max_rounds=2)
+    recipe = FeatureRecipe.discover([s], max_rounds=2, **UNPRUNED)
     t = recipe.transform(s)
     row_c = t.raw[2]
     assert (row_c == 0).all()  # isolated node: every count, sum and mean is 0
@@ -199,7 +202,7 @@ def test_all_zero_columns_are_pruned_to_one():
     # a directed path without reciprocity or triangles: reciprocity is 0 everywhere, so it
     # merges with any other all-zero column that comes later
     s = Snapshot.from_events(["a", "b", "c"], ["b", "c", "d"])
-    recipe = FeatureRecipe.discover([s], max_rounds=1)
+    recipe = FeatureRecipe.discover([s], max_rounds=1, **UNPRUNED)
     table = recipe.transform(s)
     zero_cols = [n for n in recipe.names if not table.column(n).any()]
     assert len(zero_cols) <= 1
@@ -245,4 +248,4 @@ def test_hub_with_50000_leaves_and_a_few_triangles():
     assert g.base("ego_arcs_within")[hub] == 50_000 + 3
     leaf = s.index_of(["leaf-9"])[0]  # a plain leaf: the hub's other 49,999 edges leave its egonet
     assert g.base("ego_boundary_edges")[leaf] == 49_999
-    assert FeatureRecipe.discover([s], max_rounds=1).transform(s).raw.shape[0] == 50_001
+    assert FeatureRecipe.discover([s], max_rounds=1, **UNPRUNED).transform(s).raw.shape[0] == 50_001

@@ -19,7 +19,7 @@ def _case():
 
 def test_statuses_and_threshold_alerts():
     cur, base, a, b, err = _case()
-    out = score_window(cur, base, a, b, err, F, ShiftPolicy(threshold=0.5, min_events=3))
+    out = score_window(cur, base, a, b, err, F, ShiftPolicy(threshold=0.5, min_events=3, calibration="none"))
     assert list(out.status) == ["scored", "scored", "new", "low_activity", "inactive"]
     np.testing.assert_allclose(out.score[:2], role_aware_distance(cur[:2], base[:2], F))
     assert np.isnan(out.score[2:]).all()
@@ -30,7 +30,7 @@ def test_statuses_and_threshold_alerts():
 def test_other_measures_and_component_weights():
     cur, base, a, b, err = _case()
     pol = ShiftPolicy(measure="hellinger", magnitude_weight=0.5, error_weight=1.0,
-                      min_events=3)
+                      min_events=3, calibration="none")
     out = score_window(cur, base, a, b, err, F, pol)
     expected = hellinger(cur[:2], base[:2]) + err[:2]  # equal activity: magnitude 0
     np.testing.assert_allclose(out.score[:2], expected)
@@ -42,13 +42,14 @@ def test_budget_mode_alerts_top_share_above_floor():
     cur = rng.dirichlet(np.ones(3), n)
     base = rng.dirichlet(np.ones(3), n)
     act = np.full(n, 10.0)
-    pol = ShiftPolicy(measure="total_variation", alert_mode="budget", budget=0.05, floor=0.0)
+    pol = ShiftPolicy(measure="total_variation", alert_mode="budget", budget=0.05, floor=0.0,
+                      calibration="none")
     out = score_window(cur, base, act, act, np.zeros(n), F, pol)
     assert out.alert.sum() == 10
     assert out.score[out.alert].min() >= np.nanmax(out.score[~out.alert])
     high_floor = score_window(cur, base, act, act, np.zeros(n), F,
                               ShiftPolicy(measure="total_variation", alert_mode="budget",
-                                          budget=0.05, floor=2.0))
+                                          budget=0.05, floor=2.0, calibration="none"))
     assert not high_floor.alert.any()
 
 

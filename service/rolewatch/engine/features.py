@@ -588,7 +588,7 @@ class FeatureRecipe:
         snapshot by its own values).
     """
 
-    __slots__ = ("_defs", "_edges", "bin_fraction", "tolerance", "binning", "max_rounds", "reference", "version")
+    __slots__ = ("_defs", "_edges", "bin_fraction", "tolerance", "tolerance_step", "binning", "max_rounds", "reference", "version")
 
     def __init__(
         self,
@@ -600,14 +600,17 @@ class FeatureRecipe:
         binning: str,
         max_rounds: int,
         reference: dict,
+        tolerance_step: float = 0.0,
     ) -> None:
         _check_params(bin_fraction, tolerance, binning, max_rounds)
+        _check_params(bin_fraction, tolerance_step, binning, max_rounds)
         object.__setattr__(self, "_defs", tuple(defs))
         object.__setattr__(self, "_edges", tuple(np.asarray(e, dtype=np.float64).copy() for e in edges))
         for e in self._edges:
             e.setflags(write=False)
         object.__setattr__(self, "bin_fraction", float(bin_fraction))
         object.__setattr__(self, "tolerance", float(tolerance))
+        object.__setattr__(self, "tolerance_step", float(tolerance_step))
         object.__setattr__(self, "binning", binning)
         object.__setattr__(self, "max_rounds", int(max_rounds))
         object.__setattr__(self, "reference", dict(reference))
@@ -644,7 +647,8 @@ class FeatureRecipe:
         *,
         max_rounds: int = 3,
         bin_fraction: float = 0.5,
-        tolerance: float = 0.0,
+        tolerance: float = 1.0,
+        tolerance_step: float = 1.0,
         binning: str = "frozen",
     ) -> "FeatureRecipe":
         """Run ReFeX feature discovery on reference snapshots (Henderson et al., KDD 2011).
@@ -658,7 +662,14 @@ class FeatureRecipe:
         bin_fraction : float
             ``p`` of vertical logarithmic binning, in (0, 1).
         tolerance : float
-            ``s``: binned columns differing by at most this on every node agree.
+            ``s`` of the base round: binned columns differing by at most this on every
+            node agree.
+        tolerance_step : float
+            Added to ``s`` at every recursive round, so round ``r`` prunes with
+            ``tolerance + r * tolerance_step``. ReFeX raises the tolerance as the rounds go
+            (Henderson et al., KDD 2011, as recalled); without it every round multiplies the
+            kept features by about the number of aggregates (six here) and a three-round
+            recipe keeps thousands of near-duplicate columns.
         binning : {"frozen", "relative"}
             How :meth:`transform` bins later snapshots.
 
@@ -667,6 +678,7 @@ class FeatureRecipe:
         FeatureRecipe
         """
         _check_params(bin_fraction, tolerance, binning, max_rounds)
+        _check_params(bin_fraction, tolerance_step, binning, max_rounds)
         snaps = _as_snapshots(snapshots)
         graphs = [_Graph(s) for s in snaps]
 
@@ -680,7 +692,8 @@ class FeatureRecipe:
         for rnd in range(max_rounds + 1):
             cand_bin, cand_edges = cls._bin_candidates(graphs, candidates, frontier, bin_fraction)
             n_fixed = len(kept_defs)
-            keep = prune_agreeing(np.hstack([kept_bin, cand_bin]), tolerance, n_fixed=n_fixed)
+            round_tolerance = tolerance + rnd * tolerance_step
+            keep = prune_agreeing(np.hstack([kept_bin, cand_bin]), round_tolerance, n_fixed=n_fixed)
             new = [int(j) - n_fixed for j in keep if j >= n_fixed]
             rounds_run = rnd
             if not new:
@@ -709,6 +722,7 @@ class FeatureRecipe:
             binning=binning,
             max_rounds=max_rounds,
             reference=reference,
+            tolerance_step=tolerance_step,
         )
 
     @classmethod
@@ -798,6 +812,7 @@ class FeatureRecipe:
             "format_version": FORMAT_VERSION,
             "bin_fraction": self.bin_fraction,
             "tolerance": self.tolerance,
+            "tolerance_step": self.tolerance_step,
             "binning": self.binning,
             "max_rounds": self.max_rounds,
             "reference": self.reference,
@@ -849,6 +864,7 @@ class FeatureRecipe:
             binning=d["binning"],
             max_rounds=d["max_rounds"],
             reference=d.get("reference", {}),
+            tolerance_step=d.get("tolerance_step", 0.0),
         )
         if "version" in d and d["version"] != recipe.version:
             raise ValueError(

@@ -5,13 +5,16 @@ the window record, memberships, alerts and delivery outbox rows in a single writ
 transaction. The write re-checks that the window is still open and that no event arrived in
 its range meanwhile (otherwise it computes again), so a crash or a race never leaves a
 partial or doubled window: the next tick simply redoes the work. On PostgreSQL a session
-advisory lock makes one process the closer at a time.
+advisory lock makes one process the closer at a time, and the write transaction takes the
+window lock exclusively (ingest takes it shared), so a batch either lands before the re-check
+or sees the window closed and is stored as late.
 """
 
 from __future__ import annotations
 
 import json
 import logging
+import threading
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -31,13 +34,16 @@ from rolewatch.pipeline.windows import (
     now_micros,
     to_rfc3339,
 )
-from rolewatch.store.db import write_transaction
+from rolewatch.store.db import lock_windows, write_transaction
 from rolewatch.store.schema import alerts, events, memberships, service_state, windows
 
 log = logging.getLogger("rolewatch.pipeline")
 
 CLOSER_LOCK_KEY = 0x726F6C6577  # "rolew": the PostgreSQL advisory lock id of the closer
 MAX_RECOMPUTES = 5
+# Set when the service shuts down: the closer finishes the window it is writing and stops
+# before the next one (api/jobs.py sets it; start_scheduler clears it).
+SHUTDOWN = threading.Event()
 
 
 class WindowChanged(Exception):
@@ -99,7 +105,7 @@ def close_due_windows(
     with closer_lock(engine) as mine:
         if not mine:
             return closed
-        while True:
+        while not SHUTDOWN.is_set():
             now = now_us if now_us is not None else now_micros()
             with engine.connect() as connection:
                 state = read_stream_state(connection)
@@ -116,6 +122,7 @@ def close_window(engine: Engine, settings, end_us: int, *, now_us: int) -> list[
     from threadpoolctl import threadpool_limits
 
     started = time.perf_counter()
+    log.info("closing window", extra={"fields": {"window_end": to_rfc3339(end_us)}})
     for _attempt in range(MAX_RECOMPUTES):
         try:
             # The engine's dense products are small: one BLAS thread is much faster than two
@@ -168,6 +175,7 @@ def _close_once(engine: Engine, settings, end_us: int, now_us: int) -> list[dict
     )
     seconds = time.perf_counter() - started
     with write_transaction(engine) as connection:
+        lock_windows(connection, exclusive=True)
         _check_still_open(connection, end_us)
         _check_unchanged(connection, start_us, end_us, len(current))
         window_id = _insert_window(
@@ -288,6 +296,7 @@ def _close_training(
         previous = window_events
     summaries = []
     with write_transaction(engine) as connection:
+        lock_windows(connection, exclusive=True)
         _check_still_open(connection, end_us)
         _check_unchanged(connection, start_us, end_us, len(current))
         store_model(

@@ -50,6 +50,7 @@ def fit_model(settings, snapshots: list[Snapshot], previous: FrozenModel | None 
         max_rounds=settings.feature_rounds,
         bin_fraction=settings.bin_fraction,
         tolerance=settings.prune_tolerance,
+        tolerance_step=settings.prune_tolerance_step,
         binning=settings.binning,
     )
     tables = [recipe.transform(snapshot) for snapshot in snapshots]
