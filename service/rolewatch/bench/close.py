@@ -1,0 +1,99 @@
+"""Closing a window of 1,000,000 events end to end: store → engine → alerts stored.
+
+``close-1m``: a SQLite store gets one training window of power-law traffic (200,000 events)
+and one window of 1,000,000 events (about 180,000 accounts), bulk-loaded with plain
+``sqlite3`` ``executemany`` (not timed). Closing the training window fits the recipe and
+basis (timed separately, as ``training_seconds``); then closing the big window — loading its
+events, ReFeX transform, memberships, baselines, scoring, evidence and writing memberships,
+alerts and the window record in one transaction — is the figure to watch (target ≤ 60 s).
+``--quick`` uses 100,000 events.
+"""
+
+from __future__ import annotations
+
+import os
+import resource
+import sqlite3
+import tempfile
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+
+CASES = ("close-1m",)
+WEEK_US = 7 * 86_400 * 1_000_000
+FIRST_END = 1_767_830_400_000_000  # 2026-01-08T00:00:00Z, a UTC-aligned 7-day window end
+
+
+def _power_law_events(rng: np.random.Generator, n_events: int, n_accounts: int, start_us: int, prefix: str):
+    """Events whose endpoints follow a Zipf-like popularity (a few hubs, many quiet accounts)."""
+    popularity = 1.0 / np.arange(1, n_accounts + 1) ** 0.9
+    popularity /= popularity.sum()
+    actor = rng.choice(n_accounts, size=n_events, p=popularity)
+    target = rng.choice(n_accounts, size=n_events, p=popularity)
+    clash = actor == target
+    target[clash] = (target[clash] + 1) % n_accounts
+    times = start_us + rng.integers(0, WEEK_US, size=n_events)
+    weights = np.round(rng.lognormal(2.5, 1.0, size=n_events), 2)
+    return [
+        (f"{prefix}{i}", int(t), f"a-{a:07d}", f"a-{b:07d}", "payment", float(w), int(t), 0)
+        for i, (t, a, b, w) in enumerate(zip(times, actor, target, weights))
+    ]
+
+
+def _load(path: Path, rows: list[tuple]) -> None:
+    connection = sqlite3.connect(path, isolation_level=None)
+    connection.execute("PRAGMA synchronous=OFF")  # a benchmark fixture, not service data
+    connection.execute("BEGIN")
+    connection.executemany(
+        "INSERT INTO events (event_id, time_us, actor, target, kind, weight, received_us, late) "
+        "VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+        rows,
+    )
+    connection.execute("COMMIT")
+    connection.close()
+
+
+def _peak_rss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def run(case: str, *, quick: bool = False) -> Iterator[dict]:
+    from rolewatch.config import load_settings
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    if case not in CASES:
+        raise ValueError(f"unknown case {case!r}")
+    big = 100_000 if quick else 1_000_000
+    accounts = 20_000 if quick else 180_000
+    rng = np.random.default_rng(0)
+    with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
+        path = Path(tmp) / "close.db"
+        settings = load_settings(
+            database_url=f"sqlite:///{path}", training_windows=1, window_period="7d", window_span="7d"
+        )
+        engine = open_store(settings)
+        _load(path, _power_law_events(rng, big // 5, accounts, FIRST_END - WEEK_US, "t-"))
+        _load(path, _power_law_events(rng, big, accounts, FIRST_END, "w-"))
+        now_us = FIRST_END + 4 * WEEK_US
+        started = time.perf_counter()
+        close_window(engine, settings, FIRST_END, now_us=now_us)
+        training_seconds = time.perf_counter() - started
+        started = time.perf_counter()
+        summaries = close_window(engine, settings, FIRST_END + WEEK_US, now_us=now_us)
+        seconds = time.perf_counter() - started
+        engine.dispose()
+    summary = summaries[-1]
+    yield {
+        "case": case,
+        "cores": os.cpu_count(),
+        "events": summary["events"],
+        "accounts": summary["accounts"],
+        "alerts": summary["alert_count"],
+        "seconds": round(seconds, 2),
+        "training_seconds": round(training_seconds, 2),
+        "peak_rss_mb": round(_peak_rss_mb(), 1),
+        "target_seconds": 60,
+    }
