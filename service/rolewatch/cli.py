@@ -13,6 +13,7 @@ import importlib
 import inspect
 import json
 import os
+import signal
 import sys
 import time
 from collections.abc import Iterator
@@ -54,6 +55,11 @@ def cmd_serve(args) -> int:
     configure_logging(settings.log_level, json_lines=settings.log_json)
     _store(settings).dispose()  # fail here, with a clear message, when the store is unusable
     app = create_app(settings)
+
+    def _stopped(signum, _frame):  # uvicorn re-raises SIGTERM/SIGINT after its graceful stop
+        raise SystemExit(0)
+
+    signal.signal(signal.SIGTERM, _stopped)
     try:
         uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
                     timeout_graceful_shutdown=30, access_log=False)
@@ -213,7 +219,7 @@ def cmd_replay(args) -> int:
 
 # --- bench -----------------------------------------------------------------------------------
 
-BENCH_MODULES = ("ingest", "history", "engine_features", "engine_roles")
+BENCH_MODULES = ("ingest", "history", "close", "engine_features", "engine_roles")
 
 
 def _bench_modules() -> dict[str, object]:

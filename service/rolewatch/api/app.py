@@ -103,7 +103,9 @@ def create_app(settings, *, run_jobs: bool | None = None) -> FastAPI:
             yield
         finally:
             if scheduler is not None:
-                await run_in_threadpool(scheduler.shutdown, True)
+                from rolewatch.api.jobs import stop_scheduler
+
+                await run_in_threadpool(stop_scheduler, scheduler)
             engine.dispose()
             log.info("rolewatch stopped")
 

@@ -46,9 +46,22 @@ def run_job(name: str, engine, settings) -> None:
               "seconds": round(time.perf_counter() - started, 4)}})
 
 
+def stop_scheduler(scheduler) -> None:
+    """Graceful stop: the closer finishes the window it is on and takes no other, running
+    deliveries finish, then the scheduler's threads end."""
+    from rolewatch.pipeline.closer import SHUTDOWN
+
+    SHUTDOWN.set()
+    scheduler.shutdown(wait=True)
+
+
 def start_scheduler(engine, settings):
     """A started APScheduler 3.x BackgroundScheduler with the jobs (threads, off the loop)."""
     from apscheduler.schedulers.background import BackgroundScheduler
+
+    from rolewatch.pipeline.closer import SHUTDOWN
+
+    SHUTDOWN.clear()
 
     scheduler = BackgroundScheduler(timezone="UTC")
     seconds = settings.tick_interval.total_seconds()
