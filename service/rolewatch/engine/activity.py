@@ -73,46 +73,60 @@ def activity_counts(snapshot: Snapshot, previous: Snapshot | None = None) -> Act
     return Activity(events_out, events_in, counterparts, new)
 
 
+class Counterparts:
+    """Who each account dealt with in a snapshot, ready for many per-account look-ups.
+
+    Transposes and previous-window neighbour patterns are built once, so listing the top
+    counterparts of thousands of alerted accounts costs a row slice each.
+    """
+
+    def __init__(self, snapshot: Snapshot, previous: Snapshot | None = None) -> None:
+        self.snapshot = snapshot
+        self.previous = previous
+        self._out_counts = snapshot.counts.tocsr()
+        self._in_counts = snapshot.counts.T.tocsr()
+        self._out_weights = snapshot.weights.tocsr()
+        self._in_weights = snapshot.weights.T.tocsr()
+        self._known = (
+            _pattern_in_node_space(previous, snapshot).tocsr()
+            if previous is not None and previous.n_nodes
+            else None
+        )
+
+    def top(self, row: int, *, top: int = 10) -> list[dict]:
+        """The accounts ``row`` dealt with most, by event count then weight.
+
+        Each entry: ``{"account", "direction" (out|in|both), "events", "weight", "new"}``;
+        ``new`` means no interaction with that account in the previous snapshot.
+        """
+        counts = (self._out_counts[row] + self._in_counts[row]).tocsr()
+        if counts.nnz == 0:
+            return []
+        columns = counts.indices
+        events = counts.data
+        weights = (self._out_weights[row] + self._in_weights[row]).toarray().ravel()[columns]
+        order = np.lexsort((-weights, -events))[:top]
+        sends = set(self._out_counts[row].indices.tolist())
+        receives = set(self._in_counts[row].indices.tolist())
+        known = set(self._known[row].indices.tolist()) if self._known is not None else set()
+        result = []
+        for position in order:
+            column = int(columns[position])
+            out, into = column in sends, column in receives
+            result.append(
+                {
+                    "account": str(self.snapshot.nodes[column]),
+                    "direction": "both" if out and into else ("out" if out else "in"),
+                    "events": int(round(events[position])),
+                    "weight": float(weights[position]),
+                    "new": self.previous is not None and column not in known,
+                }
+            )
+        return result
+
+
 def top_counterparts(
     snapshot: Snapshot, row: int, previous: Snapshot | None = None, *, top: int = 10
 ) -> list[dict]:
-    """The accounts ``row`` dealt with most in this snapshot, by event count then weight.
-
-    Each entry: ``{"account", "direction" (out|in|both), "events", "weight", "new"}``.
-    """
-    out_counts = snapshot.counts.getrow(row)
-    in_counts = snapshot.counts.getcol(row).T.tocsr()
-    out_weights = snapshot.weights.getrow(row)
-    in_weights = snapshot.weights.getcol(row).T.tocsr()
-    total_counts = (out_counts + in_counts).tocsr()
-    if total_counts.nnz == 0:
-        return []
-    total_weights = (out_weights + in_weights).toarray().ravel()
-    columns = total_counts.indices
-    counts = total_counts.data
-    order = np.lexsort((-total_weights[columns], -counts))[:top]
-    previous_ids: set = set()
-    if previous is not None and previous.n_nodes:
-        account = snapshot.nodes[row]
-        prev_row = previous.index_of([account])[0]
-        if prev_row >= 0:
-            prev_pattern = _undirected_pattern(previous).getrow(prev_row)
-            previous_ids = set(previous.nodes[prev_pattern.indices].tolist())
-    out_dense = out_counts.toarray().ravel()
-    in_dense = in_counts.toarray().ravel()
-    result = []
-    for position in order:
-        column = int(columns[position])
-        sends, receives = out_dense[column] > 0, in_dense[column] > 0
-        direction = "both" if sends and receives else ("out" if sends else "in")
-        account = str(snapshot.nodes[column])
-        result.append(
-            {
-                "account": account,
-                "direction": direction,
-                "events": int(round(counts[position])),
-                "weight": float(total_weights[column]),
-                "new": previous is not None and account not in previous_ids,
-            }
-        )
-    return result
+    """The accounts ``row`` dealt with most in this snapshot (see :class:`Counterparts`)."""
+    return Counterparts(snapshot, previous).top(row, top=top)

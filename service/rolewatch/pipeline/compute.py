@@ -10,7 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from rolewatch.engine.activity import Activity, activity_counts, top_counterparts
+from rolewatch.engine.activity import Activity, Counterparts, activity_counts
 from rolewatch.engine.scoring import ShiftPolicy, score_window
 from rolewatch.engine.shift import baseline_mixture, feature_moves
 from rolewatch.engine.snapshot import Snapshot
@@ -182,7 +182,10 @@ def compute_window(
             activity_counts(previous_snapshot) if previous_table is not None else None
         )
         threshold = settings.alert_threshold if policy.alert_mode == "threshold" else settings.alert_floor
-        for row in np.flatnonzero(scores.alert):
+        alert_rows = np.flatnonzero(scores.alert)
+        counterparts = Counterparts(snapshot, previous_snapshot)
+        samples = _sample_event_ids(snapshot, current, alert_rows)
+        for row in alert_rows:
             alerts.append(
                 _alert_record(
                     model,
@@ -198,7 +201,8 @@ def compute_window(
                     scores=scores,
                     activity=activity,
                     baseline_events=baseline_events[row],
-                    current=current,
+                    counterparts=counterparts,
+                    sample_ids=samples.get(int(row), []),
                     window=window,
                     threshold=threshold,
                     policy=policy,
@@ -218,6 +222,26 @@ def compute_window(
         inactive_count=inactive_count,
         scored_count=int(np.sum(status == "scored")),
     )
+
+
+def _sample_event_ids(
+    snapshot: Snapshot, current: WindowEvents, rows: np.ndarray, per_account: int = 5
+) -> dict[int, list[str]]:
+    """The first few event ids (in time order) that involve each of ``rows``."""
+    if len(rows) == 0:
+        return {}
+    wanted = np.zeros(snapshot.n_nodes, dtype=bool)
+    wanted[rows] = True
+    actor_rows = snapshot.index_of(current.actor)
+    target_rows = snapshot.index_of(current.target)
+    samples: dict[int, list[str]] = {}
+    for position in np.flatnonzero(wanted[actor_rows] | wanted[target_rows]):
+        for node in (int(actor_rows[position]), int(target_rows[position])):
+            if wanted[node]:
+                found = samples.setdefault(node, [])
+                if len(found) < per_account:
+                    found.append(str(current.event_id[position]))
+    return samples
 
 
 def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> list[dict]:
@@ -243,7 +267,8 @@ def _alert_record(
     scores,
     activity,
     baseline_events,
-    current,
+    counterparts,
+    sample_ids,
     window,
     threshold,
     policy,
@@ -263,8 +288,6 @@ def _alert_record(
                 "events_in_before": int(previous_activity.events_in[previous_row]),
                 "counterparts_before": int(previous_activity.counterparts[previous_row]),
             }
-    involved = (current.actor == account) | (current.target == account)
-    sample_ids = [str(event_id) for event_id in current.event_id[involved][:5]]
     base_url = settings.public_url.rstrip("/")
     from urllib.parse import quote
 
@@ -287,7 +310,7 @@ def _alert_record(
             "new_counterparts": int(activity.new_counterparts[row]),
             **before_counts,
         },
-        "top_counterparts": top_counterparts(snapshot, row, previous_snapshot, top=10),
+        "top_counterparts": counterparts.top(row, top=10),
         "sample_event_ids": sample_ids,
         "history_url": f"{base_url}/v1/accounts/{quote(account, safe='')}/roles",
         "page_url": f"{base_url}/accounts/{quote(account, safe='')}",
