@@ -71,3 +71,6 @@ def configure_logging(level: str = "INFO", *, json_lines: bool = True, stream=No
     logging.getLogger("uvicorn.access").setLevel("WARNING")
     logging.getLogger("apscheduler").setLevel("WARNING")
     logging.getLogger("alembic").setLevel("WARNING")
+    # httpx logs every request's full URL at INFO; webhook URLs often carry a token.
+    logging.getLogger("httpx").setLevel("WARNING")
+    logging.getLogger("httpcore").setLevel("WARNING")
