@@ -1,0 +1,174 @@
+"""Sustained load: ingest and history reads at the same time, through HTTP.
+
+``load``: a real ``rolewatch serve`` (role all: the closer and delivery jobs run too) in a
+subprocess on a loopback port, on a SQLite file that already holds the fixture marketplace
+sample with its ten closed weekly windows. For a fixed time (30 s; 8 s with ``--quick``)
+this process keeps posting batches of new events that continue the marketplace (so windows
+keep closing during the run) from ``ROLEWATCH_BENCH_CLIENTS`` ingest threads (default 2)
+while two more threads read random members' role histories. Prints events/s and the p50/p95
+latencies of both kinds of request, with the machine's core count.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import random
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+CASES = ("load",)
+BATCH = 500
+SAMPLE = Path(__file__).resolve().parents[3] / "fixtures" / "sample" / "events.ndjson"
+
+
+def _percentile(values: list[float], share: float) -> float | None:
+    if not values:
+        return None
+    ordered = sorted(values)
+    return round(ordered[min(len(ordered) - 1, int(share * len(ordered)))], 2)
+
+
+def _prepare(database_url: str) -> tuple[str, str, int, list[str]]:
+    """Store the sample and close its windows; (ingest key, read key, last event time, members)."""
+    from rolewatch.config import load_settings
+    from rolewatch.pipeline.closer import close_due_windows
+    from rolewatch.store.db import open_store
+    from rolewatch.store.events import ingest, parse_time_us
+    from rolewatch.store.keys import create_key
+
+    settings = load_settings(database_url=database_url)
+    engine = open_store(settings)
+    try:
+        with open(SAMPLE, encoding="utf-8") as handle:
+            events = [json.loads(line) for line in handle if line.strip()]
+        now = time.time_ns() // 1000
+        ingest(engine, settings, events, now)
+        close_due_windows(engine, settings, now_us=now)
+        ingest_key = create_key(engine, ["ingest"], label="bench load", now_us=now)[1]
+        read_key = create_key(engine, ["read"], label="bench load", now_us=now)[1]
+    finally:
+        engine.dispose()
+    members = sorted({e["actor"] for e in events} | {e["target"] for e in events})
+    return ingest_key, read_key, max(parse_time_us(e["time"]) for e in events), members
+
+
+def run(case: str, *, quick: bool = False) -> Iterator[dict]:
+    import httpx
+    import orjson
+
+    from rolewatch.bench.ingest import _free_port, _wait_healthy
+
+    if case not in CASES:
+        raise ValueError(f"unknown case {case!r}")
+    duration = 8.0 if quick else 30.0
+    ingest_clients = int(os.environ.get("ROLEWATCH_BENCH_CLIENTS", "2"))
+    with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
+        database_url = f"sqlite:///{Path(tmp) / 'load.db'}"
+        ingest_key, read_key, last_us, members = _prepare(database_url)
+        port = _free_port()
+        url = f"http://127.0.0.1:{port}"
+        env = {k: v for k, v in os.environ.items() if not k.startswith("ROLEWATCH_")}
+        env.update(ROLEWATCH_DATABASE_URL=database_url, ROLEWATCH_LOG_LEVEL="WARNING",
+                   ROLEWATCH_TICK_INTERVAL="2s")
+        process = subprocess.Popen(
+            [sys.executable, "-m", "rolewatch.cli", "serve", "--host", "127.0.0.1", "--port", str(port)],
+            env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+        )
+        ingest_ms: list[float] = []
+        history_ms: list[float] = []
+        errors: list[str] = []
+        accepted = [0]
+        lock = threading.Lock()
+        clock = [last_us // 1_000_000]  # event time in seconds: continues the sample
+        counter = [0]
+        try:
+            _wait_healthy(url, process)
+            stop_at = time.perf_counter() + duration
+
+            def next_body() -> bytes:
+                with lock:
+                    first, counter[0] = counter[0], counter[0] + BATCH
+                    start, clock[0] = clock[0], clock[0] + BATCH * 120  # one event per 2 minutes
+                rng = random.Random(first)
+                events = []
+                for i in range(BATCH):
+                    actor, target = rng.sample(members, 2)
+                    events.append({"id": f"load-{first + i:09d}", "actor": actor, "target": target,
+                                   "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(start + i * 120)),
+                                   "kind": "payment", "weight": round(rng.lognormvariate(3, 1), 2)})
+                return orjson.dumps({"events": events})
+
+            def ingester() -> None:
+                headers = {"Authorization": f"Bearer {ingest_key}", "Content-Type": "application/json"}
+                with httpx.Client(base_url=url, headers=headers, timeout=60) as client:
+                    while time.perf_counter() < stop_at:
+                        body = next_body()
+                        began = time.perf_counter()
+                        response = client.post("/v1/events", content=body)
+                        elapsed = (time.perf_counter() - began) * 1000
+                        with lock:
+                            if response.status_code == 202:
+                                ingest_ms.append(elapsed)
+                                accepted[0] += response.json()["accepted"]
+                            else:
+                                errors.append(f"ingest {response.status_code}")
+
+            def reader(seed: int) -> None:
+                rng = random.Random(seed)
+                headers = {"Authorization": f"Bearer {read_key}"}
+                with httpx.Client(base_url=url, headers=headers, timeout=60) as client:
+                    while time.perf_counter() < stop_at:
+                        began = time.perf_counter()
+                        response = client.get(f"/v1/accounts/{rng.choice(members)}/roles")
+                        elapsed = (time.perf_counter() - began) * 1000
+                        with lock:
+                            if response.status_code == 200:
+                                history_ms.append(elapsed)
+                            else:
+                                errors.append(f"history {response.status_code}")
+
+            started = time.perf_counter()
+            threads = [threading.Thread(target=ingester) for _ in range(ingest_clients)]
+            threads += [threading.Thread(target=reader, args=(seed,)) for seed in range(2)]
+            for thread in threads:
+                thread.start()
+            for thread in threads:
+                thread.join()
+            elapsed = time.perf_counter() - started
+            windows = httpx.get(url + "/v1/windows", headers={"Authorization": f"Bearer {read_key}"},
+                                timeout=60).json()
+        finally:
+            process.terminate()
+            try:
+                process.wait(timeout=60)
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait()
+    closed = windows.get("closed", windows.get("windows", []))
+    yield {
+        "case": case,
+        "cores": os.cpu_count(),
+        "quick": quick,
+        "seconds": round(elapsed, 2),
+        "batch": BATCH,
+        "ingest_clients": ingest_clients,
+        "history_clients": 2,
+        "events_accepted": accepted[0],
+        "ingest_events_per_s": round(accepted[0] / elapsed),
+        "ingest_requests": len(ingest_ms),
+        "ingest_p50_ms": _percentile(ingest_ms, 0.50),
+        "ingest_p95_ms": _percentile(ingest_ms, 0.95),
+        "history_requests": len(history_ms),
+        "history_per_s": round(len(history_ms) / elapsed, 1),
+        "history_p50_ms": _percentile(history_ms, 0.50),
+        "history_p95_ms": _percentile(history_ms, 0.95),
+        "errors": len(errors),
+        "windows_closed_total": len(closed) if isinstance(closed, list) else None,
+        "sqlite_synchronous": "FULL",
+    }
