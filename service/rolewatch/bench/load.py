@@ -84,6 +84,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
         history_ms: list[float] = []
         errors: list[str] = []
         accepted = [0]
+        rejected = [0]
         lock = threading.Lock()
         clock = [last_us // 1_000_000]  # event time in seconds: continues the sample
         counter = [0]
@@ -94,13 +95,13 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
             def next_body() -> bytes:
                 with lock:
                     first, counter[0] = counter[0], counter[0] + BATCH
-                    start, clock[0] = clock[0], clock[0] + BATCH * 120  # one event per 2 minutes
+                    start, clock[0] = clock[0], clock[0] + BATCH * 10  # one event per 10 s of event time
                 rng = random.Random(first)
                 events = []
                 for i in range(BATCH):
                     actor, target = rng.sample(members, 2)
                     events.append({"id": f"load-{first + i:09d}", "actor": actor, "target": target,
-                                   "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(start + i * 120)),
+                                   "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(start + i * 10)),
                                    "kind": "payment", "weight": round(rng.lognormvariate(3, 1), 2)})
                 return orjson.dumps({"events": events})
 
@@ -116,6 +117,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
                             if response.status_code == 202:
                                 ingest_ms.append(elapsed)
                                 accepted[0] += response.json()["accepted"]
+                                rejected[0] += len(response.json()["rejected"])
                             else:
                                 errors.append(f"ingest {response.status_code}")
 
@@ -160,6 +162,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
         "ingest_clients": ingest_clients,
         "history_clients": 2,
         "events_accepted": accepted[0],
+        "events_rejected": rejected[0],
         "ingest_events_per_s": round(accepted[0] / elapsed),
         "ingest_requests": len(ingest_ms),
         "ingest_p50_ms": _percentile(ingest_ms, 0.50),
