@@ -19,7 +19,8 @@ def _case():
 
 def test_statuses_and_threshold_alerts():
     cur, base, a, b, err = _case()
-    out = score_window(cur, base, a, b, err, F, ShiftPolicy(threshold=0.5, min_events=3, calibration="none"))
+    out = score_window(cur, base, a, b, err, F, ShiftPolicy(threshold=0.5, min_events=3, calibration="none",
+                                                          alert_mode="threshold"))
     assert list(out.status) == ["scored", "scored", "new", "low_activity", "inactive"]
     np.testing.assert_allclose(out.score[:2], role_aware_distance(cur[:2], base[:2], F))
     assert np.isnan(out.score[2:]).all()

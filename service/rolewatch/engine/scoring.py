@@ -4,6 +4,13 @@ Given each account's current role mixture (refitted against the frozen RolX basi
 Henderson et al., KDD 2012) and its baseline mixture (role dynamics, Rossi et al.,
 WSDM 2013), :func:`score_window` says which accounts are scored, their shift score and
 which of them raise an alert.  It is pure: arrays in, arrays out.
+
+Mixture distances are noisy for accounts with little activity: a member with one or two
+payments a week can swing between roles by chance, while a busy shop's mixture barely
+moves. Comparing raw distances across accounts therefore ranks quiet accounts first. The
+default ``calibration="stratified"`` turns each raw score into a robust z-score *within
+its activity stratum* (accounts of similar activity in the same window), so a score says
+how unusual the shift is for accounts that active; see :func:`stratified_zscore`.
 """
 
 from __future__ import annotations
@@ -14,10 +21,13 @@ import numpy as np
 
 from .shift import DISTANCES, activity_change, role_aware_distance
 
-__all__ = ["ShiftPolicy", "WindowScores", "score_window", "MEASURES", "STATUSES"]
+__all__ = ["ShiftPolicy", "WindowScores", "score_window", "stratified_zscore", "MEASURES",
+           "STATUSES", "CALIBRATIONS"]
 
 MEASURES = ("role_aware", "hellinger", "jensen_shannon", "total_variation", "cosine")
 STATUSES = ("new", "inactive", "low_activity", "scored")
+CALIBRATIONS = ("stratified", "none")
+MAD_SCALE = 1.4826  # MAD -> standard deviation for normal data (Rousseeuw & Croux 1993, as recalled)
 
 
 @dataclass(frozen=True)
@@ -33,32 +43,49 @@ class ShiftPolicy:
     last_k, half_life :
         Parameters of the ``mean`` and ``ewm`` baselines.
     alert_mode : str
-        ``"threshold"``: alert when score >= ``threshold``.  ``"budget"``: alert on the
-        top ``budget`` share of scored accounts by score, provided score >= ``floor``.
+        ``"threshold"``: alert when score >= ``threshold``.  ``"budget"`` (default): alert
+        on the top ``budget`` share of scored accounts by score, provided score >= ``floor``.
     threshold : float
-        Default 0.3 (common practice, no source; the detection benchmark tunes it).
+        Score an alert needs in threshold mode.  With stratified calibration the score is
+        a robust z-score, and the default 5.0 was chosen by the detection benchmark
+        (docs/detection.md); with ``calibration="none"`` it is a distance in [0, 1].
     budget : float
         Share in (0, 1] of scored accounts that may alert per window in budget mode.
     floor : float
-        Smallest score that may alert in budget mode.
+        Smallest score that may alert in budget mode (default 4.0, a robust z-score;
+        chosen by the detection benchmark, docs/detection.md).
     min_events : float
-        Activity (events) an account needs in both windows to be scored.
+        Activity (events) an account needs in both windows to be scored (default 1:
+        stratified calibration copes with quiet accounts, and a quiet buyer that is taken
+        over has only one or two events in its baseline window).
     magnitude_weight, error_weight : float
         Weights of the activity-change and reconstruction-error components added to the
         composition distance (0 by default: the score is the composition distance).
+    calibration : str
+        ``"stratified"`` (default): the raw score becomes a robust z-score within the
+        window's activity stratum (:func:`stratified_zscore`).  ``"none"``: the raw score.
+    stratum_size : int
+        Fewest scored accounts one activity stratum may hold; thinner strata are merged
+        with the next lower one.
+    min_scale : float
+        Smallest spread (in raw score units) a stratum may have, so a stratum whose
+        accounts all sit still does not turn a tiny move into a huge z-score.
     """
 
     measure: str = "role_aware"
     baseline: str = "previous"
     last_k: int = 4
     half_life: float = 2.0
-    alert_mode: str = "threshold"
-    threshold: float = 0.3
+    alert_mode: str = "budget"
+    threshold: float = 5.0
     budget: float = 0.01
-    floor: float = 0.1
-    min_events: float = 3.0
+    floor: float = 4.0
+    min_events: float = 1.0
     magnitude_weight: float = 0.0
     error_weight: float = 0.0
+    calibration: str = "stratified"
+    stratum_size: int = 25
+    min_scale: float = 0.02
 
     def __post_init__(self) -> None:
         if self.measure not in MEASURES:
@@ -75,6 +102,11 @@ class ShiftPolicy:
             raise ValueError("last_k must be >= 1 and half_life > 0")
         if self.min_events < 0 or self.magnitude_weight < 0 or self.error_weight < 0:
             raise ValueError("min_events and the component weights must be non-negative")
+        if self.calibration not in CALIBRATIONS:
+            raise ValueError(
+                f"unknown calibration {self.calibration!r}; use one of {CALIBRATIONS}")
+        if self.stratum_size < 1 or not self.min_scale > 0:
+            raise ValueError("stratum_size must be >= 1 and min_scale > 0")
 
     def to_dict(self) -> dict:
         """Plain dict (for storing next to the scores it produced)."""
@@ -128,7 +160,10 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
 
     Notes
     -----
-    score = composition + magnitude_weight * magnitude + error_weight * error.
+    raw = composition + magnitude_weight * magnitude + error_weight * error; with
+    ``calibration="stratified"`` the score is :func:`stratified_zscore` of the raw scores
+    of the scored accounts, stratified by ``max(current, baseline)`` activity, and
+    clipped at 0 below (a shift smaller than its stratum's median is no shift at all).
     Budget mode keeps at most ``floor(budget * n_scored)`` accounts (at least one when
     any account is scored and clears the floor), highest scores first, ties by row.
     """
@@ -160,6 +195,10 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
     err_term = np.where(np.isfinite(err), err, 0.0)
     total = comp + policy.magnitude_weight * mag + policy.error_weight * err_term
     score = np.where(scored & np.isfinite(total), total, np.nan)
+    if policy.calibration == "stratified":
+        z = stratified_zscore(score, np.fmax(a, b), stratum_size=policy.stratum_size,
+                              min_scale=policy.min_scale)
+        score = np.where(np.isfinite(z), np.maximum(z, 0.0), np.nan)
     alert = np.zeros(n, dtype=bool)
     finite = np.isfinite(score)
     if policy.alert_mode == "threshold":
@@ -173,3 +212,69 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
         alert[top[score[top] >= policy.floor]] = True
     return WindowScores(score=score, composition=np.where(has_cur & has_base, comp, np.nan),
                         magnitude=mag, error=err, status=status.astype(str), alert=alert)
+
+
+def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:
+    """Group accounts into activity strata of at least ``stratum_size`` members.
+
+    Base strata are powers of two of activity, ``floor(log2(1 + activity))``; going from
+    the busiest stratum down, a stratum joins the next lower one until the group holds
+    ``stratum_size`` valid accounts (a thin remainder at the bottom joins the group above
+    it).  Returns a group id per account, -1 where not ``valid``.
+    """
+    act = np.asarray(activity, dtype=np.float64)
+    valid = np.asarray(valid, dtype=bool) & np.isfinite(act)
+    level = np.full(act.size, -1, dtype=np.int64)
+    level[valid] = np.floor(np.log2(1.0 + np.maximum(act[valid], 0.0))).astype(np.int64)
+    levels, counts = np.unique(level[valid], return_counts=True)
+    group_of_level = np.empty(levels.size, dtype=np.int64)
+    group, filled = 0, 0
+    for position in range(levels.size - 1, -1, -1):  # a loop over strata, not accounts
+        group_of_level[position] = group
+        filled += counts[position]
+        if filled >= stratum_size:
+            group, filled = group + 1, 0
+    if levels.size and 0 < filled < stratum_size and group > 0:
+        group_of_level[group_of_level == group] = group - 1
+    out = np.full(act.size, -1, dtype=np.int64)
+    out[valid] = group_of_level[np.searchsorted(levels, level[valid])]
+    return out
+
+
+def stratified_zscore(score, activity, *, stratum_size: int = 25,
+                      min_scale: float = 0.02) -> np.ndarray:
+    """Robust z-score of each finite score within its activity stratum.
+
+    ``z = (s - median) / max(1.4826 * MAD, min_scale)`` over the finite scores of the
+    stratum (:func:`activity_strata`); the median absolute deviation scaled by 1.4826
+    estimates the standard deviation of normal data (Rousseeuw & Croux, JASA 1993, as
+    recalled; common practice).  Median and MAD are robust, so the few accounts that
+    really shift do not hide themselves by inflating their stratum's spread.
+
+    Parameters
+    ----------
+    score : ndarray, shape (n,)
+        Raw scores; NaN where the account is not scored (stays NaN).
+    activity : ndarray, shape (n,)
+        Activity that sets the stratum (events in the busier of the two windows).
+    stratum_size, min_scale :
+        See :class:`ShiftPolicy`.
+
+    Returns
+    -------
+    ndarray, shape (n,)
+    """
+    s = np.asarray(score, dtype=np.float64).reshape(-1)
+    groups = activity_strata(activity, np.isfinite(s), stratum_size=stratum_size)
+    z = np.full(s.size, np.nan)
+    if not (groups >= 0).any():
+        return z
+    rows = np.flatnonzero(groups >= 0)
+    order = rows[np.argsort(groups[rows], kind="stable")]
+    bounds = np.flatnonzero(np.diff(groups[order])) + 1
+    for members in np.split(order, bounds):  # one pass per stratum
+        values = s[members]
+        centre = np.median(values)
+        spread = MAD_SCALE * np.median(np.abs(values - centre))
+        z[members] = (values - centre) / max(spread, min_scale)
+    return z
