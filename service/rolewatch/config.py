@@ -177,17 +177,19 @@ class Settings(BaseSettings):
         2.0, gt=0, description="Half-life, in windows, of the exponentially weighted baseline."
     )
     alert_mode: Literal["threshold", "budget"] = Field(
-        "threshold",
+        "budget",
         description="threshold: alert when the score reaches alert_threshold; budget: alert on "
-        "the top alert_budget share of scored accounts whose score reaches alert_floor.",
+        "the top alert_budget share of scored accounts whose score reaches alert_floor. "
+        "Scores are robust z-scores within the window's activity stratum "
+        "(docs/detection.md explains the defaults).",
     )
-    alert_threshold: float = Field(0.5, ge=0, description="Score an alert needs (threshold mode).")
+    alert_threshold: float = Field(5.0, ge=0, description="Score an alert needs (threshold mode).")
     alert_budget: float = Field(
         0.01, gt=0, le=1, description="Share of active accounts alerted per window (budget mode)."
     )
-    alert_floor: float = Field(0.2, ge=0, description="Lowest score alerted in budget mode.")
+    alert_floor: float = Field(4.0, ge=0, description="Lowest score alerted in budget mode.")
     min_events: int = Field(
-        3, ge=0, description="Events an account needs in both windows before it is scored."
+        1, ge=0, description="Events an account needs in both windows before it is scored."
     )
 
     # --- delivery ----------------------------------------------------------------------
