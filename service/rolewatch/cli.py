@@ -219,7 +219,7 @@ def cmd_replay(args) -> int:
 
 # --- bench -----------------------------------------------------------------------------------
 
-BENCH_MODULES = ("ingest", "history", "close", "engine_features", "engine_roles", "load")
+BENCH_MODULES = ("ingest", "history", "close", "engine_features", "engine_roles", "load", "detection")
 
 
 def _bench_modules() -> dict[str, object]:
