@@ -8,10 +8,9 @@ See :mod:`rolewatch.scenario.evaluate` for how each figure is counted.
 Cases
 -----
 ``detection``
-    Seeds 0, 1, 2 of the default scenario (3,000 members, 16 weekly windows).
-``detection-small``
-    Seed 7, 400 members, 10 weeks (the committed sample's parameters), for a smoke run;
-    ``--quick`` turns ``detection`` into this one.
+    Seeds 0, 1, 2 of the default scenario (3,000 members, 16 weekly windows). With
+    ``--quick``: seed 7, 400 members, 10 weeks (the committed sample's parameters), for
+    a smoke run (reported as ``detection-small``).
 """
 
 from __future__ import annotations
@@ -20,7 +19,7 @@ import os
 import time
 from collections.abc import Iterator
 
-CASES = ("detection", "detection-small")
+CASES = ("detection",)
 SIZES = {
     "detection": {"seeds": (0, 1, 2), "members": 3000, "weeks": 16},
     "detection-small": {"seeds": (7,), "members": 400, "weeks": 10},
@@ -32,15 +31,15 @@ SETTINGS_SHOWN = ("shift_measure", "shift_baseline", "alert_mode", "alert_thresh
 
 
 def run(case: str, quick: bool = False) -> Iterator[dict]:
-    """Yield one record for ``case`` (``detection`` or ``detection-small``)."""
+    """Yield one record for ``case`` (``detection``; ``quick`` runs the small size)."""
     from rolewatch.config import load_settings
     from rolewatch.scenario.evaluate import evaluate
 
     if case not in CASES:
         raise ValueError(f"unknown detection case {case!r}; choose one of {CASES}")
+    size = SIZES["detection-small" if quick else case]
     if quick:
         case = "detection-small"
-    size = SIZES[case]
     settings = load_settings()
     started = time.perf_counter()
     report = evaluate(settings, seeds=size["seeds"], members=size["members"],
