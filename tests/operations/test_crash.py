@@ -98,7 +98,7 @@ def test_kill_during_window_close_leaves_no_partial_window(store_url, tmp_path):
     settings = dict(tick_interval="1s", idle_close_after="2s", webhook_allow_http=True,
                     webhook_allow_hosts=["127.0.0.1"], delivery_backoff="1s", training_windows=4,
                     delivery_connect_timeout="1s", delivery_timeout="2s", delivery_batch_size=5,
-                    delivery_concurrency=5)
+                    delivery_concurrency=5, alert_mode="budget", alert_budget=0.05, alert_floor=0.0)
     keys = make_keys(store_url)
     engine = open_store(load_settings(database_url=store_url))
     try:  # the sample is stored before the server starts: it finds ten windows due at once

@@ -19,6 +19,10 @@ SETTINGS = {
     "webhook_allow_hosts": ["127.0.0.1"],
     "delivery_backoff": "1s",
     "log_level": "INFO",
+    # Alert on the top 5% of scored accounts each window, so there are many deliveries to check.
+    "alert_mode": "budget",
+    "alert_budget": 0.05,
+    "alert_floor": 0.0,
 }
 DEADLINE_S = 240
 

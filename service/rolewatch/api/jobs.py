@@ -52,7 +52,10 @@ def stop_scheduler(scheduler) -> None:
     from rolewatch.pipeline.closer import SHUTDOWN
 
     SHUTDOWN.set()
-    scheduler.shutdown(wait=True)
+    try:
+        scheduler.shutdown(wait=True)
+    finally:
+        SHUTDOWN.clear()  # direct callers of the closer in this process (tests, replay) go on
 
 
 def start_scheduler(engine, settings):
