@@ -11,6 +11,11 @@ moves. Comparing raw distances across accounts therefore ranks quiet accounts fi
 default ``calibration="stratified"`` turns each raw score into a robust z-score *within
 its activity stratum* (accounts of similar activity in the same window), so a score says
 how unusual the shift is for accounts that active; see :func:`stratified_zscore`.
+
+A role mixture only sees an account's local structure. An account that starts tying two
+communities that never dealt with each other (a *bridge*) keeps its mixture, so the score
+also takes the rise of its bridging z-score (:mod:`rolewatch.engine.bridging`) over its
+baseline window, when the caller passes both, and keeps the larger of the two z-scores.
 """
 
 from __future__ import annotations
@@ -70,6 +75,10 @@ class ShiftPolicy:
     min_scale : float
         Smallest spread (in raw score units) a stratum may have, so a stratum whose
         accounts all sit still does not turn a tiny move into a huge z-score.
+    bridge_communities : int
+        Communities the window graph is split into for the bridging component
+        (:func:`rolewatch.engine.bridging.community_labels`); 0 turns the component off.
+        Default 3 (docs/detection.md: 3 and 4 catch every planted bridge).
     """
 
     measure: str = "role_aware"
@@ -86,6 +95,7 @@ class ShiftPolicy:
     calibration: str = "stratified"
     stratum_size: int = 25
     min_scale: float = 0.02
+    bridge_communities: int = 3
 
     def __post_init__(self) -> None:
         if self.measure not in MEASURES:
@@ -107,6 +117,9 @@ class ShiftPolicy:
                 f"unknown calibration {self.calibration!r}; use one of {CALIBRATIONS}")
         if self.stratum_size < 1 or not self.min_scale > 0:
             raise ValueError("stratum_size must be >= 1 and min_scale > 0")
+        if self.bridge_communities < 0 or self.bridge_communities == 1:
+            raise ValueError(
+                f"bridge_communities must be 0 (off) or >= 2, got {self.bridge_communities}")
 
     def to_dict(self) -> dict:
         """Plain dict (for storing next to the scores it produced)."""
@@ -128,6 +141,8 @@ class WindowScores:
         current mixture; "low_activity": fewer than ``min_events`` in either window;
         "scored")
     alert : bool array
+    bridging : float array, rise of the bridging z-score over the baseline window,
+        clipped at 0 (NaN where not scored or not given)
     """
 
     score: np.ndarray
@@ -136,10 +151,12 @@ class WindowScores:
     error: np.ndarray
     status: np.ndarray
     alert: np.ndarray
+    bridging: np.ndarray | None = None
 
 
 def score_window(current_mixture, baseline_mixture, current_activity, baseline_activity,
-                 current_error, F, policy: ShiftPolicy = ShiftPolicy()) -> WindowScores:
+                 current_error, F, policy: ShiftPolicy = ShiftPolicy(), *,
+                 current_bridging=None, baseline_bridging=None) -> WindowScores:
     """Score every account's role shift in one window and pick the alerts.
 
     Parameters
@@ -153,6 +170,11 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
     F : ndarray, shape (k, f)
         Role profiles (needed for the ``role_aware`` measure).
     policy : ShiftPolicy
+    current_bridging, baseline_bridging : ndarray, shape (n,), optional
+        Bridging z-scores (:func:`rolewatch.engine.bridging.bridging_zscore`) of the
+        current window and of the account's baseline window (NaN where unknown). When
+        both are given and ``calibration="stratified"``, the score of a scored account is
+        ``max(calibrated shift score, current - baseline)``.
 
     Returns
     -------
@@ -164,6 +186,8 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
     ``calibration="stratified"`` the score is :func:`stratified_zscore` of the raw scores
     of the scored accounts, stratified by ``max(current, baseline)`` activity, and
     clipped at 0 below (a shift smaller than its stratum's median is no shift at all).
+    The bridging rise is already a z-score (a Poisson tail within the window), so it is
+    compared with the calibrated shift score as it is, not calibrated again.
     Budget mode keeps at most ``floor(budget * n_scored)`` accounts (at least one when
     any account is scored and clears the floor), highest scores first, ties by row.
     """
@@ -199,6 +223,16 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
         z = stratified_zscore(score, np.fmax(a, b), stratum_size=policy.stratum_size,
                               min_scale=policy.min_scale)
         score = np.where(np.isfinite(z), np.maximum(z, 0.0), np.nan)
+    bridging = np.full(n, np.nan)
+    if current_bridging is not None and baseline_bridging is not None:
+        now = np.asarray(current_bridging, dtype=np.float64).reshape(-1)
+        before = np.asarray(baseline_bridging, dtype=np.float64).reshape(-1)
+        if not (now.size == before.size == n):
+            raise ValueError("bridging arrays need one value per account row")
+        rise = np.maximum(now - before, 0.0)
+        bridging = np.where(scored & np.isfinite(rise), rise, np.nan)
+        if policy.calibration == "stratified":
+            score = np.where(np.isfinite(bridging), np.fmax(score, bridging), score)
     alert = np.zeros(n, dtype=bool)
     finite = np.isfinite(score)
     if policy.alert_mode == "threshold":
@@ -211,7 +245,8 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
         top = idx[np.argsort(-score[idx], kind="stable")][:quota]
         alert[top[score[top] >= policy.floor]] = True
     return WindowScores(score=score, composition=np.where(has_cur & has_base, comp, np.nan),
-                        magnitude=mag, error=err, status=status.astype(str), alert=alert)
+                        magnitude=mag, error=err, status=status.astype(str), alert=alert,
+                        bridging=bridging)
 
 
 def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:

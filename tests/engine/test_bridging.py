@@ -1,0 +1,154 @@
+import networkx as nx
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from scipy.stats import norm
+from sklearn.metrics import adjusted_rand_score
+
+from rolewatch.engine.bridging import (
+    DENSE_BELOW, bridging_zscore, community_labels, undirected_ties)
+from rolewatch.engine.scoring import ShiftPolicy, score_window
+
+
+def _adjacency(graph, nodes=None):
+    return sp.csr_matrix(nx.to_scipy_sparse_array(graph, nodelist=nodes, format="csr",
+                                                  dtype=float))
+
+
+def _planted_truth(graph):
+    labels = np.empty(graph.number_of_nodes(), dtype=int)
+    for block, members in enumerate(graph.graph["partition"]):
+        labels[list(members)] = block
+    return labels
+
+
+@pytest.mark.parametrize("size", [30, 120])  # dense eigensolver below DENSE_BELOW, eigsh above
+def test_communities_recover_networkx_planted_partition(size):
+    # Reference: networkx planted_partition_graph (Condon & Karp's planted l-partition
+    # model) records the blocks it planted; networkx's Louvain (Blondel et al. 2008) must
+    # agree with them too, so the graph really has these communities.
+    graph = nx.planted_partition_graph(3, size, 0.3, 0.01, seed=7)
+    truth = _planted_truth(graph)
+    labels = community_labels(_adjacency(graph), 3)
+    louvain = np.empty_like(truth)
+    for block, members in enumerate(nx.community.louvain_communities(graph, seed=1)):
+        louvain[list(members)] = block
+    assert (3 * size < DENSE_BELOW) == (size == 30)
+    assert adjusted_rand_score(truth, louvain) > 0.95
+    assert adjusted_rand_score(truth, labels) > 0.95
+
+
+def test_communities_of_ring_of_cliques():
+    # networkx ring_of_cliques(4, 6): four 6-cliques joined in a ring by single edges;
+    # the cliques are the communities (hand-checked: modularity is highest for them).
+    graph = nx.ring_of_cliques(4, 6)
+    labels = community_labels(_adjacency(graph), 4)
+    truth = np.repeat(np.arange(4), 6)
+    assert adjusted_rand_score(truth, labels) == 1.0
+
+
+def test_communities_small_cases():
+    assert community_labels(sp.csr_matrix((2, 2)), 3).tolist() == [0, 0]
+    assert community_labels(sp.csr_matrix((5, 5)), 1).tolist() == [0] * 5
+    with pytest.raises(ValueError, match="n_communities"):
+        community_labels(sp.csr_matrix((5, 5)), 0)
+
+
+def test_undirected_ties_symmetric_log_counts():
+    counts = sp.csr_matrix(np.array([[0, 2, 0], [1, 0, 0], [0, 0, 0]], dtype=float))
+    ties = undirected_ties(counts).toarray()
+    np.testing.assert_allclose(ties, np.log1p(np.array([[0, 3, 0], [3, 0, 0], [0, 0, 0]])))
+    with pytest.raises(ValueError, match="square"):
+        undirected_ties(sp.csr_matrix((2, 3)))
+
+
+def test_bridging_zscore_hand_worked():
+    # Two 5-cliques a0..a4 (community 0) and b0..b4 (community 1); a0 also ties to b0 and
+    # b1. Worked by hand from the definition:
+    # a0: 4 counterparts in its home 0, 2 in community 1, degree 6. Everybody else's ties
+    #   from home 0: 16 inside, 0 across, so P(1 | 0) = (0 + 1) / (16 + 2) = 1/18, the
+    #   expected count 6/18 = 1/3 and P[X >= 2] = 1 - e^(-1/3) (1 + 1/3) = 0.044625...
+    # b0 (and b1): home 1 with 4 ties, 1 tie to a0. Others from home 1: 16 inside, 1 across
+    #   (b1's or b0's tie to a0), so P(0 | 1) = 2/19, expected 5 * 2/19, P[X >= 1] =
+    #   1 - e^(-10/19).
+    # Normal quantiles from scipy.stats.norm (reference implementation).
+    graph = nx.disjoint_union(nx.complete_graph(5), nx.complete_graph(5))
+    graph.add_edges_from([(0, 5), (0, 6)])
+    labels = np.repeat([0, 1], 5)
+    z = bridging_zscore(_adjacency(graph), labels)
+    tail_a0 = 1 - np.exp(-1 / 3) * (1 + 1 / 3)
+    tail_b = 1 - np.exp(-10 / 19)
+    assert tail_a0 == pytest.approx(0.044625, abs=1e-6)
+    assert z[0] == pytest.approx(norm.isf(tail_a0), rel=1e-9)
+    assert z[5] == pytest.approx(norm.isf(tail_b), rel=1e-9)
+    assert z[6] == pytest.approx(z[5])
+    np.testing.assert_array_equal(z[[1, 2, 3, 4, 7, 8, 9]], 0.0)
+
+
+def test_bridging_zscore_isolated_and_shape_errors():
+    z = bridging_zscore(sp.csr_matrix((3, 3)), np.zeros(3, dtype=int))
+    assert np.isnan(z).all()
+    with pytest.raises(ValueError, match="one entry per node"):
+        bridging_zscore(sp.csr_matrix((3, 3)), np.zeros(2, dtype=int))
+
+
+def test_bridge_between_never_connected_groups_stands_out():
+    # Three planted groups in a chain (0-1 and 1-2 trade a little, 0 and 2 never), built
+    # with networkx's stochastic_block_model; one extra node ties to ten members of group 0
+    # and ten of group 2: a local bridge across a structural hole (Granovetter 1973; Burt
+    # 1992; both as recalled).
+    sizes = [80, 80, 80]
+    p = [[0.15, 0.01, 0.0], [0.01, 0.15, 0.01], [0.0, 0.01, 0.15]]
+    graph = nx.stochastic_block_model(sizes, p, seed=3)
+    bridge = graph.number_of_nodes()
+    graph.add_edges_from((bridge, j) for j in list(range(10)) + list(range(160, 170)))
+    A = _adjacency(graph)
+    z = bridging_zscore(A, community_labels(A, 3))
+    assert np.argmax(z) == bridge and z[bridge] > 5
+    assert np.sort(z)[-2] < 4
+
+
+def _case(n=60):
+    rng = np.random.default_rng(1)
+    cur = rng.dirichlet(np.ones(3), n)
+    base = cur.copy()
+    act = rng.integers(1, 40, n).astype(float)
+    return cur, base, act
+
+
+F = np.eye(3)
+
+
+def test_score_takes_the_larger_of_shift_and_bridging_rise():
+    cur, base, act = _case()
+    plain = score_window(cur, base, act, act, np.zeros(len(act)), F, ShiftPolicy())
+    before = np.zeros(len(act))
+    now = before.copy()
+    now[5] = 7.5
+    now[6] = 2.0
+    out = score_window(cur, base, act, act, np.zeros(len(act)), F, ShiftPolicy(),
+                       current_bridging=now, baseline_bridging=before)
+    assert out.score[5] == pytest.approx(7.5) and out.alert[5]
+    assert out.score[6] == pytest.approx(max(plain.score[6], 2.0))
+    assert out.bridging[5] == pytest.approx(7.5) and out.bridging[0] == 0.0
+    assert plain.bridging is not None and np.isnan(plain.bridging).all()
+    np.testing.assert_allclose(np.delete(out.score, [5, 6]), np.delete(plain.score, [5, 6]))
+    # a drop in bridging is no shift; an unknown baseline leaves the shift score alone
+    before[7], now[8], before[8] = 9.0, 9.0, np.nan
+    out = score_window(cur, base, act, act, np.zeros(len(act)), F, ShiftPolicy(),
+                       current_bridging=now, baseline_bridging=before)
+    assert out.score[7] == plain.score[7] and out.score[8] == plain.score[8]
+    raw = score_window(cur, base, act, act, np.zeros(len(act)), F,
+                       ShiftPolicy(calibration="none"), current_bridging=now,
+                       baseline_bridging=before)
+    assert not raw.alert[5]  # a raw distance is no z-score: bridging is not mixed in
+    with pytest.raises(ValueError, match="bridging"):
+        score_window(cur, base, act, act, np.zeros(len(act)), F, ShiftPolicy(),
+                     current_bridging=now[:3], baseline_bridging=before[:3])
+
+
+def test_policy_bridge_communities():
+    assert ShiftPolicy().bridge_communities == 3
+    assert ShiftPolicy(bridge_communities=0).bridge_communities == 0
+    with pytest.raises(ValueError, match="bridge_communities"):
+        ShiftPolicy(bridge_communities=1)
