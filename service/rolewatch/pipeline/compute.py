@@ -11,6 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from rolewatch.engine.activity import Activity, Counterparts, activity_counts
+from rolewatch.engine.bridging import bridging_zscore, community_labels, undirected_ties
 from rolewatch.engine.scoring import ShiftPolicy, score_window
 from rolewatch.engine.shift import baseline_mixture, feature_moves
 from rolewatch.engine.snapshot import Snapshot
@@ -95,6 +96,26 @@ def history_tensor(snapshot: Snapshot, past: list[PastWindow], n_roles: int):
     return mixtures, events
 
 
+def window_bridging(snapshot: Snapshot | None, n_communities: int) -> np.ndarray | None:
+    """Bridging z-score of every node of ``snapshot`` (None when off or no snapshot)."""
+    if n_communities == 0 or snapshot is None or snapshot.n_nodes == 0:
+        return None
+    ties = undirected_ties(snapshot.counts)
+    return bridging_zscore(ties, community_labels(ties, n_communities))
+
+
+def bridging_inputs(snapshot: Snapshot, previous: Snapshot | None, n_communities: int):
+    """(current, baseline) bridging z-scores in ``snapshot``'s node order; the baseline is
+    the previous window's value, NaN for accounts absent from it. (None, None) when off."""
+    current = window_bridging(snapshot, n_communities)
+    before = window_bridging(previous, n_communities)
+    if current is None or before is None:
+        return None, None
+    rows = previous.index_of(snapshot.nodes)
+    baseline = np.where(rows >= 0, before[np.maximum(rows, 0)], np.nan)
+    return current, baseline
+
+
 def _latest_events(events_history: np.ndarray) -> np.ndarray:
     """Each node's event count in its most recent active past window (NaN when none)."""
     latest = np.full(events_history.shape[1], np.nan)
@@ -155,6 +176,8 @@ def compute_window(
     else:
         baseline = np.full((n, k), np.nan)
     baseline_events = _latest_events(events_history)
+    current_bridging, baseline_bridging = bridging_inputs(
+        snapshot, previous_snapshot, policy.bridge_communities)
     scores = score_window(
         members.mixture,
         baseline,
@@ -163,6 +186,8 @@ def compute_window(
         members.error,
         model.basis.F,
         policy,
+        current_bridging=current_bridging,
+        baseline_bridging=baseline_bridging,
     )
     dominant = role_ids[np.argmax(members.mixture, axis=1)]
     status = np.asarray(scores.status, dtype=object)
@@ -299,6 +324,7 @@ def _alert_record(
             "composition": _finite(scores.composition[row]),
             "magnitude": _finite(scores.magnitude[row]),
             "error": _finite(scores.error[row]),
+            "bridging": _finite(scores.bridging[row]) if scores.bridging is not None else None,
         },
         "mixture_before": _mixture_list(model, np.nan_to_num(baseline)),
         "mixture_after": _mixture_list(model, mixture),
