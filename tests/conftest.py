@@ -33,6 +33,8 @@ def store_url(request, tmp_path):
         yield f"sqlite:///{tmp_path / 'rolewatch.db'}"
         return
     if not POSTGRES_URL:
+        if os.environ.get("ROLEWATCH_REQUIRE_POSTGRES"):
+            pytest.fail("ROLEWATCH_REQUIRE_POSTGRES is set but ROLEWATCH_TEST_POSTGRES_URL is not")
         pytest.skip(SKIP_POSTGRES)
     schema = f"t_{uuid.uuid4().hex[:12]}"
     admin = sa.create_engine(POSTGRES_URL)

@@ -1,20 +1,17 @@
-"""Stores for pipeline tests: a real SQLite file, and the real PostgreSQL when configured."""
+"""Pipeline test helpers: the fixture sample and settings for the shared ``store_url``
+(tests/conftest.py: a real SQLite file, and the real PostgreSQL when configured)."""
 
 from __future__ import annotations
 
 import json
-import os
-import uuid
 from pathlib import Path
 
 import pytest
-import sqlalchemy as sa
 
 from rolewatch.config import load_settings
 from rolewatch.store.db import open_store
 
 SAMPLE = Path(__file__).resolve().parents[2] / "fixtures" / "sample"
-POSTGRES_URL = os.environ.get("ROLEWATCH_TEST_POSTGRES_URL")
 
 
 def sample_events() -> list[dict]:
@@ -24,27 +21,6 @@ def sample_events() -> list[dict]:
 
 def sample_truth() -> dict:
     return json.loads((SAMPLE / "truth.json").read_text(encoding="utf-8"))
-
-
-@pytest.fixture(params=["sqlite", "postgres"])
-def store_url(request, tmp_path):
-    """A database URL for an empty store; PostgreSQL gets a schema of its own per test."""
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'rolewatch.db'}"
-        return
-    if not POSTGRES_URL:
-        if os.environ.get("ROLEWATCH_REQUIRE_POSTGRES"):
-            pytest.fail("ROLEWATCH_REQUIRE_POSTGRES is set but ROLEWATCH_TEST_POSTGRES_URL is not")
-        pytest.skip("PostgreSQL tests need ROLEWATCH_TEST_POSTGRES_URL (CI sets it)")
-    schema = f"t_{uuid.uuid4().hex[:12]}"
-    admin = sa.create_engine(POSTGRES_URL)
-    with admin.begin() as connection:
-        connection.exec_driver_sql(f'CREATE SCHEMA "{schema}"')
-    separator = "&" if "?" in POSTGRES_URL else "?"
-    yield f"{POSTGRES_URL}{separator}options=-csearch_path%3D{schema}"
-    with admin.begin() as connection:
-        connection.exec_driver_sql(f'DROP SCHEMA "{schema}" CASCADE')
-    admin.dispose()
 
 
 @pytest.fixture

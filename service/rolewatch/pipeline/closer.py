@@ -34,12 +34,12 @@ from rolewatch.pipeline.windows import (
     now_micros,
     to_rfc3339,
 )
-from rolewatch.store.db import lock_windows, write_transaction
+from rolewatch.store.db import lock_windows, store_lock_key, write_transaction
 from rolewatch.store.schema import alerts, events, memberships, service_state, windows
 
 log = logging.getLogger("rolewatch.pipeline")
 
-CLOSER_LOCK_KEY = 0x726F6C6577  # "rolew": the PostgreSQL advisory lock id of the closer
+CLOSER_LOCK_ID = 0x7277_636C  # "rwcl": the closer's advisory lock id within this store
 MAX_RECOMPUTES = 5
 # Set when the service shuts down: the closer finishes the window it is writing and stops
 # before the next one (api/jobs.py sets it; start_scheduler clears it).
@@ -78,16 +78,16 @@ def closer_lock(engine: Engine) -> Iterator[bool]:
         yield True
         return
     with engine.connect() as connection:
-        got = connection.execute(
-            sa.text("SELECT pg_try_advisory_lock(:key)"), {"key": CLOSER_LOCK_KEY}
+        got = connection.exec_driver_sql(
+            f"SELECT pg_try_advisory_lock({store_lock_key(CLOSER_LOCK_ID)})"
         ).scalar()
         connection.commit()
         try:
             yield bool(got)
         finally:
             if got:
-                connection.execute(
-                    sa.text("SELECT pg_advisory_unlock(:key)"), {"key": CLOSER_LOCK_KEY}
+                connection.exec_driver_sql(
+                    f"SELECT pg_advisory_unlock({store_lock_key(CLOSER_LOCK_ID)})"
                 )
                 connection.commit()
 
@@ -175,9 +175,7 @@ def _close_once(engine: Engine, settings, end_us: int, now_us: int) -> list[dict
     )
     seconds = time.perf_counter() - started
     with write_transaction(engine) as connection:
-        lock_windows(connection, exclusive=True)
-        _check_still_open(connection, end_us)
-        _check_unchanged(connection, start_us, end_us, len(current))
+        _claim_window(connection, start_us, end_us, len(current))
         window_id = _insert_window(
             connection,
             start_us=start_us,
@@ -208,6 +206,14 @@ def _training_windows(connection: Connection) -> list:
         .where(windows.c.training, windows.c.basis_version.is_(None))
         .order_by(windows.c.end_us)
     ).all()
+
+
+def _claim_window(connection: Connection, start_us: int, end_us: int, loaded: int) -> None:
+    """Inside the window's write transaction: order it against ingest, then make sure the
+    window is still open and holds exactly the events that were computed on."""
+    lock_windows(connection, exclusive=True)
+    _check_still_open(connection, end_us)
+    _check_unchanged(connection, start_us, end_us, loaded)
 
 
 def _check_still_open(connection: Connection, end_us: int) -> None:
@@ -244,8 +250,7 @@ def _close_training(
     start_us = geometry.start_of(end_us)
     if len(training) + 1 < settings.training_windows:
         with write_transaction(engine) as connection:
-            _check_still_open(connection, end_us)
-            _check_unchanged(connection, start_us, end_us, len(current))
+            _claim_window(connection, start_us, end_us, len(current))
             window_id = _insert_window(
                 connection,
                 start_us=start_us,
@@ -296,9 +301,7 @@ def _close_training(
         previous = window_events
     summaries = []
     with write_transaction(engine) as connection:
-        lock_windows(connection, exclusive=True)
-        _check_still_open(connection, end_us)
-        _check_unchanged(connection, start_us, end_us, len(current))
+        _claim_window(connection, start_us, end_us, len(current))
         store_model(
             connection,
             model,

@@ -81,6 +81,15 @@ _MIGRATION_LOCK_ID = 0x7277_7363
 _WINDOW_LOCK_ID = 0x7277_7769
 
 
+def store_lock_key(lock_id: int) -> str:
+    """SQL arguments of a PostgreSQL advisory lock that belongs to this store only.
+
+    The two-key form ``(hash of database and schema, lock_id)``: two rolewatch stores in one
+    PostgreSQL server (different databases or schemas) never wait for each other's locks.
+    """
+    return f"hashtext(current_database() || '.' || current_schema()), {int(lock_id)}"
+
+
 def lock_windows(connection: Connection, *, exclusive: bool) -> None:
     """Order event ingest against window closing, until the transaction ends.
 
@@ -93,7 +102,7 @@ def lock_windows(connection: Connection, *, exclusive: bool) -> None:
     if connection.dialect.name != "postgresql":
         return
     function = "pg_advisory_xact_lock" if exclusive else "pg_advisory_xact_lock_shared"
-    connection.exec_driver_sql(f"SELECT {function}({_WINDOW_LOCK_ID})")
+    connection.exec_driver_sql(f"SELECT {function}({store_lock_key(_WINDOW_LOCK_ID)})")
 
 
 def alembic_config(connection: Connection | None = None):
@@ -128,14 +137,14 @@ def upgrade_to_head(engine: Engine) -> None:
             # commit instead of failing when both read "no version" and then both write.
             connection.execution_options(rolewatch_write=True)
         if postgres:
-            connection.exec_driver_sql(f"SELECT pg_advisory_lock({_MIGRATION_LOCK_ID})")
+            connection.exec_driver_sql(f"SELECT pg_advisory_lock({store_lock_key(_MIGRATION_LOCK_ID)})")
             connection.commit()
         try:
             command.upgrade(alembic_config(connection), "head")
             connection.commit()
         finally:
             if postgres:
-                connection.exec_driver_sql(f"SELECT pg_advisory_unlock({_MIGRATION_LOCK_ID})")
+                connection.exec_driver_sql(f"SELECT pg_advisory_unlock({store_lock_key(_MIGRATION_LOCK_ID)})")
                 connection.commit()
 
 
