@@ -229,7 +229,8 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
         before = np.asarray(baseline_bridging, dtype=np.float64).reshape(-1)
         if not (now.size == before.size == n):
             raise ValueError("bridging arrays need one value per account row")
-        rise = np.maximum(now - before, 0.0)
+        with np.errstate(invalid="ignore"):  # inf - inf: no finite rise, dropped below
+            rise = np.maximum(now - before, 0.0)
         bridging = np.where(scored & np.isfinite(rise), rise, np.nan)
         if policy.calibration == "stratified":
             score = np.where(np.isfinite(bridging), np.fmax(score, bridging), score)
