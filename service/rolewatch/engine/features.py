@@ -382,21 +382,42 @@ def bin_edges(values: np.ndarray, fraction: float = 0.5) -> np.ndarray:
     return np.asarray(cuts[:-1], dtype=np.float64)
 
 
-def apply_bins(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
+def apply_bins(values: np.ndarray, edges: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     """Bin index ``#{edges e : e < x}`` of every value, as float64.
 
     ``x`` within a relative ``1e-9`` of an edge counts as equal to it (stays in that bin).
+
+    Parameters
+    ----------
+    values : numpy.ndarray
+        Raw feature values.
+    edges : numpy.ndarray
+        Increasing bin edges from :func:`bin_edges`.
+    out : numpy.ndarray, optional
+        float64 array shaped like ``values`` (e.g. a column of a feature table) to write
+        the bins into, so that no float64 temporary is allocated.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``out`` when given, else a new float64 array.
     """
     edges = np.asarray(edges, dtype=np.float64)
     upper = edges + _tie_slack(edges)
     values = np.asarray(values, dtype=np.float64)
+    if out is None:
+        out = np.empty(values.shape, dtype=np.float64)
     if upper.size > 64:
-        return np.searchsorted(upper, values, side="left").astype(np.float64)
+        out[...] = np.searchsorted(upper, values, side="left")
+        return out
     # a few comparisons beat a branchy binary search per value
     bins = np.zeros(values.shape, dtype=np.uint8)
+    above = np.empty(values.shape, dtype=bool)
     for edge in upper:
-        bins += values > edge
-    return bins.astype(np.float64)
+        np.greater(values, edge, out=above)
+        bins += above
+    out[...] = bins
+    return out
 
 
 def prune_agreeing(binned: np.ndarray, tolerance: float = 0.0, *, n_fixed: int = 0) -> np.ndarray:
@@ -525,7 +546,9 @@ def _compute(graph: _Graph, defs: Sequence[_Def]) -> np.ndarray:
 
     ``defs`` must hold every ancestor of its recursive features (a recipe always does).
     Features are evaluated round by round, each straight into its output column from
-    its parent's column (both contiguous in the Fortran-ordered matrix).
+    its parent's column (both contiguous in the Fortran-ordered matrix); a sum and a mean
+    over the same neighbours of the same parent share one sparse product
+    (:func:`_aggregate_layer`).
     """
     index = {d.name: j for j, d in enumerate(defs)}
     missing = [d.parent for d in defs if d.parent is not None and d.parent not in index]
@@ -538,9 +561,32 @@ def _compute(graph: _Graph, defs: Sequence[_Def]) -> np.ndarray:
             for d in layer:
                 out[:, index[d.name]] = graph.base(d.op)
             continue
-        for d in layer:
-            graph.aggregate_into(d.op, out[:, index[d.parent]], out[:, index[d.name]])
+        _aggregate_layer(graph, layer, index, out)
     return out
+
+
+def _aggregate_layer(graph: _Graph, layer: Sequence[_Def], index: dict[str, int], out: np.ndarray) -> None:
+    """Fill the columns of one recursive round of ReFeX (Henderson et al., KDD 2011).
+
+    ``sum_d(p)`` and ``mean_d(p)`` need the same neighbour sum ``M_d @ p``: it is
+    computed once per (direction, parent) into the first of their output columns, and the
+    mean is that sum scaled by ``1 / degree`` (the same operations, in the same order, as
+    :meth:`_Graph.aggregate_into`, so the values are bit for bit the same). One sparse
+    matrix-vector product per column is faster than a product with a block of columns
+    here, which also needs the columns gathered and scattered.
+    """
+    if graph.n == 0:
+        return
+    # (direction, parent column) -> {"sum" / "mean": output column}
+    targets: dict[tuple[str, int], dict[str, int]] = {}
+    for d in layer:
+        kind, direction = d.op.split("_")
+        targets.setdefault((direction, index[d.parent]), {})[kind] = index[d.name]
+    for (direction, parent), cols in targets.items():
+        first = cols.get("sum", cols.get("mean"))
+        out[:, first] = graph.adjacency_of(direction) @ out[:, parent]
+        if "mean" in cols:
+            np.multiply(out[:, first], graph.inverse_degree(direction), out=out[:, cols["mean"]])
 
 
 def _parse(name: str) -> _Def:
@@ -795,7 +841,7 @@ class FeatureRecipe:
         binned = np.empty_like(raw, order="F")
         for j in range(raw.shape[1]):
             e = self._edges[j] if mode == "frozen" else bin_edges(raw[:, j], self.bin_fraction)
-            binned[:, j] = apply_bins(raw[:, j], e)
+            apply_bins(raw[:, j], e, out=binned[:, j])
         return FeatureTable(
             nodes=snapshot.nodes,
             names=self.names,
