@@ -70,7 +70,19 @@ def configure_logging(level: str = "INFO", *, json_lines: bool = True, stream=No
     # Access lines repeat what the request log below says; keep them at WARNING.
     logging.getLogger("uvicorn.access").setLevel("WARNING")
     logging.getLogger("apscheduler").setLevel("WARNING")
+    # A window close often outlasts one tick; the scheduler then skips that tick's run, which
+    # is the intended behaviour (max_instances=1), not something to warn about every second.
+    scheduler_log = logging.getLogger("apscheduler.scheduler")
+    if not any(isinstance(f, _SkippedRunFilter) for f in scheduler_log.filters):
+        scheduler_log.addFilter(_SkippedRunFilter())
     logging.getLogger("alembic").setLevel("WARNING")
     # httpx logs every request's full URL at INFO; webhook URLs often carry a token.
     logging.getLogger("httpx").setLevel("WARNING")
     logging.getLogger("httpcore").setLevel("WARNING")
+
+
+class _SkippedRunFilter(logging.Filter):
+    """Drop APScheduler's "skipped: maximum number of running instances reached" lines."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return "maximum number of running instances reached" not in record.getMessage()
