@@ -179,3 +179,37 @@ def test_a_crash_mid_close_leaves_no_partial_window_and_the_next_tick_redoes_it(
             sa.select(sa.func.count()).select_from(memberships).where(memberships.c.window_id == redone[0]["id"])
         ).scalar_one()
     assert count == redone[0]["accounts"] > 0
+
+
+def test_refit_on_a_named_period_keeps_persisting_role_ids_and_their_names(store):
+    from rolewatch.pipeline.lifecycle import RefitError, refit_basis
+    from rolewatch.pipeline.model import load_active_model
+    from rolewatch.store.queries import rename_role
+
+    engine, settings = store
+    with pytest.raises(RefitError, match="no basis has been trained yet"):
+        refit_basis(engine, settings, 0, NOW, now_us=NOW)
+    ingest(engine, settings, sample_events(), NOW)
+    close_due_windows(engine, settings, now_us=NOW, drain=True)
+    with engine.connect() as connection:
+        before = load_active_model(connection)
+        ends = connection.execute(sa.select(windows.c.start_us, windows.c.end_us).order_by(windows.c.end_us)).all()
+    for info in before.roles:  # an operator names every role
+        rename_role(engine, info.role_id, f"desk name {info.role_id}")
+    with pytest.raises(RefitError, match="no closed window"):
+        refit_basis(engine, settings, NOW, NOW + 1, now_us=NOW)
+    summary = refit_basis(engine, settings, ends[4].start_us, ends[-1].end_us, now_us=NOW)
+    with engine.connect() as connection:
+        after = load_active_model(connection)
+    assert summary["basis_version"] == after.basis.version != before.basis.version
+    assert summary["windows"] == len(ends) - 4
+    assert summary["roles_kept"], "no role persisted across the refit"
+    assert set(summary["roles_kept"]) | set(summary["roles_added"]) == set(after.basis.role_ids)
+    for role_id in summary["roles_kept"]:
+        assert after.role_name(role_id) == f"desk name {role_id}"
+    for role_id in summary["roles_added"]:
+        assert not after.role_name(role_id).startswith("desk name")
+    # the stored history keeps the basis version each window was measured with
+    with engine.connect() as connection:
+        versions = set(connection.execute(sa.select(memberships.c.basis_version).distinct()).scalars())
+    assert versions == {before.basis.version}
