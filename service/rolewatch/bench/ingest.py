@@ -19,6 +19,7 @@ import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
+from rolewatch.bench import stop_server
 
 CASES = ("ingest-http",)
 TARGET_EVENTS_PER_S = 20_000
@@ -157,12 +158,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
             _post_all(url, key, bodies[:warm], clients)
             http_seconds = _post_all(url, key, bodies[warm:], clients)
         finally:
-            process.terminate()
-            try:
-                process.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait()
+            stop_server(process, timeout=30)
         timed = total - warm * BATCH
 
         rows = [(e["id"], parse_time_us(e["time"]), e["actor"], e["target"], e["kind"], e["weight"])

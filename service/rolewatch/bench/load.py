@@ -21,6 +21,7 @@ import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
+from rolewatch.bench import stop_server
 
 CASES = ("load",)
 BATCH = 500
@@ -146,12 +147,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
             windows = httpx.get(url + "/v1/windows", headers={"Authorization": f"Bearer {read_key}"},
                                 timeout=60).json()
         finally:
-            process.terminate()
-            try:
-                process.wait(timeout=60)
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait()
+            stop_server(process, timeout=60)
     closed = windows.get("closed", windows.get("windows", []))
     yield {
         "case": case,
