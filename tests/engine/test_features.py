@@ -9,7 +9,9 @@ from rolewatch.engine import FeatureRecipe, FeatureTable, Snapshot
 from rolewatch.engine.features import (
     BASE_FEATURES,
     apply_bins,
+    bin_dtype,
     bin_edges,
+    max_bins,
     prune_agreeing,
     triangles_per_node,
 )
@@ -56,6 +58,41 @@ def test_constant_and_empty_columns_bin_to_zero():
     assert bin_edges(np.zeros(7)).size == 0
     assert apply_bins(np.zeros(7), bin_edges(np.zeros(7))).tolist() == [0] * 7
     assert bin_edges(np.zeros(0)).size == 0
+
+
+@pytest.mark.parametrize("fraction", [0.5, 0.2, 0.05, 0.01])
+@pytest.mark.parametrize("n", [1, 2, 3, 10, 1000, 20000])
+def test_bin_count_never_exceeds_the_bound_that_sizes_the_bin_dtype(n, fraction):
+    # Distinct values are the worst case (no ties to merge bins); the bound is derived
+    # in max_bins' docstring from the binning rule (Henderson et al., KDD 2011).
+    values = np.random.default_rng(n).permutation(n).astype(float)
+    edges = bin_edges(values, fraction)
+    assert edges.size + 1 <= max_bins(n, fraction)
+    bins = apply_bins(values, edges)
+    assert bins.dtype == bin_dtype(edges.size + 1)
+    assert bins.max(initial=0) == edges.size
+
+
+def test_many_bins_use_a_wider_dtype_and_keep_their_values():
+    # 2000 distinct values at p = 0.01 make more than 256 bins, which uint8 cannot hold.
+    values = np.arange(2000, dtype=float)
+    edges = bin_edges(values, 0.01)
+    assert edges.size + 1 > 256
+    bins = apply_bins(values, edges)
+    assert bins.dtype == np.uint16
+    np.testing.assert_array_equal(bins, np.searchsorted(edges, values, side="left"))
+    with pytest.raises(ValueError, match="do not fit in uint8"):
+        apply_bins(values, edges, out=np.empty(values.size, dtype=np.uint8))
+
+
+def test_transform_keeps_bins_compact_and_equal_to_float_binning():
+    snap = random_snapshot(4)
+    recipe = FeatureRecipe.discover([snap], max_rounds=2, **UNPRUNED)
+    table = recipe.transform(snap)
+    assert table.binned.dtype == np.uint8
+    for j, name in enumerate(recipe.names):
+        floats = apply_bins(table.raw[:, j], recipe.edges[name], out=np.empty(snap.n_nodes))
+        np.testing.assert_array_equal(table.binned[:, j], floats)
 
 
 # ------------------------------------------------------------------ pruning

@@ -62,3 +62,26 @@ def test_basis_fit_no_worse_than_sklearn_nmf():
         nmf = NMF(n_components=k, random_state=0, max_iter=500)
         theirs = np.linalg.norm(V - nmf.fit_transform(V) @ nmf.components_)
         assert ours <= theirs * (1 + 1e-6)
+
+
+def test_memberships_of_compact_bins_equal_scipy_nnls_across_row_blocks():
+    # Source: scipy.optimize.nnls on sampled rows. A feature table holds its bins as uint8
+    # and memberships work through it in row blocks (40,000 rows is three blocks); the
+    # result must not depend on either.
+    rng = np.random.default_rng(11)
+    k, f, n = 6, 30, 40_000
+    F = rng.gamma(0.5, 1.0, (k, f))
+    bins = np.minimum(rng.poisson(rng.gamma(1.0, 2.0, (n, 1)), (n, f)), 30).astype(np.uint8)
+    basis = RoleBasis(F=F / F.sum(1, keepdims=True), role_ids=range(k),
+                      feature_names=[f"x{j}" for j in range(f)], recipe_version=None)
+    compact = basis.memberships(bins)
+    floats = basis.memberships(bins.astype(np.float64))
+    np.testing.assert_allclose(compact.loadings, floats.loadings, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(compact.error, floats.error, rtol=1e-12, atol=1e-12)
+    sample = rng.choice(n, 300, replace=False)
+    ref = np.array([nnls(basis.F.T, bins[i].astype(float))[0] for i in sample])
+    np.testing.assert_allclose(compact.loadings[sample], ref, atol=1e-9)
+    resid = np.array([nnls(basis.F.T, bins[i].astype(float))[1] for i in sample])
+    norms = np.linalg.norm(bins[sample].astype(float), axis=1)
+    expected = np.divide(resid, norms, out=np.zeros_like(resid), where=norms > 0)  # 0 for an all-zero row
+    np.testing.assert_allclose(compact.error[sample], expected, rtol=1e-9, atol=1e-12)

@@ -24,7 +24,7 @@ from sklearn.decomposition import NMF
 from sklearn.exceptions import ConvergenceWarning
 
 from .errors import EngineInputError, FeatureMismatch, RecipeMismatch, TooManyRoles
-from .nnls import nnls_rows
+from .nnls import nnls_normal
 
 __all__ = [
     "Memberships",
@@ -65,12 +65,16 @@ class Memberships:
 # ---------------------------------------------------------------------------
 
 def _table_parts(table: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]:
-    """Return (binned matrix, feature names or None, recipe version or None)."""
+    """Return (binned matrix, feature names or None, recipe version or None).
+
+    The matrix keeps an integer dtype (a :class:`FeatureTable`'s compact bins) and is
+    otherwise float64.
+    """
     if isinstance(table, np.ndarray) or not hasattr(table, "binned"):
-        V = np.asarray(table, dtype=np.float64)
+        V = _as_matrix(table)
         names, version = None, None
     else:
-        V = np.asarray(table.binned, dtype=np.float64)
+        V = _as_matrix(table.binned)
         names = tuple(str(x) for x in table.names)
         version = getattr(table, "recipe_version", None)
     if V.ndim != 2:
@@ -82,9 +86,28 @@ def _table_parts(table: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | 
     return V, names, version
 
 
+def _as_matrix(values: Any) -> np.ndarray:
+    V = np.asarray(values)
+    return V if V.dtype.kind in "ui" else np.asarray(V, dtype=np.float64)
+
+
 def _valid_rows(V: np.ndarray) -> np.ndarray:
-    return np.isfinite(V).all(axis=1) & (V >= 0).all(axis=1) if V.size else np.ones(
-        V.shape[0], dtype=bool)
+    if V.dtype.kind == "u" or not V.size:
+        return np.ones(V.shape[0], dtype=bool)
+    if V.dtype.kind == "i":
+        return (V >= 0).all(axis=1)
+    return np.isfinite(V).all(axis=1) & (V >= 0).all(axis=1)
+
+
+def _float_blocks(V: np.ndarray, rows_per_block: int = 16_384):
+    """Yield ``(row slice, float64 copy of those rows of V)``, a block at a time.
+
+    Memberships of a million-row window then need a few MB of float64 at once instead
+    of a float64 copy of the whole (compact, integer) feature table.
+    """
+    for start in range(0, V.shape[0], rows_per_block):
+        rows = slice(start, min(start + rows_per_block, V.shape[0]))
+        yield rows, np.array(V[rows], dtype=np.float64, order="C")
 
 
 def _stack(tables: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]:
@@ -101,7 +124,7 @@ def _stack(tables: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]
             raise FeatureMismatch(
                 "the feature tables to stack have different feature columns; build them "
                 "all with the same feature recipe")
-    return np.vstack([p[0] for p in parts]), names, version
+    return np.vstack([p[0] for p in parts], dtype=np.float64), names, version
 
 
 # ---------------------------------------------------------------------------
@@ -418,11 +441,17 @@ class RoleBasis:
         n, k = V.shape[0], self.n_roles
         valid = _valid_rows(V)
         Vv = V[valid] if not valid.all() else V
-        G = nnls_rows(self.F, Vv)
-        R = G @ self.F
-        np.subtract(Vv, R, out=R)
-        resid = np.sqrt(np.einsum("ij,ij->i", R, R))
-        err = resid / np.maximum(np.sqrt(np.einsum("ij,ij->i", Vv, Vv)), _EPS)
+        F = self.F
+        rhs = np.empty((Vv.shape[0], k))
+        for rows, block in _float_blocks(Vv):
+            np.matmul(block, F.T, out=rhs[rows])
+        G = nnls_normal(F @ F.T, rhs)
+        err = np.empty(Vv.shape[0])
+        for rows, block in _float_blocks(Vv):
+            norm = np.sqrt(np.einsum("ij,ij->i", block, block))
+            np.subtract(block, G[rows] @ F, out=block)
+            resid = np.sqrt(np.einsum("ij,ij->i", block, block))
+            err[rows] = resid / np.maximum(norm, _EPS)
         sums = G.sum(axis=1, keepdims=True)
         mix = np.divide(G, sums, out=np.full_like(G, 1.0 / k), where=sums > 0)
         if valid.all():

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["nnls_rows"]
+__all__ = ["nnls_normal", "nnls_rows"]
 
 
 def _solve_groups(gram: np.ndarray, rhs: np.ndarray, passive: np.ndarray,
@@ -89,9 +89,29 @@ def nnls_rows(F: np.ndarray, V: np.ndarray, *, max_iter: int | None = None) -> n
     """
     F = np.asarray(F, dtype=np.float64)
     V = np.asarray(V, dtype=np.float64)
-    n, k = V.shape[0], F.shape[0]
-    gram = F @ F.T
-    rhs = V @ F.T
+    return nnls_normal(F @ F.T, V @ F.T, max_iter=max_iter)
+
+
+def nnls_normal(gram: np.ndarray, rhs: np.ndarray, *, max_iter: int | None = None) -> np.ndarray:
+    """:func:`nnls_rows` from the normal equations: ``gram = F F^T``, ``rhs = V F^T``.
+
+    The solution depends on V only through ``rhs`` (n x k), so a caller holding a large
+    V in a compact dtype can form ``rhs`` in row chunks and never hold V as float64.
+
+    Parameters
+    ----------
+    gram : ndarray, shape (k, k)
+    rhs : ndarray, shape (n, k)
+    max_iter : int, optional
+        As in :func:`nnls_rows`.
+
+    Returns
+    -------
+    G : ndarray, shape (n, k)
+    """
+    gram = np.asarray(gram, dtype=np.float64)
+    rhs = np.asarray(rhs, dtype=np.float64)
+    n, k = rhs.shape[0], gram.shape[0]
     G = np.zeros((n, k))
     if n == 0 or k == 0:
         return G
