@@ -396,8 +396,9 @@ def max_bins(n_values: int, fraction: float) -> int:
     """Upper bound on the bins :func:`bin_edges` makes from ``n_values`` values.
 
     Each bin takes at least ``ceil(fraction · r)`` of the ``r`` values left, so after
-    ``m`` bins at most ``n (1 - fraction)^m`` values remain: fewer than two after
-    ``log(n) / -log(1 - fraction)`` bins, and the rest fill at most two more.
+    ``m`` bins at most ``n (1 - fraction)^m`` values remain: at most one after
+    ``ceil(log(n) / -log(1 - fraction))`` bins, which fills one more bin; one further bin
+    is allowed for floating-point rounding of the logarithms.
     """
     if n_values <= 1:
         return 1
