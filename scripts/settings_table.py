@@ -1,7 +1,7 @@
 """Print the README's configuration table from the settings model, or rewrite it in place.
 
-    python scripts/settings_table.py            # print the table
-    python scripts/settings_table.py --update   # replace the table in README.md
+python scripts/settings_table.py            # print the table
+python scripts/settings_table.py --update   # replace the table in README.md
 """
 
 import sys

@@ -49,8 +49,12 @@ def store_url(request, tmp_path):
 _counter = iter(range(10**9))
 
 
-def new_event(time: str = "2026-02-02T10:00:00Z", actor: str | None = None,
-               target: str | None = None, **fields) -> dict:
+def new_event(
+    time: str = "2026-02-02T10:00:00Z",
+    actor: str | None = None,
+    target: str | None = None,
+    **fields,
+) -> dict:
     """One wire event with distinct accounts unless given; extra keyword fields are added
     (``id``, ``kind``, ``weight``); pass ``id=None`` to leave the id out."""
     number = next(_counter)
@@ -101,8 +105,10 @@ def app_client(app_settings):
 
     engine = open_store(app_settings)
     now = time.time_ns() // 1000
-    keys = {scope: create_key(engine, [scope], label=f"test {scope}", now_us=now)[1]
-            for scope in ("ingest", "read", "admin")}
+    keys = {
+        scope: create_key(engine, [scope], label=f"test {scope}", now_us=now)[1]
+        for scope in ("ingest", "read", "admin")
+    }
     app = create_app(app_settings, run_jobs=False)
     with TestClient(app) as client:
         yield AppClient(client, app_settings, engine, keys)

@@ -50,7 +50,11 @@ def cmd_serve(args) -> int:
     from rolewatch.api.app import create_app
     from rolewatch.logs import configure_logging
 
-    overrides = {k: v for k, v in (("host", args.host), ("port", args.port), ("role", args.role)) if v is not None}
+    overrides = {
+        k: v
+        for k, v in (("host", args.host), ("port", args.port), ("role", args.role))
+        if v is not None
+    }
     settings = _settings(args, **overrides)
     configure_logging(settings.log_level, json_lines=settings.log_json)
     _store(settings).dispose()  # fail here, with a clear message, when the store is unusable
@@ -61,8 +65,14 @@ def cmd_serve(args) -> int:
 
     signal.signal(signal.SIGTERM, _stopped)
     try:
-        uvicorn.run(app, host=settings.host, port=settings.port, log_config=None,
-                    timeout_graceful_shutdown=30, access_log=False)
+        uvicorn.run(
+            app,
+            host=settings.host,
+            port=settings.port,
+            log_config=None,
+            timeout_graceful_shutdown=30,
+            access_log=False,
+        )
     except SystemExit as stop:  # uvicorn exits 3 when startup fails: report it as 1
         return 0 if not stop.code else 1
     return 0
@@ -87,12 +97,27 @@ def cmd_keys(args) -> int:
             print("store this key now: it is shown only once", file=sys.stderr)
         elif args.keys_command == "list":
             for record in keys.list_keys(engine):
-                state = "revoked " + format_time_us(record.revoked_us) if record.revoked_us else "active"
-                print("\t".join([record.key_id, ",".join(record.scopes), state,
-                                 format_time_us(record.created_us), record.label or ""]))
+                state = (
+                    "revoked " + format_time_us(record.revoked_us)
+                    if record.revoked_us
+                    else "active"
+                )
+                print(
+                    "\t".join(
+                        [
+                            record.key_id,
+                            ",".join(record.scopes),
+                            state,
+                            format_time_us(record.created_us),
+                            record.label or "",
+                        ]
+                    )
+                )
         elif args.keys_command == "revoke":
             if not keys.revoke_key(engine, args.key_id, now_us=_now_us()):
-                raise UsageError(f"no active key with id {args.key_id!r}: see 'rolewatch keys list'")
+                raise UsageError(
+                    f"no active key with id {args.key_id!r}: see 'rolewatch keys list'"
+                )
             print(f"revoked {args.key_id}", file=sys.stderr)
     finally:
         engine.dispose()
@@ -144,7 +169,9 @@ def _csv_items(lines) -> Iterator[tuple[int, object]]:
     if reader.fieldnames is None:
         return
     for row in reader:
-        event = {k: _csv_cell(k, v) for k, v in row.items() if k is not None and v not in (None, "")}
+        event = {
+            k: _csv_cell(k, v) for k, v in row.items() if k is not None and v not in (None, "")
+        }
         if None in row:
             event["(extra cells)"] = row[None]
         yield reader.line_num, event
@@ -166,9 +193,20 @@ def cmd_replay(args) -> int:
     totals = {"accepted": 0, "duplicates": 0, "late": 0, "rejected": 0}
     shown = 0
     try:
-        handle = path.open("r", encoding="utf-8", errors="strict", newline="" if fmt == "csv" else None)
-        with handle, tqdm(total=path.stat().st_size, unit="B", unit_scale=True, file=sys.stderr,
-                          desc=f"replay {path.name}", disable=args.no_progress) as bar:
+        handle = path.open(
+            "r", encoding="utf-8", errors="strict", newline="" if fmt == "csv" else None
+        )
+        with (
+            handle,
+            tqdm(
+                total=path.stat().st_size,
+                unit="B",
+                unit_scale=True,
+                file=sys.stderr,
+                desc=f"replay {path.name}",
+                disable=args.no_progress,
+            ) as bar,
+        ):
             counted = _counting(handle, bar)
             items = _csv_items(counted) if fmt == "csv" else _ndjson_items(counted)
             batch: list = []
@@ -183,7 +221,9 @@ def cmd_replay(args) -> int:
                 totals["rejected"] += len(result.rejected)
                 for rejected in result.rejected:
                     if shown < 20:
-                        print(f"line {lines[rejected['index']]}: {rejected['error']}", file=sys.stderr)
+                        print(
+                            f"line {lines[rejected['index']]}: {rejected['error']}", file=sys.stderr
+                        )
                         shown += 1
                 batch.clear()
                 lines.clear()
@@ -219,7 +259,15 @@ def cmd_replay(args) -> int:
 
 # --- bench -----------------------------------------------------------------------------------
 
-BENCH_MODULES = ("ingest", "history", "close", "engine_features", "engine_roles", "load", "detection")
+BENCH_MODULES = (
+    "ingest",
+    "history",
+    "close",
+    "engine_features",
+    "engine_roles",
+    "load",
+    "detection",
+)
 
 
 def _bench_modules() -> dict[str, object]:
@@ -239,17 +287,27 @@ def cmd_bench(args) -> int:
     wanted = args.case.replace("-", "_")
     for name, module in modules.items():
         cases = tuple(getattr(module, "CASES", ()))
-        if args.case == "all" or wanted == name or (wanted == "engine" and name.startswith("engine")):
+        if (
+            args.case == "all"
+            or wanted == name
+            or (wanted == "engine" and name.startswith("engine"))
+        ):
             plan.extend((module, case) for case in cases)
         elif args.case in cases:
             plan.append((module, args.case))
     if not plan:
         known = sorted({c for m in modules.values() for c in getattr(m, "CASES", ())})
-        raise UsageError(f"unknown bench case {args.case!r}; choose one of: all, "
-                         + ", ".join(sorted(modules)) + ", " + ", ".join(known))
+        raise UsageError(
+            f"unknown bench case {args.case!r}; choose one of: all, "
+            + ", ".join(sorted(modules))
+            + ", "
+            + ", ".join(known)
+        )
     for module, case in plan:
         run = module.run
-        kwargs = {"quick": True} if args.quick and "quick" in inspect.signature(run).parameters else {}
+        kwargs = (
+            {"quick": True} if args.quick and "quick" in inspect.signature(run).parameters else {}
+        )
         for record in run(case, **kwargs):
             print(json.dumps(record), flush=True)
     return 0
@@ -272,10 +330,15 @@ def _delegate(module_name: str):
 
 def build_parser() -> argparse.ArgumentParser:
     common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--config", metavar="FILE", default=argparse.SUPPRESS,
-                        help="TOML file of settings (also ROLEWATCH_CONFIG)")
+    common.add_argument(
+        "--config",
+        metavar="FILE",
+        default=argparse.SUPPRESS,
+        help="TOML file of settings (also ROLEWATCH_CONFIG)",
+    )
     parser = argparse.ArgumentParser(
-        prog="rolewatch", parents=[common],
+        prog="rolewatch",
+        parents=[common],
         description="Streaming detection of structural role changes in an interaction graph.",
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
@@ -283,39 +346,62 @@ def build_parser() -> argparse.ArgumentParser:
     serve = sub.add_parser("serve", parents=[common], help="run the HTTP service")
     serve.add_argument("--host", help="address to bind (default: setting host)")
     serve.add_argument("--port", type=int, help="port to listen on (default: setting port)")
-    serve.add_argument("--role", choices=("all", "api", "worker"),
-                       help="all: API and jobs; api: HTTP only; worker: jobs (and health)")
+    serve.add_argument(
+        "--role",
+        choices=("all", "api", "worker"),
+        help="all: API and jobs; api: HTTP only; worker: jobs (and health)",
+    )
     serve.set_defaults(handler=cmd_serve)
 
     keys = sub.add_parser("keys", parents=[common], help="manage API keys")
     keys_sub = keys.add_subparsers(dest="keys_command", metavar="ACTION", required=True)
     create = keys_sub.add_parser("create", parents=[common], help="make a key; prints only the key")
-    create.add_argument("--scope", action="append", required=True, choices=("ingest", "read", "admin"),
-                        help="a scope the key gets (repeat for several; admin implies the others)")
+    create.add_argument(
+        "--scope",
+        action="append",
+        required=True,
+        choices=("ingest", "read", "admin"),
+        help="a scope the key gets (repeat for several; admin implies the others)",
+    )
     create.add_argument("--label", help="a note saying who or what uses the key")
-    keys_sub.add_parser("list", parents=[common], help="list keys (id, scopes, state, created, label)")
+    keys_sub.add_parser(
+        "list", parents=[common], help="list keys (id, scopes, state, created, label)"
+    )
     revoke = keys_sub.add_parser("revoke", parents=[common], help="revoke a key by its id")
     revoke.add_argument("key_id", metavar="KEY_ID")
     keys.set_defaults(handler=cmd_keys)
 
-    replay = sub.add_parser("replay", parents=[common], help="feed a file of events, then close windows")
+    replay = sub.add_parser(
+        "replay", parents=[common], help="feed a file of events, then close windows"
+    )
     replay.add_argument("file", metavar="FILE")
-    replay.add_argument("--format", choices=("ndjson", "csv"),
-                        help="file format (default: csv for *.csv, else ndjson)")
-    replay.add_argument("--batch-size", type=int, help="events per ingest transaction (default 5000)")
+    replay.add_argument(
+        "--format",
+        choices=("ndjson", "csv"),
+        help="file format (default: csv for *.csv, else ndjson)",
+    )
+    replay.add_argument(
+        "--batch-size", type=int, help="events per ingest transaction (default 5000)"
+    )
     replay.add_argument("--no-close", action="store_true", help="only store the events")
     replay.add_argument("--no-progress", action="store_true", help="no progress bar")
     replay.set_defaults(handler=cmd_replay)
 
-    bench = sub.add_parser("bench", parents=[common], help="run a benchmark; one JSON object per line")
-    bench.add_argument("case", metavar="CASE", help="a case name, a module (ingest, history, engine) or all")
+    bench = sub.add_parser(
+        "bench", parents=[common], help="run a benchmark; one JSON object per line"
+    )
+    bench.add_argument(
+        "case", metavar="CASE", help="a case name, a module (ingest, history, engine) or all"
+    )
     bench.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     bench.set_defaults(handler=cmd_bench)
 
     demo = sub.add_parser("demo", parents=[common], help="run the demo scenario")
     demo.set_defaults(rest=[])
     demo.set_defaults(handler=_delegate("rolewatch.scenario.demo"))
-    evaluate = sub.add_parser("evaluate", parents=[common], help="evaluate detection on the scenario")
+    evaluate = sub.add_parser(
+        "evaluate", parents=[common], help="evaluate detection on the scenario"
+    )
     evaluate.set_defaults(rest=[])
     evaluate.set_defaults(handler=_delegate("rolewatch.scenario.evaluate"))
     return parser

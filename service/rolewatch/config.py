@@ -166,7 +166,9 @@ class Settings(BaseSettings):
     # --- scoring and alerts ------------------------------------------------------------
     shift_measure: Literal[
         "role_aware", "hellinger", "jensen_shannon", "total_variation", "cosine"
-    ] = Field("role_aware", description="Distance between an account's baseline and current mixture.")
+    ] = Field(
+        "role_aware", description="Distance between an account's baseline and current mixture."
+    )
     shift_baseline: Literal["previous", "mean", "ewm"] = Field(
         "previous",
         description="Baseline mixture: the previous active window, the mean of the last "
@@ -243,9 +245,7 @@ class Settings(BaseSettings):
     @classmethod
     def _known_database(cls, url: str) -> str:
         if not url.startswith(("sqlite:", "postgresql")):
-            raise ValueError(
-                "database_url must start with sqlite:/// or postgresql+psycopg://"
-            )
+            raise ValueError("database_url must start with sqlite:/// or postgresql+psycopg://")
         return url
 
     @field_validator("delivery_ca_bundle")
@@ -256,7 +256,7 @@ class Settings(BaseSettings):
         return path or None
 
     @model_validator(mode="after")
-    def _coherent(self) -> "Settings":
+    def _coherent(self) -> Settings:
         if self.window_span < self.window_period:
             raise ValueError("window_span must be at least window_period")
         if self.window_period.total_seconds() < 1:

@@ -18,7 +18,6 @@ REQUEST_ID: contextvars.ContextVar[str | None] = contextvars.ContextVar(
 )
 
 
-
 class JsonFormatter(logging.Formatter):
     """Format a record as one JSON line: time (RFC 3339 UTC), level, logger, message, fields."""
 
@@ -47,14 +46,18 @@ class _PlainFormatter(logging.Formatter):
         request_id = REQUEST_ID.get()
         fields = getattr(record, "fields", None)
         extra = " ".join(f"{k}={v}" for k, v in (fields or {}).items())
-        return " ".join(part for part in (line, f"request_id={request_id}" if request_id else "", extra) if part)
+        return " ".join(
+            part for part in (line, f"request_id={request_id}" if request_id else "", extra) if part
+        )
 
 
 def configure_logging(level: str = "INFO", *, json_lines: bool = True, stream=None) -> None:
     """Send rolewatch's (and uvicorn's) logs to ``stream`` (stderr) in one format."""
     handler = logging.StreamHandler(stream or sys.stderr)
     handler.setFormatter(
-        JsonFormatter() if json_lines else _PlainFormatter("%(asctime)s %(levelname)s %(name)s %(message)s")
+        JsonFormatter()
+        if json_lines
+        else _PlainFormatter("%(asctime)s %(levelname)s %(name)s %(message)s")
     )
     root = logging.getLogger()
     for existing in list(root.handlers):

@@ -68,17 +68,24 @@ def now_us() -> int:
     return time.time_ns() // 1000
 
 
-def store_alert(connection, *, account="m-00042", score=0.73, role_before=1, role_after=3,
-                evidence_extra=None) -> dict:
+def store_alert(
+    connection, *, account="m-00042", score=0.73, role_before=1, role_after=3, evidence_extra=None
+) -> dict:
     """Insert a window and an alert row (the outbox references real alerts) and return the
     alert in the API form of docs/CONTRACTS.md."""
-    end_us = 1_771_459_200_000_000 + int(connection.execute(select(windows.c.id)).all().__len__()) * 604_800_000_000
+    end_us = (
+        1_771_459_200_000_000
+        + int(connection.execute(select(windows.c.id)).all().__len__()) * 604_800_000_000
+    )
     window_id = connection.execute(
-        windows.insert().values(start_us=end_us - 604_800_000_000, end_us=end_us, status="closed",
-                                closed_us=end_us)
+        windows.insert().values(
+            start_us=end_us - 604_800_000_000, end_us=end_us, status="closed", closed_us=end_us
+        )
     ).inserted_primary_key[0]
     evidence = {
-        "threshold": 0.5, "measure": "role_aware", "mode": "threshold",
+        "threshold": 0.5,
+        "measure": "role_aware",
+        "mode": "threshold",
         "feature_moves": [{"feature": "out_degree", "before": 2.0, "after": 37.0}],
         "activity": {"events_out": 40, "events_in": 0, "counterparts": 38, "new_counterparts": 37},
         "history_url": f"https://rolewatch.example/v1/accounts/{account}/roles",
@@ -87,15 +94,27 @@ def store_alert(connection, *, account="m-00042", score=0.73, role_before=1, rol
     }
     evidence.update(evidence_extra or {})
     alert_id = connection.execute(
-        alerts.insert().values(window_id=window_id, account=account, created_us=end_us,
-                               window_end_us=end_us, score=score, basis_version="b-1a2b3c",
-                               role_before=role_before, role_after=role_after,
-                               evidence=json.dumps(evidence))
+        alerts.insert().values(
+            window_id=window_id,
+            account=account,
+            created_us=end_us,
+            window_end_us=end_us,
+            score=score,
+            basis_version="b-1a2b3c",
+            role_before=role_before,
+            role_after=role_after,
+            evidence=json.dumps(evidence),
+        )
     ).inserted_primary_key[0]
     return {
-        "id": alert_id, "account": account, "window_id": window_id,
-        "window_start": "2026-02-12T00:00:00Z", "window_end": "2026-02-19T00:00:00Z",
-        "created": "2026-02-19T00:00:05Z", "score": score, "basis_version": "b-1a2b3c",
+        "id": alert_id,
+        "account": account,
+        "window_id": window_id,
+        "window_start": "2026-02-12T00:00:00Z",
+        "window_end": "2026-02-19T00:00:00Z",
+        "created": "2026-02-19T00:00:05Z",
+        "score": score,
+        "basis_version": "b-1a2b3c",
         "role_before": {"id": role_before, "name": "quiet buyer"},
         "role_after": {"id": role_after, "name": "busy payer"},
         "evidence": evidence,

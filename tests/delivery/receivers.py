@@ -47,7 +47,7 @@ class Receiver:
         scheme = "https" if self.ssl_context else "http"
         return f"{scheme}://127.0.0.1:{self.port}/hook"
 
-    def start(self) -> "Receiver":
+    def start(self) -> Receiver:
         owner = self
 
         class Handler(BaseHTTPRequestHandler):
@@ -62,7 +62,11 @@ class Receiver:
                     action = 200 if _chat_acceptable(self.headers, body) else 400
                 if isinstance(action, tuple) and action[0] == "trickle":
                     # One header byte every 0.2 s: each read is quick, the whole answer slow.
-                    owner.received.append(Received(self.path, {k.lower(): v for k, v in self.headers.items()}, body, 200))
+                    owner.received.append(
+                        Received(
+                            self.path, {k.lower(): v for k, v in self.headers.items()}, body, 200
+                        )
+                    )
                     try:
                         self.wfile.write(b"HTTP/1.1 200 OK\r\nX-Slow: ")
                         until = time.monotonic() + action[1]
@@ -80,7 +84,9 @@ class Receiver:
                 if isinstance(action, tuple) and action[0] == "redirect":
                     location, action = action[1], 302
                 owner.received.append(
-                    Received(self.path, {k.lower(): v for k, v in self.headers.items()}, body, action)
+                    Received(
+                        self.path, {k.lower(): v for k, v in self.headers.items()}, body, action
+                    )
                 )
                 try:
                     reply = b'{"ok": true}' if action < 300 else b"receiver said no " * 100
@@ -116,6 +122,9 @@ def _chat_acceptable(headers, body: bytes) -> bool:
         document = json.loads(body)
     except ValueError:
         return False
-    return isinstance(document, dict) and set(document) == {"text"} and isinstance(
-        document["text"], str
-    ) and 0 < len(document["text"]) <= 4000
+    return (
+        isinstance(document, dict)
+        and set(document) == {"text"}
+        and isinstance(document["text"], str)
+        and 0 < len(document["text"]) <= 4000
+    )

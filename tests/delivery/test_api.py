@@ -55,16 +55,25 @@ def service(make_service):
 def test_subscription_lifecycle(service, receiver):
     hook = receiver().start()
     admin = service.as_("admin")
-    made = service.post("/v1/subscriptions", headers=admin,
-                         json={"url": hook.url, "format": "json", "min_score": 0.5, "roles": [3]})
+    made = service.post(
+        "/v1/subscriptions",
+        headers=admin,
+        json={"url": hook.url, "format": "json", "min_score": 0.5, "roles": [3]},
+    )
     assert made.status_code == 201, made.text
     body = made.json()
     secret, sub_id = body["secret"], body["id"]
     assert secret.startswith("whsec_") and body["roles"] == [3] and body["min_score"] == 0.5
 
     listed = service.get("/v1/subscriptions", headers=admin)
-    assert listed.status_code == 200 and [s["id"] for s in listed.json()["subscriptions"]] == [sub_id]
-    assert secret not in listed.text and secret[6:] not in listed.text and "secret" not in listed.json()["subscriptions"][0]
+    assert listed.status_code == 200 and [s["id"] for s in listed.json()["subscriptions"]] == [
+        sub_id
+    ]
+    assert (
+        secret not in listed.text
+        and secret[6:] not in listed.text
+        and "secret" not in listed.json()["subscriptions"][0]
+    )
     one = service.get(f"/v1/subscriptions/{sub_id}", headers=admin)
     assert one.status_code == 200 and secret[6:] not in one.text
 
@@ -102,32 +111,43 @@ def test_refused_urls_answer_422_with_the_reason(make_service, url, reason):
     answer = strict.post("/v1/subscriptions", headers=strict.as_("admin"), json={"url": url})
     assert answer.status_code == 422
     assert reason in answer.json()["detail"]
-    assert strict.get("/v1/subscriptions", headers=strict.as_("admin")).json()["subscriptions"] == []
+    assert (
+        strict.get("/v1/subscriptions", headers=strict.as_("admin")).json()["subscriptions"] == []
+    )
 
 
 def test_https_required_answers_422(make_service):
     strict = make_service(webhook_allow_http=False)
-    answer = strict.post("/v1/subscriptions", headers=strict.as_("admin"),
-                         json={"url": "http://hooks.example.org/x"})
+    answer = strict.post(
+        "/v1/subscriptions", headers=strict.as_("admin"), json={"url": "http://hooks.example.org/x"}
+    )
     assert answer.status_code == 422 and "must use https://" in answer.json()["detail"]
 
 
 def test_bad_fields_answer_422(service):
     admin = service.as_("admin")
-    for body in ({"url": "https://8.8.8.8/x", "format": "xml"},
-                 {"url": "https://8.8.8.8/x", "min_score": -1},
-                 {"url": "https://8.8.8.8/x", "roles": ["three"]},
-                 {"url": "https://8.8.8.8/x", "roles": []},
-                 {"format": "json"}):
+    for body in (
+        {"url": "https://8.8.8.8/x", "format": "xml"},
+        {"url": "https://8.8.8.8/x", "min_score": -1},
+        {"url": "https://8.8.8.8/x", "roles": ["three"]},
+        {"url": "https://8.8.8.8/x", "roles": []},
+        {"format": "json"},
+    ):
         assert service.post("/v1/subscriptions", headers=admin, json=body).status_code == 422
 
 
 def test_routes_are_in_the_openapi_document(service):
     paths = service.get("/openapi.json").json()["paths"]
-    for path in ("/v1/subscriptions", "/v1/subscriptions/{sub_id}", "/v1/subscriptions/{sub_id}/rotate",
-                 "/v1/subscriptions/{sub_id}/resume", "/v1/subscriptions/{sub_id}/test",
-                 "/v1/deliveries", "/v1/deliveries/{delivery_id}",
-                 "/v1/deliveries/{delivery_id}/redeliver"):
+    for path in (
+        "/v1/subscriptions",
+        "/v1/subscriptions/{sub_id}",
+        "/v1/subscriptions/{sub_id}/rotate",
+        "/v1/subscriptions/{sub_id}/resume",
+        "/v1/subscriptions/{sub_id}/test",
+        "/v1/deliveries",
+        "/v1/deliveries/{delivery_id}",
+        "/v1/deliveries/{delivery_id}/redeliver",
+    ):
         assert path in paths
 
 
@@ -135,8 +155,12 @@ def test_scopes(service):
     for scope in ("read", "ingest"):
         headers = service.as_(scope)
         assert service.get("/v1/subscriptions", headers=headers).status_code == 403
-        assert service.post("/v1/subscriptions", headers=headers,
-                            json={"url": "https://8.8.8.8/x"}).status_code == 403
+        assert (
+            service.post(
+                "/v1/subscriptions", headers=headers, json={"url": "https://8.8.8.8/x"}
+            ).status_code
+            == 403
+        )
         assert service.post("/v1/deliveries/msg_x/redeliver", headers=headers).status_code == 403
     assert service.get("/v1/deliveries", headers=service.as_("read")).status_code == 200
     assert service.get("/v1/deliveries", headers=service.as_("ingest")).status_code == 403
@@ -154,26 +178,40 @@ def test_deliveries_list_detail_redeliver_and_resume(service, receiver):
 
     sub = service.get(f"/v1/subscriptions/{sub_id}", headers=admin).json()
     assert sub["paused"] and "410" in sub["paused_reason"]
-    pending = service.get("/v1/deliveries", headers=read, params={"status": "pending", "subscription": sub_id})
+    pending = service.get(
+        "/v1/deliveries", headers=read, params={"status": "pending", "subscription": sub_id}
+    )
     assert [d["id"] for d in pending.json()["deliveries"]] == [delivery_id]
-    assert service.get("/v1/deliveries", headers=read, params={"status": "delivered"}).json()["deliveries"] == []
+    assert (
+        service.get("/v1/deliveries", headers=read, params={"status": "delivered"}).json()[
+            "deliveries"
+        ]
+        == []
+    )
     assert service.get("/v1/deliveries", headers=read, params={"status": "lost"}).status_code == 422
     detail = service.get(f"/v1/deliveries/{delivery_id}", headers=read).json()
     assert detail["alert_id"] == alert["id"] and detail["attempts"] == 1
     assert [a["status_code"] for a in detail["attempt_log"]] == [410]
-    assert detail["attempt_log"][0]["time"].endswith("Z") and "gone" in detail["attempt_log"][0]["error"]
+    assert (
+        detail["attempt_log"][0]["time"].endswith("Z")
+        and "gone" in detail["attempt_log"][0]["error"]
+    )
     assert service.get("/v1/deliveries/msg_nothing", headers=read).status_code == 404
 
     # The receiver comes back; resume and redeliver: same webhook-id, same bytes.
     hook.default = 200
-    assert service.post(f"/v1/subscriptions/{sub_id}/resume", headers=admin).json()["paused"] is False
+    assert (
+        service.post(f"/v1/subscriptions/{sub_id}/resume", headers=admin).json()["paused"] is False
+    )
     again = service.post(f"/v1/deliveries/{delivery_id}/redeliver", headers=admin)
     assert again.status_code == 200 and again.json()["status"] == "pending"
     deliver_due(service.engine, service.settings)
     assert [r.headers["webhook-id"] for r in hook.received] == [delivery_id, delivery_id]
     assert hook.received[0].body == hook.received[1].body
     detail = service.get(f"/v1/deliveries/{delivery_id}", headers=read).json()
-    assert detail["status"] == "delivered" and [a["status_code"] for a in detail["attempt_log"]] == [410, 200]
+    assert detail["status"] == "delivered" and [
+        a["status_code"] for a in detail["attempt_log"]
+    ] == [410, 200]
     assert json.loads(hook.received[1].body)["data"]["id"] == alert["id"]
 
     service.delete(f"/v1/subscriptions/{sub_id}", headers=admin)
@@ -194,12 +232,16 @@ def test_test_delivery_on_each_migrated_store(app_client, receiver):
     client, admin = app_client.client, app_client.headers("admin")
     made = client.post("/v1/subscriptions", headers=admin, json={"url": hook.url, "format": "text"})
     assert made.status_code == 201, made.text
-    delivery_id = client.post(f"/v1/subscriptions/{made.json()['id']}/test", headers=admin).json()["delivery_id"]
+    delivery_id = client.post(f"/v1/subscriptions/{made.json()['id']}/test", headers=admin).json()[
+        "delivery_id"
+    ]
     t = now_us()
     deliver_due(app_client.engine, app_client.settings, now_us=t)
     deliver_due(app_client.engine, app_client.settings, now_us=t + 3_600_000_000)
     detail = client.get(f"/v1/deliveries/{delivery_id}", headers=app_client.headers("read")).json()
-    assert detail["status"] == "delivered" and [a["status_code"] for a in detail["attempt_log"]] == [503, 200]
+    assert detail["status"] == "delivered" and [
+        a["status_code"] for a in detail["attempt_log"]
+    ] == [503, 200]
     assert [r.headers["webhook-id"] for r in hook.received] == [delivery_id, delivery_id]
     assert json.loads(hook.received[1].body)["text"].startswith("TEST")
     assert Webhook(made.json()["secret"]).verify(hook.received[1].body, hook.received[1].headers)

@@ -64,10 +64,13 @@ def test_text_delivery_is_accepted_by_a_chat_style_receiver(engine, settings, re
 
 
 def test_text_neutralises_mentions_markup_and_control_characters(make_alert):
-    alert = make_alert(account=HOSTILE, evidence_extra={
-        "page_url": f"https://rolewatch.example/accounts/{HOSTILE}",
-        "feature_moves": [{"feature": "<@U1> total_weight", "before": 1.0, "after": 2.0}],
-    })
+    alert = make_alert(
+        account=HOSTILE,
+        evidence_extra={
+            "page_url": f"https://rolewatch.example/accounts/{HOSTILE}",
+            "feature_moves": [{"feature": "<@U1> total_weight", "before": 1.0, "after": 2.0}],
+        },
+    )
     alert["role_after"] = {"id": 3, "name": "@here " + "x" * 5000}
     text = text_summary(alert)
     assert "@" not in text and "<" not in text and ">" not in text

@@ -105,10 +105,16 @@ def test_claim_skips_rows_another_worker_holds(pg_url):
     other = make_engine(pg_url)
     with setup.connect() as holder:
         with holder.begin():
-            held = holder.execute(
-                select(deliveries.c.id).order_by(deliveries.c.id).limit(4)
-                .with_for_update(skip_locked=True)
-            ).scalars().all()
+            held = (
+                holder.execute(
+                    select(deliveries.c.id)
+                    .order_by(deliveries.c.id)
+                    .limit(4)
+                    .with_for_update(skip_locked=True)
+                )
+                .scalars()
+                .all()
+            )
             # Skips the locked rows at once instead of waiting (statement_timeout would fail it).
             claimed = [c.delivery_id for c in claim_due(other, settings, now_us())]
     assert len(held) == 4 and set(claimed) == set(ids) - set(held)

@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import base64
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 import pytest
-from standardwebhooks.webhooks import Webhook, WebhookVerificationError
 from sqlalchemy import select
+from standardwebhooks.webhooks import Webhook, WebhookVerificationError
 
 from rolewatch.delivery.outbox import enqueue_alerts
 from rolewatch.delivery.signing import BadSecret, new_secret, sign, signature_header
@@ -37,7 +37,7 @@ def test_signatures_verify_with_the_reference_package():
     # Reference: the `standardwebhooks` PyPI package (Standard Webhooks' own Python library).
     secret = new_secret()
     body = '{"type":"alert.raised","data":{"account":"m-00042","note":"ünïcode ✓"}}'.encode()
-    timestamp = int(datetime.now(timezone.utc).timestamp())
+    timestamp = int(datetime.now(UTC).timestamp())
     headers = {
         "webhook-id": "msg_01TESTTESTTESTTESTTESTTES",
         "webhook-timestamp": str(timestamp),
@@ -55,7 +55,7 @@ def test_new_secrets_are_whsec_base64_of_32_random_bytes():
     assert len(made) == 20
     for secret in made:
         assert secret.startswith("whsec_")
-        assert len(base64.b64decode(secret[len("whsec_"):], validate=True)) == 32
+        assert len(base64.b64decode(secret[len("whsec_") :], validate=True)) == 32
     with pytest.raises(BadSecret):
         sign("whsec_not base64!", "msg_1", 1, b"x")
 
@@ -99,5 +99,7 @@ def test_rotation_sends_both_signatures_during_the_overlap(engine, settings, rec
 def test_signature_header_joins_one_signature_per_secret():
     first, second = new_secret(), new_secret()
     header = signature_header([first, second], "msg_x", 1700000000, b"{}")
-    assert header.split(" ") == [sign(first, "msg_x", 1700000000, b"{}"),
-                                 sign(second, "msg_x", 1700000000, b"{}")]
+    assert header.split(" ") == [
+        sign(first, "msg_x", 1700000000, b"{}"),
+        sign(second, "msg_x", 1700000000, b"{}"),
+    ]

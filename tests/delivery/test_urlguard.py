@@ -17,7 +17,6 @@ from rolewatch.store.db import write_transaction
 from rolewatch.store.schema import deliveries
 
 from .conftest import delivery_settings, now_us
-from .receivers import free_port
 
 
 def fake_dns(table):
@@ -72,11 +71,16 @@ def test_any_private_answer_refuses_the_name():
     dns = fake_dns({"hooks.example.org": ["93.184.215.14", "10.0.0.7"]})
     with pytest.raises(UnsafeURL, match="resolves to 10.0.0.7, a private address"):
         check_url("https://hooks.example.org/x", allow_http=False, resolver=dns)
-    public = fake_dns({"hooks.example.org": ["93.184.215.14", "2606:2800:21f:cb07:6820:80da:af6b:8b2c"]})
+    public = fake_dns(
+        {"hooks.example.org": ["93.184.215.14", "2606:2800:21f:cb07:6820:80da:af6b:8b2c"]}
+    )
     checked = check_url("https://hooks.example.org/x?a=1", allow_http=False, resolver=public)
     assert checked.addresses == ("93.184.215.14", "2606:2800:21f:cb07:6820:80da:af6b:8b2c")
     assert checked.pinned_url() == "https://93.184.215.14:443/x?a=1"
-    assert checked.pinned_url(checked.addresses[1]) == "https://[2606:2800:21f:cb07:6820:80da:af6b:8b2c]:443/x?a=1"
+    assert (
+        checked.pinned_url(checked.addresses[1])
+        == "https://[2606:2800:21f:cb07:6820:80da:af6b:8b2c]:443/x?a=1"
+    )
     assert checked.host_header == "hooks.example.org"
 
 
@@ -108,10 +112,26 @@ def _certificate(tmp_path, name: str):
     """A self-signed certificate for ``name`` made with the openssl command line tool."""
     key, cert = tmp_path / "key.pem", tmp_path / "cert.pem"
     subprocess.run(
-        ["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
-         "-keyout", str(key), "-out", str(cert), "-subj", f"/CN={name}",
-         "-addext", f"subjectAltName=DNS:{name}"],
-        check=True, capture_output=True,
+        [
+            "openssl",
+            "req",
+            "-x509",
+            "-newkey",
+            "rsa:2048",
+            "-nodes",
+            "-days",
+            "1",
+            "-keyout",
+            str(key),
+            "-out",
+            str(cert),
+            "-subj",
+            f"/CN={name}",
+            "-addext",
+            f"subjectAltName=DNS:{name}",
+        ],
+        check=True,
+        capture_output=True,
     )
     return key, cert
 
@@ -129,12 +149,19 @@ def test_send_is_pinned_to_the_checked_address_with_tls_for_the_host_name(
     hook = receiver(ssl_context=context).start()
     dns = fake_dns({name: ["127.0.0.1"]})
     settings = delivery_settings(
-        db_url, webhook_allow_http=False, webhook_allow_hosts=[name],
+        db_url,
+        webhook_allow_http=False,
+        webhook_allow_hosts=[name],
         delivery_ca_bundle=str(cert),
     )
     with write_transaction(engine) as connection:
-        create_subscription(connection, settings, url=f"https://{name}:{hook.port}/hook",
-                            now_us=now_us(), resolver=dns)
+        create_subscription(
+            connection,
+            settings,
+            url=f"https://{name}:{hook.port}/hook",
+            now_us=now_us(),
+            resolver=dns,
+        )
     alert = make_alert()
     with write_transaction(engine) as connection:
         enqueue_alerts(connection, settings, [alert])
@@ -148,11 +175,20 @@ def test_send_is_pinned_to_the_checked_address_with_tls_for_the_host_name(
     other = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
     other.load_cert_chain(other_cert, other_key)
     impostor = receiver(ssl_context=other).start()
-    wrong = delivery_settings(db_url, webhook_allow_http=False, webhook_allow_hosts=[name],
-                              delivery_ca_bundle=str(other_cert))
+    wrong = delivery_settings(
+        db_url,
+        webhook_allow_http=False,
+        webhook_allow_hosts=[name],
+        delivery_ca_bundle=str(other_cert),
+    )
     with write_transaction(engine) as connection:
-        made = create_subscription(connection, wrong, url=f"https://{name}:{impostor.port}/hook",
-                                   now_us=now_us(), resolver=dns)
+        made = create_subscription(
+            connection,
+            wrong,
+            url=f"https://{name}:{impostor.port}/hook",
+            now_us=now_us(),
+            resolver=dns,
+        )
     alert = make_alert(account="m-00050")
     with write_transaction(engine) as connection:
         enqueue_alerts(connection, wrong, [alert])
@@ -173,8 +209,13 @@ def test_send_falls_back_to_the_next_checked_address(db_url, engine, receiver, m
     dns = fake_dns({"hooks.rolewatch.test": ["127.0.0.2", "127.0.0.1"]})
     settings = delivery_settings(db_url, webhook_allow_hosts=["127.0.0.0/8"])
     with write_transaction(engine) as connection:
-        create_subscription(connection, settings, url=f"http://hooks.rolewatch.test:{hook.port}/x",
-                            now_us=now_us(), resolver=dns)
+        create_subscription(
+            connection,
+            settings,
+            url=f"http://hooks.rolewatch.test:{hook.port}/x",
+            now_us=now_us(),
+            resolver=dns,
+        )
     alert = make_alert()
     with write_transaction(engine) as connection:
         enqueue_alerts(connection, settings, [alert])

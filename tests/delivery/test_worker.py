@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 
-import pytest
 from sqlalchemy import select
 from standardwebhooks.webhooks import Webhook
 
@@ -179,7 +178,9 @@ def test_redirects_are_not_followed(engine, settings, receiver, make_alert):
     assert target.received == []
 
 
-def test_send_time_check_refuses_a_url_no_longer_allowed(db_url, engine, settings, receiver, make_alert):
+def test_send_time_check_refuses_a_url_no_longer_allowed(
+    db_url, engine, settings, receiver, make_alert
+):
     from .conftest import delivery_settings
 
     hook = receiver().start()
@@ -226,7 +227,9 @@ def test_claims_never_print_secrets_or_urls(engine, settings, make_alert):
     assert made.secret[6:] not in shown and "token-in-path" not in shown
 
 
-def test_two_workers_on_one_sqlite_file_never_send_a_row_twice(db_url, settings, receiver, make_alert, engine):
+def test_two_workers_on_one_sqlite_file_never_send_a_row_twice(
+    db_url, settings, receiver, make_alert, engine
+):
     import threading
     from collections import Counter
 

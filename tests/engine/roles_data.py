@@ -25,7 +25,10 @@ class Table:
     def __init__(self, binned, recipe_version="recipe-a", names=None):
         self.binned = np.asarray(binned, dtype=float)
         self.raw = self.binned.copy()
-        self.names = tuple(names) if names is not None else tuple(
-            f"feat_{j}" for j in range(self.binned.shape[1]))
+        self.names = (
+            tuple(names)
+            if names is not None
+            else tuple(f"feat_{j}" for j in range(self.binned.shape[1]))
+        )
         self.nodes = np.array([f"member-{i}" for i in range(self.binned.shape[0])])
         self.recipe_version = recipe_version

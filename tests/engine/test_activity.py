@@ -66,7 +66,11 @@ def test_top_counterparts_rank_by_events_then_weight_and_flag_new_ones():
             assert np.isclose(entry["weight"], total)
             sends = graph.has_edge(node, entry["account"])
             receives = graph.has_edge(entry["account"], node)
-            assert entry["direction"] == ("both" if sends and receives else "out" if sends else "in")
-            assert entry["new"] == (not (node in before and before.has_edge(node, entry["account"])))
+            assert entry["direction"] == (
+                "both" if sends and receives else "out" if sends else "in"
+            )
+            assert entry["new"] == (
+                not (node in before and before.has_edge(node, entry["account"]))
+            )
         ranks = [(-entry["events"], -entry["weight"]) for entry in listed]
         assert ranks == sorted(ranks)

@@ -69,8 +69,12 @@ def test_memberships_equal_scipy_nnls_node_by_node():
         V = rng.gamma(1.0, 1.0, (n, f)) * (rng.random((n, f)) < 0.5)
         if trial % 2:  # structured: exact mixtures of the roles plus a little noise
             V = rng.random((n, k)) ** 3 @ F + 0.01 * rng.random((n, f))
-        basis = RoleBasis(F=F / F.sum(1, keepdims=True), role_ids=tuple(range(k)),
-                          feature_names=tuple(f"x{j}" for j in range(f)), recipe_version=None)
+        basis = RoleBasis(
+            F=F / F.sum(1, keepdims=True),
+            role_ids=tuple(range(k)),
+            feature_names=tuple(f"x{j}" for j in range(f)),
+            recipe_version=None,
+        )
         m = basis.memberships(V)
         ref = np.array([nnls(basis.F.T, v)[0] for v in V])
         np.testing.assert_allclose(m.loadings, ref, atol=1e-8)
@@ -127,8 +131,7 @@ def test_more_roles_than_features_is_a_clear_error():
     with pytest.raises(TooManyRoles, match="at most 4 roles"):
         RoleBasis.fit(V, n_roles=5)
     with pytest.raises(TooManyRoles):
-        RoleBasis(F=np.ones((5, 4)), role_ids=range(5), feature_names="abcd",
-                  recipe_version=None)
+        RoleBasis(F=np.ones((5, 4)), role_ids=range(5), feature_names="abcd", recipe_version=None)
     # MDL range is clipped instead of failing
     assert RoleBasis.fit(V, k_range=(2, 12)).summary["mdl"][-1]["k"] == 4
 
@@ -159,8 +162,9 @@ def test_json_round_trip():
     assert back.version == basis.version and back.role_ids == basis.role_ids
     np.testing.assert_array_equal(back.F, basis.F)
     assert back.summary["mdl"] == basis.summary["mdl"]
-    np.testing.assert_array_equal(back.memberships(Table(V)).loadings,
-                                  basis.memberships(Table(V)).loadings)
+    np.testing.assert_array_equal(
+        back.memberships(Table(V)).loadings, basis.memberships(Table(V)).loadings
+    )
     tampered = json.loads(text)
     tampered["F"][0][0] += 0.5
     with pytest.raises(ValueError, match="corrupted"):
@@ -170,11 +174,19 @@ def test_json_round_trip():
 def test_aligned_to_recovers_ids_of_permuted_roles():
     V, _, _ = planted_roles(5, seed=9)
     basis = RoleBasis.fit(Table(V), n_roles=5)
-    basis = RoleBasis(F=basis.F, role_ids=(3, 8, 1, 4, 6), feature_names=basis.feature_names,
-                      recipe_version=basis.recipe_version)
+    basis = RoleBasis(
+        F=basis.F,
+        role_ids=(3, 8, 1, 4, 6),
+        feature_names=basis.feature_names,
+        recipe_version=basis.recipe_version,
+    )
     perm = np.array([2, 4, 0, 3, 1])
-    shuffled = RoleBasis(F=basis.F[perm], role_ids=(0, 1, 2, 3, 4),
-                         feature_names=basis.feature_names, recipe_version="recipe-a")
+    shuffled = RoleBasis(
+        F=basis.F[perm],
+        role_ids=(0, 1, 2, 3, 4),
+        feature_names=basis.feature_names,
+        recipe_version="recipe-a",
+    )
     back = shuffled.aligned_to(basis)
     original = dict(zip(basis.role_ids, basis.F))
     for rid, row in zip(back.role_ids, back.F):
@@ -190,14 +202,25 @@ def test_aligned_to_gives_fresh_ids_to_new_roles_and_uses_shared_features():
     assert set(old.role_ids) <= set(aligned.role_ids)
     assert max(aligned.role_ids) == max(old.role_ids) + 1
     # different feature lists: matched on the intersection
-    renamed = RoleBasis(F=old.F[:, :-2], role_ids=old.role_ids,
-                        feature_names=old.feature_names[:-2], recipe_version="other")
-    again = RoleBasis(F=old.F[::-1], role_ids=(10, 11, 12), feature_names=old.feature_names,
-                      recipe_version="recipe-a").aligned_to(renamed)
+    renamed = RoleBasis(
+        F=old.F[:, :-2],
+        role_ids=old.role_ids,
+        feature_names=old.feature_names[:-2],
+        recipe_version="other",
+    )
+    again = RoleBasis(
+        F=old.F[::-1],
+        role_ids=(10, 11, 12),
+        feature_names=old.feature_names,
+        recipe_version="recipe-a",
+    ).aligned_to(renamed)
     assert again.role_ids == old.role_ids
-    disjoint = RoleBasis(F=old.F, role_ids=old.role_ids,
-                         feature_names=tuple(f"z{j}" for j in range(old.F.shape[1])),
-                         recipe_version=None)
+    disjoint = RoleBasis(
+        F=old.F,
+        role_ids=old.role_ids,
+        feature_names=tuple(f"z{j}" for j in range(old.F.shape[1])),
+        recipe_version=None,
+    )
     with pytest.raises(FeatureMismatch):
         new.aligned_to(disjoint)
 
@@ -209,8 +232,9 @@ def test_memberships_satisfy_the_nnls_optimality_conditions():
     rng = np.random.default_rng(21)
     F = rng.gamma(0.5, 1.0, (7, 30))
     V = rng.gamma(0.8, 1.0, (2000, 30)) * (rng.random((2000, 30)) < 0.4)
-    basis = RoleBasis(F=F, role_ids=range(7), feature_names=[f"x{j}" for j in range(30)],
-                      recipe_version=None)
+    basis = RoleBasis(
+        F=F, role_ids=range(7), feature_names=[f"x{j}" for j in range(30)], recipe_version=None
+    )
     G = basis.memberships(V).loadings
     grad = (G @ basis.F - V) @ basis.F.T
     scale = np.abs(V @ basis.F.T).max()

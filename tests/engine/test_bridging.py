@@ -6,13 +6,16 @@ from scipy.stats import norm
 from sklearn.metrics import adjusted_rand_score
 
 from rolewatch.engine.bridging import (
-    DENSE_BELOW, bridging_zscore, community_labels, undirected_ties)
+    DENSE_BELOW,
+    bridging_zscore,
+    community_labels,
+    undirected_ties,
+)
 from rolewatch.engine.scoring import ShiftPolicy, score_window
 
 
 def _adjacency(graph, nodes=None):
-    return sp.csr_matrix(nx.to_scipy_sparse_array(graph, nodelist=nodes, format="csr",
-                                                  dtype=float))
+    return sp.csr_matrix(nx.to_scipy_sparse_array(graph, nodelist=nodes, format="csr", dtype=float))
 
 
 def _planted_truth(graph):
@@ -126,8 +129,17 @@ def test_score_takes_the_larger_of_shift_and_bridging_rise():
     now = before.copy()
     now[5] = 7.5
     now[6] = 2.0
-    out = score_window(cur, base, act, act, np.zeros(len(act)), F, ShiftPolicy(),
-                       current_bridging=now, baseline_bridging=before)
+    out = score_window(
+        cur,
+        base,
+        act,
+        act,
+        np.zeros(len(act)),
+        F,
+        ShiftPolicy(),
+        current_bridging=now,
+        baseline_bridging=before,
+    )
     assert out.score[5] == pytest.approx(7.5) and out.alert[5]
     assert out.score[6] == pytest.approx(max(plain.score[6], 2.0))
     assert out.bridging[5] == pytest.approx(7.5) and out.bridging[0] == 0.0
@@ -135,16 +147,42 @@ def test_score_takes_the_larger_of_shift_and_bridging_rise():
     np.testing.assert_allclose(np.delete(out.score, [5, 6]), np.delete(plain.score, [5, 6]))
     # a drop in bridging is no shift; an unknown baseline leaves the shift score alone
     before[7], now[8], before[8] = 9.0, 9.0, np.nan
-    out = score_window(cur, base, act, act, np.zeros(len(act)), F, ShiftPolicy(),
-                       current_bridging=now, baseline_bridging=before)
+    out = score_window(
+        cur,
+        base,
+        act,
+        act,
+        np.zeros(len(act)),
+        F,
+        ShiftPolicy(),
+        current_bridging=now,
+        baseline_bridging=before,
+    )
     assert out.score[7] == plain.score[7] and out.score[8] == plain.score[8]
-    raw = score_window(cur, base, act, act, np.zeros(len(act)), F,
-                       ShiftPolicy(calibration="none"), current_bridging=now,
-                       baseline_bridging=before)
+    raw = score_window(
+        cur,
+        base,
+        act,
+        act,
+        np.zeros(len(act)),
+        F,
+        ShiftPolicy(calibration="none"),
+        current_bridging=now,
+        baseline_bridging=before,
+    )
     assert not raw.alert[5]  # a raw distance is no z-score: bridging is not mixed in
     with pytest.raises(ValueError, match="bridging"):
-        score_window(cur, base, act, act, np.zeros(len(act)), F, ShiftPolicy(),
-                     current_bridging=now[:3], baseline_bridging=before[:3])
+        score_window(
+            cur,
+            base,
+            act,
+            act,
+            np.zeros(len(act)),
+            F,
+            ShiftPolicy(),
+            current_bridging=now[:3],
+            baseline_bridging=before[:3],
+        )
 
 
 def test_policy_bridge_communities():

@@ -200,15 +200,20 @@ def test_transform_computes_only_needed_features():
     snap = random_snapshot(4)
     full = FeatureRecipe.discover([snap], max_rounds=1, **UNPRUNED)
     body = full.to_dict()
-    body["features"] = [f for f in body["features"] if not f["name"].startswith("ego") and "ego" not in f["name"]]
+    body["features"] = [
+        f for f in body["features"] if not f["name"].startswith("ego") and "ego" not in f["name"]
+    ]
     body.pop("version")
     local = FeatureRecipe.from_dict(body)
-    from rolewatch.engine.features import _Graph, _compute, _parse
+    from rolewatch.engine.features import _compute, _Graph, _parse
 
     g = _Graph(snap)
     _compute(g, [_parse(n) for n in local.names])
     assert "tri" not in g._cache  # the triangle kernel was never run
-    np.testing.assert_array_equal(local.transform(snap).raw, full.transform(snap).raw[:, [full.names.index(n) for n in local.names]])
+    np.testing.assert_array_equal(
+        local.transform(snap).raw,
+        full.transform(snap).raw[:, [full.names.index(n) for n in local.names]],
+    )
 
 
 # ------------------------------------------------------------------ bad input

@@ -8,8 +8,7 @@ F = np.array([[1.0, 0.0, 0.5], [0.0, 1.0, 0.5], [0.2, 0.2, 1.0]])
 
 
 def _case():
-    cur = np.array([[1, 0, 0], [0, 1, 0], [0.3, 0.3, 0.4], [1, 0, 0], [np.nan] * 3],
-                   dtype=float)
+    cur = np.array([[1, 0, 0], [0, 1, 0], [0.3, 0.3, 0.4], [1, 0, 0], [np.nan] * 3], dtype=float)
     base = np.array([[0, 1, 0], [0, 1, 0], [np.nan] * 3, [0, 0, 1], [1, 0, 0]], dtype=float)
     act_now = np.array([10, 10, 10, 1, 0], dtype=float)
     act_before = np.array([10, 10, np.nan, 10, 5], dtype=float)
@@ -19,8 +18,15 @@ def _case():
 
 def test_statuses_and_threshold_alerts():
     cur, base, a, b, err = _case()
-    out = score_window(cur, base, a, b, err, F, ShiftPolicy(threshold=0.5, min_events=3, calibration="none",
-                                                          alert_mode="threshold"))
+    out = score_window(
+        cur,
+        base,
+        a,
+        b,
+        err,
+        F,
+        ShiftPolicy(threshold=0.5, min_events=3, calibration="none", alert_mode="threshold"),
+    )
     assert list(out.status) == ["scored", "scored", "new", "low_activity", "inactive"]
     np.testing.assert_allclose(out.score[:2], role_aware_distance(cur[:2], base[:2], F))
     assert np.isnan(out.score[2:]).all()
@@ -30,8 +36,13 @@ def test_statuses_and_threshold_alerts():
 
 def test_other_measures_and_component_weights():
     cur, base, a, b, err = _case()
-    pol = ShiftPolicy(measure="hellinger", magnitude_weight=0.5, error_weight=1.0,
-                      min_events=3, calibration="none")
+    pol = ShiftPolicy(
+        measure="hellinger",
+        magnitude_weight=0.5,
+        error_weight=1.0,
+        min_events=3,
+        calibration="none",
+    )
     out = score_window(cur, base, a, b, err, F, pol)
     expected = hellinger(cur[:2], base[:2]) + err[:2]  # equal activity: magnitude 0
     np.testing.assert_allclose(out.score[:2], expected)
@@ -43,14 +54,27 @@ def test_budget_mode_alerts_top_share_above_floor():
     cur = rng.dirichlet(np.ones(3), n)
     base = rng.dirichlet(np.ones(3), n)
     act = np.full(n, 10.0)
-    pol = ShiftPolicy(measure="total_variation", alert_mode="budget", budget=0.05, floor=0.0,
-                      calibration="none")
+    pol = ShiftPolicy(
+        measure="total_variation", alert_mode="budget", budget=0.05, floor=0.0, calibration="none"
+    )
     out = score_window(cur, base, act, act, np.zeros(n), F, pol)
     assert out.alert.sum() == 10
     assert out.score[out.alert].min() >= np.nanmax(out.score[~out.alert])
-    high_floor = score_window(cur, base, act, act, np.zeros(n), F,
-                              ShiftPolicy(measure="total_variation", alert_mode="budget",
-                                          budget=0.05, floor=2.0, calibration="none"))
+    high_floor = score_window(
+        cur,
+        base,
+        act,
+        act,
+        np.zeros(n),
+        F,
+        ShiftPolicy(
+            measure="total_variation",
+            alert_mode="budget",
+            budget=0.05,
+            floor=2.0,
+            calibration="none",
+        ),
+    )
     assert not high_floor.alert.any()
 
 

@@ -5,7 +5,10 @@ import pytest
 from scipy.stats import median_abs_deviation
 
 from rolewatch.engine.scoring import (
-    ShiftPolicy, activity_strata, score_window, stratified_zscore,
+    ShiftPolicy,
+    activity_strata,
+    score_window,
+    stratified_zscore,
 )
 
 
@@ -56,12 +59,26 @@ def test_quiet_noise_no_longer_outranks_a_busy_shift():
     cur[busy] = 0.4 * base[busy] + 0.6 * np.eye(k)[np.argmin(base[busy])]
     act = np.r_[rng.integers(1, 3, n_quiet), rng.integers(40, 80, n_busy)].astype(float)
     err = np.zeros(n_quiet + n_busy)
-    raw = score_window(cur, base, act, act, err, F,
-                       ShiftPolicy(measure="total_variation", calibration="none",
-                                   min_events=1))
-    calibrated = score_window(cur, base, act, act, err, F,
-                              ShiftPolicy(measure="total_variation", min_events=1,
-                                          alert_mode="budget", budget=0.01, floor=5.0))
+    raw = score_window(
+        cur,
+        base,
+        act,
+        act,
+        err,
+        F,
+        ShiftPolicy(measure="total_variation", calibration="none", min_events=1),
+    )
+    calibrated = score_window(
+        cur,
+        base,
+        act,
+        act,
+        err,
+        F,
+        ShiftPolicy(
+            measure="total_variation", min_events=1, alert_mode="budget", budget=0.01, floor=5.0
+        ),
+    )
     assert np.sum(raw.score > raw.score[busy]) > 10
     assert np.nanargmax(calibrated.score) == busy
     assert calibrated.alert[busy] and calibrated.alert.sum() <= 4

@@ -4,8 +4,13 @@ import pytest
 
 from rolewatch.engine.basis import RoleBasis
 from rolewatch.engine.sensemaking import (
-    MEASURE_NAMES, betweenness, clustering_coefficient, describe_roles, node_measures,
-    pagerank)
+    MEASURE_NAMES,
+    betweenness,
+    clustering_coefficient,
+    describe_roles,
+    node_measures,
+    pagerank,
+)
 from rolewatch.engine.snapshot import Snapshot
 
 
@@ -67,8 +72,9 @@ def test_betweenness_with_all_sources_equals_networkx(graph):
     G = GRAPHS[graph]()
     snap, order = _undirected_snapshot(G)
     ref = nx.betweenness_centrality(G, normalized=True)
-    np.testing.assert_allclose(betweenness(snap.counts, batch=7), [ref[u] for u in order],
-                               atol=1e-12)
+    np.testing.assert_allclose(
+        betweenness(snap.counts, batch=7), [ref[u] for u in order], atol=1e-12
+    )
 
 
 def test_sampled_betweenness_is_an_unbiased_looking_estimate():
@@ -85,7 +91,8 @@ def test_node_measures_on_a_small_marketplace():
     snap = Snapshot.from_events(
         ["member-a", "member-a", "member-a", "member-b", "member-c", "member-d", "member-a"],
         ["member-b", "member-c", "member-d", "member-c", "member-b", "member-a", "member-b"],
-        nodes=["member-a", "member-b", "member-c", "member-d", "member-e"])
+        nodes=["member-a", "member-b", "member-c", "member-d", "member-e"],
+    )
     names, X = node_measures(snap)
     assert names == MEASURE_NAMES and X.shape == (5, len(names))
     col = {m: X[:, j] for j, m in enumerate(names)}
@@ -128,8 +135,9 @@ def test_describe_roles_names_planted_structures():
     order = ["sender", "collector", "circle", "buyer"]
     # one pure role per planted kind: profiles over three indicator-like features
     V = np.column_stack([(kinds == k).astype(float) for k in order])
-    basis = RoleBasis(F=np.eye(4), role_ids=(0, 1, 2, 3),
-                      feature_names=tuple(order), recipe_version=None)
+    basis = RoleBasis(
+        F=np.eye(4), role_ids=(0, 1, 2, 3), feature_names=tuple(order), recipe_version=None
+    )
     m = basis.memberships(V)
     roles = describe_roles(basis, m, names, X)
     by_id = {r.role_id: r for r in roles}
@@ -149,10 +157,17 @@ def test_duplicate_names_are_disambiguated():
     # two roles split the circle members between them -> same archetype twice
     circle = (kinds == "circle").astype(float)
     half = circle * (np.arange(len(kinds)) % 2)
-    V = np.column_stack([(kinds == "sender").astype(float), circle - half, half,
-                         (kinds == "buyer") + (kinds == "collector")])
-    basis = RoleBasis(F=np.eye(4), role_ids=(0, 1, 2, 3), feature_names=("a", "b", "c", "d"),
-                      recipe_version=None)
+    V = np.column_stack(
+        [
+            (kinds == "sender").astype(float),
+            circle - half,
+            half,
+            (kinds == "buyer") + (kinds == "collector"),
+        ]
+    )
+    basis = RoleBasis(
+        F=np.eye(4), role_ids=(0, 1, 2, 3), feature_names=("a", "b", "c", "d"), recipe_version=None
+    )
     roles = describe_roles(basis, basis.memberships(V), names, X)
     assert len({r.name for r in roles}) == 4
 

@@ -14,7 +14,9 @@ from .test_sensemaking import _star_and_circle_snapshot
 @pytest.fixture(scope="module")
 def fitted():
     snap = _star_and_circle_snapshot()
-    recipe = FeatureRecipe.discover([snap], tolerance=0.0, tolerance_step=0.0)  # keep every column of this small graph
+    recipe = FeatureRecipe.discover(
+        [snap], tolerance=0.0, tolerance_step=0.0
+    )  # keep every column of this small graph
     table = recipe.transform(snap)
     return snap, recipe, table, RoleBasis.fit(table, seed=0)
 
@@ -29,8 +31,11 @@ def test_mdl_finds_the_four_planted_kinds_and_names_them(fitted):
     kinds = np.array([str(n).split("-")[0] for n in table.nodes])
     dominant = np.asarray(basis.role_ids)[m.mixture.argmax(axis=1)]
     by_id = {r.role_id: r.name for r in roles}
-    expected = {"sender": "one-way sender", "collector": "collector",
-                "circle": "reciprocal circle member"}
+    expected = {
+        "sender": "one-way sender",
+        "collector": "collector",
+        "circle": "reciprocal circle member",
+    }
     for kind, name in expected.items():
         labels = {by_id[d] for d in dominant[kinds == kind]}
         assert labels == {name}, (kind, labels)

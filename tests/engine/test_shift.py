@@ -2,8 +2,16 @@ import numpy as np
 import pytest
 
 from rolewatch.engine.shift import (
-    activity_change, baseline_mixture, cosine_distance, dominant_role, feature_moves,
-    hellinger, jensen_shannon, role_aware_distance, total_variation)
+    activity_change,
+    baseline_mixture,
+    cosine_distance,
+    dominant_role,
+    feature_moves,
+    hellinger,
+    jensen_shannon,
+    role_aware_distance,
+    total_variation,
+)
 
 ALL = [hellinger, jensen_shannon, total_variation, cosine_distance]
 
@@ -31,9 +39,13 @@ def test_nan_rows_stay_local_and_results_are_bounded(dist):
 
 
 def test_role_aware_distance_costs_little_between_similar_roles():
-    F = np.array([[1.0, 1.0, 0.0, 0.0],
-                  [1.0, 0.9, 0.0, 0.0],   # nearly the same role as 0
-                  [0.0, 0.0, 1.0, 1.0]])
+    F = np.array(
+        [
+            [1.0, 1.0, 0.0, 0.0],
+            [1.0, 0.9, 0.0, 0.0],  # nearly the same role as 0
+            [0.0, 0.0, 1.0, 1.0],
+        ]
+    )
     p = np.array([[1.0, 0.0, 0.0], [1.0, 0.0, 0.0], [0.3, 0.3, 0.4]])
     q = np.array([[0.0, 1.0, 0.0], [0.0, 0.0, 1.0], [0.3, 0.3, 0.4]])
     d = role_aware_distance(p, q, F)
@@ -52,11 +64,13 @@ def test_activity_change_is_symmetric_log_ratio():
 
 def test_baseline_previous_mean_and_ewm():
     nan = [np.nan, np.nan]
-    history = np.array([
-        [[1.0, 0.0], [0.5, 0.5], nan],
-        [[0.0, 1.0], nan, nan],
-        [nan, nan, nan],
-    ])
+    history = np.array(
+        [
+            [[1.0, 0.0], [0.5, 0.5], nan],
+            [[0.0, 1.0], nan, nan],
+            [nan, nan, nan],
+        ]
+    )
     prev = baseline_mixture(history, mode="previous")
     np.testing.assert_allclose(prev[0], [0.0, 1.0])
     np.testing.assert_allclose(prev[1], [0.5, 0.5])
@@ -77,8 +91,12 @@ def test_feature_moves_ranks_by_log_ratio_and_keeps_raw_values():
     names = ["out_degree", "in_degree", "weight_out", "triangles"]
     moves = feature_moves(names, [0, 100, 5, np.nan], [3, 103, 5, 2], top=5)
     assert [m["feature"] for m in moves] == ["out_degree", "in_degree"]
-    assert moves[0] == {"feature": "out_degree", "before": 0.0, "after": 3.0,
-                        "log_ratio": pytest.approx(np.log(4))}
+    assert moves[0] == {
+        "feature": "out_degree",
+        "before": 0.0,
+        "after": 3.0,
+        "log_ratio": pytest.approx(np.log(4)),
+    }
     assert feature_moves(names, [0, 0, 0, 0], [1, 2, 3, 4], top=2)[0]["feature"] == "triangles"
     with pytest.raises(ValueError):
         feature_moves(names, [1, 2], [1, 2])

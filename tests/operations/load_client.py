@@ -17,26 +17,37 @@ import httpx
 
 def batch_events(number: int, size: int) -> list[dict]:
     base = 1_780_272_000 + number * size  # 2026-06-01T00:00:00Z onwards, one event a second
-    return [{
-        "id": f"crash-{number:06d}-{i:04d}",
-        "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(base + i)),
-        "actor": f"m-{(number * 7 + i) % 997:04d}",
-        "target": f"m-{(number * 7 + i + 1) % 997:04d}",
-        "kind": "payment",
-        "weight": 1.0 + i % 13,
-    } for i in range(size)]
+    return [
+        {
+            "id": f"crash-{number:06d}-{i:04d}",
+            "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(base + i)),
+            "actor": f"m-{(number * 7 + i) % 997:04d}",
+            "target": f"m-{(number * 7 + i + 1) % 997:04d}",
+            "kind": "payment",
+            "weight": 1.0 + i % 13,
+        }
+        for i in range(size)
+    ]
 
 
-def main(url: str, key: str, log: str, first: int, count: int, size: int, pause: float = 0.0) -> None:
+def main(
+    url: str, key: str, log: str, first: int, count: int, size: int, pause: float = 0.0
+) -> None:
     stop = Path(log).with_name("stop")
     with open(log, "a", encoding="utf-8") as out, httpx.Client(timeout=30) as client:
         for number in range(first, first + count):
             if stop.exists():
                 break
             try:
-                response = client.post(url + "/v1/events", json={"events": batch_events(number, size)},
-                                       headers={"Authorization": f"Bearer {key}"})
-                if response.status_code == 202 and response.json()["accepted"] + response.json()["duplicates"] == size:
+                response = client.post(
+                    url + "/v1/events",
+                    json={"events": batch_events(number, size)},
+                    headers={"Authorization": f"Bearer {key}"},
+                )
+                if (
+                    response.status_code == 202
+                    and response.json()["accepted"] + response.json()["duplicates"] == size
+                ):
                     out.write(f"ack {number}\n")
                 else:
                     out.write(f"fail {number} {response.status_code}\n")

@@ -36,8 +36,10 @@ def require_postgres() -> None:
         return
     if os.environ.get("ROLEWATCH_REQUIRE_POSTGRES"):
         pytest.fail("ROLEWATCH_REQUIRE_POSTGRES is set but ROLEWATCH_TEST_POSTGRES_URL is not")
-    pytest.skip("PostgreSQL tests need ROLEWATCH_TEST_POSTGRES_URL "
-                "(CI sets it to postgresql+psycopg://postgres@127.0.0.1:5432/test)")
+    pytest.skip(
+        "PostgreSQL tests need ROLEWATCH_TEST_POSTGRES_URL "
+        "(CI sets it to postgresql+psycopg://postgres@127.0.0.1:5432/test)"
+    )
 
 
 @contextmanager
@@ -75,7 +77,10 @@ def make_keys(database_url: str) -> dict[str, str]:
     for scope in ("admin", "ingest", "read"):
         done = subprocess.run(
             [sys.executable, "-m", "rolewatch.cli", "keys", "create", "--scope", scope],
-            env=server_env(database_url), capture_output=True, text=True, timeout=120,
+            env=server_env(database_url),
+            capture_output=True,
+            text=True,
+            timeout=120,
         )
         assert done.returncode == 0, done.stderr
         keys[scope] = done.stdout.strip()
@@ -109,13 +114,24 @@ class Server:
     def url(self) -> str:
         return f"http://127.0.0.1:{self.port}"
 
-    def start(self, timeout: float = 90.0) -> "Server":
+    def start(self, timeout: float = 90.0) -> Server:
         self.process = subprocess.Popen(
-            [sys.executable, "-m", "rolewatch.cli", "serve", "--host", "127.0.0.1",
-             "--port", str(self.port)],
-            env=server_env(self.database_url, public_url=f"http://127.0.0.1:{self.port}",
-                           **self.settings),
-            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+            [
+                sys.executable,
+                "-m",
+                "rolewatch.cli",
+                "serve",
+                "--host",
+                "127.0.0.1",
+                "--port",
+                str(self.port),
+            ],
+            env=server_env(
+                self.database_url, public_url=f"http://127.0.0.1:{self.port}", **self.settings
+            ),
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.PIPE,
+            text=True,
         )
         self._reader = threading.Thread(target=self._read, daemon=True)
         self._reader.start()
@@ -123,8 +139,9 @@ class Server:
         while True:
             if self.process.poll() is not None:
                 self._reader.join(5)
-                raise AssertionError(f"server exited {self.process.returncode}:\n"
-                                     + "\n".join(self.raw[-30:]))
+                raise AssertionError(
+                    f"server exited {self.process.returncode}:\n" + "\n".join(self.raw[-30:])
+                )
             try:
                 if httpx.get(self.url + "/healthz", timeout=2).status_code == 200:
                     return self
@@ -202,7 +219,7 @@ class Receiver:
     def url(self) -> str:
         return f"http://127.0.0.1:{self.port}/hook"
 
-    def __enter__(self) -> "Receiver":
+    def __enter__(self) -> Receiver:
         owner = self
 
         class Handler(BaseHTTPRequestHandler):
@@ -248,8 +265,12 @@ def subscribe(server: Server, admin_key: str, receiver: Receiver) -> dict:
 
 
 def post_events(url: str, key: str, batch: list[dict], timeout: float = 60) -> httpx.Response:
-    return httpx.post(url + "/v1/events", headers={"Authorization": f"Bearer {key}"},
-                      json={"events": batch}, timeout=timeout)
+    return httpx.post(
+        url + "/v1/events",
+        headers={"Authorization": f"Bearer {key}"},
+        json={"events": batch},
+        timeout=timeout,
+    )
 
 
 def windows_table(database_url: str) -> list[dict]:
@@ -257,11 +278,18 @@ def windows_table(database_url: str) -> list[dict]:
     engine = sa.create_engine(database_url)
     try:
         with engine.connect() as connection:
-            rows = connection.execute(sa.text(
-                "SELECT w.id, w.end_us, w.account_count, w.alert_count, "
-                "(SELECT count(*) FROM memberships m WHERE m.window_id = w.id) AS members, "
-                "(SELECT count(*) FROM alerts a WHERE a.window_id = w.id) AS alerts "
-                "FROM windows w ORDER BY w.end_us")).mappings().all()
+            rows = (
+                connection.execute(
+                    sa.text(
+                        "SELECT w.id, w.end_us, w.account_count, w.alert_count, "
+                        "(SELECT count(*) FROM memberships m WHERE m.window_id = w.id) AS members, "
+                        "(SELECT count(*) FROM alerts a WHERE a.window_id = w.id) AS alerts "
+                        "FROM windows w ORDER BY w.end_us"
+                    )
+                )
+                .mappings()
+                .all()
+            )
         return [dict(row) for row in rows]
     finally:
         engine.dispose()

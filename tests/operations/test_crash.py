@@ -31,8 +31,9 @@ def _acknowledged(log: Path) -> tuple[set[int], set[int]]:
 
 
 def _run_client(server: Server, key: str, log: Path, first: int, count: int) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, str(CLIENT), server.url, key, str(log), str(first),
-                             str(count), str(BATCH)])
+    return subprocess.Popen(
+        [sys.executable, str(CLIENT), server.url, key, str(log), str(first), str(count), str(BATCH)]
+    )
 
 
 @pytest.mark.slow
@@ -56,10 +57,18 @@ def test_kill_during_ingest_keeps_every_acknowledged_event_once(store_url, tmp_p
             acked, failed = _acknowledged(log)
             stored = scalar(store_url, "SELECT count(*) FROM events")
             distinct = scalar(store_url, "SELECT count(DISTINCT event_id) FROM events")
-            report.append({"kill": round_ + 1, "acknowledged_events": len(acked) * BATCH,
-                           "stored": stored, "distinct": distinct})
+            report.append(
+                {
+                    "kill": round_ + 1,
+                    "acknowledged_events": len(acked) * BATCH,
+                    "stored": stored,
+                    "distinct": distinct,
+                }
+            )
             assert stored == distinct  # nothing doubled
-            assert stored >= len(acked) * BATCH  # acknowledged events are all there (checked below by id)
+            assert (
+                stored >= len(acked) * BATCH
+            )  # acknowledged events are all there (checked below by id)
             time.sleep(0.5)  # the client meets the dead server for a moment
             server.start()
         (tmp_path / "stop").touch()
@@ -77,6 +86,7 @@ def test_kill_during_ingest_keeps_every_acknowledged_event_once(store_url, tmp_p
     try:
         with engine.connect() as connection:
             import sqlalchemy as sa
+
             present = {row[0] for row in connection.execute(sa.text("SELECT event_id FROM events"))}
             total = connection.execute(sa.text("SELECT count(*) FROM events")).scalar()
     finally:
@@ -87,23 +97,45 @@ def test_kill_during_ingest_keeps_every_acknowledged_event_once(store_url, tmp_p
     for number in failed:
         ids = {e["id"] for e in batch_events(number, BATCH)}
         assert len(ids & present) in (0, BATCH), (number, len(ids & present))
-    print("ingest-crash", store_url.split(":")[0], report,
-          {"acknowledged": len(expected), "stored": total, "failed_batches": len(failed)})
+    print(
+        "ingest-crash",
+        store_url.split(":")[0],
+        report,
+        {"acknowledged": len(expected), "stored": total, "failed_batches": len(failed)},
+    )
 
 
 @pytest.mark.slow
 def test_kill_during_window_close_leaves_no_partial_window(store_url, tmp_path):
     # A delivery claimed when the process dies waits out its claim lease (connect + total
     # timeout per round of sends, plus 60 s): these settings make it 63 s instead of 320 s.
-    settings = dict(tick_interval="1s", idle_close_after="2s", webhook_allow_http=True,
-                    webhook_allow_hosts=["127.0.0.1"], delivery_backoff="1s", training_windows=4,
-                    delivery_connect_timeout="1s", delivery_timeout="2s", delivery_batch_size=5,
-                    delivery_concurrency=5, alert_mode="budget", alert_budget=0.05, alert_floor=0.0)
+    settings = dict(
+        tick_interval="1s",
+        idle_close_after="2s",
+        webhook_allow_http=True,
+        webhook_allow_hosts=["127.0.0.1"],
+        delivery_backoff="1s",
+        training_windows=4,
+        delivery_connect_timeout="1s",
+        delivery_timeout="2s",
+        delivery_batch_size=5,
+        delivery_concurrency=5,
+        alert_mode="budget",
+        alert_budget=0.05,
+        alert_floor=0.0,
+    )
     keys = make_keys(store_url)
     engine = open_store(load_settings(database_url=store_url))
     try:  # the sample is stored before the server starts: it finds ten windows due at once
-        assert ingest(engine, load_settings(database_url=store_url), sample_events(),
-                      time.time_ns() // 1000).accepted == 10839
+        assert (
+            ingest(
+                engine,
+                load_settings(database_url=store_url),
+                sample_events(),
+                time.time_ns() // 1000,
+            ).accepted
+            == 10839
+        )
     finally:
         engine.dispose()
     receiver = Receiver()  # its port is subscribed now, but it starts only after the kills
@@ -128,14 +160,18 @@ def test_kill_during_window_close_leaves_no_partial_window(store_url, tmp_path):
         deadline = time.monotonic() + 120
         while time.monotonic() < deadline:
             closing = [m for m in server.messages()[seen:] if "closing window" in m]
-            if closing and scalar(store_url, "SELECT count(*) FROM deliveries WHERE status = 'pending'"):
+            if closing and scalar(
+                store_url, "SELECT count(*) FROM deliveries WHERE status = 'pending'"
+            ):
                 break
             time.sleep(0.01)
         time.sleep(0.1)
         server.kill()
         windows = windows_table(store_url)
         report["after_kill_2"] = len(windows)
-        report["pending_at_kill_2"] = scalar(store_url, "SELECT count(*) FROM deliveries WHERE status = 'pending'")
+        report["pending_at_kill_2"] = scalar(
+            store_url, "SELECT count(*) FROM deliveries WHERE status = 'pending'"
+        )
         _assert_whole(windows)
         assert report["pending_at_kill_2"] > 0
         # Restart with the receiver up: every window closes once, every delivery goes out.
@@ -143,8 +179,9 @@ def test_kill_during_window_close_leaves_no_partial_window(store_url, tmp_path):
             server.start()
             deadline = time.monotonic() + 120
             while time.monotonic() < deadline:
-                if (scalar(store_url, "SELECT count(*) FROM windows") == 10
-                        and not scalar(store_url, "SELECT count(*) FROM deliveries WHERE status <> 'delivered'")):
+                if scalar(store_url, "SELECT count(*) FROM windows") == 10 and not scalar(
+                    store_url, "SELECT count(*) FROM deliveries WHERE status <> 'delivered'"
+                ):
                     break
                 time.sleep(0.5)
             time.sleep(2)
@@ -160,8 +197,12 @@ def test_kill_during_window_close_leaves_no_partial_window(store_url, tmp_path):
     assert alerts > 0
     assert scalar(store_url, "SELECT count(*) FROM deliveries WHERE status = 'delivered'") == alerts
     assert receiver.unique() == set(receiver.bodies) and len(receiver.unique()) == alerts
-    report.update(windows=len(windows), alerts=alerts, delivered=len(receiver.unique()),
-                  receipts=len(receiver.ids))
+    report.update(
+        windows=len(windows),
+        alerts=alerts,
+        delivered=len(receiver.unique()),
+        receipts=len(receiver.ids),
+    )
     print("close-crash", store_url.split(":")[0], report)
 
 

@@ -28,10 +28,16 @@ ENV_NAMES = {f"ROLEWATCH_{name.upper()}" for name in Settings.model_fields}
 
 
 def test_example_config_matches_its_generator():
-    done = subprocess.run([sys.executable, str(ROOT / "scripts" / "example_config.py")],
-                          capture_output=True, text=True, timeout=60, check=True)
-    assert (DEPLOY / "rolewatch.example.toml").read_text(encoding="utf-8") == done.stdout, \
+    done = subprocess.run(
+        [sys.executable, str(ROOT / "scripts" / "example_config.py")],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=True,
+    )
+    assert (DEPLOY / "rolewatch.example.toml").read_text(encoding="utf-8") == done.stdout, (
         "deploy/rolewatch.example.toml is stale: run python scripts/example_config.py --update"
+    )
 
 
 def test_example_config_names_every_option_and_each_line_loads(tmp_path, monkeypatch):
@@ -57,19 +63,24 @@ def test_compose_file_runs_the_image_with_postgres():
     compose = yaml.safe_load((DEPLOY / "compose.yaml").read_text(encoding="utf-8"))
     services = compose["services"]
     app, database = services["rolewatch"], services["postgres"]
-    assert (ROOT / "deploy" / app["build"]["context"] / app["build"]["dockerfile"]).resolve() == \
-        DEPLOY / "Containerfile"
+    assert (
+        ROOT / "deploy" / app["build"]["context"] / app["build"]["dockerfile"]
+    ).resolve() == DEPLOY / "Containerfile"
     assert app["image"].endswith("rolewatch:0.1.0")
     assert app["depends_on"]["postgres"]["condition"] == "service_healthy"
     env = app["environment"]
     assert set(env) <= ENV_NAMES, set(env) - ENV_NAMES  # only real settings
     assert env["ROLEWATCH_DATABASE_URL"].startswith("postgresql+psycopg://rolewatch:")
     assert env["ROLEWATCH_DATABASE_URL"].endswith("@postgres:5432/rolewatch")
-    assert "/healthz" in " ".join(app["healthcheck"]["test"]) and "curl" not in str(app["healthcheck"])
+    assert "/healthz" in " ".join(app["healthcheck"]["test"]) and "curl" not in str(
+        app["healthcheck"]
+    )
     assert "pg_isready" in " ".join(database["healthcheck"]["test"])
-    assert "pgdata" in compose["volumes"] and any(v.startswith("pgdata:") for v in database["volumes"])
+    assert "pgdata" in compose["volumes"] and any(
+        v.startswith("pgdata:") for v in database["volumes"]
+    )
     # Settings the compose file sets must be accepted by the settings model.
-    values = {k[len("ROLEWATCH_"):].lower(): v for k, v in env.items() if "${" not in v}
+    values = {k[len("ROLEWATCH_") :].lower(): v for k, v in env.items() if "${" not in v}
     load_settings(**values)
 
 
@@ -77,7 +88,9 @@ def test_containerfile_is_multi_stage_non_root_with_python_healthcheck():
     text = (DEPLOY / "Containerfile").read_text(encoding="utf-8")
     assert len(re.findall(r"^FROM ", text, flags=re.M)) == 2 and "COPY --from=build" in text
     assert re.search(r"^USER rolewatch$", text, flags=re.M)
-    health = next(line for line in text.splitlines() if line.strip().startswith("CMD [\"python\", \"-c\""))
+    health = next(
+        line for line in text.splitlines() if line.strip().startswith('CMD ["python", "-c"')
+    )
     assert "/healthz" in health and "curl" not in text
     assert "rolewatch-install install" in text and 'CMD ["rolewatch-install", "start"]' in text
     unit = configparser.ConfigParser(strict=False, interpolation=None)
@@ -89,7 +102,9 @@ def test_containerfile_is_multi_stage_non_root_with_python_healthcheck():
 @pytest.mark.slow
 def test_install_script_installs_and_starts_the_service(tmp_path):
     venv = tmp_path / "venv"
-    subprocess.run([sys.executable, "-m", "venv", "--without-pip", str(venv)], check=True, timeout=120)
+    subprocess.run(
+        [sys.executable, "-m", "venv", "--without-pip", str(venv)], check=True, timeout=120
+    )
     # Dependencies come from the test environment: a .pth file puts its site-packages after
     # the new venv's own (pip runs from there too), so only rolewatch itself is built and
     # installed (the build backend, setuptools, comes from the package index as usual).
@@ -97,21 +112,36 @@ def test_install_script_installs_and_starts_the_service(tmp_path):
     new_site = next((venv / "lib").glob("python3*/site-packages"))
     (new_site / "test-deps.pth").write_text(str(site) + "\n")
     env = {k: v for k, v in os.environ.items() if not k.startswith("ROLEWATCH_")}
-    env.update(ROLEWATCH_VENV=str(venv),
-               ROLEWATCH_PIP_OPTIONS="--no-deps")
-    done = subprocess.run(["sh", str(DEPLOY / "install.sh"), "install", str(ROOT)], env=env,
-                          capture_output=True, text=True, timeout=300)
+    env.update(ROLEWATCH_VENV=str(venv), ROLEWATCH_PIP_OPTIONS="--no-deps")
+    done = subprocess.run(
+        ["sh", str(DEPLOY / "install.sh"), "install", str(ROOT)],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
     assert done.returncode == 0, done.stderr
-    installed = subprocess.run([str(venv / "bin" / "python"), "-c",
-                                "import rolewatch, sys; print(rolewatch.__file__)"],
-                               capture_output=True, text=True, timeout=60)
+    installed = subprocess.run(
+        [str(venv / "bin" / "python"), "-c", "import rolewatch, sys; print(rolewatch.__file__)"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert str(new_site) in installed.stdout  # the copy install.sh put there, not the editable one
 
     port = free_port()
-    env.update(ROLEWATCH_DATABASE_URL=f"sqlite:///{tmp_path / 'rw.db'}", ROLEWATCH_PORT=str(port),
-               ROLEWATCH_HOST="127.0.0.1")
-    process = subprocess.Popen(["sh", str(DEPLOY / "install.sh"), "start"], env=env,
-                               stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    env.update(
+        ROLEWATCH_DATABASE_URL=f"sqlite:///{tmp_path / 'rw.db'}",
+        ROLEWATCH_PORT=str(port),
+        ROLEWATCH_HOST="127.0.0.1",
+    )
+    process = subprocess.Popen(
+        ["sh", str(DEPLOY / "install.sh"), "start"],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
     try:
         deadline = time.monotonic() + 90
         while True:
@@ -123,9 +153,12 @@ def test_install_script_installs_and_starts_the_service(tmp_path):
                 time.sleep(0.2)
         assert health.json() == {"status": "ok", "database": "ok"}
         # The container health check, run as the image runs it.
-        check = re.search(r'CMD \["python", "-c", "(.+)"\]', (DEPLOY / "Containerfile").read_text()).group(1)
-        probe = subprocess.run([sys.executable, "-c", check], env={**env, "ROLEWATCH_PORT": str(port)},
-                               timeout=30)
+        check = re.search(
+            r'CMD \["python", "-c", "(.+)"\]', (DEPLOY / "Containerfile").read_text()
+        ).group(1)
+        probe = subprocess.run(
+            [sys.executable, "-c", check], env={**env, "ROLEWATCH_PORT": str(port)}, timeout=30
+        )
         assert probe.returncode == 0
         process.send_signal(signal.SIGTERM)  # install.sh exec'd the server: it gets the signal
         assert process.wait(60) == 0

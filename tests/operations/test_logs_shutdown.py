@@ -25,20 +25,27 @@ def test_info_logs_have_request_ids_and_no_keys_or_account_ids(app_client, make_
         actor, target = "acct-secretive-7781", "acct-hidden-4410"
         event = make_event(actor=actor, target=target, id="evt-private-99", kind="payment")
         key = app_client.keys["ingest"]
-        response = app_client.client.post("/v1/events", json={"events": [event]},
-                                          headers={"Authorization": f"Bearer {key}",
-                                                   "X-Request-ID": "req-abc.123"})
+        response = app_client.client.post(
+            "/v1/events",
+            json={"events": [event]},
+            headers={"Authorization": f"Bearer {key}", "X-Request-ID": "req-abc.123"},
+        )
         assert response.status_code == 202 and response.headers["x-request-id"] == "req-abc.123"
-        bad = app_client.client.post("/v1/events", json={"events": [make_event(actor=actor, target=actor)]},
-                                     headers={"Authorization": f"Bearer {key}"})
+        bad = app_client.client.post(
+            "/v1/events",
+            json={"events": [make_event(actor=actor, target=actor)]},
+            headers={"Authorization": f"Bearer {key}"},
+        )
         assert bad.status_code == 202 and bad.json()["rejected"]
-        history = app_client.client.get(f"/v1/accounts/{actor}/roles",
-                                        headers=app_client.headers("read"))
+        history = app_client.client.get(
+            f"/v1/accounts/{actor}/roles", headers=app_client.headers("read")
+        )
         assert history.status_code in (200, 404)
         app_client.client.get("/v1/roles", headers={"Authorization": "Bearer " + key + "x"})
     finally:
-        logging.getLogger().handlers = [h for h in logging.getLogger().handlers
-                                        if not getattr(h, "_rolewatch", False)]
+        logging.getLogger().handlers = [
+            h for h in logging.getLogger().handlers if not getattr(h, "_rolewatch", False)
+        ]
     text = stream.getvalue()
     records = [json.loads(line) for line in text.splitlines()]
     requests = [r for r in records if r.get("logger") == "rolewatch.http"]

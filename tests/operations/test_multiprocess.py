@@ -7,8 +7,17 @@ import time
 
 import pytest
 
-from .servers import (Receiver, Server, make_keys, post_events, running, sample_events, scalar,
-                      subscribe, windows_table)
+from .servers import (
+    Receiver,
+    Server,
+    make_keys,
+    post_events,
+    running,
+    sample_events,
+    scalar,
+    subscribe,
+    windows_table,
+)
 
 SETTINGS = {
     "tick_interval": "1s",
@@ -36,7 +45,7 @@ def test_two_servers_close_each_window_once_and_deliver_each_alert_once(postgres
     with Receiver() as receiver, running(one, two):
         subscribe(one, keys["admin"], receiver)
         events = sample_events()
-        batches = [events[i:i + 500] for i in range(0, len(events), 500)]
+        batches = [events[i : i + 500] for i in range(0, len(events), 500)]
         for number, batch in enumerate(batches):  # alternate between the two processes
             response = post_events((one, two)[number % 2].url, keys["ingest"], batch)
             assert response.status_code == 202 and response.json()["accepted"] == len(batch)
@@ -44,7 +53,9 @@ def test_two_servers_close_each_window_once_and_deliver_each_alert_once(postgres
         # Both processes run the closer and the delivery worker every second.
         while time.monotonic() - started < DEADLINE_S:
             closed = scalar(postgres_url, "SELECT count(*) FROM windows")
-            pending = scalar(postgres_url, "SELECT count(*) FROM deliveries WHERE status <> 'delivered'")
+            pending = scalar(
+                postgres_url, "SELECT count(*) FROM deliveries WHERE status <> 'delivered'"
+            )
             alerts = scalar(postgres_url, "SELECT count(*) FROM alerts")
             if closed == 10 and pending == 0 and len(receiver.unique()) >= alerts:
                 break
@@ -60,14 +71,20 @@ def test_two_servers_close_each_window_once_and_deliver_each_alert_once(postgres
         assert window["members"] == window["account_count"] > 0, window
         assert window["alerts"] == window["alert_count"]
     alerts = scalar(postgres_url, "SELECT count(*) FROM alerts")
-    deliveries = scalar(postgres_url, "SELECT count(*) FROM deliveries WHERE event_type = 'alert.raised'")
+    deliveries = scalar(
+        postgres_url, "SELECT count(*) FROM deliveries WHERE event_type = 'alert.raised'"
+    )
     assert alerts > 0 and deliveries == alerts  # one delivery per alert and subscription
     assert len(receiver.unique()) == alerts, (len(receiver.unique()), alerts)
     # A webhook-id seen twice is only acceptable as a retry the store recorded.
     for webhook_id, seen in receiver.repeated().items():
-        attempts = scalar(postgres_url, "SELECT attempts FROM deliveries WHERE id = :i", i=webhook_id)
+        attempts = scalar(
+            postgres_url, "SELECT attempts FROM deliveries WHERE id = :i", i=webhook_id
+        )
         assert attempts >= seen, (webhook_id, seen, attempts)
     # Both processes served ingest; the closer lock let exactly one close each window.
     late = scalar(postgres_url, "SELECT count(*) FROM events WHERE late")
-    print(f"multiprocess: windows={len(windows)} alerts={alerts} late={late} delivered_ids={len(receiver.unique())} "
-          f"receipts={len(receiver.ids)} seconds={time.monotonic() - started:.0f}")
+    print(
+        f"multiprocess: windows={len(windows)} alerts={alerts} late={late} delivered_ids={len(receiver.unique())} "
+        f"receipts={len(receiver.ids)} seconds={time.monotonic() - started:.0f}"
+    )

@@ -29,8 +29,14 @@ def _time_us(text: str) -> int:
 
 @pytest.mark.slow
 def test_purge_keeps_recent_windows_memberships_and_alerts(store_url):
-    settings = load_settings(database_url=store_url, training_windows=2, retention_windows=2,
-                             window_period="7d", window_span="7d", window_lateness="1h")
+    settings = load_settings(
+        database_url=store_url,
+        training_windows=2,
+        retention_windows=2,
+        window_period="7d",
+        window_span="7d",
+        window_lateness="1h",
+    )
     engine = open_store(settings)
     try:
         sample = sample_events()[:6500]  # about six weekly windows: keeps the test short
@@ -48,8 +54,12 @@ def test_purge_keeps_recent_windows_memberships_and_alerts(store_url):
         alerts = _count(engine, "SELECT count(*) FROM alerts")
         assert windows >= 5
         with engine.connect() as connection:
-            starts = [r[0] for r in connection.execute(
-                sa.text("SELECT start_us FROM windows ORDER BY end_us DESC"))]
+            starts = [
+                r[0]
+                for r in connection.execute(
+                    sa.text("SELECT start_us FROM windows ORDER BY end_us DESC")
+                )
+            ]
         cutoff = starts[1]  # the start of the 2nd most recent closed window
 
         result = purge_expired(engine, settings)
@@ -86,16 +96,22 @@ def test_retention_zero_keeps_everything(store_url):
 
 def test_hopping_windows_keep_what_the_next_close_reads(tmp_path):
     """With span = 2 x period the next close reads two spans back; the cutoff honours that."""
-    settings = load_settings(database_url=f"sqlite:///{tmp_path / 'h.db'}", retention_windows=1,
-                             window_period="7d", window_span="14d", training_windows=2)
+    settings = load_settings(
+        database_url=f"sqlite:///{tmp_path / 'h.db'}",
+        retention_windows=1,
+        window_period="7d",
+        window_span="14d",
+        training_windows=2,
+    )
     engine = open_store(settings)
     try:
         now = time.time_ns() // 1000
         ingest(engine, settings, sample_events()[:4500], now)
         close_due_windows(engine, settings, now_us=now)
         with engine.connect() as connection:
-            last = connection.execute(sa.text(
-                "SELECT start_us, end_us FROM windows ORDER BY end_us DESC LIMIT 1")).one()
+            last = connection.execute(
+                sa.text("SELECT start_us, end_us FROM windows ORDER BY end_us DESC LIMIT 1")
+            ).one()
         period = 7 * 86_400 * 1_000_000
         next_start = last.end_us + period - 2 * period
         assert purge_cutoff(engine, settings) == next_start - 2 * period < last.start_us

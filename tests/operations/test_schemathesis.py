@@ -9,7 +9,6 @@ import os
 from collections import Counter
 from pathlib import Path
 
-import httpx
 import pytest
 import schemathesis
 from hypothesis import HealthCheck, given, settings
@@ -25,15 +24,20 @@ CALLS: Counter = Counter()
 def live(tmp_path_factory):
     url = f"sqlite:///{tmp_path_factory.mktemp('st') / 'rolewatch.db'}"
     keys = make_keys(url)
-    server = Server(url, {"role": "api", "max_batch_events": 200, "max_batch_bytes": 200_000}).start()
+    server = Server(
+        url, {"role": "api", "max_batch_events": 200, "max_batch_bytes": 200_000}
+    ).start()
     try:
         # Some real data, so reads of accounts, windows and roles have something to find.
         assert post_events(server.url, keys["ingest"], sample_events()[:150]).status_code == 202
         yield server, keys
     finally:
         server.kill()
-        report = {"operations": len({op for op, _ in CALLS}), "requests": sum(CALLS.values()),
-                  "server_errors": sum(n for (op, status), n in CALLS.items() if status >= 500)}
+        report = {
+            "operations": len({op for op, _ in CALLS}),
+            "requests": sum(CALLS.values()),
+            "server_errors": sum(n for (op, status), n in CALLS.items() if status >= 500),
+        }
         Path("artifacts").mkdir(exist_ok=True)
         Path("artifacts/schemathesis.json").write_text(json.dumps(report) + "\n")
 
@@ -49,16 +53,24 @@ def test_no_request_gets_a_server_error(live):
     assert len(operations) >= 19
 
     for operation in operations:
+
         @given(case=operation.as_strategy())
-        @settings(max_examples=EXAMPLES, deadline=None, derandomize=True, database=None,
-                  suppress_health_check=list(HealthCheck))
+        @settings(
+            max_examples=EXAMPLES,
+            deadline=None,
+            derandomize=True,
+            database=None,
+            suppress_health_check=list(HealthCheck),
+        )
         def exercise(case):
             response = case.call(base_url=server.url, headers=headers, timeout=60)
             CALLS[(f"{case.method} {case.path}", response.status_code)] += 1
             try:
                 case.validate_response(response, checks=[not_a_server_error])
             except Exception as error:  # keep going: report every operation that failed
-                failures.append(f"{case.method} {case.path}: {response.status_code} {str(error)[:300]}")
+                failures.append(
+                    f"{case.method} {case.path}: {response.status_code} {str(error)[:300]}"
+                )
 
         exercise()
     assert not failures, "\n".join(failures[:20])

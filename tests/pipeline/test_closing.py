@@ -33,21 +33,39 @@ def _snapshot_of_results(engine) -> dict:
     with engine.connect() as connection:
         window_rows = connection.execute(
             sa.select(
-                windows.c.start_us, windows.c.end_us, windows.c.event_count, windows.c.account_count,
-                windows.c.alert_count, windows.c.training, windows.c.basis_version,
-                windows.c.reconstruction_error, windows.c.new_count, windows.c.inactive_count,
+                windows.c.start_us,
+                windows.c.end_us,
+                windows.c.event_count,
+                windows.c.account_count,
+                windows.c.alert_count,
+                windows.c.training,
+                windows.c.basis_version,
+                windows.c.reconstruction_error,
+                windows.c.new_count,
+                windows.c.inactive_count,
             ).order_by(windows.c.end_us)
         ).all()
         member_rows = connection.execute(
             sa.select(
-                windows.c.end_us, memberships.c.account, memberships.c.mixture, memberships.c.score,
-                memberships.c.status, memberships.c.dominant_role, memberships.c.new_counterparts,
-            ).join(windows, windows.c.id == memberships.c.window_id)
+                windows.c.end_us,
+                memberships.c.account,
+                memberships.c.mixture,
+                memberships.c.score,
+                memberships.c.status,
+                memberships.c.dominant_role,
+                memberships.c.new_counterparts,
+            )
+            .join(windows, windows.c.id == memberships.c.window_id)
             .order_by(windows.c.end_us, memberships.c.account)
         ).all()
         alert_rows = connection.execute(
-            sa.select(alerts.c.window_end_us, alerts.c.account, alerts.c.score, alerts.c.role_before, alerts.c.role_after)
-            .order_by(alerts.c.window_end_us, alerts.c.account)
+            sa.select(
+                alerts.c.window_end_us,
+                alerts.c.account,
+                alerts.c.score,
+                alerts.c.role_before,
+                alerts.c.role_after,
+            ).order_by(alerts.c.window_end_us, alerts.c.account)
         ).all()
     return {
         "windows": [tuple(row) for row in window_rows],
@@ -77,7 +95,9 @@ def test_sample_closes_into_training_then_scored_windows(store):
         assert {"new", "scored"} <= statuses
         # training windows never alert
         training_ids = [row.id for row in rows if row.training]
-        assert not connection.execute(sa.select(alerts).where(alerts.c.window_id.in_(training_ids))).first()
+        assert not connection.execute(
+            sa.select(alerts).where(alerts.c.window_id.in_(training_ids))
+        ).first()
     # closing again is a no-op
     assert close_due_windows(engine, settings, now_us=NOW, drain=True) == []
 
@@ -90,8 +110,11 @@ def test_bulk_trickle_and_out_of_order_give_identical_windows(tmp_path):
     for mode in ("bulk", "trickle", "shuffled"):
         settings = load_settings(
             database_url=f"sqlite:///{tmp_path / (mode + '.db')}",
-            window_period="7d", window_span="7d", window_lateness="1h",
-            training_windows=4, public_url="http://127.0.0.1:9",
+            window_period="7d",
+            window_span="7d",
+            window_lateness="1h",
+            training_windows=4,
+            public_url="http://127.0.0.1:9",
         )
         engine = open_store(settings)
         if mode == "bulk":
@@ -116,8 +139,14 @@ def test_bulk_trickle_and_out_of_order_give_identical_windows(tmp_path):
             close_due_windows(engine, settings, now_us=NOW, drain=True)
         stores[mode] = _snapshot_of_results(engine)
         engine.dispose()
-    assert stores["bulk"]["windows"] == stores["trickle"]["windows"] == stores["shuffled"]["windows"]
-    assert stores["bulk"]["memberships"] == stores["trickle"]["memberships"] == stores["shuffled"]["memberships"]
+    assert (
+        stores["bulk"]["windows"] == stores["trickle"]["windows"] == stores["shuffled"]["windows"]
+    )
+    assert (
+        stores["bulk"]["memberships"]
+        == stores["trickle"]["memberships"]
+        == stores["shuffled"]["memberships"]
+    )
     assert stores["bulk"]["alerts"] == stores["trickle"]["alerts"] == stores["shuffled"]["alerts"]
 
 
@@ -140,8 +169,12 @@ def test_late_event_is_stored_and_counted_but_never_changes_a_closed_window(stor
     assert outcome.accepted == 1 and outcome.late == 1
     close_due_windows(engine, settings, now_us=NOW, drain=True)
     with engine.connect() as connection:
-        stored = connection.execute(sa.select(events.c.late).where(events.c.event_id == "late-1")).scalar_one()
-        late_count = connection.execute(sa.select(windows.c.late_count).where(windows.c.id == first.id)).scalar_one()
+        stored = connection.execute(
+            sa.select(events.c.late).where(events.c.event_id == "late-1")
+        ).scalar_one()
+        late_count = connection.execute(
+            sa.select(windows.c.late_count).where(windows.c.id == first.id)
+        ).scalar_one()
     assert stored is True and late_count == 1
     assert _snapshot_of_results(engine) == before
 
@@ -170,13 +203,17 @@ def test_a_crash_mid_close_leaves_no_partial_window_and_the_next_tick_redoes_it(
         close_due_windows(engine, settings, now_us=NOW, drain=True)
     with engine.connect() as connection:
         assert connection.execute(sa.select(sa.func.max(windows.c.id))).scalar_one() < last
-        assert not connection.execute(sa.select(memberships).where(memberships.c.window_id >= last)).first()
+        assert not connection.execute(
+            sa.select(memberships).where(memberships.c.window_id >= last)
+        ).first()
     monkeypatch.setattr(closer_module, "_store_result", original_store)
     redone = close_due_windows(engine, settings, now_us=NOW, drain=True)
     assert len(redone) == 1
     with engine.connect() as connection:
         count = connection.execute(
-            sa.select(sa.func.count()).select_from(memberships).where(memberships.c.window_id == redone[0]["id"])
+            sa.select(sa.func.count())
+            .select_from(memberships)
+            .where(memberships.c.window_id == redone[0]["id"])
         ).scalar_one()
     assert count == redone[0]["accounts"] > 0
 
@@ -193,7 +230,9 @@ def test_refit_on_a_named_period_keeps_persisting_role_ids_and_their_names(store
     close_due_windows(engine, settings, now_us=NOW, drain=True)
     with engine.connect() as connection:
         before = load_active_model(connection)
-        ends = connection.execute(sa.select(windows.c.start_us, windows.c.end_us).order_by(windows.c.end_us)).all()
+        ends = connection.execute(
+            sa.select(windows.c.start_us, windows.c.end_us).order_by(windows.c.end_us)
+        ).all()
     for info in before.roles:  # an operator names every role
         rename_role(engine, info.role_id, f"desk name {info.role_id}")
     with pytest.raises(RefitError, match="no closed window"):
@@ -211,5 +250,7 @@ def test_refit_on_a_named_period_keeps_persisting_role_ids_and_their_names(store
         assert not after.role_name(role_id).startswith("desk name")
     # the stored history keeps the basis version each window was measured with
     with engine.connect() as connection:
-        versions = set(connection.execute(sa.select(memberships.c.basis_version).distinct()).scalars())
+        versions = set(
+            connection.execute(sa.select(memberships.c.basis_version).distinct()).scalars()
+        )
     assert versions == {before.basis.version}

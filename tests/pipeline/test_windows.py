@@ -1,10 +1,18 @@
 """Window geometry and the watermark rule (docs: rolewatch.pipeline.windows)."""
 
-from rolewatch.pipeline.windows import StreamState, WindowGeometry, is_due, next_window_end, to_rfc3339
+from rolewatch.pipeline.windows import (
+    StreamState,
+    WindowGeometry,
+    is_due,
+    next_window_end,
+    to_rfc3339,
+)
 
 DAY = 86_400 * 1_000_000
 HOUR = 3_600 * 1_000_000
-GEOMETRY = WindowGeometry(period_us=7 * DAY, span_us=7 * DAY, lateness_us=HOUR, idle_us=10 * 60 * 1_000_000)
+GEOMETRY = WindowGeometry(
+    period_us=7 * DAY, span_us=7 * DAY, lateness_us=HOUR, idle_us=10 * 60 * 1_000_000
+)
 
 
 def test_windows_align_to_utc_epoch_multiples_of_the_period():
@@ -18,17 +26,32 @@ def test_windows_align_to_utc_epoch_multiples_of_the_period():
 def test_watermark_closes_a_window_only_after_lateness():
     end = 10 * 7 * DAY
     busy = end + 2 * HOUR  # events are still arriving now
-    state = StreamState(min_event_us=end - DAY, max_event_us=end + HOUR - 1, last_closed_end_us=None, last_ingest_us=busy)
+    state = StreamState(
+        min_event_us=end - DAY,
+        max_event_us=end + HOUR - 1,
+        last_closed_end_us=None,
+        last_ingest_us=busy,
+    )
     assert next_window_end(GEOMETRY, state) == end
     assert not is_due(GEOMETRY, state, end, now_us=busy, drain=False)
-    state = StreamState(min_event_us=end - DAY, max_event_us=end + HOUR, last_closed_end_us=None, last_ingest_us=end + HOUR)
+    state = StreamState(
+        min_event_us=end - DAY,
+        max_event_us=end + HOUR,
+        last_closed_end_us=None,
+        last_ingest_us=end + HOUR,
+    )
     assert is_due(GEOMETRY, state, end, now_us=end + HOUR, drain=False)
 
 
 def test_idle_rule_closes_the_trailing_window_but_invents_no_empty_ones():
     end = 10 * 7 * DAY
     last_ingest = end + HOUR
-    state = StreamState(min_event_us=end - DAY, max_event_us=end - DAY, last_closed_end_us=None, last_ingest_us=last_ingest)
+    state = StreamState(
+        min_event_us=end - DAY,
+        max_event_us=end - DAY,
+        last_closed_end_us=None,
+        last_ingest_us=last_ingest,
+    )
     # no new event for less than idle_close_after: wait
     assert not is_due(GEOMETRY, state, end, now_us=last_ingest + 60 * 1_000_000, drain=False)
     # idle long enough: the window holding the last event closes

@@ -41,11 +41,22 @@ def test_memberships_no_worse_than_sklearn_fixed_h():
     rng = np.random.default_rng(7)
     F = rng.gamma(0.8, 1.0, (5, 25))
     V = rng.gamma(1.0, 1.0, (300, 25))
-    basis = RoleBasis(F=F / F.sum(1, keepdims=True), role_ids=range(5),
-                      feature_names=[f"x{j}" for j in range(25)], recipe_version=None)
-    W, _, _ = non_negative_factorization(V, H=basis.F, n_components=5, update_H=False,
-                                         init="custom", max_iter=2000, tol=1e-10,
-                                         solver="cd")
+    basis = RoleBasis(
+        F=F / F.sum(1, keepdims=True),
+        role_ids=range(5),
+        feature_names=[f"x{j}" for j in range(25)],
+        recipe_version=None,
+    )
+    W, _, _ = non_negative_factorization(
+        V,
+        H=basis.F,
+        n_components=5,
+        update_H=False,
+        init="custom",
+        max_iter=2000,
+        tol=1e-10,
+        solver="cd",
+    )
     ours = np.linalg.norm(V - basis.memberships(V).loadings @ basis.F, axis=1)
     theirs = np.linalg.norm(V - W @ basis.F, axis=1)
     assert (ours <= theirs + 1e-9).all()
@@ -72,8 +83,12 @@ def test_memberships_of_compact_bins_equal_scipy_nnls_across_row_blocks():
     k, f, n = 6, 30, 40_000
     F = rng.gamma(0.5, 1.0, (k, f))
     bins = np.minimum(rng.poisson(rng.gamma(1.0, 2.0, (n, 1)), (n, f)), 30).astype(np.uint8)
-    basis = RoleBasis(F=F / F.sum(1, keepdims=True), role_ids=range(k),
-                      feature_names=[f"x{j}" for j in range(f)], recipe_version=None)
+    basis = RoleBasis(
+        F=F / F.sum(1, keepdims=True),
+        role_ids=range(k),
+        feature_names=[f"x{j}" for j in range(f)],
+        recipe_version=None,
+    )
     compact = basis.memberships(bins)
     floats = basis.memberships(bins.astype(np.float64))
     np.testing.assert_allclose(compact.loadings, floats.loadings, rtol=1e-12, atol=1e-12)
@@ -83,5 +98,7 @@ def test_memberships_of_compact_bins_equal_scipy_nnls_across_row_blocks():
     np.testing.assert_allclose(compact.loadings[sample], ref, atol=1e-9)
     resid = np.array([nnls(basis.F.T, bins[i].astype(float))[1] for i in sample])
     norms = np.linalg.norm(bins[sample].astype(float), axis=1)
-    expected = np.divide(resid, norms, out=np.zeros_like(resid), where=norms > 0)  # 0 for an all-zero row
+    expected = np.divide(
+        resid, norms, out=np.zeros_like(resid), where=norms > 0
+    )  # 0 for an all-zero row
     np.testing.assert_allclose(compact.error[sample], expected, rtol=1e-9, atol=1e-12)

@@ -34,8 +34,7 @@ def test_hellinger_equals_published_formula():
     # Source: H(p, q) = (1/sqrt 2) * ||sqrt p - sqrt q||_2 (Hellinger 1909; standard
     # statistics texts; recalled from memory), evaluated with scipy's euclidean distance.
     p, q = _pairs(2)
-    ref = np.array([distance.euclidean(np.sqrt(a), np.sqrt(b)) / np.sqrt(2)
-                    for a, b in zip(p, q)])
+    ref = np.array([distance.euclidean(np.sqrt(a), np.sqrt(b)) / np.sqrt(2) for a, b in zip(p, q)])
     np.testing.assert_allclose(hellinger(p, q), ref, atol=1e-12)
 
 
@@ -54,4 +53,5 @@ def test_worked_values_identical_and_disjoint(dist):
     assert dist([0.5, 0.5, 0.0], [0.0, 0.0, 1.0]) == pytest.approx(1.0)
     # a worked value with scipy as the source: JS of [1,0] vs [0.5,0.5]
     assert jensen_shannon([1, 0], [0.5, 0.5]) == pytest.approx(
-        distance.jensenshannon([1, 0], [0.5, 0.5], base=2))
+        distance.jensenshannon([1, 0], [0.5, 0.5], base=2)
+    )

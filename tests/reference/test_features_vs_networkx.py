@@ -35,7 +35,9 @@ def random_directed(seed, n=50, m=260, isolated=4, reciprocal=25):
 
 def from_undirected(graph):
     """Each undirected edge becomes two reciprocal arcs carrying its weight (1 if none)."""
-    g = nx.convert_node_labels_to_integers(graph, ordering="sorted" if _sortable(graph) else "default")
+    g = nx.convert_node_labels_to_integers(
+        graph, ordering="sorted" if _sortable(graph) else "default"
+    )
     ids = np.array([f"n{i:03d}" for i in range(g.number_of_nodes())])
     a, t, w = [], [], []
     for u, v, data in g.edges(data=True):
@@ -62,8 +64,12 @@ def assert_matches_oracle(snap):
         np.testing.assert_allclose(ours.base(name), ref[name], err_msg=name, atol=1e-9)
     # first recursive round on a few parents, every aggregate
     for parent in ("out_degree", "in_strength", "ego_arcs_out", "reciprocity"):
-        for op, got in zip(AGGREGATES, [ours.aggregate(op, [ours.base(parent)])[0] for op in AGGREGATES]):
-            np.testing.assert_allclose(got, nx_oracle.aggregate(g, ref[parent], op), err_msg=f"{op}({parent})")
+        for op, got in zip(
+            AGGREGATES, [ours.aggregate(op, [ours.base(parent)])[0] for op in AGGREGATES]
+        ):
+            np.testing.assert_allclose(
+                got, nx_oracle.aggregate(g, ref[parent], op), err_msg=f"{op}({parent})"
+            )
     # triangles equal nx.triangles on the undirected view (networkx reference)
     np.testing.assert_array_equal(triangles_per_node(snap.counts), nx_oracle.triangles(g))
 
@@ -95,7 +101,11 @@ def test_classic_graphs_shipped_with_networkx(graph):
 def test_karate_triangle_total():
     # Zachary's karate club has 45 triangles (networkx: sum(nx.triangles(G).values()) / 3)
     snap = from_undirected(nx.karate_club_graph())
-    assert triangles_per_node(snap.counts).sum() / 3 == sum(nx.triangles(nx.karate_club_graph()).values()) / 3 == 45
+    assert (
+        triangles_per_node(snap.counts).sum() / 3
+        == sum(nx.triangles(nx.karate_club_graph()).values()) / 3
+        == 45
+    )
 
 
 def test_structurally_equivalent_karate_nodes_get_identical_features():

@@ -15,8 +15,16 @@ from scipy.stats import median_abs_deviation
 
 from rolewatch.config import load_settings
 from rolewatch.scenario.evaluate import (
-    SeedRun, WindowRecord, format_table, main, robust_zscore, run_seed, score_alerts,
-    summarise, volume_alerts, weighted_degree,
+    SeedRun,
+    WindowRecord,
+    format_table,
+    main,
+    robust_zscore,
+    run_seed,
+    score_alerts,
+    summarise,
+    volume_alerts,
+    weighted_degree,
 )
 
 
@@ -25,8 +33,9 @@ def test_robust_zscore_hand_computed():
     # 1.5, 0.5, 0.5, 38.5 -> MAD 1.0; scale 1.4826; current 20 -> z = 8.5 / 1.4826 = 5.7332.
     # Account 1 history 4, 4, NaN, 4: median 4, MAD 0 -> scale floored at min_scale = 1;
     # current 7 -> z = 3. Account 2 has one past window only -> not scored.
-    history = np.array([[10, 4, np.nan], [12, 4, np.nan], [11, np.nan, np.nan], [50, 4, 9]],
-                       dtype=float)
+    history = np.array(
+        [[10, 4, np.nan], [12, 4, np.nan], [11, np.nan, np.nan], [50, 4, 9]], dtype=float
+    )
     z = robust_zscore(history, np.array([20.0, 7.0, 30.0]), min_history=2, min_scale=1.0)
     np.testing.assert_allclose(z[:2], [8.5 / 1.4826, 3.0], rtol=1e-12)
     assert np.isnan(z[2])
@@ -40,7 +49,8 @@ def test_robust_zscore_scale_matches_scipy():
     current = rng.lognormal(3.0, 0.5, 50)
     z = robust_zscore(history, current, min_scale=1e-12)
     expected = (current - np.median(history, axis=0)) / median_abs_deviation(
-        history, axis=0, scale="normal")
+        history, axis=0, scale="normal"
+    )
     np.testing.assert_allclose(z, expected, rtol=1e-4)
 
 
@@ -52,14 +62,17 @@ def test_weighted_degree_sums_weight_in_and_out():
 
 def _toy_run() -> SeedRun:
     """Four windows, one training; 'x' takes over in window 2; 'v' is a volume control."""
-    truth = [{"account": "x", "change": "takeover", "window_index": 2},
-             {"account": "v", "change": "volume_control", "window_index": 2}]
+    truth = [
+        {"account": "x", "change": "takeover", "window_index": 2},
+        {"account": "v", "change": "volume_control", "window_index": 2},
+    ]
     run = SeedRun(seed=0, truth=truth, meta={"season_window": 3})
     nodes = np.array(["v", "x", "y", "z"])
     strength = {0: [10, 1, 5, 5], 1: [10, 1, 5, 5], 2: [30, 9, 5, 5], 3: [31, 9, 5, 6]}
     for index in range(4):
-        run.windows.append(WindowRecord(index, index == 0, nodes, set(),
-                                        np.array(strength[index], dtype=float)))
+        run.windows.append(
+            WindowRecord(index, index == 0, nodes, set(), np.array(strength[index], dtype=float))
+        )
     return run
 
 
@@ -75,9 +88,18 @@ def test_scoring_rules_on_a_toy_run():
     volume = volume_alerts(run, [0, 1, 1, 1])
     assert volume[0] == set() and volume[2] == {"v"}
     assert score_alerts(run, volume)["volume_control_fa"] == 1.0
-    table = format_table({"seeds": [0], "members": 4, "weeks": 4, "alert_budget": 0.01,
-                          **{name: {"summary": summarise([figures])} for name in
-                             ("role_shift", "volume_baseline", "volume_full_budget")}})
+    table = format_table(
+        {
+            "seeds": [0],
+            "members": 4,
+            "weeks": 4,
+            "alert_budget": 0.01,
+            **{
+                name: {"summary": summarise([figures])}
+                for name in ("role_shift", "volume_baseline", "volume_full_budget")
+            },
+        }
+    )
     assert "| recall takeover (≤ 1 window) | 1.00 ± 0.00 [1.00–1.00]" in table
 
 

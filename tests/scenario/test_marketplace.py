@@ -13,7 +13,7 @@ import json
 import math
 import subprocess
 import sys
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import networkx as nx
@@ -63,7 +63,8 @@ class View:
     def counterparts(self, account, windows):
         mask = np.isin(self.window, list(windows))
         return set(self.target[mask & (self.actor == account)].tolist()) | set(
-            self.actor[mask & (self.target == account)].tolist())
+            self.actor[mask & (self.target == account)].tolist()
+        )
 
     def new_out(self, account, window):
         return set(self.out(account, window).tolist()) - self.counterparts(account, range(window))
@@ -77,6 +78,7 @@ def planted(sc, change):
 
 
 # determinism -------------------------------------------------------------------------
+
 
 def _files(directory):
     return {p.name: p.read_bytes() for p in sorted(Path(directory).iterdir())}
@@ -104,7 +106,8 @@ def test_sample_files_match_the_generator(tmp_path):
     write(generate(seed=7, members=400, weeks=10), tmp_path)
     assert _files(SAMPLE) == _files(tmp_path), (
         "fixtures/sample drifted from the generator; rebuild it with "
-        "python fixtures/generate.py --seed 7 --members 400 --weeks 10 --out fixtures/sample")
+        "python fixtures/generate.py --seed 7 --members 400 --weeks 10 --out fixtures/sample"
+    )
     total = sum(p.stat().st_size for p in SAMPLE.iterdir())
     assert total < 3_000_000
 
@@ -115,6 +118,7 @@ def test_sample_has_planted_changes_after_training(sample):
 
 
 # wire format (DESIGN.md, "Wire format") -----------------------------------------------
+
 
 def test_every_event_is_valid_wire_format(scenario):
     start = datetime.fromisoformat(scenario.meta["start"])
@@ -157,14 +161,15 @@ def test_default_size_and_account_ids(default):
 
 
 def test_start_must_be_on_a_window_boundary():
-    monday = datetime(2026, 1, 5, tzinfo=timezone.utc)
+    monday = datetime(2026, 1, 5, tzinfo=UTC)
     with pytest.raises(ValueError, match="2026-01-01T00:00:00"):
         generate(members=300, weeks=8, start=monday)
-    later = generate(members=300, weeks=8, start=datetime(2026, 1, 8, tzinfo=timezone.utc))
+    later = generate(members=300, weeks=8, start=datetime(2026, 1, 8, tzinfo=UTC))
     assert later.meta["start"] == "2026-01-08T00:00:00Z"
 
 
 # ground truth -------------------------------------------------------------------------
+
 
 def test_truth_windows_are_aligned_and_after_training(scenario):
     meta = scenario.meta
@@ -173,7 +178,8 @@ def test_truth_windows_are_aligned_and_after_training(scenario):
     for record in scenario.truth:
         assert set(record) == {"account", "change", "window_index", "window_start"}
         assert datetime.fromisoformat(record["window_start"]) == start + timedelta(
-            weeks=record["window_index"])
+            weeks=record["window_index"]
+        )
         if record["change"] in PLANTED:
             assert meta["training_weeks"] <= record["window_index"] <= meta["weeks"] - 2
             assert record["window_index"] != meta["season_window"]
@@ -260,9 +266,12 @@ def test_season_window_raises_ordinary_activity_by_half(scenario):
     view = View(scenario)
     s = scenario.meta["season_window"]
     special = {r["account"] for r in scenario.truth if r["change"] in PLANTED}
-    ordinary = ~(np.isin(view.actor, list(special)) | np.isin(view.target, list(special))
-                 | np.char.startswith(view.actor.astype(str), "new-")
-                 | np.char.startswith(view.target.astype(str), "new-"))
+    ordinary = ~(
+        np.isin(view.actor, list(special))
+        | np.isin(view.target, list(special))
+        | np.char.startswith(view.actor.astype(str), "new-")
+        | np.char.startswith(view.target.astype(str), "new-")
+    )
     counts = np.bincount(view.window[ordinary], minlength=scenario.meta["weeks"])
     ratio = counts[s] / np.mean([counts[s - 1], counts[s + 1]])
     assert 1.35 <= ratio <= 1.65  # tolerance for Poisson noise and newcomer growth
@@ -283,6 +292,7 @@ def test_newcomers_first_appear_in_their_window(scenario):
 
 
 # graph structure, measured with networkx ----------------------------------------------
+
 
 def _training_graph(sc):
     view = View(sc)
@@ -320,28 +330,51 @@ def test_friend_circles_are_reciprocal_and_clustered(sample):
     # Buyers close triangles through their courier and seller, so compare with the hubs.
     assert mean(clustering, "friend_circle") > 0.3
     assert mean(clustering, "friend_circle") > 3 * max(
-        mean(clustering, "busy_shop"), mean(clustering, "courier"))
+        mean(clustering, "busy_shop"), mean(clustering, "courier")
+    )
 
 
 def test_shops_have_many_buyers_and_couriers_link_many(sample):
     graph, view = _training_graph(sample)
     arche = dict(zip(sample.accounts["id"].tolist(), sample.accounts["archetype"].tolist()))
     degree = dict(graph.degree())
-    mean = {k: np.mean([degree[n] for n in graph if arche[n] == k])
-            for k in ("occasional_buyer", "small_seller", "busy_shop", "courier")}
+    mean = {
+        k: np.mean([degree[n] for n in graph if arche[n] == k])
+        for k in ("occasional_buyer", "small_seller", "busy_shop", "courier")
+    }
     assert mean["busy_shop"] > 3 * mean["small_seller"]
     assert mean["courier"] > 3 * mean["occasional_buyer"]
 
 
 # the command-line wrapper ----------------------------------------------------------------
 
+
 def test_generate_script_writes_files_and_rejects_bad_settings(tmp_path):
     script = str(ROOT / "fixtures" / "generate.py")
-    done = subprocess.run([sys.executable, script, "--seed", "2", "--members", "250",
-                           "--weeks", "8", "--out", str(tmp_path)], capture_output=True, text=True)
+    done = subprocess.run(
+        [
+            sys.executable,
+            script,
+            "--seed",
+            "2",
+            "--members",
+            "250",
+            "--weeks",
+            "8",
+            "--out",
+            str(tmp_path),
+        ],
+        capture_output=True,
+        text=True,
+    )
     assert done.returncode == 0, done.stderr
-    assert json.loads(done.stdout)["events"] == generate(seed=2, members=250, weeks=8).meta["events"]
+    assert (
+        json.loads(done.stdout)["events"] == generate(seed=2, members=250, weeks=8).meta["events"]
+    )
     assert (tmp_path / "events.ndjson").stat().st_size > 0
-    bad = subprocess.run([sys.executable, script, "--weeks", "5", "--out", str(tmp_path / "x")],
-                         capture_output=True, text=True)
+    bad = subprocess.run(
+        [sys.executable, script, "--weeks", "5", "--out", str(tmp_path / "x")],
+        capture_output=True,
+        text=True,
+    )
     assert bad.returncode == 2 and "training_weeks + 3" in bad.stderr

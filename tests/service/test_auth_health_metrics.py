@@ -81,7 +81,9 @@ def test_key_format_and_hash_only_storage(app_client):
     record, key = create_key(app_client.engine, ["ingest", "read"], label="x", now_us=0)
     assert key.startswith(f"rwk_{record.key_id}_") and len(key) > 50
     with app_client.engine.connect() as connection:
-        row = connection.execute(sa.select(api_keys).where(api_keys.c.key_id == record.key_id)).one()
+        row = connection.execute(
+            sa.select(api_keys).where(api_keys.c.key_id == record.key_id)
+        ).one()
     assert row.secret_hash == hashlib.sha256(key.encode()).hexdigest()
     assert key.split("_", 2)[2] not in " ".join(str(v) for v in row)
     listed = app_client.client.get("/v1/admin/keys", headers=app_client.headers("admin")).json()
@@ -102,30 +104,56 @@ def test_request_id_is_echoed(app_client):
 
 
 def test_metrics_exposition_parses(app_client, make_event):
-    app_client.client.post("/v1/events", json={"events": [make_event(), make_event(), {"bad": 1}]},
-                           headers=app_client.headers("ingest"))
+    app_client.client.post(
+        "/v1/events",
+        json={"events": [make_event(), make_event(), {"bad": 1}]},
+        headers=app_client.headers("ingest"),
+    )
     from rolewatch import metrics
 
     def value(families, name, suffix):
         return sum(s.value for s in families[name].samples if s.name.endswith(suffix))
 
-    before = {f.name: f for f in text_string_to_metric_families(
-        app_client.client.get("/metrics", headers=app_client.headers("read")).text)}
+    before = {
+        f.name: f
+        for f in text_string_to_metric_families(
+            app_client.client.get("/metrics", headers=app_client.headers("read")).text
+        )
+    }
     metrics.record_window_closed(seconds=0.3, alerts=2)  # as the window closer reports
     response = app_client.client.get("/metrics", headers=app_client.headers("read"))
     assert response.status_code == 200
     assert response.headers["content-type"].startswith("text/plain")
     # Parsed with prometheus_client's own parser of the Prometheus text exposition format.
     families = {f.name: f for f in text_string_to_metric_families(response.text)}
-    for name in ("rolewatch_events_accepted", "rolewatch_events_rejected", "rolewatch_events_duplicate",
-                 "rolewatch_events_late", "rolewatch_windows_closed", "rolewatch_window_close_seconds",
-                 "rolewatch_alerts_raised", "rolewatch_deliveries", "rolewatch_http_requests"):
+    for name in (
+        "rolewatch_events_accepted",
+        "rolewatch_events_rejected",
+        "rolewatch_events_duplicate",
+        "rolewatch_events_late",
+        "rolewatch_windows_closed",
+        "rolewatch_window_close_seconds",
+        "rolewatch_alerts_raised",
+        "rolewatch_deliveries",
+        "rolewatch_http_requests",
+    ):
         assert name in families, name
-    accepted = sum(s.value for s in families["rolewatch_events_accepted"].samples if s.name.endswith("_total"))
+    accepted = sum(
+        s.value for s in families["rolewatch_events_accepted"].samples if s.name.endswith("_total")
+    )
     assert accepted >= 2
-    assert value(families, "rolewatch_windows_closed", "_total") == value(before, "rolewatch_windows_closed", "_total") + 1
-    assert value(families, "rolewatch_alerts_raised", "_total") == value(before, "rolewatch_alerts_raised", "_total") + 2
-    assert value(families, "rolewatch_window_close_seconds", "_count") == value(before, "rolewatch_window_close_seconds", "_count") + 1
+    assert (
+        value(families, "rolewatch_windows_closed", "_total")
+        == value(before, "rolewatch_windows_closed", "_total") + 1
+    )
+    assert (
+        value(families, "rolewatch_alerts_raised", "_total")
+        == value(before, "rolewatch_alerts_raised", "_total") + 2
+    )
+    assert (
+        value(families, "rolewatch_window_close_seconds", "_count")
+        == value(before, "rolewatch_window_close_seconds", "_count") + 1
+    )
     outcomes = {s.labels.get("outcome") for s in families["rolewatch_deliveries"].samples}
     assert {"delivered", "retry", "failed"} <= outcomes
     routes = {s.labels.get("route") for s in families["rolewatch_http_requests"].samples}
@@ -145,4 +173,6 @@ def test_openapi_docs_are_served(app_client):
     assert app_client.client.get("/docs").status_code == 200
     document = app_client.client.get("/openapi.json").json()
     assert "/v1/events" in document["paths"]
-    assert "application/x-ndjson" in document["paths"]["/v1/events"]["post"]["requestBody"]["content"]
+    assert (
+        "application/x-ndjson" in document["paths"]["/v1/events"]["post"]["requestBody"]["content"]
+    )

@@ -25,17 +25,28 @@ KEY_FORM = re.compile(r"rwk_[0-9a-f]{12}_[A-Za-z0-9_-]{43}")
 def rolewatch(*args, env=None, timeout=120) -> subprocess.CompletedProcess:
     environment = {k: v for k, v in os.environ.items() if not k.startswith("ROLEWATCH_")}
     environment.update(env or {})
-    return subprocess.run([sys.executable, "-m", "rolewatch.cli", *args], capture_output=True,
-                          text=True, env=environment, timeout=timeout)
+    return subprocess.run(
+        [sys.executable, "-m", "rolewatch.cli", *args],
+        capture_output=True,
+        text=True,
+        env=environment,
+        timeout=timeout,
+    )
 
 
 def stored_events(url: str) -> list[tuple]:
     engine = sa.create_engine(url)
     with engine.connect() as connection:
-        rows = connection.execute(sa.select(
-            events_table.c.event_id, events_table.c.time_us, events_table.c.actor,
-            events_table.c.target, events_table.c.kind, events_table.c.weight,
-        ).order_by(events_table.c.event_id)).all()
+        rows = connection.execute(
+            sa.select(
+                events_table.c.event_id,
+                events_table.c.time_us,
+                events_table.c.actor,
+                events_table.c.target,
+                events_table.c.kind,
+                events_table.c.weight,
+            ).order_by(events_table.c.event_id)
+        ).all()
     engine.dispose()
     return [tuple(row) for row in rows]
 
@@ -48,7 +59,9 @@ def test_settings_from_toml_and_environment(tmp_path, monkeypatch):
         if name.startswith("ROLEWATCH_"):
             monkeypatch.delenv(name)
     config = tmp_path / "rolewatch.toml"
-    config.write_text('window_period = "1d"\nwindow_span = "2d"\nmax_batch_events = 500\nmetrics_public = true\n')
+    config.write_text(
+        'window_period = "1d"\nwindow_span = "2d"\nmax_batch_events = 500\nmetrics_public = true\n'
+    )
     settings = load_settings(config)
     assert settings.window_period.total_seconds() == 86_400
     assert settings.window_span.total_seconds() == 2 * 86_400
@@ -75,24 +88,36 @@ def test_bad_settings_raise_config_error(tmp_path):
 
 
 def test_bad_config_value_exits_2_with_the_message(tmp_path):
-    env = {"ROLEWATCH_DATABASE_URL": f"sqlite:///{tmp_path / 'x.db'}", "ROLEWATCH_WINDOW_PERIOD": "soon"}
+    env = {
+        "ROLEWATCH_DATABASE_URL": f"sqlite:///{tmp_path / 'x.db'}",
+        "ROLEWATCH_WINDOW_PERIOD": "soon",
+    }
     result = rolewatch("keys", "list", env=env)
     assert result.returncode == 2
     assert "window_period (ROLEWATCH_WINDOW_PERIOD)" in result.stderr and "7d" in result.stderr
     config = tmp_path / "bad.toml"
-    config.write_text('max_batch_events = -3\n')
-    result = rolewatch("keys", "list", "--config", str(config), env={"ROLEWATCH_DATABASE_URL": f"sqlite:///{tmp_path / 'x.db'}"})
+    config.write_text("max_batch_events = -3\n")
+    result = rolewatch(
+        "keys",
+        "list",
+        "--config",
+        str(config),
+        env={"ROLEWATCH_DATABASE_URL": f"sqlite:///{tmp_path / 'x.db'}"},
+    )
     assert result.returncode == 2 and "max_batch_events" in result.stderr
 
 
-@pytest.mark.parametrize("args", [
-    ("--config", "/nonexistent/rolewatch.toml", "keys", "list"),
-    ("frobnicate",),
-    ("keys", "create"),  # --scope is required
-    ("keys", "create", "--scope", "superuser"),
-    ("replay", "/nonexistent/events.ndjson"),
-    ("bench", "no-such-case"),
-])
+@pytest.mark.parametrize(
+    "args",
+    [
+        ("--config", "/nonexistent/rolewatch.toml", "keys", "list"),
+        ("frobnicate",),
+        ("keys", "create"),  # --scope is required
+        ("keys", "create", "--scope", "superuser"),
+        ("replay", "/nonexistent/events.ndjson"),
+        ("bench", "no-such-case"),
+    ],
+)
 def test_usage_errors_exit_2(tmp_path, args):
     result = rolewatch(*args, env={"ROLEWATCH_DATABASE_URL": f"sqlite:///{tmp_path / 'x.db'}"})
     assert result.returncode == 2, result.stderr
@@ -102,7 +127,9 @@ def test_usage_errors_exit_2(tmp_path, args):
 def test_other_failures_exit_1(tmp_path):
     # A database that cannot be opened (a directory where the file should be).
     (tmp_path / "dir.db").mkdir()
-    result = rolewatch("keys", "list", env={"ROLEWATCH_DATABASE_URL": f"sqlite:///{tmp_path / 'dir.db'}"})
+    result = rolewatch(
+        "keys", "list", env={"ROLEWATCH_DATABASE_URL": f"sqlite:///{tmp_path / 'dir.db'}"}
+    )
     assert result.returncode == 1
     assert "error" in result.stderr
 
@@ -112,7 +139,9 @@ def test_other_failures_exit_1(tmp_path):
 
 def test_keys_create_prints_only_the_key(store_url):
     env = {"ROLEWATCH_DATABASE_URL": store_url}
-    result = rolewatch("keys", "create", "--scope", "ingest", "--scope", "read", "--label", "shop app", env=env)
+    result = rolewatch(
+        "keys", "create", "--scope", "ingest", "--scope", "read", "--label", "shop app", env=env
+    )
     assert result.returncode == 0, result.stderr
     assert KEY_FORM.fullmatch(result.stdout.rstrip("\n")), result.stdout
     assert result.stdout.count("\n") == 1
@@ -132,9 +161,15 @@ def test_keys_create_prints_only_the_key(store_url):
 
 
 def _replay_events(make_event) -> list[dict]:
-    events = [make_event(time=f"2026-01-{1 + i % 20:02d}T{i % 24:02d}:15:00Z", id=f"r-{i}",
-                         kind="payment" if i % 3 else None, weight=round(1 + i * 0.25, 2))
-              for i in range(80)]
+    events = [
+        make_event(
+            time=f"2026-01-{1 + i % 20:02d}T{i % 24:02d}:15:00Z",
+            id=f"r-{i}",
+            kind="payment" if i % 3 else None,
+            weight=round(1 + i * 0.25, 2),
+        )
+        for i in range(80)
+    ]
     events += [make_event(time="2026-01-05T08:00:00+02:00", actor="m-a", target="m-b")]  # no id
     events += [make_event(time="2026-01-05T08:00:00", actor="m-a", target="m-c")]  # naive: rejected
     events += [dict(events[3])]  # duplicate
@@ -143,7 +178,9 @@ def _replay_events(make_event) -> list[dict]:
 
 def _write_csv(path, events) -> None:
     with path.open("w", newline="", encoding="utf-8") as handle:
-        writer = csv.DictWriter(handle, fieldnames=["id", "time", "actor", "target", "kind", "weight"])
+        writer = csv.DictWriter(
+            handle, fieldnames=["id", "time", "actor", "target", "kind", "weight"]
+        )
         writer.writeheader()
         for event in events:
             writer.writerow({k: ("" if v is None else v) for k, v in event.items()})
@@ -151,7 +188,9 @@ def _write_csv(path, events) -> None:
 
 def test_replay_ndjson_and_csv_store_what_the_api_stores(app_client, tmp_path, make_event):
     events = _replay_events(make_event)
-    response = app_client.client.post("/v1/events", json={"events": events}, headers=app_client.headers("ingest"))
+    response = app_client.client.post(
+        "/v1/events", json={"events": events}, headers=app_client.headers("ingest")
+    )
     assert response.json()["accepted"] == 81 and len(response.json()["rejected"]) == 1
     through_api = stored_events(app_client.settings.database_url)
 
@@ -161,8 +200,16 @@ def test_replay_ndjson_and_csv_store_what_the_api_stores(app_client, tmp_path, m
     _write_csv(csv_file, events)
     for path, fmt in ((ndjson, "ndjson"), (csv_file, "csv")):
         url = f"sqlite:///{tmp_path / (fmt + '.db')}"
-        result = rolewatch("replay", str(path), "--format", fmt, "--no-close", "--batch-size", "50",
-                           env={"ROLEWATCH_DATABASE_URL": url})
+        result = rolewatch(
+            "replay",
+            str(path),
+            "--format",
+            fmt,
+            "--no-close",
+            "--batch-size",
+            "50",
+            env={"ROLEWATCH_DATABASE_URL": url},
+        )
         assert result.returncode == 0, result.stderr
         summary = json.loads(result.stdout)
         assert (summary["accepted"], summary["duplicates"], summary["rejected"]) == (81, 1, 1)
@@ -178,9 +225,24 @@ def test_serve_answers_over_http_and_stops_cleanly(tmp_path):
         sock.bind(("127.0.0.1", 0))
         port = sock.getsockname()[1]
     env = {k: v for k, v in os.environ.items() if not k.startswith("ROLEWATCH_")}
-    env.update(ROLEWATCH_DATABASE_URL=f"sqlite:///{tmp_path / 'serve.db'}", ROLEWATCH_TICK_INTERVAL="1s")
-    process = subprocess.Popen([sys.executable, "-m", "rolewatch.cli", "serve", "--host", "127.0.0.1",
-                                "--port", str(port)], env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    env.update(
+        ROLEWATCH_DATABASE_URL=f"sqlite:///{tmp_path / 'serve.db'}", ROLEWATCH_TICK_INTERVAL="1s"
+    )
+    process = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "rolewatch.cli",
+            "serve",
+            "--host",
+            "127.0.0.1",
+            "--port",
+            str(port),
+        ],
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
     try:
         deadline = time.monotonic() + 60
         while True:
@@ -198,6 +260,8 @@ def test_serve_answers_over_http_and_stops_cleanly(tmp_path):
         _, err = process.communicate(timeout=60)
     # uvicorn shuts down gracefully on SIGTERM, then ends by that signal (or 0).
     assert process.returncode in (0, -signal.SIGTERM), err.decode()
-    lines = [json.loads(line) for line in err.decode().splitlines() if line.startswith("{")]  # JSON logs
+    lines = [
+        json.loads(line) for line in err.decode().splitlines() if line.startswith("{")
+    ]  # JSON logs
     messages = [line.get("message") for line in lines]
     assert "rolewatch started" in messages and "rolewatch stopped" in messages

@@ -5,7 +5,7 @@ from __future__ import annotations
 import hashlib
 import json
 import time
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 import pytest
 import sqlalchemy as sa
@@ -22,9 +22,15 @@ def post(app, events, scope="ingest"):
 def stored(app) -> list:
     with app.engine.connect() as connection:
         return connection.execute(
-            sa.select(events_table.c.event_id, events_table.c.time_us, events_table.c.actor,
-                      events_table.c.target, events_table.c.kind, events_table.c.weight,
-                      events_table.c.late).order_by(events_table.c.seq)
+            sa.select(
+                events_table.c.event_id,
+                events_table.c.time_us,
+                events_table.c.actor,
+                events_table.c.target,
+                events_table.c.kind,
+                events_table.c.weight,
+                events_table.c.late,
+            ).order_by(events_table.c.seq)
         ).all()
 
 
@@ -42,8 +48,9 @@ def test_batch_is_stored_and_counted(app_client, make_event):
     assert [r.event_id for r in rows] == [f"e{i}" for i in range(5)]
     assert all(r.weight == 2.5 and r.kind == "payment" and not r.late for r in rows)
     with app_client.engine.connect() as connection:
-        last = connection.execute(sa.select(service_state.c.value).where(
-            service_state.c.key == "last_ingest_us")).scalar()
+        last = connection.execute(
+            sa.select(service_state.c.value).where(service_state.c.key == "last_ingest_us")
+        ).scalar()
     assert abs(int(last) - time.time_ns() // 1000) < 60_000_000
 
 
@@ -53,7 +60,9 @@ def test_duplicate_batch_is_idempotent(app_client, make_event):
     again = post(app_client, batch).json()
     assert again == {"accepted": 0, "duplicates": 10, "late": 0, "rejected": []}
     # A repeat inside one batch is a duplicate too; the first copy wins.
-    twice = post(app_client, [make_event(id="same", weight=1), make_event(id="same", weight=9)]).json()
+    twice = post(
+        app_client, [make_event(id="same", weight=1), make_event(id="same", weight=9)]
+    ).json()
     assert (twice["accepted"], twice["duplicates"]) == (1, 1)
     assert len(stored(app_client)) == 11
     assert [r.weight for r in stored(app_client) if r.event_id == "same"] == [1.0]
@@ -67,9 +76,17 @@ def test_events_without_id_get_a_stable_hash(app_client):
     assert (result["accepted"], result["duplicates"]) == (1, 1)
     (row,) = stored(app_client)
     # Recomputed here independently with hashlib over the documented canonical JSON.
-    canonical = json.dumps({"actor": "m-1", "kind": None, "target": "m-2",
-                            "time": "2026-02-02T10:00:00.000000Z", "weight": 1.0},
-                           sort_keys=True, separators=(",", ":"))
+    canonical = json.dumps(
+        {
+            "actor": "m-1",
+            "kind": None,
+            "target": "m-2",
+            "time": "2026-02-02T10:00:00.000000Z",
+            "weight": 1.0,
+        },
+        sort_keys=True,
+        separators=(",", ":"),
+    )
     assert row.event_id == "ev_" + hashlib.sha256(canonical.encode()).hexdigest()[:32]
     assert row.event_id == derived_event_id(row.time_us, "m-1", "m-2", None, 1.0)
     other = post(app_client, [dict(first, kind="payment")]).json()
@@ -81,16 +98,28 @@ def test_out_of_order_events_are_all_stored(app_client, make_event):
     batch = [make_event(time=t) for t in times]
     assert post(app_client, batch).json()["accepted"] == 3
     assert post(app_client, [make_event(time="2026-01-20T00:00:00Z")]).json()["late"] == 0
-    assert sorted(r.time_us for r in stored(app_client)) == sorted(us(t) for t in times + ["2026-01-20T00:00:00Z"])
+    assert sorted(r.time_us for r in stored(app_client)) == sorted(
+        us(t) for t in times + ["2026-01-20T00:00:00Z"]
+    )
 
 
 def test_late_events_are_flagged_and_counted_on_closed_windows(app_client, make_event):
     # A closed window [Jan 29, Feb 5) as the window closer would have recorded it.
     start, end = us("2026-01-29T00:00:00Z"), us("2026-02-05T00:00:00Z")
     with app_client.engine.begin() as connection:
-        connection.execute(sa.insert(windows).values(
-            start_us=start, end_us=end, status="closed", closed_us=end, event_count=0,
-            account_count=0, late_count=0, alert_count=0, training=True))
+        connection.execute(
+            sa.insert(windows).values(
+                start_us=start,
+                end_us=end,
+                status="closed",
+                closed_us=end,
+                event_count=0,
+                account_count=0,
+                late_count=0,
+                alert_count=0,
+                training=True,
+            )
+        )
     batch = [
         make_event(time="2026-02-01T00:00:00Z", id="late-1"),
         make_event(time="2026-02-04T23:59:59.999999Z", id="late-2"),
@@ -113,37 +142,55 @@ def test_empty_batch(app_client):
     assert response.json() == {"accepted": 0, "duplicates": 0, "late": 0, "rejected": []}
 
 
-@pytest.mark.parametrize("body", [b"{", b"[]", b'{"events": {}}', b'{"events": [], "x": 1}', b"", b"null"])
+@pytest.mark.parametrize(
+    "body", [b"{", b"[]", b'{"events": {}}', b'{"events": [], "x": 1}', b"", b"null"]
+)
 def test_unparseable_or_wrong_shape_is_400(app_client, body):
-    response = app_client.client.post("/v1/events", content=body, headers=app_client.headers(
-        "ingest", **{"Content-Type": "application/json"}))
+    response = app_client.client.post(
+        "/v1/events",
+        content=body,
+        headers=app_client.headers("ingest", **{"Content-Type": "application/json"}),
+    )
     assert response.status_code == 400
     assert "nothing was stored" in response.json()["detail"]
     assert stored(app_client) == []
 
 
 def test_invalid_utf8_is_400(app_client):
-    bad = '{"events": [{"time": "2026-02-02T10:00:00Z", "actor": "a\u00e9", "target": "b"}]}'.encode()
+    bad = (
+        '{"events": [{"time": "2026-02-02T10:00:00Z", "actor": "a\u00e9", "target": "b"}]}'.encode()
+    )
     bad = bad.replace("\u00e9".encode(), b"\xff\xfe")
     for media in ("application/json", "application/x-ndjson"):
-        body = bad if media == "application/json" else bad[len(b'{"events": ['):-2]
-        response = app_client.client.post("/v1/events", content=body, headers=app_client.headers(
-            "ingest", **{"Content-Type": media}))
+        body = bad if media == "application/json" else bad[len(b'{"events": [') : -2]
+        response = app_client.client.post(
+            "/v1/events",
+            content=body,
+            headers=app_client.headers("ingest", **{"Content-Type": media}),
+        )
         assert response.status_code == 400, media
         assert "UTF-8" in response.json()["detail"]
     assert stored(app_client) == []
 
 
-@pytest.mark.parametrize("media", ["text/plain", "application/xml", "multipart/form-data", "application/json; charset=latin-1"])
+@pytest.mark.parametrize(
+    "media",
+    ["text/plain", "application/xml", "multipart/form-data", "application/json; charset=latin-1"],
+)
 def test_other_content_types_are_415(app_client, media):
-    response = app_client.client.post("/v1/events", content=b'{"events": []}', headers=app_client.headers(
-        "ingest", **{"Content-Type": media}))
+    response = app_client.client.post(
+        "/v1/events",
+        content=b'{"events": []}',
+        headers=app_client.headers("ingest", **{"Content-Type": media}),
+    )
     assert response.status_code == 415
     assert stored(app_client) == []
 
 
 def test_missing_content_type_is_415(app_client):
-    response = app_client.client.post("/v1/events", content=b'{"events": []}', headers=app_client.headers("ingest"))
+    response = app_client.client.post(
+        "/v1/events", content=b'{"events": []}', headers=app_client.headers("ingest")
+    )
     assert response.status_code == 415
 
 
@@ -153,8 +200,11 @@ def test_too_many_events_is_413_and_nothing_stored(app_client, make_event):
     assert response.status_code == 413
     assert f"at most {limit}" in response.json()["detail"]
     ndjson = "\n".join(json.dumps(make_event()) for _ in range(limit + 1)).encode()
-    response = app_client.client.post("/v1/events", content=ndjson, headers=app_client.headers(
-        "ingest", **{"Content-Type": "application/x-ndjson"}))
+    response = app_client.client.post(
+        "/v1/events",
+        content=ndjson,
+        headers=app_client.headers("ingest", **{"Content-Type": "application/x-ndjson"}),
+    )
     assert response.status_code == 413
     assert stored(app_client) == []
     assert post(app_client, [make_event() for _ in range(limit)]).status_code == 202
@@ -166,16 +216,22 @@ def test_too_many_bytes_is_413_by_length_and_by_stream(app_client, make_event):
     events = [make_event(kind=None, id=f"{padding[:190]}{i:05d}") for i in range(limit // 200 + 10)]
     body = json.dumps({"events": events[:100]}).encode()
     body = body + b" " * (limit + 1 - len(body))  # valid JSON, one byte over the limit
-    response = app_client.client.post("/v1/events", content=body, headers=app_client.headers(
-        "ingest", **{"Content-Type": "application/json"}))
+    response = app_client.client.post(
+        "/v1/events",
+        content=body,
+        headers=app_client.headers("ingest", **{"Content-Type": "application/json"}),
+    )
     assert response.status_code == 413 and "bytes" in response.json()["detail"]
 
     def chunks():  # no Content-Length: the server must count while reading
         for start in range(0, len(body), 4096):
-            yield body[start:start + 4096]
+            yield body[start : start + 4096]
 
-    response = app_client.client.post("/v1/events", content=chunks(), headers=app_client.headers(
-        "ingest", **{"Content-Type": "application/json"}))
+    response = app_client.client.post(
+        "/v1/events",
+        content=chunks(),
+        headers=app_client.headers("ingest", **{"Content-Type": "application/json"}),
+    )
     assert response.status_code == 413
     assert stored(app_client) == []
 
@@ -187,8 +243,8 @@ def rejected(app, events) -> dict[int, str]:
 
 
 def test_per_event_errors_keep_the_good_events(app_client, make_event):
-    future = datetime.fromtimestamp(time.time() + 3600, timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-    near = datetime.fromtimestamp(time.time() + 60, timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    future = datetime.fromtimestamp(time.time() + 3600, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    near = datetime.fromtimestamp(time.time() + 60, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     batch = [
         make_event(id="good-0"),
         make_event(time="2026-13-01"),
@@ -227,12 +283,17 @@ def test_per_event_errors_keep_the_good_events(app_client, make_event):
 def test_nan_and_infinite_weights_are_rejected_alone(app_client):
     # NaN/Infinity are not JSON (RFC 8259 section 6) but some encoders write them; the batch
     # is still read and only those events are refused.
-    body = ('{"events": [{"time": "2026-02-02T10:00:00Z", "actor": "a", "target": "b", "weight": NaN},'
-            ' {"time": "2026-02-02T10:00:00Z", "actor": "a", "target": "c", "weight": Infinity},'
-            ' {"time": "2026-02-02T10:00:00Z", "actor": "a", "target": "d", "weight": 1e999},'
-            ' {"time": "2026-02-02T10:00:00Z", "actor": "a", "target": "e", "weight": 0}]}')
-    response = app_client.client.post("/v1/events", content=body, headers=app_client.headers(
-        "ingest", **{"Content-Type": "application/json"}))
+    body = (
+        '{"events": [{"time": "2026-02-02T10:00:00Z", "actor": "a", "target": "b", "weight": NaN},'
+        ' {"time": "2026-02-02T10:00:00Z", "actor": "a", "target": "c", "weight": Infinity},'
+        ' {"time": "2026-02-02T10:00:00Z", "actor": "a", "target": "d", "weight": 1e999},'
+        ' {"time": "2026-02-02T10:00:00Z", "actor": "a", "target": "e", "weight": 0}]}'
+    )
+    response = app_client.client.post(
+        "/v1/events",
+        content=body,
+        headers=app_client.headers("ingest", **{"Content-Type": "application/json"}),
+    )
     assert response.status_code == 202
     result = response.json()
     assert [r["index"] for r in result["rejected"]] == [0, 1, 2]
@@ -241,8 +302,15 @@ def test_nan_and_infinite_weights_are_rejected_alone(app_client):
 
 
 def test_control_characters_are_rejected(app_client, make_event):
-    errors = rejected(app_client, [make_event(actor="m\x00x"), make_event(target="tab\there"),
-                                   make_event(id="id\u0085"), make_event(kind="k\x7f")])
+    errors = rejected(
+        app_client,
+        [
+            make_event(actor="m\x00x"),
+            make_event(target="tab\there"),
+            make_event(id="id\u0085"),
+            make_event(kind="k\x7f"),
+        ],
+    )
     assert sorted(errors) == [0, 1, 2, 3]
     assert "U+0000" in errors[0] and errors[0].startswith("actor:")
     assert "U+0009" in errors[1]
@@ -251,24 +319,43 @@ def test_control_characters_are_rejected(app_client, make_event):
 
 
 def test_sql_metacharacters_are_stored_verbatim(app_client, make_event):
-    nasty = ["x'; DROP TABLE events; --", 'quote"s\\back', "%_wild*cards?", "m/with/slashes",
-             "Ünïcødé ☃ 𝄞", "' OR '1'='1"]
-    batch = [make_event(id=f"{n}#{i}", actor=n, target=f"{n}!", kind="k'\"") for i, n in enumerate(nasty)]
+    nasty = [
+        "x'; DROP TABLE events; --",
+        'quote"s\\back',
+        "%_wild*cards?",
+        "m/with/slashes",
+        "Ünïcødé ☃ 𝄞",
+        "' OR '1'='1",
+    ]
+    batch = [
+        make_event(id=f"{n}#{i}", actor=n, target=f"{n}!", kind="k'\"") for i, n in enumerate(nasty)
+    ]
     assert post(app_client, batch).json()["accepted"] == len(nasty)
     rows = stored(app_client)
     assert [r.actor for r in rows] == nasty
     assert [r.event_id for r in rows] == [f"{n}#{i}" for i, n in enumerate(nasty)]
     for n in nasty:  # readable back through the API by the same verbatim id
-        response = app_client.client.get(f"/v1/accounts/{n}/roles".replace("%", "%25").replace("?", "%3F").replace("#", "%23"),
-                                          headers=app_client.headers("read"))
+        response = app_client.client.get(
+            f"/v1/accounts/{n}/roles".replace("%", "%25").replace("?", "%3F").replace("#", "%23"),
+            headers=app_client.headers("read"),
+        )
         assert response.status_code == 200, (n, response.text)
         assert response.json()["account"] == n
 
 
 def test_ndjson_batch_with_a_broken_line(app_client, make_event):
-    lines = [json.dumps(make_event(id="n0")), "", "{not json", json.dumps(make_event(id="n1")), "  "]
-    response = app_client.client.post("/v1/events", content="\n".join(lines).encode(), headers=app_client.headers(
-        "ingest", **{"Content-Type": "application/x-ndjson"}))
+    lines = [
+        json.dumps(make_event(id="n0")),
+        "",
+        "{not json",
+        json.dumps(make_event(id="n1")),
+        "  ",
+    ]
+    response = app_client.client.post(
+        "/v1/events",
+        content="\n".join(lines).encode(),
+        headers=app_client.headers("ingest", **{"Content-Type": "application/x-ndjson"}),
+    )
     assert response.status_code == 202
     result = response.json()
     assert result["accepted"] == 2
@@ -287,7 +374,9 @@ RFC3339_EXAMPLES = [
 @pytest.mark.parametrize("text, utc", RFC3339_EXAMPLES)
 def test_rfc3339_examples(text, utc):
     expected = datetime.fromisoformat(utc)
-    assert parse_time_us(text) == int((expected - datetime(1970, 1, 1, tzinfo=timezone.utc)).total_seconds() * 1e6)
+    assert parse_time_us(text) == int(
+        (expected - datetime(1970, 1, 1, tzinfo=UTC)).total_seconds() * 1e6
+    )
 
 
 def test_rfc3339_leap_second_example_is_refused_with_a_reason():
@@ -304,13 +393,20 @@ def test_wrong_scope_cannot_ingest(app_client, make_event):
 def test_ndjson_lines_split_only_on_newline(app_client, make_event):
     # U+2028 and U+0085 may appear unescaped inside JSON strings (RFC 8259 section 7); a line
     # separator there must not cut the line. (U+0085 is a C1 control, so that event is refused.)
-    lines = [json.dumps(make_event(id="a\u2028b"), ensure_ascii=False),
-             json.dumps(make_event(id="c\u0085d"), ensure_ascii=False) + "\r"]
-    response = app_client.client.post("/v1/events", content="\n".join(lines).encode(), headers=app_client.headers(
-        "ingest", **{"Content-Type": "application/x-ndjson"}))
+    lines = [
+        json.dumps(make_event(id="a\u2028b"), ensure_ascii=False),
+        json.dumps(make_event(id="c\u0085d"), ensure_ascii=False) + "\r",
+    ]
+    response = app_client.client.post(
+        "/v1/events",
+        content="\n".join(lines).encode(),
+        headers=app_client.headers("ingest", **{"Content-Type": "application/x-ndjson"}),
+    )
     result = response.json()
     assert result["accepted"] == 1
-    assert [r["index"] for r in result["rejected"]] == [1] and "U+0085" in result["rejected"][0]["error"]
+    assert [r["index"] for r in result["rejected"]] == [1] and "U+0085" in result["rejected"][0][
+        "error"
+    ]
     assert [r.event_id for r in stored(app_client)] == ["a\u2028b"]
 
 
@@ -324,7 +420,9 @@ def test_concurrent_batches_share_commits_and_count_exactly(app_settings, make_e
 
     engine = open_store(app_settings)
     events = [make_event(id=f"c-{i}") for i in range(600)]
-    batches = [events[start:start + 200] for start in range(0, 600, 100)]  # each id in two batches
+    batches = [
+        events[start : start + 200] for start in range(0, 600, 100)
+    ]  # each id in two batches
     results, errors = [], []
 
     def post(batch):
@@ -342,5 +440,7 @@ def test_concurrent_batches_share_commits_and_count_exactly(app_settings, make_e
     assert sum(r.accepted for r in results) == 600
     assert sum(r.accepted + r.duplicates for r in results) == sum(len(b) for b in batches)
     with engine.connect() as connection:
-        assert connection.execute(sa.select(sa.func.count()).select_from(events_table)).scalar() == 600
+        assert (
+            connection.execute(sa.select(sa.func.count()).select_from(events_table)).scalar() == 600
+        )
     engine.dispose()

@@ -25,12 +25,16 @@ def test_a_failing_job_is_logged_and_counted_not_raised(caplog):
 
 def test_scheduler_runs_both_jobs_every_tick_and_stops(app_settings):
     settings = app_settings.model_copy(update={"tick_interval": timedelta(seconds=0.5)})
-    before = {job: job_runs(job, "ok") + job_runs(job, "error") for job in ("close_windows", "deliver")}
+    before = {
+        job: job_runs(job, "ok") + job_runs(job, "error") for job in ("close_windows", "deliver")
+    }
     app = create_app(settings, run_jobs=True)
     with TestClient(app) as client:
         deadline = time.monotonic() + 20
         while time.monotonic() < deadline:
-            done = {job: job_runs(job, "ok") + job_runs(job, "error") - before[job] for job in before}
+            done = {
+                job: job_runs(job, "ok") + job_runs(job, "error") - before[job] for job in before
+            }
             if all(count >= 2 for count in done.values()):
                 break
             time.sleep(0.2)

@@ -40,8 +40,12 @@ def test_two_processes_starting_at_once(store_url, tmp_path):
         "open_store(load_settings(database_url=sys.argv[1])).dispose()"
     )
     # Run from an unrelated directory: the migrations are found inside the installed package.
-    processes = [subprocess.Popen([sys.executable, "-c", script, store_url], stderr=subprocess.PIPE, cwd=tmp_path)
-                 for _ in range(3)]
+    processes = [
+        subprocess.Popen(
+            [sys.executable, "-c", script, store_url], stderr=subprocess.PIPE, cwd=tmp_path
+        )
+        for _ in range(3)
+    ]
     for process in processes:
         _, err = process.communicate(timeout=120)
         assert process.returncode == 0, err.decode()

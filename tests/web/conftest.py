@@ -102,8 +102,16 @@ def site(browser_ready, tmp_path_factory):
     late = ingest(
         engine,
         settings,
-        [{"id": "web-hostile-1", "time": "2026-03-12T10:00:00Z", "actor": HOSTILE_ACCOUNT,
-          "target": "m-00001", "kind": "purchase", "weight": 3}],
+        [
+            {
+                "id": "web-hostile-1",
+                "time": "2026-03-12T10:00:00Z",
+                "actor": HOSTILE_ACCOUNT,
+                "target": "m-00001",
+                "kind": "purchase",
+                "weight": 3,
+            }
+        ],
         time.time_ns() // 1000,
     )
     assert late.accepted == 1
@@ -211,6 +219,8 @@ def api_get(site, path: str, scope: str = "read"):
     """GET a JSON document from the REST API of the same running app."""
     import httpx
 
-    response = httpx.get(f"{site.url}{path}", headers={"Authorization": f"Bearer {site.keys[scope]}"})
+    response = httpx.get(
+        f"{site.url}{path}", headers={"Authorization": f"Bearer {site.keys[scope]}"}
+    )
     response.raise_for_status()
     return response.json()

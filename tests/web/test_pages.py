@@ -69,7 +69,9 @@ def test_sign_in_cookie_and_sign_out(page, site):
     page.get(f"{site.url}/signin?next=%2Froles")
     page.find_element(By.ID, "key").send_keys(site.keys["read"])
     page.find_element(By.CSS_SELECTOR, "form[action='/signin'] button").click()
-    wait_for(lambda: urlsplit(page.current_url).path == "/roles", "sign-in did not return to /roles")
+    wait_for(
+        lambda: urlsplit(page.current_url).path == "/roles", "sign-in did not return to /roles"
+    )
     (cookie,) = page.get_cookies()
     assert cookie["httpOnly"] is True
     assert cookie["sameSite"] == "Strict"
@@ -79,7 +81,9 @@ def test_sign_in_cookie_and_sign_out(page, site):
     assert site.keys["read"].split("_")[1] in page.find_element(By.CSS_SELECTOR, ".who").text
 
     page.find_element(By.CSS_SELECTOR, "form.signout button").click()
-    wait_for(lambda: urlsplit(page.current_url).path == "/signin", "sign-out did not land on /signin")
+    wait_for(
+        lambda: urlsplit(page.current_url).path == "/signin", "sign-out did not land on /signin"
+    )
     assert page.get_cookies() == []
     page.get(f"{site.url}/alerts")
     assert urlsplit(page.current_url).path == "/signin"
@@ -152,25 +156,33 @@ def test_account_chart_has_one_band_per_role(page, site):
 
     bands = _css(page, "svg.mixture [data-role]")
     assert len(bands) == len(roles) == len(queries.list_roles(site.engine)["roles"])
-    assert sorted(int(b.get_attribute("data-role")) for b in bands) == sorted(r["id"] for r in roles)
+    assert sorted(int(b.get_attribute("data-role")) for b in bands) == sorted(
+        r["id"] for r in roles
+    )
     legend = [item.text for item in _css(page, ".legend li")]
     for role in roles:
         assert role["name"] in legend, f"role {role['name']!r} missing from the legend"
 
     # Each band's height in a window is the role's share of the mixture the API reports.
-    plot_height = float(page.find_element(By.CSS_SELECTOR, "svg.mixture").get_attribute("data-plot-height"))
+    plot_height = float(
+        page.find_element(By.CSS_SELECTOR, "svg.mixture").get_attribute("data-plot-height")
+    )
     mixtures = {entry["window_id"]: entry["mixture"] for entry in history}
     checked = 0
     for band in bands:
         role = band.get_attribute("data-role")
         for rect in band.find_elements(By.CSS_SELECTOR, "rect[data-window]"):
             share = mixtures[int(rect.get_attribute("data-window"))][role]
-            assert float(rect.get_attribute("height")) == pytest.approx(share * plot_height, abs=0.02)
+            assert float(rect.get_attribute("height")) == pytest.approx(
+                share * plot_height, abs=0.02
+            )
             checked += 1
     assert checked >= len(history)
     # Columns: one per closed window; alert windows are marked.
     assert len(_css(page, "svg.mixture a.hit")) == len(queries.list_windows(site.engine))
-    alert_windows = {a["window_id"] for a in api_get(site, f"/v1/alerts?account={quote(account)}")["alerts"]}
+    alert_windows = {
+        a["window_id"] for a in api_get(site, f"/v1/alerts?account={quote(account)}")["alerts"]
+    }
     assert len(_css(page, "svg.mixture path.alert-marker")) == len(alert_windows) > 0
     # Activity under it: one pair of bars per active window.
     assert len(_css(page, "svg.activity rect.out")) == len(history)
@@ -197,13 +209,19 @@ def test_selecting_a_window_shows_its_evidence(page, site):
     screenshot(page, "account-window-without-alert")
 
     # Clicking the alert window's column swaps in its evidence (JavaScript enhancement).
-    page.find_element(By.CSS_SELECTOR, f"svg.mixture a.hit[data-window='{newest['window_id']}']").click()
-    wait_for(lambda: "Alert" in page.find_element(By.ID, "evidence").text,
-             "the evidence panel did not show the alert")
+    page.find_element(
+        By.CSS_SELECTOR, f"svg.mixture a.hit[data-window='{newest['window_id']}']"
+    ).click()
+    wait_for(
+        lambda: "Alert" in page.find_element(By.ID, "evidence").text,
+        "the evidence panel did not show the alert",
+    )
     assert parse_qs(urlsplit(page.current_url).query)["window"] == [str(newest["window_id"])]
     evidence = page.find_element(By.ID, "evidence")
     alert = queries.get_alert(site.engine, newest["id"])
-    moves = evidence.find_elements(By.XPATH, ".//table[caption='Features that moved most']/tbody/tr")
+    moves = evidence.find_elements(
+        By.XPATH, ".//table[caption='Features that moved most']/tbody/tr"
+    )
     assert len(moves) == max(len(alert["evidence"]["feature_moves"]), 1)
     counterparts = evidence.find_elements(By.CSS_SELECTOR, "table.counterparts tbody tr")
     assert len(counterparts) == max(len(alert["evidence"]["top_counterparts"]), 1)
@@ -217,8 +235,10 @@ def test_selecting_a_window_shows_its_evidence(page, site):
 
     # Back goes to the previous window again.
     page.back()
-    wait_for(lambda: "No alert in this window" in page.find_element(By.ID, "evidence").text,
-             "going back did not restore the previous window")
+    wait_for(
+        lambda: "No alert in this window" in page.find_element(By.ID, "evidence").text,
+        "going back did not restore the previous window",
+    )
 
 
 def test_account_ids_are_shown_as_text(page, site):
@@ -243,8 +263,9 @@ def test_role_catalogue_matches_the_api(page, site):
         assert role["description"] in card.find_element(By.CSS_SELECTOR, ".description").text
     # Dominant-role counts add up to the accounts active in the latest window.
     latest = max(queries.list_windows(site.engine), key=lambda w: w["end_us"])
-    counts = [int(c.find_element(By.CSS_SELECTOR, ".holders strong").text.replace(",", ""))
-              for c in cards]
+    counts = [
+        int(c.find_element(By.CSS_SELECTOR, ".holders strong").text.replace(",", "")) for c in cards
+    ]
     assert sum(counts) == latest["account_count"]
     assert _css(page, "form.rename") == [], "a read key must not see the rename form"
     assert len(_css(page, "svg.bars rect")) > 0
@@ -281,7 +302,9 @@ def test_rename_in_place_needs_admin(page, site):
         )
         page.find_element(By.CSS_SELECTOR, f"#role-{role['id']} form.rename button").click()
         assert "expired" in _error_text(page)
-        assert {r["id"]: r["name"] for r in api_get(site, "/v1/roles")["roles"]}[role["id"]] == new_name
+        assert {r["id"]: r["name"] for r in api_get(site, "/v1/roles")["roles"]}[
+            role["id"]
+        ] == new_name
         page.get_log("browser")  # the 403 answer is logged by the browser; it is expected here
     finally:
         queries.rename_role(site.engine, role["id"], original)

@@ -21,7 +21,8 @@ from rolewatch.store.keys import create_key, revoke_key
 @pytest.fixture(params=["https://rolewatch.example.test", "http://127.0.0.1:8000"])
 def served(request, tmp_path):
     settings = load_settings(
-        database_url=f"sqlite:///{tmp_path / 'rolewatch.db'}", public_url=request.param,
+        database_url=f"sqlite:///{tmp_path / 'rolewatch.db'}",
+        public_url=request.param,
         log_json=False,
     )
     engine = open_store(settings)

@@ -18,8 +18,16 @@ from starlette.concurrency import run_in_threadpool
 from rolewatch import metrics
 from rolewatch.api.auth import _bearer, require_scope
 from rolewatch.api.models import Health
-from rolewatch.api.routers import accounts, admin, alerts, events, roles, windows
-from rolewatch.api.routers import deliveries, subscriptions
+from rolewatch.api.routers import (
+    accounts,
+    admin,
+    alerts,
+    deliveries,
+    events,
+    roles,
+    subscriptions,
+    windows,
+)
 from rolewatch.logs import REQUEST_ID
 from rolewatch.web.pages import include_pages
 
@@ -48,7 +56,9 @@ class RequestContext:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
-        incoming = next((v for k, v in scope["headers"] if k == b"x-request-id"), b"").decode("latin-1")
+        incoming = next((v for k, v in scope["headers"] if k == b"x-request-id"), b"").decode(
+            "latin-1"
+        )
         request_id = incoming if _REQUEST_ID_OK.fullmatch(incoming) else uuid.uuid4().hex[:16]
         token = REQUEST_ID.set(request_id)
         started = time.perf_counter()
@@ -59,7 +69,9 @@ class RequestContext:
             if message["type"] == "http.response.start":
                 status_code = message["status"]
                 message.setdefault("headers", [])
-                message["headers"] = list(message["headers"]) + [(b"x-request-id", request_id.encode())]
+                message["headers"] = list(message["headers"]) + [
+                    (b"x-request-id", request_id.encode())
+                ]
             await send(message)
 
         try:
@@ -69,10 +81,18 @@ class RequestContext:
             template = getattr(route, "path", None) or "(unmatched)"
             metrics.HTTP_REQUESTS.labels(scope["method"], template, str(status_code)).inc()
             log.info(
-                "%s %s %s", scope["method"], template, status_code,
-                extra={"fields": {"method": scope["method"], "route": template,
-                                  "status": status_code,
-                                  "ms": round((time.perf_counter() - started) * 1000, 2)}},
+                "%s %s %s",
+                scope["method"],
+                template,
+                status_code,
+                extra={
+                    "fields": {
+                        "method": scope["method"],
+                        "route": template,
+                        "status": status_code,
+                        "ms": round((time.perf_counter() - started) * 1000, 2),
+                    }
+                },
             )
             REQUEST_ID.reset(token)
 
@@ -98,7 +118,9 @@ def create_app(settings, *, run_jobs: bool | None = None) -> FastAPI:
             from rolewatch.api.jobs import start_scheduler
 
             scheduler = start_scheduler(engine, settings)
-        log.info("rolewatch started", extra={"fields": {"role": settings.role, "jobs": bool(scheduler)}})
+        log.info(
+            "rolewatch started", extra={"fields": {"role": settings.role, "jobs": bool(scheduler)}}
+        )
         try:
             yield
         finally:
@@ -125,7 +147,12 @@ def create_app(settings, *, run_jobs: bool | None = None) -> FastAPI:
     app.include_router(deliveries.router)
     include_pages(app)  # the HTML pages and /static
 
-    @app.get("/healthz", response_model=Health, tags=["service"], summary="Liveness and database check (no key)")
+    @app.get(
+        "/healthz",
+        response_model=Health,
+        tags=["service"],
+        summary="Liveness and database check (no key)",
+    )
     async def healthz(request: Request):
         def check() -> bool:
             try:
@@ -148,9 +175,13 @@ def create_app(settings, *, run_jobs: bool | None = None) -> FastAPI:
         if not settings.metrics_public:
             read_scope(request, credentials)
 
-    @app.get("/metrics", tags=["service"], dependencies=[Depends(metrics_access)],
-             summary="Prometheus text exposition (read scope unless metrics_public)",
-             response_class=Response)
+    @app.get(
+        "/metrics",
+        tags=["service"],
+        dependencies=[Depends(metrics_access)],
+        summary="Prometheus text exposition (read scope unless metrics_public)",
+        response_class=Response,
+    )
     async def metrics_endpoint():
         body, content_type = metrics.exposition()
         return Response(body, media_type=content_type)

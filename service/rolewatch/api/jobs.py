@@ -42,8 +42,11 @@ def run_job(name: str, engine, settings) -> None:
         log.exception("job %s failed", name, extra={"fields": {"job": name}})
         return
     metrics.JOB_RUNS.labels(job=name, outcome="ok").inc()
-    log.debug("job %s ran", name, extra={"fields": {"job": name,
-              "seconds": round(time.perf_counter() - started, 4)}})
+    log.debug(
+        "job %s ran",
+        name,
+        extra={"fields": {"job": name, "seconds": round(time.perf_counter() - started, 4)}},
+    )
 
 
 def stop_scheduler(scheduler) -> None:

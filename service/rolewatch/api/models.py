@@ -17,10 +17,16 @@ class Event(BaseModel):
     """One interaction event (documentation of the wire form)."""
 
     model_config = ConfigDict(extra="forbid")
-    id: str | None = Field(None, max_length=200, description="Idempotency key; absent: a hash of the other fields.")
-    time: str = Field(..., description="RFC 3339 timestamp with an offset, e.g. 2026-02-12T09:30:00Z.")
+    id: str | None = Field(
+        None, max_length=200, description="Idempotency key; absent: a hash of the other fields."
+    )
+    time: str = Field(
+        ..., description="RFC 3339 timestamp with an offset, e.g. 2026-02-12T09:30:00Z."
+    )
     actor: str = Field(..., max_length=200, description="The account that acted.")
-    target: str = Field(..., max_length=200, description="The account acted upon; differs from actor.")
+    target: str = Field(
+        ..., max_length=200, description="The account acted upon; differs from actor."
+    )
     kind: str | None = Field(None, max_length=64, description="e.g. payment, message.")
     weight: float = Field(1.0, ge=0, description="Finite, ≥ 0, e.g. an amount.")
 
@@ -30,7 +36,9 @@ class EventBatch(BaseModel):
 
 
 class Rejection(BaseModel):
-    index: int = Field(..., description="Position of the event in the batch (or NDJSON line, from 0).")
+    index: int = Field(
+        ..., description="Position of the event in the batch (or NDJSON line, from 0)."
+    )
     error: str
 
 
@@ -64,7 +72,9 @@ class HistoryEntry(BaseModel):
     basis_version: str
     mixture: dict[str, float] = Field(..., description="{role_id: weight}, sums to 1.")
     dominant_role: RoleRef
-    score: float | None = Field(..., description="Shift score; null on first appearance or when not scored.")
+    score: float | None = Field(
+        ..., description="Shift score; null on first appearance or when not scored."
+    )
     status: str = Field(..., description="new | scored | low_activity")
     activity: Activity
     reconstruction_error: float
@@ -108,7 +118,9 @@ class ClosedWindow(BaseModel):
     late_count: int
     alert_count: int
     new_count: int | None = Field(None, description="Accounts seen without a baseline.")
-    inactive_count: int | None = Field(None, description="Accounts active before, not in this window.")
+    inactive_count: int | None = Field(
+        None, description="Accounts active before, not in this window."
+    )
     scored_count: int | None = Field(None, description="Accounts whose shift was scored.")
     training: bool
     recipe_version: str | None
@@ -125,7 +137,9 @@ class OpenWindow(BaseModel):
 
 
 class WindowsResponse(BaseModel):
-    watermark: str | None = Field(..., description="max(event time) - lateness; null before any event.")
+    watermark: str | None = Field(
+        ..., description="max(event time) - lateness; null before any event."
+    )
     latest_event: str | None
     open: list[OpenWindow]
     closed: list[ClosedWindow]

@@ -26,7 +26,9 @@ WEEK_US = 7 * 86_400 * 1_000_000
 FIRST_END = 1_767_830_400_000_000  # 2026-01-08T00:00:00Z, a UTC-aligned 7-day window end
 
 
-def _power_law_events(rng: np.random.Generator, n_events: int, n_accounts: int, start_us: int, prefix: str):
+def _power_law_events(
+    rng: np.random.Generator, n_events: int, n_accounts: int, start_us: int, prefix: str
+):
     """Events whose endpoints follow a Zipf-like popularity (a few hubs, many quiet accounts)."""
     popularity = 1.0 / np.arange(1, n_accounts + 1) ** 0.9
     popularity /= popularity.sum()
@@ -72,7 +74,10 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
         path = Path(tmp) / "close.db"
         settings = load_settings(
-            database_url=f"sqlite:///{path}", training_windows=1, window_period="7d", window_span="7d"
+            database_url=f"sqlite:///{path}",
+            training_windows=1,
+            window_period="7d",
+            window_span="7d",
         )
         engine = open_store(settings)
         _load(path, _power_law_events(rng, big // 5, accounts, FIRST_END - WEEK_US, "t-"))

@@ -25,9 +25,18 @@ SIZES = {
     "detection-small": {"seeds": (7,), "members": 400, "weeks": 10},
 }
 TARGETS = {"recall_structural": 0.9, "alert_share_max": 0.01, "volume_control_fa": 0.05}
-SETTINGS_SHOWN = ("shift_measure", "shift_baseline", "alert_mode", "alert_threshold",
-                  "alert_budget", "alert_floor", "min_events", "binning", "training_windows",
-                  "roles")
+SETTINGS_SHOWN = (
+    "shift_measure",
+    "shift_baseline",
+    "alert_mode",
+    "alert_threshold",
+    "alert_budget",
+    "alert_floor",
+    "min_events",
+    "binning",
+    "training_windows",
+    "roles",
+)
 
 
 def run(case: str, quick: bool = False) -> Iterator[dict]:
@@ -42,8 +51,7 @@ def run(case: str, quick: bool = False) -> Iterator[dict]:
         case = "detection-small"
     settings = load_settings()
     started = time.perf_counter()
-    report = evaluate(settings, seeds=size["seeds"], members=size["members"],
-                      weeks=size["weeks"])
+    report = evaluate(settings, seeds=size["seeds"], members=size["members"], weeks=size["weeks"])
     seconds = time.perf_counter() - started
     role = report["role_shift"]["summary"]
     yield {
@@ -53,10 +61,17 @@ def run(case: str, quick: bool = False) -> Iterator[dict]:
         **{key: list(value) if isinstance(value, tuple) else value for key, value in size.items()},
         "settings": {name: getattr(settings, name) for name in SETTINGS_SHOWN},
         "targets": TARGETS,
-        "met": {key: (role[key]["mean"] is not None
-                      and (role[key]["mean"] >= goal if key.startswith("recall")
-                           else role[key]["max" if key == "alert_share_max" else "mean"] <= goal))
-                for key, goal in TARGETS.items()},
+        "met": {
+            key: (
+                role[key]["mean"] is not None
+                and (
+                    role[key]["mean"] >= goal
+                    if key.startswith("recall")
+                    else role[key]["max" if key == "alert_share_max" else "mean"] <= goal
+                )
+            )
+            for key, goal in TARGETS.items()
+        },
         "role_shift": role,
         "volume_baseline": report["volume_baseline"]["summary"],
     }

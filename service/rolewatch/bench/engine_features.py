@@ -83,7 +83,9 @@ thousands of features on a power-law window (six aggregates per kept feature and
 few exact agreements); the values used are printed with every result."""
 
 
-def features_case(case: str, n_edges: int, n_nodes: int, max_rounds: int = 3, tolerance: float | None = None) -> dict:
+def features_case(
+    case: str, n_edges: int, n_nodes: int, max_rounds: int = 3, tolerance: float | None = None
+) -> dict:
     """Snapshot build, ReFeX discovery and transform on one power-law window.
 
     ``seconds`` is the transform (the per-window cost once a recipe is frozen);
@@ -153,7 +155,10 @@ def oracle_ratio_case(n_edges: int = 50_000, n_nodes: int = 10_000) -> dict:
             "target": TARGETS["oracle-ratio"],
         }
     )
-    print(f"oracle-ratio: sparse {ours_s:.3f}s, networkx {oracle_s:.1f}s, ratio {out['ratio']}x", file=sys.stderr)
+    print(
+        f"oracle-ratio: sparse {ours_s:.3f}s, networkx {oracle_s:.1f}s, ratio {out['ratio']}x",
+        file=sys.stderr,
+    )
     return out
 
 
@@ -163,9 +168,11 @@ def triangles_vs_igraph_case(n_edges: int = 1_000_000, n_nodes: int = 200_000) -
     try:
         import igraph
     except ImportError:
-        out.update({"skipped": "igraph is not installed (optional bench dependency: pip install igraph)"})
+        out.update(
+            {"skipped": "igraph is not installed (optional bench dependency: pip install igraph)"}
+        )
         return out
-    from rolewatch.engine.features import _triangle_parts, _binary
+    from rolewatch.engine.features import _binary, _triangle_parts
 
     snap, _ = _snapshot(n_edges, n_nodes)
     A = _binary(snap.counts)
@@ -249,7 +256,9 @@ def run(case: str) -> Iterator[dict]:
     names = CASES if case == "all" else (case,)
     for name in names:
         if name not in CASES:
-            raise ValueError(f"unknown engine bench case {name!r}; choose one of {', '.join(CASES)}")
+            raise ValueError(
+                f"unknown engine bench case {name!r}; choose one of {', '.join(CASES)}"
+            )
         yield _in_subprocess(name)
 
 

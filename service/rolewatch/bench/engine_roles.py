@@ -40,9 +40,12 @@ def _problem(n: int, f: int = 40, k: int = 8, seed: int = 0):
     F[np.arange(k), rng.integers(0, f, k)] += 1.0
     G = rng.dirichlet(np.full(k, 0.3), n) * rng.uniform(0.5, 6.0, (n, 1))
     V = np.clip(np.rint(G @ F * 4 + rng.normal(0, 0.5, (n, f))), 0, None)
-    basis = RoleBasis(F=F / F.sum(1, keepdims=True), role_ids=tuple(range(k)),
-                      feature_names=tuple(f"feat_{j}" for j in range(f)),
-                      recipe_version=None)
+    basis = RoleBasis(
+        F=F / F.sum(1, keepdims=True),
+        role_ids=tuple(range(k)),
+        feature_names=tuple(f"feat_{j}" for j in range(f)),
+        recipe_version=None,
+    )
     return basis, V
 
 
@@ -58,9 +61,14 @@ def _measure(case: str) -> dict:
         t0 = time.perf_counter()
         m = basis.memberships(V)
         seconds = time.perf_counter() - t0
-        return {"nodes": n, "features": f, "roles": k, "seconds": round(seconds, 4),
-                "median_error": float(np.median(m.error)),
-                "target_seconds": TARGETS[case]["seconds"]}
+        return {
+            "nodes": n,
+            "features": f,
+            "roles": k,
+            "seconds": round(seconds, 4),
+            "median_error": float(np.median(m.error)),
+            "target_seconds": TARGETS[case]["seconds"],
+        }
     if case == "nnls-vs-scipy":
         from scipy.optimize import nnls
 
@@ -72,9 +80,15 @@ def _measure(case: str) -> dict:
         t0 = time.perf_counter()
         ref = np.array([nnls(basis.F.T, v)[0] for v in V])
         t_ref = time.perf_counter() - t0
-        return {"nodes": n, "features": f, "roles": k, "seconds": round(t_ours, 4),
-                "scipy_seconds": round(t_ref, 4), "speedup": round(t_ref / t_ours, 1),
-                "max_abs_diff": float(np.abs(ours - ref).max())}
+        return {
+            "nodes": n,
+            "features": f,
+            "roles": k,
+            "seconds": round(t_ours, 4),
+            "scipy_seconds": round(t_ref, 4),
+            "speedup": round(t_ref / t_ours, 1),
+            "max_abs_diff": float(np.abs(ours - ref).max()),
+        }
     if case == "fit-200k":
         from rolewatch.engine.basis import RoleBasis
 
@@ -83,8 +97,14 @@ def _measure(case: str) -> dict:
         t0 = time.perf_counter()
         basis = RoleBasis.fit(V, k_range=(2, 12), seed=0)
         seconds = time.perf_counter() - t0
-        return {"nodes": n, "features": f, "planted_roles": k, "chosen_roles": basis.n_roles,
-                "mdl_rows": basis.summary["mdl_rows"], "seconds": round(seconds, 2)}
+        return {
+            "nodes": n,
+            "features": f,
+            "planted_roles": k,
+            "chosen_roles": basis.n_roles,
+            "mdl_rows": basis.summary["mdl_rows"],
+            "seconds": round(seconds, 2),
+        }
     raise ValueError(f"unknown benchmark case {case!r}; choose one of {', '.join(CASES)}")
 
 
@@ -93,21 +113,29 @@ def run(case: str) -> Iterator[dict]:
     cases = CASES if case == "all" else (case,)
     for name in cases:
         if name not in CASES:
-            raise ValueError(f"unknown benchmark case {name!r}; choose one of "
-                             f"{', '.join(CASES)} or all")
-        code = ("import json, sys; from rolewatch.bench.engine_roles import _child; "
-                "print(json.dumps(_child(sys.argv[1])))")
-        proc = subprocess.run([sys.executable, "-c", code, name], capture_output=True,
-                              text=True, check=False)
+            raise ValueError(
+                f"unknown benchmark case {name!r}; choose one of {', '.join(CASES)} or all"
+            )
+        code = (
+            "import json, sys; from rolewatch.bench.engine_roles import _child; "
+            "print(json.dumps(_child(sys.argv[1])))"
+        )
+        proc = subprocess.run(
+            [sys.executable, "-c", code, name], capture_output=True, text=True, check=False
+        )
         if proc.returncode != 0:
             raise RuntimeError(f"benchmark case {name} failed:\n{proc.stderr.strip()}")
         yield json.loads(proc.stdout.strip().splitlines()[-1])
 
 
 def _child(case: str) -> dict:
-    result = {"case": case, "cores": os.cpu_count(),
-              "blas_threads": os.environ.get("OPENBLAS_NUM_THREADS")
-              or os.environ.get("OMP_NUM_THREADS") or "default"}
+    result = {
+        "case": case,
+        "cores": os.cpu_count(),
+        "blas_threads": os.environ.get("OPENBLAS_NUM_THREADS")
+        or os.environ.get("OMP_NUM_THREADS")
+        or "default",
+    }
     result.update(_measure(case))
     result["peak_rss_mb"] = round(_peak_rss_mb(), 1)
     return result

@@ -34,31 +34,63 @@ def _load(path: Path, rows_total: int) -> tuple[int, float]:
     started = time.perf_counter()
     first_end = 1_767_830_400_000_000  # 2026-01-08T00:00:00Z
     connection.execute("BEGIN")
-    connection.execute("INSERT INTO recipes (version, created_us, body) VALUES ('r-bench', 0, '{}')")
+    connection.execute(
+        "INSERT INTO recipes (version, created_us, body) VALUES ('r-bench', 0, '{}')"
+    )
     connection.execute(
         "INSERT INTO bases (version, recipe_version, created_us, active, trained_from_us, "
-        "trained_to_us, body) VALUES ('b-bench', 'r-bench', 0, 1, 0, 1, '{}')")
+        "trained_to_us, body) VALUES ('b-bench', 'r-bench', 0, 1, 0, 1, '{}')"
+    )
     connection.executemany(
         "INSERT INTO roles (basis_version, role_id, name, description, profile) VALUES (?, ?, ?, ?, '{}')",
-        [("b-bench", r, f"role {r}", "") for r in range(1, 7)])
+        [("b-bench", r, f"role {r}", "") for r in range(1, 7)],
+    )
     connection.executemany(
         "INSERT INTO windows (id, start_us, end_us, status, closed_us, event_count, account_count, "
         "late_count, alert_count, new_count, inactive_count, scored_count, training) "
         "VALUES (?, ?, ?, 'closed', ?, 0, ?, 0, 0, 0, 0, 0, 0)",
-        [(w + 1, first_end + (w - 1) * WEEK_US, first_end + w * WEEK_US, first_end + w * WEEK_US, per_window)
-         for w in range(WINDOWS)])
+        [
+            (
+                w + 1,
+                first_end + (w - 1) * WEEK_US,
+                first_end + w * WEEK_US,
+                first_end + w * WEEK_US,
+                per_window,
+            )
+            for w in range(WINDOWS)
+        ],
+    )
     connection.execute("COMMIT")
     rng = random.Random(0)
     mixtures = [json.dumps({str(r): round(1 / 6, 6) for r in range(1, 7)})] + [
-        json.dumps({"1": 0.7, "3": 0.2, "5": 0.1}), json.dumps({"2": 1.0})]
-    sql = ("INSERT INTO memberships (account, window_id, basis_version, mixture, dominant_role, score, "
-           "status, events_out, events_in, counterparts, new_counterparts, error) "
-           "VALUES (?, ?, 'b-bench', ?, ?, ?, 'scored', ?, ?, ?, ?, ?)")
+        json.dumps({"1": 0.7, "3": 0.2, "5": 0.1}),
+        json.dumps({"2": 1.0}),
+    ]
+    sql = (
+        "INSERT INTO memberships (account, window_id, basis_version, mixture, dominant_role, score, "
+        "status, events_out, events_in, counterparts, new_counterparts, error) "
+        "VALUES (?, ?, 'b-bench', ?, ?, ?, 'scored', ?, ?, ?, ?, ?)"
+    )
     for window in range(1, WINDOWS + 1):
         connection.execute("BEGIN")
-        connection.executemany(sql, (
-            (f"m-{a:07d}", window, mixtures[a % 3], 1 + a % 6, rng.random(), a % 9, a % 7, a % 5, a % 2, 0.1)
-            for a in range(per_window)))
+        connection.executemany(
+            sql,
+            (
+                (
+                    f"m-{a:07d}",
+                    window,
+                    mixtures[a % 3],
+                    1 + a % 6,
+                    rng.random(),
+                    a % 9,
+                    a % 7,
+                    a % 5,
+                    a % 2,
+                    0.1,
+                )
+                for a in range(per_window)
+            ),
+        )
         connection.execute("COMMIT")
     connection.execute("ANALYZE")
     connection.close()

@@ -19,6 +19,7 @@ import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
+
 from rolewatch.bench import stop_server
 
 CASES = ("ingest-http",)
@@ -43,14 +44,16 @@ def _events(n: int, seed: int = 0) -> list[dict]:
         actor = rng.randrange(50_000)
         target = (actor + 1 + rng.randrange(49_999)) % 50_000
         moment = start + rng.randrange(28 * 86_400)
-        events.append({
-            "id": f"bench-{seed}-{i:09d}",
-            "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(moment)),
-            "actor": f"m-{actor:05d}",
-            "target": f"m-{target:05d}",
-            "kind": "payment",
-            "weight": round(rng.lognormvariate(3, 1), 2),
-        })
+        events.append(
+            {
+                "id": f"bench-{seed}-{i:09d}",
+                "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(moment)),
+                "actor": f"m-{actor:05d}",
+                "target": f"m-{target:05d}",
+                "kind": "payment",
+                "weight": round(rng.lognormvariate(3, 1), 2),
+            }
+        )
     return events
 
 
@@ -108,12 +111,14 @@ def _raw_sqlite(path: Path, rows: list[tuple], now_us: int) -> float:
     connection.execute("PRAGMA journal_mode=WAL")
     connection.execute("PRAGMA synchronous=FULL")
     connection.execute("PRAGMA cache_size=-65536")  # as make_engine sets it
-    sql = ("INSERT INTO events (event_id, time_us, actor, target, kind, weight, received_us, late) "
-           "VALUES (?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT (event_id) DO NOTHING")
+    sql = (
+        "INSERT INTO events (event_id, time_us, actor, target, kind, weight, received_us, late) "
+        "VALUES (?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT (event_id) DO NOTHING"
+    )
     started = time.perf_counter()
     for start in range(0, len(rows), BATCH):
         connection.execute("BEGIN IMMEDIATE")
-        connection.executemany(sql, [row + (now_us, False) for row in rows[start:start + BATCH]])
+        connection.executemany(sql, [row + (now_us, False) for row in rows[start : start + BATCH]])
         connection.execute("COMMIT")
     elapsed = time.perf_counter() - started
     connection.close()
@@ -133,7 +138,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     total = 50_000 if quick else 300_000
     clients = int(os.environ.get("ROLEWATCH_BENCH_CLIENTS", "4"))
     events = _events(total)
-    bodies = [orjson.dumps({"events": events[i:i + BATCH]}) for i in range(0, total, BATCH)]
+    bodies = [orjson.dumps({"events": events[i : i + BATCH]}) for i in range(0, total, BATCH)]
     with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
         http_db, raw_db = Path(tmp) / "http.db", Path(tmp) / "raw.db"
         settings = load_settings(database_url=f"sqlite:///{http_db}")
@@ -144,13 +149,29 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
 
         port = _free_port()
         url = f"http://127.0.0.1:{port}"
-        env = dict(os.environ, ROLEWATCH_DATABASE_URL=f"sqlite:///{http_db}",
-                   ROLEWATCH_LOG_LEVEL="WARNING", ROLEWATCH_MAX_BATCH_EVENTS="10000")
+        env = dict(
+            os.environ,
+            ROLEWATCH_DATABASE_URL=f"sqlite:///{http_db}",
+            ROLEWATCH_LOG_LEVEL="WARNING",
+            ROLEWATCH_MAX_BATCH_EVENTS="10000",
+        )
         env.pop("ROLEWATCH_CONFIG", None)
         process = subprocess.Popen(
-            [sys.executable, "-m", "rolewatch.cli", "serve", "--host", "127.0.0.1",
-             "--port", str(port), "--role", "api"],
-            env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+            [
+                sys.executable,
+                "-m",
+                "rolewatch.cli",
+                "serve",
+                "--host",
+                "127.0.0.1",
+                "--port",
+                str(port),
+                "--role",
+                "api",
+            ],
+            env=env,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.PIPE,
         )
         try:
             _wait_healthy(url, process)
@@ -161,8 +182,10 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
             stop_server(process, timeout=30)
         timed = total - warm * BATCH
 
-        rows = [(e["id"], parse_time_us(e["time"]), e["actor"], e["target"], e["kind"], e["weight"])
-                for e in events[warm * BATCH:]]
+        rows = [
+            (e["id"], parse_time_us(e["time"]), e["actor"], e["target"], e["kind"], e["weight"])
+            for e in events[warm * BATCH :]
+        ]
         raw_seconds = _raw_sqlite(raw_db, rows, time.time_ns() // 1000)
         stored = sqlite3.connect(http_db).execute("SELECT count(*) FROM events").fetchone()[0]
 

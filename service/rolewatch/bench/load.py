@@ -21,6 +21,7 @@ import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
+
 from rolewatch.bench import stop_server
 
 CASES = ("load",)
@@ -75,11 +76,25 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
         port = _free_port()
         url = f"http://127.0.0.1:{port}"
         env = {k: v for k, v in os.environ.items() if not k.startswith("ROLEWATCH_")}
-        env.update(ROLEWATCH_DATABASE_URL=database_url, ROLEWATCH_LOG_LEVEL="WARNING",
-                   ROLEWATCH_TICK_INTERVAL="2s")
+        env.update(
+            ROLEWATCH_DATABASE_URL=database_url,
+            ROLEWATCH_LOG_LEVEL="WARNING",
+            ROLEWATCH_TICK_INTERVAL="2s",
+        )
         process = subprocess.Popen(
-            [sys.executable, "-m", "rolewatch.cli", "serve", "--host", "127.0.0.1", "--port", str(port)],
-            env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+            [
+                sys.executable,
+                "-m",
+                "rolewatch.cli",
+                "serve",
+                "--host",
+                "127.0.0.1",
+                "--port",
+                str(port),
+            ],
+            env=env,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.PIPE,
         )
         ingest_ms: list[float] = []
         history_ms: list[float] = []
@@ -96,18 +111,33 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
             def next_body() -> bytes:
                 with lock:
                     first, counter[0] = counter[0], counter[0] + BATCH
-                    start, clock[0] = clock[0], clock[0] + BATCH * 10  # one event per 10 s of event time
+                    start, clock[0] = (
+                        clock[0],
+                        clock[0] + BATCH * 10,
+                    )  # one event per 10 s of event time
                 rng = random.Random(first)
                 events = []
                 for i in range(BATCH):
                     actor, target = rng.sample(members, 2)
-                    events.append({"id": f"load-{first + i:09d}", "actor": actor, "target": target,
-                                   "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(start + i * 10)),
-                                   "kind": "payment", "weight": round(rng.lognormvariate(3, 1), 2)})
+                    events.append(
+                        {
+                            "id": f"load-{first + i:09d}",
+                            "actor": actor,
+                            "target": target,
+                            "time": time.strftime(
+                                "%Y-%m-%dT%H:%M:%SZ", time.gmtime(start + i * 10)
+                            ),
+                            "kind": "payment",
+                            "weight": round(rng.lognormvariate(3, 1), 2),
+                        }
+                    )
                 return orjson.dumps({"events": events})
 
             def ingester() -> None:
-                headers = {"Authorization": f"Bearer {ingest_key}", "Content-Type": "application/json"}
+                headers = {
+                    "Authorization": f"Bearer {ingest_key}",
+                    "Content-Type": "application/json",
+                }
                 with httpx.Client(base_url=url, headers=headers, timeout=60) as client:
                     while time.perf_counter() < stop_at:
                         body = next_body()
@@ -144,8 +174,9 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
             for thread in threads:
                 thread.join()
             elapsed = time.perf_counter() - started
-            windows = httpx.get(url + "/v1/windows", headers={"Authorization": f"Bearer {read_key}"},
-                                timeout=60).json()
+            windows = httpx.get(
+                url + "/v1/windows", headers={"Authorization": f"Bearer {read_key}"}, timeout=60
+            ).json()
         finally:
             stop_server(process, timeout=60)
     closed = windows.get("closed", windows.get("windows", []))

@@ -14,7 +14,7 @@ from __future__ import annotations
 import json
 import re
 import unicodedata
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from typing import Any
 from urllib.parse import quote
 
@@ -29,7 +29,7 @@ _SPACES = re.compile(r"\s+")
 
 def rfc3339(us: int) -> str:
     """Microseconds since the epoch as an RFC 3339 UTC timestamp (``...Z``)."""
-    moment = datetime.fromtimestamp(us / 1_000_000, tz=timezone.utc)
+    moment = datetime.fromtimestamp(us / 1_000_000, tz=UTC)
     text = moment.isoformat(timespec="microseconds" if us % 1_000_000 else "seconds")
     return text.replace("+00:00", "Z")
 

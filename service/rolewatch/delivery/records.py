@@ -97,7 +97,13 @@ def redeliver(connection: Connection, delivery_id: str, *, now_us: int) -> dict[
     connection.execute(
         update(deliveries)
         .where(deliveries.c.id == delivery_id)
-        .values(status="pending", attempts=0, next_attempt_us=now_us, last_error=None,
-                last_status_code=None, delivered_us=None)
+        .values(
+            status="pending",
+            attempts=0,
+            next_attempt_us=now_us,
+            last_error=None,
+            last_status_code=None,
+            delivered_us=None,
+        )
     )
     return get_delivery(connection, delivery_id)

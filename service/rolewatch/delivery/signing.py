@@ -31,7 +31,7 @@ def new_secret() -> str:
 
 def secret_key(secret: str) -> bytes:
     """The HMAC key of ``secret``: the base64-decoded bytes after the ``whsec_`` prefix."""
-    encoded = secret[len(SECRET_PREFIX):] if secret.startswith(SECRET_PREFIX) else secret
+    encoded = secret[len(SECRET_PREFIX) :] if secret.startswith(SECRET_PREFIX) else secret
     try:
         key = base64.b64decode(encoded, validate=True)
     except (binascii.Error, ValueError):

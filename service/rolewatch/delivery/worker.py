@@ -258,7 +258,10 @@ def send_one(
     try:
         for address in checked.addresses:  # every one was checked; try the next if one refuses
             request = client.build_request(
-                "POST", checked.pinned_url(address), content=claim.body, headers=headers,
+                "POST",
+                checked.pinned_url(address),
+                content=claim.body,
+                headers=headers,
                 extensions=extensions,
             )
             try:
@@ -295,7 +298,12 @@ def send_one(
 
 
 def record_attempt(
-    engine: Engine, settings, claim: Claim, outcome: AttemptResult, now_us: int, report: DeliveryReport
+    engine: Engine,
+    settings,
+    claim: Claim,
+    outcome: AttemptResult,
+    now_us: int,
+    report: DeliveryReport,
 ) -> None:
     """Store the attempt and move the delivery and its subscription on (step 3)."""
     with write_transaction(engine) as connection:

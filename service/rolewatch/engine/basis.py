@@ -15,8 +15,9 @@ import hashlib
 import json
 import math
 import warnings
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 from scipy.optimize import linear_sum_assignment
@@ -64,6 +65,7 @@ class Memberships:
 # input handling (duck-typed FeatureTable or plain ndarray)
 # ---------------------------------------------------------------------------
 
+
 def _table_parts(table: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]:
     """Return (binned matrix, feature names or None, recipe version or None).
 
@@ -79,10 +81,12 @@ def _table_parts(table: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | 
         version = getattr(table, "recipe_version", None)
     if V.ndim != 2:
         raise EngineInputError(
-            f"a feature matrix must be 2-D (nodes x features), got shape {V.shape}")
+            f"a feature matrix must be 2-D (nodes x features), got shape {V.shape}"
+        )
     if names is not None and len(names) != V.shape[1]:
         raise FeatureMismatch(
-            f"feature table has {V.shape[1]} columns but {len(names)} feature names")
+            f"feature table has {V.shape[1]} columns but {len(names)} feature names"
+        )
     return V, names, version
 
 
@@ -123,13 +127,15 @@ def _stack(tables: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]
         if n2 != names or V.shape[1] != parts[0][0].shape[1]:
             raise FeatureMismatch(
                 "the feature tables to stack have different feature columns; build them "
-                "all with the same feature recipe")
+                "all with the same feature recipe"
+            )
     return np.vstack([p[0] for p in parts], dtype=np.float64), names, version
 
 
 # ---------------------------------------------------------------------------
 # minimum description length (RolX model selection)
 # ---------------------------------------------------------------------------
+
 
 def default_bits_per_value(V: np.ndarray) -> int:
     """Bits b used to encode one value of G or F in the RolX model cost.
@@ -145,8 +151,9 @@ def default_bits_per_value(V: np.ndarray) -> int:
     return int(min(32, max(1, math.ceil(math.log2(distinct + 1)))))
 
 
-def description_length(V: np.ndarray, G: np.ndarray, F: np.ndarray,
-                       bits_per_value: int) -> tuple[float, float]:
+def description_length(
+    V: np.ndarray, G: np.ndarray, F: np.ndarray, bits_per_value: int
+) -> tuple[float, float]:
     """Model and error description lengths (bits) of V ~ G F, as in RolX.
 
     Parameters
@@ -186,8 +193,15 @@ def _fit_nmf(V: np.ndarray, k: int, seed: int) -> tuple[np.ndarray, np.ndarray, 
     scikit-learn's default stopping rule (tol 1e-4, 500 iterations); the memberships are
     refitted exactly afterwards, so F only needs to be a good basis.
     """
-    model = NMF(n_components=k, init="nndsvda", solver="cd", beta_loss="frobenius",
-                max_iter=500, tol=1e-4, random_state=seed)
+    model = NMF(
+        n_components=k,
+        init="nndsvda",
+        solver="cd",
+        beta_loss="frobenius",
+        max_iter=500,
+        tol=1e-4,
+        random_state=seed,
+    )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         G = model.fit_transform(V)
@@ -207,14 +221,16 @@ def _normalise_profiles(G: np.ndarray, F: np.ndarray) -> tuple[np.ndarray, np.nd
 # the frozen basis
 # ---------------------------------------------------------------------------
 
+
 def _frozen(a: np.ndarray) -> np.ndarray:
     a = np.array(a, dtype=np.float64, copy=True)
     a.setflags(write=False)
     return a
 
 
-def _version_of(F: np.ndarray, role_ids: Sequence[int], names: Sequence[str],
-                recipe_version: str | None) -> str:
+def _version_of(
+    F: np.ndarray, role_ids: Sequence[int], names: Sequence[str], recipe_version: str | None
+) -> str:
     body = {
         "F": [[float(x) for x in row] for row in F],
         "role_ids": [int(r) for r in role_ids],
@@ -276,12 +292,12 @@ class RoleBasis:
         if k > f:
             raise TooManyRoles(
                 f"a basis with {k} roles over {f} features cannot be identified; use at "
-                f"most {f} roles or a feature recipe with more features")
+                f"most {f} roles or a feature recipe with more features"
+            )
         object.__setattr__(self, "F", _frozen(F))
         object.__setattr__(self, "role_ids", ids)
         object.__setattr__(self, "feature_names", names)
-        object.__setattr__(self, "version",
-                           _version_of(F, ids, names, self.recipe_version))
+        object.__setattr__(self, "version", _version_of(F, ids, names, self.recipe_version))
         object.__setattr__(self, "summary", dict(self.summary))
 
     @property
@@ -292,10 +308,16 @@ class RoleBasis:
     # -- fitting ------------------------------------------------------------------
 
     @classmethod
-    def fit(cls, tables: Any, *, n_roles: int | None = None,
-            k_range: tuple[int, int] = (2, 12), seed: int = 0,
-            bits_per_value: int | None = None,
-            mdl_max_rows: int | None = 20_000) -> "RoleBasis":
+    def fit(
+        cls,
+        tables: Any,
+        *,
+        n_roles: int | None = None,
+        k_range: tuple[int, int] = (2, 12),
+        seed: int = 0,
+        bits_per_value: int | None = None,
+        mdl_max_rows: int | None = 20_000,
+    ) -> RoleBasis:
         """Fit a role basis on one or more reference feature tables (RolX).
 
         Parameters
@@ -347,10 +369,12 @@ class RoleBasis:
         if n == 0 or f == 0:
             raise EngineInputError(
                 "no usable rows to fit roles on (every row has NaN, inf or negative "
-                "values, or the table is empty)")
+                "values, or the table is empty)"
+            )
         if not (V > 0).any():
             raise EngineInputError(
-                "every feature value is zero; roles need a reference period with activity")
+                "every feature value is zero; roles need a reference period with activity"
+            )
         b = int(bits_per_value) if bits_per_value is not None else default_bits_per_value(V)
         if n_roles is not None:
             k = int(n_roles)
@@ -359,12 +383,15 @@ class RoleBasis:
             if k > f or k > n:
                 raise TooManyRoles(
                     f"asked for {k} roles but the reference matrix has only {f} features "
-                    f"and {n} usable rows; ask for at most {min(f, n)} roles")
+                    f"and {n} usable rows; ask for at most {min(f, n)} roles"
+                )
             candidates = [k]
         else:
             lo, hi = int(k_range[0]), int(k_range[1])
             if lo < 1 or hi < lo:
-                raise EngineInputError(f"k_range must be (lo, hi) with 1 <= lo <= hi, got {k_range}")
+                raise EngineInputError(
+                    f"k_range must be (lo, hi) with 1 <= lo <= hi, got {k_range}"
+                )
             hi = min(hi, f, n)
             lo = min(lo, hi)
             candidates = list(range(lo, hi + 1))
@@ -376,8 +403,14 @@ class RoleBasis:
         for k in candidates:
             G, F, _ = _fit_nmf(sample, k, seed)
             model_bits, error_bits = description_length(sample, G, F, b)
-            table.append({"k": k, "model_bits": model_bits, "error_bits": error_bits,
-                          "total_bits": model_bits + error_bits})
+            table.append(
+                {
+                    "k": k,
+                    "model_bits": model_bits,
+                    "error_bits": error_bits,
+                    "total_bits": model_bits + error_bits,
+                }
+            )
             fits[k] = (G, F)
         best = min(table, key=lambda row: (row["total_bits"], row["k"]))["k"]
         if sample is not V:
@@ -386,28 +419,41 @@ class RoleBasis:
         norm_v = float(np.linalg.norm(V))
         rel_err = float(np.linalg.norm(V - G @ F) / max(norm_v, _EPS))
         summary = {
-            "rows": int(n), "rows_dropped": int(n_all - n), "features": int(f),
+            "rows": int(n),
+            "rows_dropped": int(n_all - n),
+            "features": int(f),
             "n_roles": int(F.shape[0]),
             "selection": "fixed" if n_roles is not None else "mdl",
-            "bits_per_value": b, "seed": int(seed), "mdl": table,
+            "bits_per_value": b,
+            "seed": int(seed),
+            "mdl": table,
             "mdl_rows": int(sample.shape[0]),
             "relative_error": rel_err,
         }
-        return cls(F=F, role_ids=tuple(range(F.shape[0])), feature_names=names,
-                   recipe_version=recipe_version, summary=summary)
+        return cls(
+            F=F,
+            role_ids=tuple(range(F.shape[0])),
+            feature_names=names,
+            recipe_version=recipe_version,
+            summary=summary,
+        )
 
     # -- refitting memberships ----------------------------------------------------
 
     def _check_table(self, table: Any) -> np.ndarray:
         V, names, version = _table_parts(table)
-        if version is not None and self.recipe_version is not None \
-                and version != self.recipe_version:
+        if (
+            version is not None
+            and self.recipe_version is not None
+            and version != self.recipe_version
+        ):
             raise RecipeMismatch(version, self.recipe_version)
         if V.shape[1] != len(self.feature_names):
             raise FeatureMismatch(
                 f"table has {V.shape[1]} features but the basis expects "
                 f"{len(self.feature_names)} ({self.recipe_version=}); transform the snapshot "
-                "with the recipe the basis was fitted on")
+                "with the recipe the basis was fitted on"
+            )
         if names is not None and names != self.feature_names and version is None:
             raise FeatureMismatch("table feature names differ from the basis feature names")
         return V
@@ -464,8 +510,9 @@ class RoleBasis:
 
     # -- keeping ids across refits ----------------------------------------------
 
-    def aligned_to(self, previous: "RoleBasis", *,
-                   max_distance: float | None = None) -> "RoleBasis":
+    def aligned_to(
+        self, previous: RoleBasis, *, max_distance: float | None = None
+    ) -> RoleBasis:
         """Return this basis with role ids matched to ``previous`` where roles persist.
 
         Roles are matched by :func:`scipy.optimize.linear_sum_assignment` on the
@@ -488,7 +535,8 @@ class RoleBasis:
             if not common:
                 raise FeatureMismatch(
                     "the new and previous bases share no feature; role ids cannot be "
-                    "matched (fit both on tables of a shared recipe)")
+                    "matched (fit both on tables of a shared recipe)"
+                )
             ci = {x: i for i, x in enumerate(self.feature_names)}
             pi = {x: i for i, x in enumerate(previous.feature_names)}
             cur_F = cur_F[:, [ci[x] for x in common]]
@@ -510,9 +558,13 @@ class RoleBasis:
         order = np.argsort(new_ids, kind="stable")
         summary = dict(self.summary)
         summary["aligned_to"] = {"version": previous.version, "matches": matches}
-        return RoleBasis(F=self.F[order], role_ids=tuple(int(x) for x in new_ids[order]),
-                         feature_names=self.feature_names,
-                         recipe_version=self.recipe_version, summary=summary)
+        return RoleBasis(
+            F=self.F[order],
+            role_ids=tuple(int(x) for x in new_ids[order]),
+            feature_names=self.feature_names,
+            recipe_version=self.recipe_version,
+            summary=summary,
+        )
 
     # -- serialisation ------------------------------------------------------------
 
@@ -530,7 +582,7 @@ class RoleBasis:
         }
 
     @classmethod
-    def from_dict(cls, d: dict) -> "RoleBasis":
+    def from_dict(cls, d: dict) -> RoleBasis:
         """Rebuild a basis from :meth:`to_dict` output.
 
         Raises
@@ -544,17 +596,23 @@ class RoleBasis:
         if d.get("format_version") != _FORMAT_VERSION:
             raise EngineInputError(
                 f"role basis format version {d.get('format_version')!r} is not supported "
-                f"(expected {_FORMAT_VERSION})")
+                f"(expected {_FORMAT_VERSION})"
+            )
         F = np.asarray(d["F"], dtype=np.float64)
         if F.ndim != 2:
             F = F.reshape(len(d["role_ids"]), len(d["feature_names"]))
-        basis = cls(F=F, role_ids=tuple(d["role_ids"]),
-                    feature_names=tuple(d["feature_names"]),
-                    recipe_version=d.get("recipe_version"), summary=d.get("summary", {}))
+        basis = cls(
+            F=F,
+            role_ids=tuple(d["role_ids"]),
+            feature_names=tuple(d["feature_names"]),
+            recipe_version=d.get("recipe_version"),
+            summary=d.get("summary", {}),
+        )
         if d.get("version") and d["version"] != basis.version:
             raise EngineInputError(
                 f"role basis document says version {d['version']!r} but its content hashes "
-                f"to {basis.version!r}; the document was changed or corrupted")
+                f"to {basis.version!r}; the document was changed or corrupted"
+            )
         return basis
 
 
@@ -565,11 +623,12 @@ def role_profile_distances(A: np.ndarray, B: np.ndarray) -> np.ndarray:
     distance H(p, q) = (1/sqrt 2) ||sqrt p - sqrt q||_2 (Hellinger 1909; standard
     statistics texts; recalled from memory).  All-zero rows count as uniform.
     """
+
     def norm(X: np.ndarray) -> np.ndarray:
         X = np.asarray(X, dtype=np.float64)
         s = X.sum(axis=1, keepdims=True)
         return np.divide(X, s, out=np.full_like(X, 1.0 / max(X.shape[1], 1)), where=s > 0)
 
     SA, SB = np.sqrt(norm(A)), np.sqrt(norm(B))
-    sq = (SA ** 2).sum(1)[:, None] + (SB ** 2).sum(1)[None, :] - 2 * SA @ SB.T
+    sq = (SA**2).sum(1)[:, None] + (SB**2).sum(1)[None, :] - 2 * SA @ SB.T
     return np.sqrt(np.clip(sq, 0.0, None) / 2.0)

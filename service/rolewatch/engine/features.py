@@ -433,12 +433,16 @@ def apply_bins(values: np.ndarray, edges: np.ndarray, out: np.ndarray | None = N
     if out is None:
         out = np.empty(values.shape, dtype=bin_dtype(upper.size + 1))
     elif out.dtype.kind == "u" and upper.size > np.iinfo(out.dtype).max:
-        raise ValueError(f"{upper.size + 1} bins do not fit in {out.dtype}; use bin_dtype() for out")
+        raise ValueError(
+            f"{upper.size + 1} bins do not fit in {out.dtype}; use bin_dtype() for out"
+        )
     if upper.size > 64:
         out[...] = np.searchsorted(upper, values, side="left")
         return out
     # a few comparisons beat a branchy binary search per value
-    counts = out if out.dtype.kind == "u" else np.empty(values.shape, dtype=bin_dtype(upper.size + 1))
+    counts = (
+        out if out.dtype.kind == "u" else np.empty(values.shape, dtype=bin_dtype(upper.size + 1))
+    )
     counts[...] = 0
     above = np.empty(values.shape, dtype=bool)
     for edge in upper:
@@ -479,7 +483,11 @@ def prune_agreeing(binned: np.ndarray, tolerance: float = 0.0, *, n_fixed: int =
         # classes of identical columns, found by sorting the columns as byte strings.
         fits_byte = binned.min(initial=0) >= 0 and binned.max(initial=0) < 256
         cols = np.ascontiguousarray(np.asarray(binned, dtype=np.uint8 if fits_byte else np.int32).T)
-        keys = cols.view(np.dtype((np.void, cols.dtype.itemsize * rows))).ravel() if rows else np.zeros(f, "V1")
+        keys = (
+            cols.view(np.dtype((np.void, cols.dtype.itemsize * rows))).ravel()
+            if rows
+            else np.zeros(f, "V1")
+        )
         _, label = np.unique(keys, return_inverse=True)
         label = label.reshape(-1)
     else:
@@ -510,7 +518,11 @@ def _agreeing_pairs(binned: np.ndarray, tolerance: float) -> tuple[np.ndarray, n
     b = np.asarray(binned, dtype=(np.int8 if small else np.int32) if integral else np.float64)
     ii, jj = np.triu_indices(f, k=1)
     # rows where the features spread most rule out the most pairs
-    spread = np.asarray(b.max(axis=1, initial=0), dtype=np.float64) - b.min(axis=1, initial=0) if f else np.zeros(rows)
+    spread = (
+        np.asarray(b.max(axis=1, initial=0), dtype=np.float64) - b.min(axis=1, initial=0)
+        if f
+        else np.zeros(rows)
+    )
     order = np.argsort(-spread, kind="stable")
     samples = [order[:k] for k in (16, 128, 2048) if k < rows] + [None]
     for sample in samples:
@@ -584,7 +596,9 @@ def _compute(graph: _Graph, defs: Sequence[_Def]) -> np.ndarray:
     index = {d.name: j for j, d in enumerate(defs)}
     missing = [d.parent for d in defs if d.parent is not None and d.parent not in index]
     if missing:
-        raise ValueError(f"feature {missing[0]!r} is needed as a parent but is not defined before its children")
+        raise ValueError(
+            f"feature {missing[0]!r} is needed as a parent but is not defined before its children"
+        )
     out = np.zeros((graph.n, len(defs)), order="F")
     for rnd in sorted({d.round for d in defs}):
         layer = [d for d in defs if d.round == rnd]
@@ -596,7 +610,9 @@ def _compute(graph: _Graph, defs: Sequence[_Def]) -> np.ndarray:
     return out
 
 
-def _aggregate_layer(graph: _Graph, layer: Sequence[_Def], index: dict[str, int], out: np.ndarray) -> None:
+def _aggregate_layer(
+    graph: _Graph, layer: Sequence[_Def], index: dict[str, int], out: np.ndarray
+) -> None:
     """Fill the columns of one recursive round of ReFeX (Henderson et al., KDD 2011).
 
     ``sum_d(p)`` and ``mean_d(p)`` need the same neighbour sum ``M_d @ p``: it is
@@ -626,13 +642,17 @@ def _parse(name: str) -> _Def:
         return _Def(name, name, None, 0)
     op, sep, rest = name.partition("(")
     if not sep or not rest.endswith(")") or op not in AGGREGATES:
-        raise ValueError(f"unknown feature {name!r}; expected a base feature or op(parent) with op in {AGGREGATES}")
+        raise ValueError(
+            f"unknown feature {name!r}; expected a base feature or op(parent) with op in {AGGREGATES}"
+        )
     parent = _parse(rest[:-1])
     return _Def(name, op, parent.name, parent.round + 1)
 
 
 def _canonical(body: dict) -> str:
-    return json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+    return json.dumps(
+        body, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False
+    )
 
 
 def _as_snapshots(snapshots: Snapshot | Iterable[Snapshot]) -> list[Snapshot]:
@@ -665,7 +685,17 @@ class FeatureRecipe:
         snapshot by its own values).
     """
 
-    __slots__ = ("_defs", "_edges", "bin_fraction", "tolerance", "tolerance_step", "binning", "max_rounds", "reference", "version")
+    __slots__ = (
+        "_defs",
+        "_edges",
+        "bin_fraction",
+        "tolerance",
+        "tolerance_step",
+        "binning",
+        "max_rounds",
+        "reference",
+        "version",
+    )
 
     def __init__(
         self,
@@ -682,7 +712,9 @@ class FeatureRecipe:
         _check_params(bin_fraction, tolerance, binning, max_rounds)
         _check_params(bin_fraction, tolerance_step, binning, max_rounds)
         object.__setattr__(self, "_defs", tuple(defs))
-        object.__setattr__(self, "_edges", tuple(np.asarray(e, dtype=np.float64).copy() for e in edges))
+        object.__setattr__(
+            self, "_edges", tuple(np.asarray(e, dtype=np.float64).copy() for e in edges)
+        )
         for e in self._edges:
             e.setflags(write=False)
         object.__setattr__(self, "bin_fraction", float(bin_fraction))
@@ -727,7 +759,7 @@ class FeatureRecipe:
         tolerance: float = 1.0,
         tolerance_step: float = 1.0,
         binning: str = "frozen",
-    ) -> "FeatureRecipe":
+    ) -> FeatureRecipe:
         """Run ReFeX feature discovery on reference snapshots (Henderson et al., KDD 2011).
 
         Parameters
@@ -782,10 +814,14 @@ class FeatureRecipe:
             if rnd == max_rounds:
                 break
             frontier = [
-                dict(zip((d.name for d in new_defs), cls._candidate_values(g, new_defs, frontier[k])))
+                dict(
+                    zip((d.name for d in new_defs), cls._candidate_values(g, new_defs, frontier[k]))
+                )
                 for k, g in enumerate(graphs)
             ]
-            candidates = [_Def(f"{op}({d.name})", op, d.name, rnd + 1) for d in new_defs for op in AGGREGATES]
+            candidates = [
+                _Def(f"{op}({d.name})", op, d.name, rnd + 1) for d in new_defs for op in AGGREGATES
+            ]
         reference = {
             "snapshots": len(snaps),
             "rows": int(sum(s.n_nodes for s in snaps)),
@@ -823,14 +859,20 @@ class FeatureRecipe:
             part = candidates[lo : lo + chunk]
             per_graph = [cls._candidate_values(g, part, frontier[k]) for k, g in enumerate(graphs)]
             for j in range(len(part)):
-                pooled = np.concatenate([cols[j] for cols in per_graph]) if len(graphs) > 1 else per_graph[0][j]
+                pooled = (
+                    np.concatenate([cols[j] for cols in per_graph])
+                    if len(graphs) > 1
+                    else per_graph[0][j]
+                )
                 e = bin_edges(pooled, bin_fraction)
                 edges.append(e)
                 out[:, lo + j] = apply_bins(pooled, e)
         return out, edges
 
     @staticmethod
-    def _candidate_values(graph: _Graph, candidates: Sequence[_Def], parents: dict[str, np.ndarray]) -> list[np.ndarray]:
+    def _candidate_values(
+        graph: _Graph, candidates: Sequence[_Def], parents: dict[str, np.ndarray]
+    ) -> list[np.ndarray]:
         """Raw candidate columns on one graph, aggregating already computed parents."""
         out: list[np.ndarray | None] = [None] * len(candidates)
         by_op: dict[str, list[int]] = {}
@@ -898,7 +940,13 @@ class FeatureRecipe:
             "max_rounds": self.max_rounds,
             "reference": self.reference,
             "features": [
-                {"name": d.name, "op": d.op, "parent": d.parent, "round": d.round, "edges": e.tolist()}
+                {
+                    "name": d.name,
+                    "op": d.op,
+                    "parent": d.parent,
+                    "round": d.round,
+                    "edges": e.tolist(),
+                }
                 for d, e in zip(self._defs, self._edges)
             ],
         }
@@ -910,7 +958,7 @@ class FeatureRecipe:
         return body
 
     @classmethod
-    def from_dict(cls, d: dict) -> "FeatureRecipe":
+    def from_dict(cls, d: dict) -> FeatureRecipe:
         """Rebuild a recipe from :meth:`to_dict` output; checks format and version.
 
         Raises
@@ -922,7 +970,9 @@ class FeatureRecipe:
         if not isinstance(d, dict) or d.get("format") != FORMAT:
             raise ValueError(f"not a feature recipe: expected format {FORMAT!r}")
         if d.get("format_version") != FORMAT_VERSION:
-            raise ValueError(f"unsupported feature recipe format_version {d.get('format_version')!r}")
+            raise ValueError(
+                f"unsupported feature recipe format_version {d.get('format_version')!r}"
+            )
         defs, edges = [], []
         seen: set[str] = set()
         for f in d["features"]:
@@ -934,7 +984,11 @@ class FeatureRecipe:
             seen.add(parsed.name)
             defs.append(parsed)
             e = np.asarray(f["edges"], dtype=np.float64)
-            if e.ndim != 1 or (e.size > 1 and np.any(np.diff(e) <= 0)) or not np.all(np.isfinite(e)):
+            if (
+                e.ndim != 1
+                or (e.size > 1 and np.any(np.diff(e) <= 0))
+                or not np.all(np.isfinite(e))
+            ):
                 raise ValueError(f"feature {f['name']!r} has invalid bin edges")
             edges.append(e)
         recipe = cls(

@@ -22,8 +22,14 @@ import numpy as np
 __all__ = ["nnls_normal", "nnls_rows"]
 
 
-def _solve_groups(gram: np.ndarray, rhs: np.ndarray, passive: np.ndarray,
-                  rows: np.ndarray, out: np.ndarray, cache: dict) -> None:
+def _solve_groups(
+    gram: np.ndarray,
+    rhs: np.ndarray,
+    passive: np.ndarray,
+    rows: np.ndarray,
+    out: np.ndarray,
+    cache: dict,
+) -> None:
     """Unconstrained least squares on the passive set, one k x k solve per distinct pattern.
 
     Rows are sorted by pattern so each group is a contiguous slice; the group's solution
@@ -150,8 +156,7 @@ def nnls_normal(gram: np.ndarray, rhs: np.ndarray, *, max_iter: int | None = Non
         backup = ~full
         if backup.any():
             last = (k - 1) - np.argmax(infeasible[backup][:, ::-1], axis=1)
-            flip[np.flatnonzero(backup)[:, None], col[None, :]] = (
-                col[None, :] == last[:, None])
+            flip[np.flatnonzero(backup)[:, None], col[None, :]] = col[None, :] == last[:, None]
         passive[rows] ^= flip
         _solve_groups(gram, rhs, passive, rows, G, cache)
         Yr = G[rows] @ gram - rhs[rows]

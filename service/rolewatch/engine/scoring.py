@@ -26,13 +26,22 @@ import numpy as np
 
 from .shift import DISTANCES, activity_change, role_aware_distance
 
-__all__ = ["ShiftPolicy", "WindowScores", "score_window", "stratified_zscore", "MEASURES",
-           "STATUSES", "CALIBRATIONS"]
+__all__ = [
+    "ShiftPolicy",
+    "WindowScores",
+    "score_window",
+    "stratified_zscore",
+    "MEASURES",
+    "STATUSES",
+    "CALIBRATIONS",
+]
 
 MEASURES = ("role_aware", "hellinger", "jensen_shannon", "total_variation", "cosine")
 STATUSES = ("new", "inactive", "low_activity", "scored")
 CALIBRATIONS = ("stratified", "none")
-MAD_SCALE = 1.4826  # MAD -> standard deviation for normal data (Rousseeuw & Croux 1993, as recalled)
+MAD_SCALE = (
+    1.4826  # MAD -> standard deviation for normal data (Rousseeuw & Croux 1993, as recalled)
+)
 
 
 @dataclass(frozen=True)
@@ -101,11 +110,9 @@ class ShiftPolicy:
         if self.measure not in MEASURES:
             raise ValueError(f"unknown shift measure {self.measure!r}; use one of {MEASURES}")
         if self.baseline not in ("previous", "mean", "ewm"):
-            raise ValueError(
-                f"unknown baseline {self.baseline!r}; use 'previous', 'mean' or 'ewm'")
+            raise ValueError(f"unknown baseline {self.baseline!r}; use 'previous', 'mean' or 'ewm'")
         if self.alert_mode not in ("threshold", "budget"):
-            raise ValueError(
-                f"unknown alert mode {self.alert_mode!r}; use 'threshold' or 'budget'")
+            raise ValueError(f"unknown alert mode {self.alert_mode!r}; use 'threshold' or 'budget'")
         if not 0 < self.budget <= 1:
             raise ValueError(f"budget must be a share in (0, 1], got {self.budget}")
         if self.last_k < 1 or not self.half_life > 0:
@@ -113,13 +120,13 @@ class ShiftPolicy:
         if self.min_events < 0 or self.magnitude_weight < 0 or self.error_weight < 0:
             raise ValueError("min_events and the component weights must be non-negative")
         if self.calibration not in CALIBRATIONS:
-            raise ValueError(
-                f"unknown calibration {self.calibration!r}; use one of {CALIBRATIONS}")
+            raise ValueError(f"unknown calibration {self.calibration!r}; use one of {CALIBRATIONS}")
         if self.stratum_size < 1 or not self.min_scale > 0:
             raise ValueError("stratum_size must be >= 1 and min_scale > 0")
         if self.bridge_communities < 0 or self.bridge_communities == 1:
             raise ValueError(
-                f"bridge_communities must be 0 (off) or >= 2, got {self.bridge_communities}")
+                f"bridge_communities must be 0 (off) or >= 2, got {self.bridge_communities}"
+            )
 
     def to_dict(self) -> dict:
         """Plain dict (for storing next to the scores it produced)."""
@@ -154,9 +161,18 @@ class WindowScores:
     bridging: np.ndarray | None = None
 
 
-def score_window(current_mixture, baseline_mixture, current_activity, baseline_activity,
-                 current_error, F, policy: ShiftPolicy = ShiftPolicy(), *,
-                 current_bridging=None, baseline_bridging=None) -> WindowScores:
+def score_window(
+    current_mixture,
+    baseline_mixture,
+    current_activity,
+    baseline_activity,
+    current_error,
+    F,
+    policy: ShiftPolicy = ShiftPolicy(),
+    *,
+    current_bridging=None,
+    baseline_bridging=None,
+) -> WindowScores:
     """Score every account's role shift in one window and pick the alerts.
 
     Parameters
@@ -196,7 +212,8 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
     if cur.ndim != 2 or cur.shape != base.shape:
         raise ValueError(
             f"current and baseline mixtures must be n x k arrays of one shape, got "
-            f"{cur.shape} and {base.shape}")
+            f"{cur.shape} and {base.shape}"
+        )
     n = cur.shape[0]
     a = np.asarray(current_activity, dtype=np.float64).reshape(-1)
     b = np.asarray(baseline_activity, dtype=np.float64).reshape(-1)
@@ -220,8 +237,9 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
     total = comp + policy.magnitude_weight * mag + policy.error_weight * err_term
     score = np.where(scored & np.isfinite(total), total, np.nan)
     if policy.calibration == "stratified":
-        z = stratified_zscore(score, np.fmax(a, b), stratum_size=policy.stratum_size,
-                              min_scale=policy.min_scale)
+        z = stratified_zscore(
+            score, np.fmax(a, b), stratum_size=policy.stratum_size, min_scale=policy.min_scale
+        )
         score = np.where(np.isfinite(z), np.maximum(z, 0.0), np.nan)
     bridging = np.full(n, np.nan)
     if current_bridging is not None and baseline_bridging is not None:
@@ -245,9 +263,15 @@ def score_window(current_mixture, baseline_mixture, current_activity, baseline_a
             quota = 1
         top = idx[np.argsort(-score[idx], kind="stable")][:quota]
         alert[top[score[top] >= policy.floor]] = True
-    return WindowScores(score=score, composition=np.where(has_cur & has_base, comp, np.nan),
-                        magnitude=mag, error=err, status=status.astype(str), alert=alert,
-                        bridging=bridging)
+    return WindowScores(
+        score=score,
+        composition=np.where(has_cur & has_base, comp, np.nan),
+        magnitude=mag,
+        error=err,
+        status=status.astype(str),
+        alert=alert,
+        bridging=bridging,
+    )
 
 
 def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:
@@ -277,8 +301,9 @@ def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:
     return out
 
 
-def stratified_zscore(score, activity, *, stratum_size: int = 25,
-                      min_scale: float = 0.02) -> np.ndarray:
+def stratified_zscore(
+    score, activity, *, stratum_size: int = 25, min_scale: float = 0.02
+) -> np.ndarray:
     """Robust z-score of each finite score within its activity stratum.
 
     ``z = (s - median) / max(1.4826 * MAD, min_scale)`` over the finite scores of the

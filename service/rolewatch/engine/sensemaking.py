@@ -11,8 +11,9 @@ default name per role.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
@@ -31,8 +32,16 @@ __all__ = [
 ]
 
 MEASURE_NAMES = (
-    "degree", "out_degree", "in_degree", "weighted_degree", "pagerank", "clustering",
-    "betweenness", "reciprocity", "egonet_density", "out_share",
+    "degree",
+    "out_degree",
+    "in_degree",
+    "weighted_degree",
+    "pagerank",
+    "clustering",
+    "betweenness",
+    "reciprocity",
+    "egonet_density",
+    "out_share",
 )
 
 #: Above this many nodes, betweenness is estimated from a sample of sources by default.
@@ -45,6 +54,7 @@ DEFAULT_BETWEENNESS_SAMPLES = 64
 # measures
 # ---------------------------------------------------------------------------
 
+
 def _binary(M: sp.spmatrix) -> sp.csr_matrix:
     B = sp.csr_matrix(M, dtype=np.float64, copy=True)
     B.setdiag(0)
@@ -53,8 +63,9 @@ def _binary(M: sp.spmatrix) -> sp.csr_matrix:
     return B
 
 
-def pagerank(adjacency: sp.spmatrix, *, alpha: float = 0.85, tol: float = 1e-12,
-             max_iter: int = 1000) -> np.ndarray:
+def pagerank(
+    adjacency: sp.spmatrix, *, alpha: float = 0.85, tol: float = 1e-12, max_iter: int = 1000
+) -> np.ndarray:
     """PageRank by power iteration on a weighted directed sparse adjacency.
 
     Row i of ``adjacency`` holds i's out-links with their weights.  Dangling nodes
@@ -84,8 +95,9 @@ def pagerank(adjacency: sp.spmatrix, *, alpha: float = 0.85, tol: float = 1e-12,
     return x / x.sum()
 
 
-def _oriented_triangles(A: sp.csr_matrix, degree: np.ndarray,
-                        block_work: int = 4_000_000) -> np.ndarray:
+def _oriented_triangles(
+    A: sp.csr_matrix, degree: np.ndarray, block_work: int = 4_000_000
+) -> np.ndarray:
     """Triangles through each node of a symmetric 0/1 adjacency.
 
     Edges are oriented from lower to higher (degree, index) rank, so each triangle
@@ -110,8 +122,9 @@ def _oriented_triangles(A: sp.csr_matrix, degree: np.ndarray,
     for left, mask_rows_of, add_cols in ((U, U, True), (UT, U, False)):
         # expanded entries of row r of left @ U: sum of out-degrees of r's neighbours
         work = left @ out_deg
-        bounds = np.searchsorted(np.cumsum(work), np.arange(1, int(work.sum() // block_work) + 1)
-                                 * block_work)
+        bounds = np.searchsorted(
+            np.cumsum(work), np.arange(1, int(work.sum() // block_work) + 1) * block_work
+        )
         edges = np.unique(np.r_[0, bounds, n].clip(0, n))
         for lo, hi in zip(edges[:-1], edges[1:]):
             block = (left[lo:hi] @ U).multiply(mask_rows_of[lo:hi]).tocsr()
@@ -141,8 +154,9 @@ def clustering_coefficient(adjacency: sp.spmatrix) -> tuple[np.ndarray, np.ndarr
     return c, t
 
 
-def betweenness(adjacency: sp.spmatrix, *, samples: int | None = None,
-                seed: int = 0, batch: int | None = None) -> np.ndarray:
+def betweenness(
+    adjacency: sp.spmatrix, *, samples: int | None = None, seed: int = 0, batch: int | None = None
+) -> np.ndarray:
     """Normalised shortest-path betweenness of the undirected, unweighted graph.
 
     Brandes' accumulation (Brandes, "A faster algorithm for betweenness centrality",
@@ -181,7 +195,7 @@ def betweenness(adjacency: sp.spmatrix, *, samples: int | None = None,
         batch = int(max(1, min(len(sources), 4_000_000 // max(n, 1))))
     total = np.zeros(n)
     for start in range(0, len(sources), batch):
-        src = sources[start:start + batch]
+        src = sources[start : start + batch]
         s = len(src)
         cols = np.arange(s)
         # node-major blocks (n x s, C order) keep the sparse-times-dense products fast
@@ -212,8 +226,9 @@ def betweenness(adjacency: sp.spmatrix, *, samples: int | None = None,
     return total * (n / len(sources)) / ((n - 1) * (n - 2))
 
 
-def node_measures(snapshot: Any, *, betweenness_samples: int | None = None,
-                  seed: int = 0) -> tuple[tuple[str, ...], np.ndarray]:
+def node_measures(
+    snapshot: Any, *, betweenness_samples: int | None = None, seed: int = 0
+) -> tuple[tuple[str, ...], np.ndarray]:
     """Familiar measures per node of one snapshot, for sense-making.
 
     Parameters
@@ -266,14 +281,14 @@ def node_measures(snapshot: Any, *, betweenness_samples: int | None = None,
     ego = np.divide(deg + tri, possible, out=np.zeros(n), where=deg > 0)
     events = ev_out + ev_in
     out_share = np.divide(ev_out, events, out=np.full(n, 0.5), where=events > 0)
-    values = np.column_stack([deg, out_deg, in_deg, wdeg, pr, clus, btw, recip, ego,
-                              out_share])
+    values = np.column_stack([deg, out_deg, in_deg, wdeg, pr, clus, btw, recip, ego, out_share])
     return MEASURE_NAMES, values
 
 
 # ---------------------------------------------------------------------------
 # role descriptions
 # ---------------------------------------------------------------------------
+
 
 @dataclass(frozen=True)
 class RoleDescription:
@@ -301,8 +316,7 @@ class RoleDescription:
     profile: dict
 
 
-_COUNT_LIKE = {"degree", "out_degree", "in_degree", "weighted_degree", "pagerank",
-               "betweenness"}
+_COUNT_LIKE = {"degree", "out_degree", "in_degree", "weighted_degree", "pagerank", "betweenness"}
 
 _PHRASES = {
     "degree": ("many counterparts", "few counterparts"),
@@ -358,16 +372,23 @@ def _levels(names: Sequence[str], affinity: np.ndarray, mean: np.ndarray) -> np.
     """
     m = mean[None, :]
     with np.errstate(divide="ignore", invalid="ignore"):
-        c = np.divide(affinity - m, affinity + m, out=np.zeros_like(affinity),
-                      where=(affinity + m) > 1e-12)
+        c = np.divide(
+            affinity - m, affinity + m, out=np.zeros_like(affinity), where=(affinity + m) > 1e-12
+        )
     for j, name in enumerate(names):
         if name == "out_share":
             c[:, j] = 2.0 * (affinity[:, j] - 0.5)
     return np.clip(c, -1.0, 1.0)
 
 
-def describe_roles(basis: Any, memberships: Any, measure_names: Sequence[str],
-                   measures: np.ndarray, *, max_phrases: int = 3) -> list[RoleDescription]:
+def describe_roles(
+    basis: Any,
+    memberships: Any,
+    measure_names: Sequence[str],
+    measures: np.ndarray,
+    *,
+    max_phrases: int = 3,
+) -> list[RoleDescription]:
     """Describe and name each role of ``basis`` from familiar node measures.
 
     Fits the scaled measures on the role mixtures, ``measures ~ mixture @ E`` with
@@ -401,7 +422,8 @@ def describe_roles(basis: Any, memberships: Any, measure_names: Sequence[str],
     if X.shape != (mix.shape[0], len(names)):
         raise EngineInputError(
             f"measures must be {mix.shape[0]} x {len(names)} (one row per membership row, one "
-            f"column per measure name), got {X.shape}")
+            f"column per measure name), got {X.shape}"
+        )
     ok = np.isfinite(mix).all(axis=1) & np.isfinite(X).all(axis=1)
     mix, X = mix[ok], X[ok]
     S = _scaled_measures(names, X)
@@ -412,10 +434,15 @@ def describe_roles(basis: Any, memberships: Any, measure_names: Sequence[str],
     chosen = _names(names, lr)
     out = []
     for r in range(k):
-        out.append(RoleDescription(
-            role_id=int(basis.role_ids[r]), name=chosen[r], description=descriptions[r],
-            measure_affinity={m: float(E[r, j]) for j, m in enumerate(names)},
-            profile={f: float(v) for f, v in zip(basis.feature_names, basis.F[r])}))
+        out.append(
+            RoleDescription(
+                role_id=int(basis.role_ids[r]),
+                name=chosen[r],
+                description=descriptions[r],
+                measure_affinity={m: float(E[r, j]) for j, m in enumerate(names)},
+                profile={f: float(v) for f, v in zip(basis.feature_names, basis.F[r])},
+            )
+        )
     return out
 
 

@@ -10,7 +10,7 @@ a row with NaN gives a NaN result and leaves the other rows alone.
 
 from __future__ import annotations
 
-from typing import Sequence
+from collections.abc import Sequence
 
 import numpy as np
 
@@ -165,8 +165,9 @@ DISTANCES = {
 }
 
 
-def baseline_mixture(history, *, mode: str = "previous", last_k: int = 4,
-                     half_life: float = 2.0) -> np.ndarray:
+def baseline_mixture(
+    history, *, mode: str = "previous", last_k: int = 4, half_life: float = 2.0
+) -> np.ndarray:
     """Baseline role mixture per account from its mixture history.
 
     Parameters
@@ -240,7 +241,8 @@ def feature_moves(names: Sequence[str], raw_before, raw_after, top: int = 5) -> 
     if not (len(names) == before.size == after.size):
         raise ValueError(
             f"need one before and after value per feature name, got {len(names)} names, "
-            f"{before.size} before and {after.size} after values")
+            f"{before.size} before and {after.size} after values"
+        )
 
     def slog(x: np.ndarray) -> np.ndarray:
         return np.sign(x) * np.log1p(np.abs(x))
@@ -249,8 +251,15 @@ def feature_moves(names: Sequence[str], raw_before, raw_after, top: int = 5) -> 
     ok = np.isfinite(ratio) & (ratio != 0)
     idx = np.flatnonzero(ok)
     idx = idx[np.argsort(-np.abs(ratio[idx]), kind="stable")][: max(int(top), 0)]
-    return [{"feature": str(names[i]), "before": float(before[i]), "after": float(after[i]),
-             "log_ratio": float(ratio[i])} for i in idx]
+    return [
+        {
+            "feature": str(names[i]),
+            "before": float(before[i]),
+            "after": float(after[i]),
+            "log_ratio": float(ratio[i]),
+        }
+        for i in idx
+    ]
 
 
 def dominant_role(mixture, role_ids: Sequence[int]) -> np.ndarray:
@@ -260,7 +269,10 @@ def dominant_role(mixture, role_ids: Sequence[int]) -> np.ndarray:
     if ids.size != M.shape[1]:
         raise ValueError(f"{ids.size} role ids for {M.shape[1]} mixture columns")
     bad = ~np.isfinite(M).all(axis=1)
-    out = ids[np.argmax(np.where(np.isfinite(M), M, -np.inf), axis=1)] if M.shape[1] else \
-        np.full(M.shape[0], -1)
+    out = (
+        ids[np.argmax(np.where(np.isfinite(M), M, -np.inf), axis=1)]
+        if M.shape[1]
+        else np.full(M.shape[0], -1)
+    )
     out = np.where(bad, -1, out)
     return out

@@ -22,7 +22,9 @@ def _as_id_array(values: Any, what: str) -> np.ndarray:
     """Return ``values`` as a 1-D numpy array of str ids, or raise a clear error."""
     arr = np.asarray(values)
     if arr.ndim != 1:
-        raise ValueError(f"{what} must be a one-dimensional sequence of account ids, got shape {arr.shape}")
+        raise ValueError(
+            f"{what} must be a one-dimensional sequence of account ids, got shape {arr.shape}"
+        )
     if arr.dtype.kind not in "US":
         if arr.size and not all(isinstance(v, str) for v in arr.tolist()):
             raise ValueError(f"{what} must hold account ids as strings")
@@ -85,7 +87,7 @@ class Snapshot:
     weights: sp.csr_matrix
 
     @classmethod
-    def from_events(cls, actor, target, weight=None, *, nodes=None) -> "Snapshot":
+    def from_events(cls, actor, target, weight=None, *, nodes=None) -> Snapshot:
         """Build a snapshot from parallel event columns.
 
         Parameters
@@ -140,12 +142,16 @@ class Snapshot:
         return cls._from_indices(node_arr, rows, cols, w)
 
     @staticmethod
-    def _lookup(sorted_nodes: np.ndarray, order: np.ndarray, ids: np.ndarray, what: str) -> np.ndarray:
+    def _lookup(
+        sorted_nodes: np.ndarray, order: np.ndarray, ids: np.ndarray, what: str
+    ) -> np.ndarray:
         """Row index of every id in ``ids`` given ``nodes`` sorted; error when one is missing."""
         if ids.size == 0:
             return np.zeros(0, dtype=np.int64)
         if sorted_nodes.size == 0:
-            raise ValueError(f"{what} id {ids[0]!r} is not in the given nodes; list every account of the events")
+            raise ValueError(
+                f"{what} id {ids[0]!r} is not in the given nodes; list every account of the events"
+            )
         pos = np.searchsorted(sorted_nodes, ids)
         pos_c = np.minimum(pos, sorted_nodes.size - 1)
         missing = sorted_nodes[pos_c] != ids
@@ -157,7 +163,9 @@ class Snapshot:
         return order[pos_c]
 
     @classmethod
-    def _from_indices(cls, nodes: np.ndarray, rows: np.ndarray, cols: np.ndarray, w: np.ndarray) -> "Snapshot":
+    def _from_indices(
+        cls, nodes: np.ndarray, rows: np.ndarray, cols: np.ndarray, w: np.ndarray
+    ) -> Snapshot:
         """Assemble the CSR matrices from integer endpoints (duplicates summed)."""
         n = int(nodes.shape[0])
         idx_dtype = np.int32 if n < 2**31 - 1 else np.int64
@@ -182,7 +190,7 @@ class Snapshot:
         return cls(nodes=np.asarray(nodes), counts=counts, weights=weights)
 
     @classmethod
-    def from_frame(cls, frame) -> "Snapshot":
+    def from_frame(cls, frame) -> Snapshot:
         """Build a snapshot from a mapping or data frame with ``actor``, ``target`` and optional ``weight``.
 
         Parameters
@@ -200,7 +208,11 @@ class Snapshot:
             except (KeyError, IndexError, TypeError):
                 raise ValueError(f"frame needs an {col!r} column") from None
         weight = None
-        has_weight = ("weight" in frame) if isinstance(frame, Mapping) else ("weight" in getattr(frame, "columns", ()))
+        has_weight = (
+            ("weight" in frame)
+            if isinstance(frame, Mapping)
+            else ("weight" in getattr(frame, "columns", ()))
+        )
         if has_weight:
             weight = np.asarray(frame["weight"], dtype=np.float64)
         return cls.from_events(np.asarray(frame["actor"]), np.asarray(frame["target"]), weight)

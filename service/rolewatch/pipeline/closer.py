@@ -167,7 +167,9 @@ def _close_once(engine: Engine, settings, end_us: int, now_us: int) -> list[dict
     if model is None:
         return _close_training(engine, settings, geometry, end_us, now_us, current, training)
     with engine.connect() as connection:
-        past = load_past_windows(connection, model, before_end_us=end_us, limit=lookback_windows(settings))
+        past = load_past_windows(
+            connection, model, before_end_us=end_us, limit=lookback_windows(settings)
+        )
     window = {"id": None, "start": to_rfc3339(start_us), "end": to_rfc3339(end_us)}
     started = time.perf_counter()
     result = compute_window(
@@ -187,7 +189,9 @@ def _close_once(engine: Engine, settings, end_us: int, now_us: int) -> list[dict
             result=result,
             seconds=seconds,
         )
-        api_alerts = _store_result(connection, settings, model, window_id, start_us, end_us, now_us, result)
+        api_alerts = _store_result(
+            connection, settings, model, window_id, start_us, end_us, now_us, result
+        )
         if api_alerts:
             from rolewatch.delivery.outbox import enqueue_alerts
 
@@ -217,9 +221,7 @@ def _claim_window(connection: Connection, start_us: int, end_us: int, loaded: in
 
 
 def _check_still_open(connection: Connection, end_us: int) -> None:
-    exists = connection.execute(
-        sa.select(windows.c.id).where(windows.c.end_us == end_us)
-    ).first()
+    exists = connection.execute(sa.select(windows.c.id).where(windows.c.end_us == end_us)).first()
     if exists is not None:
         raise WindowAlreadyClosed(end_us)
 
@@ -277,11 +279,17 @@ def _close_training(
     # every training window against it so account histories start at the beginning.
     with engine.connect() as connection:
         loaded = [
-            (row.id, row.start_us, row.end_us, load_window_events(connection, row.start_us, row.end_us))
+            (
+                row.id,
+                row.start_us,
+                row.end_us,
+                load_window_events(connection, row.start_us, row.end_us),
+            )
             for row in training
         ]
         before_first = load_window_events(
-            connection, loaded[0][1] - geometry.span_us if loaded else start_us - geometry.span_us,
+            connection,
+            loaded[0][1] - geometry.span_us if loaded else start_us - geometry.span_us,
             loaded[0][1] if loaded else start_us,
         )
     loaded.append((None, start_us, end_us, current))
@@ -296,8 +304,10 @@ def _close_training(
         result = compute_window(
             model, settings, window_events, previous, past, window=window, raise_alerts=False
         )
-        results.append((window_id, w_start, w_end, window_events, result, time.perf_counter() - started))
-        past = (past + [past_from_result(result)])[-lookback_windows(settings):]
+        results.append(
+            (window_id, w_start, w_end, window_events, result, time.perf_counter() - started)
+        )
+        past = (past + [past_from_result(result)])[-lookback_windows(settings) :]
         previous = window_events
     summaries = []
     with write_transaction(engine) as connection:
@@ -340,12 +350,16 @@ def load_past_windows(
 ) -> list[PastWindow]:
     """Stored memberships of the last ``limit`` measured windows before ``before_end_us``,
     oldest first, with mixtures laid out in the model's role order (missing roles are 0)."""
-    recent = connection.execute(
-        sa.select(windows.c.id)
-        .where(windows.c.end_us < before_end_us, windows.c.basis_version.is_not(None))
-        .order_by(windows.c.end_us.desc())
-        .limit(limit)
-    ).scalars().all()
+    recent = (
+        connection.execute(
+            sa.select(windows.c.id)
+            .where(windows.c.end_us < before_end_us, windows.c.basis_version.is_not(None))
+            .order_by(windows.c.end_us.desc())
+            .limit(limit)
+        )
+        .scalars()
+        .all()
+    )
     column_of = {str(role_id): column for column, role_id in enumerate(model.basis.role_ids)}
     k = len(column_of)
     past = []
@@ -483,14 +497,19 @@ def _store_result(
                     if alert["role_before"] is not None
                     else None
                 ),
-                "role_after": {"id": alert["role_after"], "name": model.role_name(alert["role_after"])},
+                "role_after": {
+                    "id": alert["role_after"],
+                    "name": model.role_name(alert["role_after"]),
+                },
                 "evidence": evidence,
             }
         )
     return api_alerts
 
 
-def _summary(window_id, start_us, end_us, event_count, result: WindowResult, *, training: bool) -> dict:
+def _summary(
+    window_id, start_us, end_us, event_count, result: WindowResult, *, training: bool
+) -> dict:
     return {
         "id": window_id,
         "start": to_rfc3339(start_us),

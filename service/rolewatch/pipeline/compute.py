@@ -57,7 +57,7 @@ def as_stored(mixture: np.ndarray) -> np.ndarray:
     return np.divide(rounded, totals, out=rounded, where=totals > 0)
 
 
-def past_from_result(result: "WindowResult") -> PastWindow:
+def past_from_result(result: WindowResult) -> PastWindow:
     """The history entry a measured window leaves for the windows after it."""
     return PastWindow(
         accounts=result.nodes,
@@ -177,7 +177,8 @@ def compute_window(
         baseline = np.full((n, k), np.nan)
     baseline_events = _latest_events(events_history)
     current_bridging, baseline_bridging = bridging_inputs(
-        snapshot, previous_snapshot, policy.bridge_communities)
+        snapshot, previous_snapshot, policy.bridge_communities
+    )
     scores = score_window(
         members.mixture,
         baseline,
@@ -206,7 +207,9 @@ def compute_window(
         previous_activity = (
             activity_counts(previous_snapshot) if previous_table is not None else None
         )
-        threshold = settings.alert_threshold if policy.alert_mode == "threshold" else settings.alert_floor
+        threshold = (
+            settings.alert_threshold if policy.alert_mode == "threshold" else settings.alert_floor
+        )
         alert_rows = np.flatnonzero(scores.alert)
         counterparts = Counterparts(snapshot, previous_snapshot)
         samples = _sample_event_ids(snapshot, current, alert_rows)
@@ -271,7 +274,11 @@ def _sample_event_ids(
 
 def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> list[dict]:
     entries = [
-        {"role_id": int(role_id), "name": model.role_name(int(role_id)), "weight": round(float(w), 4)}
+        {
+            "role_id": int(role_id),
+            "name": model.role_name(int(role_id)),
+            "weight": round(float(w), 4),
+        }
         for role_id, w in zip(model.basis.role_ids, mixture)
     ]
     return sorted(entries, key=lambda entry: -entry["weight"])
@@ -301,7 +308,9 @@ def _alert_record(
     account = str(snapshot.nodes[row])
     role_ids = model.basis.role_ids
     role_after = int(role_ids[int(np.argmax(mixture))])
-    role_before = int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
+    role_before = (
+        int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
+    )
     before_raw = np.zeros(table.raw.shape[1])
     before_counts = {"events_out_before": 0, "events_in_before": 0, "counterparts_before": 0}
     if previous_table is not None:
@@ -363,7 +372,9 @@ def _readable_moves(names, before: np.ndarray, after: np.ndarray, top: int = 5) 
         columns = np.flatnonzero(depth == level)
         if len(columns) == 0:
             continue
-        picked = feature_moves([names[c] for c in columns], before[columns], after[columns], top=top)
+        picked = feature_moves(
+            [names[c] for c in columns], before[columns], after[columns], top=top
+        )
         moves.extend(picked[: top - len(moves)])
         if len(moves) >= top:
             break

@@ -39,7 +39,9 @@ class FrozenModel:
         return f"role {role_id}"
 
 
-def fit_model(settings, snapshots: list[Snapshot], previous: FrozenModel | None = None) -> FrozenModel:
+def fit_model(
+    settings, snapshots: list[Snapshot], previous: FrozenModel | None = None
+) -> FrozenModel:
     """Discover the recipe, fit the basis and describe its roles on reference snapshots.
 
     With a ``previous`` model, the new roles are matched to the old ones so ids persist, and
@@ -108,7 +110,12 @@ def _stack_memberships(blocks):
 
 
 def store_model(
-    connection: Connection, model: FrozenModel, *, trained_from_us: int, trained_to_us: int, now_us: int
+    connection: Connection,
+    model: FrozenModel,
+    *,
+    trained_from_us: int,
+    trained_to_us: int,
+    now_us: int,
 ) -> None:
     """Save the model and make it the active one (the previous one stays for history)."""
     exists = connection.execute(

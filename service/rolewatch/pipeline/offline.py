@@ -89,7 +89,9 @@ def run_offline(
     training_count = min(settings.training_windows, len(loaded))
     if training_count < settings.training_windows:
         return
-    model = fit_model(settings, [events.snapshot() for _s, _e, events, _p in loaded[:training_count]])
+    model = fit_model(
+        settings, [events.snapshot() for _s, _e, events, _p in loaded[:training_count]]
+    )
     yield from measure_windows(settings, model, loaded, training_count)
 
 

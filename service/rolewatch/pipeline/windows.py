@@ -18,7 +18,7 @@ A window is due when either
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 MICROS = 1_000_000
 
@@ -33,7 +33,7 @@ class WindowGeometry:
     idle_us: int
 
     @classmethod
-    def from_settings(cls, settings) -> "WindowGeometry":
+    def from_settings(cls, settings) -> WindowGeometry:
         def micros(delta) -> int:
             return int(round(delta.total_seconds() * MICROS))
 
@@ -88,7 +88,7 @@ def is_due(
 
 def to_rfc3339(time_us: int) -> str:
     """Microseconds since the epoch → RFC 3339 UTC with a ``Z``."""
-    moment = datetime.fromtimestamp(time_us / MICROS, tz=timezone.utc)
+    moment = datetime.fromtimestamp(time_us / MICROS, tz=UTC)
     if moment.microsecond:
         return moment.isoformat().replace("+00:00", "Z")
     return moment.replace(microsecond=0).isoformat().replace("+00:00", "Z")
@@ -96,4 +96,4 @@ def to_rfc3339(time_us: int) -> str:
 
 def now_micros() -> int:
     """The wall clock in microseconds since the epoch (the service's only clock read)."""
-    return int(datetime.now(timezone.utc).timestamp() * MICROS)
+    return int(datetime.now(UTC).timestamp() * MICROS)

@@ -13,5 +13,13 @@ from .marketplace import DEFAULT_START, KINDS, EventColumns, Scenario, generate
 from .output import write
 from .truth import CHANGES, PLANTED
 
-__all__ = ["CHANGES", "DEFAULT_START", "KINDS", "PLANTED", "EventColumns", "Scenario",
-           "generate", "write"]
+__all__ = [
+    "CHANGES",
+    "DEFAULT_START",
+    "KINDS",
+    "PLANTED",
+    "EventColumns",
+    "Scenario",
+    "generate",
+    "write",
+]

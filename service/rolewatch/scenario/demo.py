@@ -52,7 +52,9 @@ class AlertPrinter(BaseHTTPRequestHandler):
         expected = base64.b64encode(
             hmac.new(self.secret, f"{message_id}.{stamp}.".encode() + body, hashlib.sha256).digest()
         ).decode()
-        offered = [part.split(",", 1)[-1] for part in self.headers.get("webhook-signature", "").split()]
+        offered = [
+            part.split(",", 1)[-1] for part in self.headers.get("webhook-signature", "").split()
+        ]
         if not any(hmac.compare_digest(expected, candidate) for candidate in offered):
             self.send_response(401)
             self.end_headers()
@@ -77,12 +79,18 @@ class AlertPrinter(BaseHTTPRequestHandler):
 def _parse(rest: list[str]) -> argparse.Namespace:
     parser = argparse.ArgumentParser(prog="rolewatch demo", description=__doc__.splitlines()[0])
     parser.add_argument("--seed", type=int, default=0, help="scenario seed (default 0)")
-    parser.add_argument("--members", type=int, default=3000, help="marketplace members (default 3000)")
+    parser.add_argument(
+        "--members", type=int, default=3000, help="marketplace members (default 3000)"
+    )
     parser.add_argument("--weeks", type=int, default=16, help="weekly windows (default 16)")
-    parser.add_argument("--port", type=int, default=8000, help="HTTP port of the service (default 8000)")
+    parser.add_argument(
+        "--port", type=int, default=8000, help="HTTP port of the service (default 8000)"
+    )
     parser.add_argument("--data-dir", help="keep the database here instead of a temporary folder")
     parser.add_argument("--exit", action="store_true", help="stop once the replay is processed")
-    parser.add_argument("--timeout", type=float, default=1800, help="give up after this many seconds")
+    parser.add_argument(
+        "--timeout", type=float, default=1800, help="give up after this many seconds"
+    )
     return parser.parse_args(rest)
 
 
@@ -125,7 +133,13 @@ def main(args) -> int:
     threading.Thread(target=receiver.serve_forever, daemon=True).start()
 
     server = uvicorn.Server(
-        uvicorn.Config(create_app(settings), host="127.0.0.1", port=options.port, log_config=None, access_log=False)
+        uvicorn.Config(
+            create_app(settings),
+            host="127.0.0.1",
+            port=options.port,
+            log_config=None,
+            access_log=False,
+        )
     )
     thread = threading.Thread(target=server.run, daemon=True)
     thread.start()
@@ -134,7 +148,9 @@ def main(args) -> int:
     deadline = time.monotonic() + 60
     while not server.started:
         if time.monotonic() > deadline or not thread.is_alive():
-            _say(f"rolewatch demo: the service did not start on port {options.port}; is it in use? try --port")
+            _say(
+                f"rolewatch demo: the service did not start on port {options.port}; is it in use? try --port"
+            )
             return 1
         time.sleep(0.1)
 
@@ -145,7 +161,9 @@ def main(args) -> int:
     subscription.raise_for_status()
     AlertPrinter.secret = base64.b64decode(subscription.json()["secret"].removeprefix("whsec_"))
 
-    _say(f"rolewatch demo: generating the marketplace (seed {options.seed}, {options.members} members, {options.weeks} weeks)")
+    _say(
+        f"rolewatch demo: generating the marketplace (seed {options.seed}, {options.members} members, {options.weeks} weeks)"
+    )
     scenario = generate(seed=options.seed, members=options.members, weeks=options.weeks)
     events = list(scenario.iter_events())
     _say(f"rolewatch demo: replaying {len(events):,} events through POST /v1/events")
@@ -153,9 +171,13 @@ def main(args) -> int:
     for offset in range(0, len(events), 1000):
         chunk = events[offset : offset + 1000]
         body = "\n".join(json.dumps(event) for event in chunk).encode()
-        answer = client.post("/v1/events", content=body, headers={"content-type": "application/x-ndjson"})
+        answer = client.post(
+            "/v1/events", content=body, headers={"content-type": "application/x-ndjson"}
+        )
         answer.raise_for_status()
-    _say(f"rolewatch demo: ingest done in {time.monotonic() - started:.1f} s; windows close as the watermark passes")
+    _say(
+        f"rolewatch demo: ingest done in {time.monotonic() - started:.1f} s; windows close as the watermark passes"
+    )
 
     expected_windows = options.weeks
     deadline = time.monotonic() + options.timeout
@@ -176,7 +198,9 @@ def main(args) -> int:
     takeovers = [record["account"] for record in scenario.truth if record["change"] == "takeover"]
     caught = sorted({item["account"] for item in alert_items} & set(takeovers))
     _say("")
-    _say(f"rolewatch demo: {closed} windows closed, {len(alert_items)} alerts, {len(AlertPrinter.received)} delivered to the receiver")
+    _say(
+        f"rolewatch demo: {closed} windows closed, {len(alert_items)} alerts, {len(AlertPrinter.received)} delivered to the receiver"
+    )
     _say(f"  web pages:   {base_url}/   (sign in with the key below)")
     _say(f"  API key:     {admin_key}")
     _say(f"  API docs:    {base_url}/docs")

@@ -34,7 +34,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 STRUCTURAL = ("takeover", "funnel", "reversal", "bridge")
-MAD_SCALE = 1.4826  # consistency constant of the MAD for the normal (Rousseeuw & Croux 1993, as recalled)
+MAD_SCALE = (
+    1.4826  # consistency constant of the MAD for the normal (Rousseeuw & Croux 1993, as recalled)
+)
 
 
 # --- one seed's run ----------------------------------------------------------------------
@@ -82,25 +84,41 @@ def run_seed(settings, *, seed: int, members: int, weeks: int, training_weeks: i
     from rolewatch.pipeline.offline import run_offline
     from rolewatch.scenario import generate
 
-    scenario = generate(seed=seed, members=members, weeks=weeks,
-                        training_weeks=training_weeks or settings.training_windows)
+    scenario = generate(
+        seed=seed,
+        members=members,
+        weeks=weeks,
+        training_weeks=training_weeks or settings.training_windows,
+    )
     ev = scenario.events
     time_us = ev.time.astype("datetime64[us]").astype(np.int64)
     run = SeedRun(seed=seed, truth=scenario.truth, meta=scenario.meta)
     raw = []
     # Small dense solves: one BLAS thread is much faster than two on a loaded machine.
     with threadpool_limits(1):
-        for window in run_offline(settings, event_id=ev.id, time_us=time_us, actor=ev.actor,
-                                  target=ev.target, weight=ev.weight):
+        for window in run_offline(
+            settings,
+            event_id=ev.id,
+            time_us=time_us,
+            actor=ev.actor,
+            target=ev.target,
+            weight=ev.weight,
+        ):
             result = window.result
-            run.windows.append(WindowRecord(
-                index=window.index,
-                training=window.training,
-                nodes=np.asarray(result.nodes).astype(str),
-                alerts={alert["account"] for alert in result.alerts},
-                strength=weighted_degree(result.nodes, window.events.actor,
-                                         window.events.target, window.events.weight),
-            ))
+            run.windows.append(
+                WindowRecord(
+                    index=window.index,
+                    training=window.training,
+                    nodes=np.asarray(result.nodes).astype(str),
+                    alerts={alert["account"] for alert in result.alerts},
+                    strength=weighted_degree(
+                        result.nodes,
+                        window.events.actor,
+                        window.events.target,
+                        window.events.weight,
+                    ),
+                )
+            )
             raw.append(window)
     return run, raw
 
@@ -108,8 +126,9 @@ def run_seed(settings, *, seed: int, members: int, weeks: int, training_weeks: i
 # --- the volume baseline -----------------------------------------------------------------
 
 
-def robust_zscore(history: np.ndarray, current: np.ndarray, *, min_history: int = 2,
-                  min_scale: float = 1.0) -> np.ndarray:
+def robust_zscore(
+    history: np.ndarray, current: np.ndarray, *, min_history: int = 2, min_scale: float = 1.0
+) -> np.ndarray:
     """Robust z-score of each account's current value against its own past values.
 
     ``z = (x - median(h)) / (1.4826 * MAD(h))`` over the account's previous active windows
@@ -155,7 +174,11 @@ def volume_alerts(run: SeedRun, budget: Sequence[int]) -> list[set[str]]:
     The history of an account is every earlier window it was active in (training windows
     included); training windows themselves never alert, as in the service.
     """
-    accounts = np.unique(np.concatenate([w.nodes for w in run.windows])) if run.windows else np.array([], str)
+    accounts = (
+        np.unique(np.concatenate([w.nodes for w in run.windows]))
+        if run.windows
+        else np.array([], str)
+    )
     strength = np.full((len(run.windows), len(accounts)), np.nan)
     columns = []
     for t, window in enumerate(run.windows):
@@ -219,8 +242,11 @@ def score_alerts(run: SeedRun, alerts: Sequence[set[str]]) -> dict:
     )
     out["volume_control_fa"] = flagged / len(controls) if controls else float("nan")
     season = run.meta["season_window"]
-    out["season_share"] = (len(by_index.get(season, ())) / max(active.get(season, 1), 1)
-                           if season in by_index else float("nan"))
+    out["season_share"] = (
+        len(by_index.get(season, ())) / max(active.get(season, 1), 1)
+        if season in by_index
+        else float("nan")
+    )
     newcomers = [r for r in run.truth if r["change"] == "newcomer"]
     flagged_new = sum(any(r["account"] in a for a in alerts) for r in newcomers)
     out["newcomer_fa"] = flagged_new / len(newcomers) if newcomers else float("nan")
@@ -240,21 +266,25 @@ def summarise(per_seed: Iterable[dict]) -> dict:
         if finite.size == 0:
             summary[key] = {"mean": None, "std": None, "min": None, "max": None}
             continue
-        summary[key] = {"mean": float(finite.mean()), "std": float(finite.std()),
-                        "min": float(finite.min()), "max": float(finite.max())}
+        summary[key] = {
+            "mean": float(finite.mean()),
+            "std": float(finite.std()),
+            "min": float(finite.min()),
+            "max": float(finite.max()),
+        }
     return summary
 
 
-def evaluate(settings, *, seeds: Sequence[int], members: int, weeks: int,
-             progress=None) -> dict:
+def evaluate(settings, *, seeds: Sequence[int], members: int, weeks: int, progress=None) -> dict:
     """Run both detectors on every seed; return per-seed figures and their summaries."""
     role_rows, volume_rows, full_rows = [], [], []
     for seed in seeds:
         run, _ = run_seed(settings, seed=seed, members=members, weeks=weeks)
         role = [w.alerts for w in run.windows]
         volume = volume_alerts(run, [len(a) for a in role])
-        full = volume_alerts(run, [int(np.floor(settings.alert_budget * len(w.nodes)))
-                                   for w in run.windows])
+        full = volume_alerts(
+            run, [int(np.floor(settings.alert_budget * len(w.nodes))) for w in run.windows]
+        )
         role_rows.append({"seed": seed, **score_alerts(run, role)})
         volume_rows.append({"seed": seed, **score_alerts(run, volume)})
         full_rows.append({"seed": seed, **score_alerts(run, full)})
@@ -316,8 +346,10 @@ def format_table(report: dict) -> str:
         "|---|---|---|---|",
     ]
     for label, key, kind in ROWS:
-        lines.append(f"| {label} | {_cell(role[key], kind)} | {_cell(volume[key], kind)} | "
-                     f"{_cell(full[key], kind)} |")
+        lines.append(
+            f"| {label} | {_cell(role[key], kind)} | {_cell(volume[key], kind)} | "
+            f"{_cell(full[key], kind)} |"
+        )
     return "\n".join(lines)
 
 
@@ -330,12 +362,18 @@ def _parser() -> argparse.ArgumentParser:
         description="Measure detection on the fictional marketplace scenario: role shift "
         "through the service's own pipeline beside a volume baseline at the same budget.",
     )
-    parser.add_argument("--seeds", default="0,1,2",
-                        help="comma-separated scenario seeds (default 0,1,2)")
+    parser.add_argument(
+        "--seeds", default="0,1,2", help="comma-separated scenario seeds (default 0,1,2)"
+    )
     parser.add_argument("--members", type=int, default=3000, help="members (default 3000)")
     parser.add_argument("--weeks", type=int, default=16, help="weekly windows (default 16)")
-    parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
-                        help="override a setting for this run, e.g. --set roles=8 (repeatable)")
+    parser.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        help="override a setting for this run, e.g. --set roles=8 (repeatable)",
+    )
     parser.add_argument("--json", action="store_true", help="print the full report as JSON")
     return parser
 
@@ -362,8 +400,9 @@ def main(args=None) -> int:
     try:
         seeds = [int(s) for s in options.seeds.split(",") if s.strip()]
     except ValueError:
-        print(f"--seeds must be integers separated by commas, got {options.seeds!r}",
-              file=sys.stderr)
+        print(
+            f"--seeds must be integers separated by commas, got {options.seeds!r}", file=sys.stderr
+        )
         return 2
     overrides = {}
     for item in options.set:
@@ -379,11 +418,15 @@ def main(args=None) -> int:
         return 2
 
     def progress(seed, role, volume):
-        print(f"seed {seed}: role shift recall {role['recall_structural']:.2f}, "
-              f"volume baseline recall {volume['recall_structural']:.2f}", file=sys.stderr)
+        print(
+            f"seed {seed}: role shift recall {role['recall_structural']:.2f}, "
+            f"volume baseline recall {volume['recall_structural']:.2f}",
+            file=sys.stderr,
+        )
 
-    report = evaluate(settings, seeds=seeds, members=options.members, weeks=options.weeks,
-                      progress=progress)
+    report = evaluate(
+        settings, seeds=seeds, members=options.members, weeks=options.weeks, progress=progress
+    )
     if options.json:
         print(json.dumps(report, indent=2))
     else:

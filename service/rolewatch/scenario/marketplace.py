@@ -11,20 +11,26 @@ is exactly one service window.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta, timezone
-from typing import Iterator
+from datetime import UTC, datetime, timedelta
 
 import numpy as np
 
 from .population import (
-    ARCHETYPE_NAMES, FRESH, NEIGHBOURHOOD_NAMES, NEVER_TRADING, SELLER, SHOP,
-    Population, draw_population,
+    ARCHETYPE_NAMES,
+    FRESH,
+    NEIGHBOURHOOD_NAMES,
+    NEVER_TRADING,
+    SELLER,
+    SHOP,
+    Population,
+    draw_population,
 )
 from .truth import PLANTED, Planted, draw_plan, truth_records
 
 WEEK_SECONDS = 7 * 24 * 3600
-DEFAULT_START = datetime(2026, 1, 1, tzinfo=timezone.utc)
+DEFAULT_START = datetime(2026, 1, 1, tzinfo=UTC)
 KINDS = ("purchase", "repair", "delivery", "payback")
 PURCHASE, REPAIR, DELIVERY, PAYBACK = range(4)
 SEASON_FACTOR = 1.5
@@ -69,12 +75,22 @@ class Scenario:
         """Yield events as wire-format dicts (see DESIGN.md) in time order."""
         ev = self.events
         columns = zip(
-            ev.id.tolist(), ev.rfc3339().tolist(), ev.actor.tolist(), ev.target.tolist(),
-            ev.kind.tolist(), ev.weight.tolist(),
+            ev.id.tolist(),
+            ev.rfc3339().tolist(),
+            ev.actor.tolist(),
+            ev.target.tolist(),
+            ev.kind.tolist(),
+            ev.weight.tolist(),
         )
         for id_, time, actor, target, kind, weight in columns:
-            yield {"id": id_, "time": time, "actor": actor, "target": target,
-                   "kind": kind, "weight": weight}
+            yield {
+                "id": id_,
+                "time": time,
+                "actor": actor,
+                "target": target,
+                "kind": kind,
+                "weight": weight,
+            }
 
     def window_start(self, index: int) -> datetime:
         return datetime.fromisoformat(self.meta["start"]) + timedelta(weeks=index)
@@ -135,8 +151,9 @@ class _Week:
             # Up to three distinct favourites that keep selling all run, so the control's
             # counterparts never change; a shop that will reverse is swapped for its
             # replacement from the start.
-            keep = list(dict.fromkeys(reversed_shops.get(int(f), int(f))
-                                      for f in pop.favourites[p.account]))[:3]
+            keep = list(
+                dict.fromkeys(reversed_shops.get(int(f), int(f)) for f in pop.favourites[p.account])
+            )[:3]
             pop.favourites[p.account, : len(keep)] = keep
             pop.n_favourites[p.account] = len(keep)
             self.steady[p.account] = True
@@ -167,19 +184,29 @@ class _Week:
         rng, pop = self.rng, self.pop
         seller = self.remap[seller]
         price = np.where(
-            pop.repairer[seller], _amount(rng, 40.0, 0.5, len(seller)),
-            np.where(pop.archetype[seller] == SHOP, _amount(rng, 25.0, 0.6, len(seller)),
-                     _amount(rng, 18.0, 0.7, len(seller))),
+            pop.repairer[seller],
+            _amount(rng, 40.0, 0.5, len(seller)),
+            np.where(
+                pop.archetype[seller] == SHOP,
+                _amount(rng, 25.0, 0.6, len(seller)),
+                _amount(rng, 18.0, 0.7, len(seller)),
+            ),
         )
         kind = np.where(pop.repairer[seller], REPAIR, PURCHASE)
         direct = ~deliver
         self.out.add(buyer[direct], seller[direct], seconds[direct], kind[direct], price[direct])
         courier = (pop.courier[buyer] if courier is None else courier)[deliver]
         fee = _amount(rng, 6.0, 0.3, int(deliver.sum()))
-        self.out.add(buyer[deliver], courier, seconds[deliver], DELIVERY,
-                     np.round(price[deliver] + fee, 2))
-        self.out.add(courier, seller[deliver], _later(rng, seconds[deliver], self.t1),
-                     kind[deliver], price[deliver])
+        self.out.add(
+            buyer[deliver], courier, seconds[deliver], DELIVERY, np.round(price[deliver] + fee, 2)
+        )
+        self.out.add(
+            courier,
+            seller[deliver],
+            _later(rng, seconds[deliver], self.t1),
+            kind[deliver],
+            price[deliver],
+        )
 
     def _purchases(self) -> None:
         rng, pop, week = self.rng, self.pop, self.week
@@ -192,7 +219,9 @@ class _Week:
         # Volume controls are steady: within a fifth of their rate every week, so that
         # tripling stands out from week-to-week noise.
         steady = np.flatnonzero(self.steady)
-        count[steady] = np.rint(rate[steady] * rng.uniform(0.8, 1.2, len(steady))).astype(count.dtype)
+        count[steady] = np.rint(rate[steady] * rng.uniform(0.8, 1.2, len(steady))).astype(
+            count.dtype
+        )
         floor = (self.always_active & active) | ((pop.joined == week) & (week > 0) & (pop.rate > 0))
         count[floor] = np.maximum(count[floor], 1)
         buyer = np.repeat(np.arange(pop.size), count)
@@ -208,7 +237,9 @@ class _Week:
         for h in range(len(NEIGHBOURHOOD_NAMES)):
             who = np.flatnonzero(explore & (pop.neighbourhood[buyer] == h))
             pool = pop.sellers(h, week)
-            seller[who] = rng.choice(pool, size=len(who), p=pop.popularity[pool] / pop.popularity[pool].sum())
+            seller[who] = rng.choice(
+                pool, size=len(who), p=pop.popularity[pool] / pop.popularity[pool].sum()
+            )
         own = seller == buyer
         seller[own] = pop.favourites[buyer[own], 0]
         deliver = rng.random(n) < pop.p_deliver[buyer]
@@ -220,8 +251,13 @@ class _Week:
         count = rng.poisson(2.0 * self.mult, len(shops))
         shop = np.repeat(shops, count)
         supplier = pop.suppliers[shop, rng.integers(0, pop.n_suppliers[shop])]
-        self.out.add(shop, supplier, _times(rng, self.t0, len(shop)), PURCHASE,
-                     _amount(rng, 120.0, 0.5, len(shop)))
+        self.out.add(
+            shop,
+            supplier,
+            _times(rng, self.t0, len(shop)),
+            PURCHASE,
+            _amount(rng, 120.0, 0.5, len(shop)),
+        )
 
     def _paybacks(self) -> None:
         rng, pairs = self.rng, self.pop.friend_pairs
@@ -239,33 +275,58 @@ class _Week:
         state["last"] = fresh
         target = np.concatenate([fresh, again])
         target = np.repeat(target, 1 + (rng.random(len(target)) < 0.3))
-        self.out.add(np.full(len(target), p.account), target, _times(rng, self.t0, len(target)),
-                     PAYBACK, _amount(rng, 4.0, 0.4, len(target)))
+        self.out.add(
+            np.full(len(target), p.account),
+            target,
+            _times(rng, self.t0, len(target)),
+            PAYBACK,
+            _amount(rng, 4.0, 0.4, len(target)),
+        )
 
     def _funnel(self, p: Planted) -> None:
         """A ring of fresh accounts pays one collector, who forwards to a few outsiders."""
         rng = self.rng
         state = self.fresh_state.get(p.account)
         if state is None:
-            state = {"ring": self.out.new_accounts(12 + int(rng.integers(0, 10))),
-                     "outside": self.out.new_accounts(2 + int(rng.integers(0, 3)))}
+            state = {
+                "ring": self.out.new_accounts(12 + int(rng.integers(0, 10))),
+                "outside": self.out.new_accounts(2 + int(rng.integers(0, 3))),
+            }
             self.fresh_state[p.account] = state
         ring, outside = state["ring"], state["outside"]
         payer = np.repeat(ring, 1 + rng.poisson(0.8, len(ring)))
-        self.out.add(payer, np.full(len(payer), p.account), _times(rng, self.t0, len(payer)),
-                     PURCHASE, _amount(rng, 30.0, 0.5, len(payer)))
+        self.out.add(
+            payer,
+            np.full(len(payer), p.account),
+            _times(rng, self.t0, len(payer)),
+            PURCHASE,
+            _amount(rng, 30.0, 0.5, len(payer)),
+        )
         hop = rng.random(len(ring)) < 0.5
-        self.out.add(ring[hop], np.roll(ring, -1)[hop], _times(rng, self.t0, int(hop.sum())),
-                     PAYBACK, _amount(rng, 5.0, 0.4, int(hop.sum())))
+        self.out.add(
+            ring[hop],
+            np.roll(ring, -1)[hop],
+            _times(rng, self.t0, int(hop.sum())),
+            PAYBACK,
+            _amount(rng, 5.0, 0.4, int(hop.sum())),
+        )
         dest = np.repeat(outside, 1 + rng.poisson(1.0, len(outside)))
-        self.out.add(np.full(len(dest), p.account), dest, _times(rng, self.t0, len(dest)),
-                     PAYBACK, _amount(rng, 200.0, 0.4, len(dest)))
+        self.out.add(
+            np.full(len(dest), p.account),
+            dest,
+            _times(rng, self.t0, len(dest)),
+            PAYBACK,
+            _amount(rng, 200.0, 0.4, len(dest)),
+        )
 
     def _reversal(self, p: Planted) -> None:
         """The shop no longer sells (its buyers go to another shop) and buys widely."""
         rng, pop = self.rng, self.pop
-        pool = np.flatnonzero((pop.archetype == SELLER) & (pop.neighbourhood == pop.neighbourhood[p.account])
-                              & (pop.joined <= self.week))
+        pool = np.flatnonzero(
+            (pop.archetype == SELLER)
+            & (pop.neighbourhood == pop.neighbourhood[p.account])
+            & (pop.joined <= self.week)
+        )
         n = 8 + int(rng.poisson(6))
         seller = rng.choice(pool, size=n)
         self._sale(np.full(n, p.account), seller, _times(rng, self.t0, n), np.zeros(n, bool))
@@ -277,20 +338,28 @@ class _Week:
         far = NEVER_TRADING[1] if home == NEVER_TRADING[0] else NEVER_TRADING[0]
         for buyers_in, sellers_in in ((far, home), (home, far)):
             n = 5 + int(rng.poisson(5))
-            buyers = np.flatnonzero(self.ordinary_buyers & (pop.neighbourhood == buyers_in)
-                                    & (pop.joined <= self.week))
+            buyers = np.flatnonzero(
+                self.ordinary_buyers & (pop.neighbourhood == buyers_in) & (pop.joined <= self.week)
+            )
             sellers = pop.sellers(sellers_in, self.week)
             buyer = rng.choice(buyers, size=n)
-            seller = rng.choice(sellers, size=n, p=pop.popularity[sellers] / pop.popularity[sellers].sum())
-            self._sale(buyer, seller, _times(rng, self.t0, n), np.ones(n, bool),
-                       courier=np.full(n, p.account))
+            seller = rng.choice(
+                sellers, size=n, p=pop.popularity[sellers] / pop.popularity[sellers].sum()
+            )
+            self._sale(
+                buyer,
+                seller,
+                _times(rng, self.t0, n),
+                np.ones(n, bool),
+                courier=np.full(n, p.account),
+            )
 
 
 def _check_start(start: datetime) -> datetime:
     if start.tzinfo is None:
         raise ValueError("start must carry a time zone, e.g. 2026-01-01T00:00:00+00:00")
-    start = start.astimezone(timezone.utc)
-    offset = (start - datetime(1970, 1, 1, tzinfo=timezone.utc)) % timedelta(weeks=1)
+    start = start.astimezone(UTC)
+    offset = (start - datetime(1970, 1, 1, tzinfo=UTC)) % timedelta(weeks=1)
     if offset:
         aligned = start - offset
         raise ValueError(
@@ -302,7 +371,7 @@ def _check_start(start: datetime) -> datetime:
 
 
 def _rfc3339(moment: datetime) -> str:
-    return moment.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return moment.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 def generate(
@@ -392,7 +461,7 @@ def generate(
         "id": ids,
         "archetype": np.array(ARCHETYPE_NAMES)[archetype],
         "neighbourhood": neighbourhood,
-        "joined_window": np.concatenate([pop.joined, first_seen[pop.size:]]),
+        "joined_window": np.concatenate([pop.joined, first_seen[pop.size :]]),
     }
     per_change = {c: sum(1 for r in truth if r["change"] == c) for c in PLANTED + ("newcomer",)}
     meta = {

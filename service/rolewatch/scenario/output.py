@@ -19,10 +19,14 @@ def write(scenario: Scenario, directory) -> dict[str, Path]:
     """
     directory = Path(directory)
     directory.mkdir(parents=True, exist_ok=True)
-    paths = {name: directory / name for name in
-             ("events.ndjson", "events.csv", "truth.json", "accounts.csv")}
-    with open(paths["events.ndjson"], "w", encoding="utf-8", newline="\n") as ndjson, \
-            open(paths["events.csv"], "w", encoding="utf-8", newline="") as table:
+    paths = {
+        name: directory / name
+        for name in ("events.ndjson", "events.csv", "truth.json", "accounts.csv")
+    }
+    with (
+        open(paths["events.ndjson"], "w", encoding="utf-8", newline="\n") as ndjson,
+        open(paths["events.csv"], "w", encoding="utf-8", newline="") as table,
+    ):
         rows = csv.writer(table, lineterminator="\n")
         rows.writerow(EVENT_FIELDS)
         for event in scenario.iter_events():
@@ -34,6 +38,12 @@ def write(scenario: Scenario, directory) -> dict[str, Path]:
     with open(paths["accounts.csv"], "w", encoding="utf-8", newline="") as table:
         rows = csv.writer(table, lineterminator="\n")
         rows.writerow(("account", "archetype", "neighbourhood", "joined_window"))
-        rows.writerows(zip(acc["id"].tolist(), acc["archetype"].tolist(),
-                           acc["neighbourhood"].tolist(), acc["joined_window"].tolist()))
+        rows.writerows(
+            zip(
+                acc["id"].tolist(),
+                acc["archetype"].tolist(),
+                acc["neighbourhood"].tolist(),
+                acc["joined_window"].tolist(),
+            )
+        )
     return paths

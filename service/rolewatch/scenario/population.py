@@ -120,7 +120,10 @@ def draw_population(
         [np.full(counts[a], a, dtype=np.int8) for a in (BUYER, SELLER, SHOP, COURIER, FRIEND)]
     )
     nbh_initial = np.concatenate(
-        [_shares(counts[a], NEIGHBOURHOOD_SHARES, rng) for a in (BUYER, SELLER, SHOP, COURIER, FRIEND)]
+        [
+            _shares(counts[a], NEIGHBOURHOOD_SHARES, rng)
+            for a in (BUYER, SELLER, SHOP, COURIER, FRIEND)
+        ]
     )
     order = rng.permutation(members)  # ids carry no hint of the archetype
     archetype = np.empty(members, dtype=np.int8)
@@ -161,7 +164,11 @@ def draw_population(
     adjacent_of = np.array([[1, 1], [0, 2], [1, 1]])
     wanted = np.where(abroad, adjacent_of[wanted, side], wanted)
     favourites = _draw_sellers(
-        rng, neighbourhood, popularity, initial_seller, wanted.ravel(),
+        rng,
+        neighbourhood,
+        popularity,
+        initial_seller,
+        wanted.ravel(),
         np.repeat(idx, MAX_FAVOURITES),
     ).reshape(n, MAX_FAVOURITES)
     n_favourites = np.clip(1 + rng.poisson(2.5, n), 1, MAX_FAVOURITES)
@@ -199,8 +206,18 @@ def draw_population(
     friend_pairs = np.concatenate(friend_pairs) if friend_pairs else np.zeros((0, 2), np.int64)
 
     return Population(
-        archetype=archetype, neighbourhood=neighbourhood, joined=joined, rate=rate,
-        favourites=favourites, n_favourites=n_favourites, courier=courier,
-        p_deliver=p_deliver, p_explore=p_explore, popularity=popularity, repairer=repairer,
-        suppliers=suppliers, n_suppliers=n_suppliers, friend_pairs=friend_pairs,
+        archetype=archetype,
+        neighbourhood=neighbourhood,
+        joined=joined,
+        rate=rate,
+        favourites=favourites,
+        n_favourites=n_favourites,
+        courier=courier,
+        p_deliver=p_deliver,
+        p_explore=p_explore,
+        popularity=popularity,
+        repairer=repairer,
+        suppliers=suppliers,
+        n_suppliers=n_suppliers,
+        friend_pairs=friend_pairs,
     )

@@ -58,7 +58,9 @@ def draw_plan(
     def pick(mask: np.ndarray, count: int, prefer=None) -> np.ndarray:
         pool = np.flatnonzero(mask & initial & ~taken)
         if prefer is not None:
-            pool = pool[np.argsort(-prefer[pool], kind="stable")][: max(count, min(len(pool) // 2, 2 * count))]
+            pool = pool[np.argsort(-prefer[pool], kind="stable")][
+                : max(count, min(len(pool) // 2, 2 * count))
+            ]
         chosen = rng.choice(pool, size=min(count, len(pool)), replace=False)
         taken[chosen] = True
         return chosen

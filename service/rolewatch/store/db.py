@@ -137,14 +137,18 @@ def upgrade_to_head(engine: Engine) -> None:
             # commit instead of failing when both read "no version" and then both write.
             connection.execution_options(rolewatch_write=True)
         if postgres:
-            connection.exec_driver_sql(f"SELECT pg_advisory_lock({store_lock_key(_MIGRATION_LOCK_ID)})")
+            connection.exec_driver_sql(
+                f"SELECT pg_advisory_lock({store_lock_key(_MIGRATION_LOCK_ID)})"
+            )
             connection.commit()
         try:
             command.upgrade(alembic_config(connection), "head")
             connection.commit()
         finally:
             if postgres:
-                connection.exec_driver_sql(f"SELECT pg_advisory_unlock({store_lock_key(_MIGRATION_LOCK_ID)})")
+                connection.exec_driver_sql(
+                    f"SELECT pg_advisory_unlock({store_lock_key(_MIGRATION_LOCK_ID)})"
+                )
                 connection.commit()
 
 

@@ -21,7 +21,7 @@ import threading
 import weakref
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta, timezone
 from typing import Any
 
 from sqlalchemy import func, select
@@ -37,7 +37,7 @@ MAX_KIND_CHARS = 64
 FIELDS = ("id", "time", "actor", "target", "kind", "weight")
 _FIELD_SET = frozenset(FIELDS)
 
-EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
+EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
 _ONE_US = timedelta(microseconds=1)
 # RFC 3339 section 5.6 date-time; "T" may be written "t" or a space (section 5.6, NOTE).
 _RFC3339 = re.compile(
@@ -106,7 +106,7 @@ def parse_time_us(value: Any) -> int:
     fraction = match.group(7) or ""
     micro = int((fraction[1:] + "000000")[:6]) if fraction else 0
     if offset in ("Z", "z"):
-        tz = timezone.utc
+        tz = UTC
     else:
         sign = 1 if offset[0] == "+" else -1
         hours, minutes = int(offset[1:3]), int(offset[4:6])
@@ -263,13 +263,19 @@ def _fast_event(event: Any, max_time_us: int):
     # The two usual forms, "...T10:11:12Z" and "...T10:11:12+01:00", checked by position;
     # anything else (fractions, lowercase, errors) goes through the regular expression.
     tail = time_value[19:]
-    if not (
-        len(time_value) >= 20
-        and time_value[4] == "-" and time_value[7] == "-" and time_value[10] == "T"
-        and time_value[13] == ":" and time_value[16] == ":"
-        and (tail == "Z" or (len(tail) == 6 and tail[0] in "+-" and tail[3] == ":"))
-        and time_value.isascii()
-    ) and _RFC3339.fullmatch(time_value) is None:
+    if (
+        not (
+            len(time_value) >= 20
+            and time_value[4] == "-"
+            and time_value[7] == "-"
+            and time_value[10] == "T"
+            and time_value[13] == ":"
+            and time_value[16] == ":"
+            and (tail == "Z" or (len(tail) == 6 and tail[0] in "+-" and tail[3] == ":"))
+            and time_value.isascii()
+        )
+        and _RFC3339.fullmatch(time_value) is None
+    ):
         return None
     try:
         moment = datetime.fromisoformat(time_value)
@@ -299,9 +305,7 @@ def validate_event(event: Any, max_time_us: int) -> tuple[str, int, str, str, st
         raise _Reject(f"an event must be a JSON object, got {_kind_of(event)}")
     if not _FIELD_SET.issuperset(event):
         unknown = sorted(str(k) for k in event if k not in _FIELD_SET)
-        raise _Reject(
-            f"unknown field {_show(unknown[0])}; allowed fields: {', '.join(FIELDS)}"
-        )
+        raise _Reject(f"unknown field {_show(unknown[0])}; allowed fields: {', '.join(FIELDS)}")
     time_value = event.get("time")
     if time_value is None:
         raise _Reject("time: required")
@@ -309,7 +313,9 @@ def validate_event(event: Any, max_time_us: int) -> tuple[str, int, str, str, st
     actor = _text(event, "actor", MAX_ACCOUNT_CHARS, required=True)
     target = _text(event, "target", MAX_ACCOUNT_CHARS, required=True)
     if actor == target:
-        raise _Reject(f"target: same account as actor ({_show(actor)}); self-interactions are not events")
+        raise _Reject(
+            f"target: same account as actor ({_show(actor)}); self-interactions are not events"
+        )
     kind = _text(event, "kind", MAX_KIND_CHARS, required=False)
     weight = _weight(event)
     if time_us > max_time_us:
@@ -469,7 +475,7 @@ class _GroupWriter:
                 member.error = error
 
 
-_WRITERS: "weakref.WeakKeyDictionary[Engine, _GroupWriter]" = weakref.WeakKeyDictionary()
+_WRITERS: weakref.WeakKeyDictionary[Engine, _GroupWriter] = weakref.WeakKeyDictionary()
 _WRITERS_LOCK = threading.Lock()
 
 
@@ -481,7 +487,9 @@ def _group_writer(engine: Engine) -> _GroupWriter:
         return writer
 
 
-def ingest(engine: Engine, settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int) -> IngestResult:
+def ingest(
+    engine: Engine, settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int
+) -> IngestResult:
     """Validate ``raw_events`` (parsed wire events) and store the valid ones in one transaction
     (shared with batches arriving at the same moment: see :class:`_GroupWriter`).
 

@@ -47,7 +47,7 @@ def split_key(key: str) -> str | None:
     """The key id of a well-formed key, or None when ``key`` does not look like one."""
     if not key.startswith(PREFIX):
         return None
-    parts = key[len(PREFIX):].split("_", 1)
+    parts = key[len(PREFIX) :].split("_", 1)
     if len(parts) != 2 or not parts[0] or not parts[1] or len(parts[0]) > 32:
         return None
     return parts[0]
@@ -63,7 +63,9 @@ def _check_scopes(scopes) -> tuple[str, ...]:
     return chosen
 
 
-def create_key(engine: Engine, scopes, *, label: str | None = None, now_us: int) -> tuple[ApiKey, str]:
+def create_key(
+    engine: Engine, scopes, *, label: str | None = None, now_us: int
+) -> tuple[ApiKey, str]:
     """Make and store a new key; return its record and the full key (shown only this once)."""
     chosen = _check_scopes(scopes)
     key_id = secrets.token_hex(6)

@@ -48,7 +48,9 @@ def account_exists(engine: Engine, account: str) -> bool:
         closed_end = connection.execute(
             select(func.max(windows.c.end_us)).where(windows.c.status == "closed")
         ).scalar()
-        recent = select(events.c.seq).where(or_(events.c.actor == account, events.c.target == account))
+        recent = select(events.c.seq).where(
+            or_(events.c.actor == account, events.c.target == account)
+        )
         if closed_end is not None:
             recent = recent.where(events.c.time_us >= closed_end)
         return connection.execute(recent.limit(1)).first() is not None
@@ -170,7 +172,9 @@ def open_windows(engine: Engine, settings, *, now_us: int, limit: int = 20) -> d
         first_end = max(first_end, last_end - (limit - 1) * period)
         watermark = max_event - lateness
         last_ingest = get_state(engine, "last_ingest_us")
-        idle = last_ingest is not None and now_us - int(last_ingest) >= _us(settings.idle_close_after)
+        idle = last_ingest is not None and now_us - int(last_ingest) >= _us(
+            settings.idle_close_after
+        )
         for end in range(first_end, last_end + 1, period):
             start = end - span
             count = connection.execute(
@@ -180,8 +184,12 @@ def open_windows(engine: Engine, settings, *, now_us: int, limit: int = 20) -> d
             ).scalar()
             due = end <= watermark or (idle and end + lateness <= now_us)
             result["windows"].append(
-                {"start_us": start, "end_us": end, "status": "due" if due else "open",
-                 "event_count": count}
+                {
+                    "start_us": start,
+                    "end_us": end,
+                    "status": "due" if due else "open",
+                    "event_count": count,
+                }
             )
     return result
 
@@ -214,11 +222,7 @@ def list_roles(engine: Engine) -> dict[str, Any]:
     basis = active_basis(engine)
     if basis is None:
         return {"basis": None, "roles": []}
-    query = (
-        select(roles)
-        .where(roles.c.basis_version == basis["version"])
-        .order_by(roles.c.role_id)
-    )
+    query = select(roles).where(roles.c.basis_version == basis["version"]).order_by(roles.c.role_id)
     with engine.connect() as connection:
         rows = connection.execute(query).all()
     return {

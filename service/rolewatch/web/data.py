@@ -40,7 +40,9 @@ def latest_window_with_members(engine: Engine) -> dict[str, Any] | None:
     return None if row is None else dict(row._mapping)
 
 
-def alerts_by_window(engine: Engine, account: str, *, limit: int = 1000) -> dict[int, dict[str, Any]]:
+def alerts_by_window(
+    engine: Engine, account: str, *, limit: int = 1000
+) -> dict[int, dict[str, Any]]:
     """The account's alerts in the API form, keyed by window id."""
     found, _ = queries.list_alerts(engine, queries.AlertFilters(account=account), limit=limit)
     return {alert["window_id"]: alert for alert in found}

@@ -9,14 +9,14 @@ in place when a window is picked. Pages need a key with the read scope, kept in 
 from __future__ import annotations
 
 import re
-from datetime import date, datetime, timedelta, timezone
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any
 from urllib.parse import quote, urlencode
 
 import jinja2
 from fastapi import APIRouter, Form, Request
-from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from fastapi.responses import HTMLResponse, RedirectResponse
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
 
@@ -72,7 +72,9 @@ def _secure(request: Request) -> bool:
     return request.app.state.settings.public_url.lower().startswith("https://")
 
 
-def _render(request: Request, name: str, context: dict[str, Any], status_code: int = 200) -> HTMLResponse:
+def _render(
+    request: Request, name: str, context: dict[str, Any], status_code: int = 200
+) -> HTMLResponse:
     context = {"notice": NOTICE, "key": None, "form_token": "", "section": "", **context}
     response = templates.TemplateResponse(request, name, context, status_code=status_code)
     response.headers.update(SECURITY_HEADERS)
@@ -121,7 +123,7 @@ def signout(request: Request):
 
 
 def _day_start_us(text: str) -> int:
-    moment = datetime.combine(date.fromisoformat(text), datetime.min.time(), timezone.utc)
+    moment = datetime.combine(date.fromisoformat(text), datetime.min.time(), UTC)
     return (moment - charts.EPOCH) // timedelta(microseconds=1)
 
 
@@ -145,7 +147,9 @@ def _alert_filters(min_score: str, date_from: str, date_to: str):
             try:
                 filters[name] = _day_start_us(text.strip()) + shift * 86_400_000_000
             except ValueError:
-                errors.append(f"{label} date “{text[:40]}” is not a date like 2026-02-12; it was ignored.")
+                errors.append(
+                    f"{label} date “{text[:40]}” is not a date like 2026-02-12; it was ignored."
+                )
     return queries.AlertFilters(**filters), errors
 
 
@@ -162,7 +166,9 @@ def alert_queue(
     if key is None or not key.allows("read"):
         return session.to_signin(request)
     filters, errors = _alert_filters(min_score, date_from, date_to)
-    found, next_cursor = queries.list_alerts(_engine(request), filters, limit=PAGE_SIZE, cursor=before)
+    found, next_cursor = queries.list_alerts(
+        _engine(request), filters, limit=PAGE_SIZE, cursor=before
+    )
     rows = [
         {
             "alert": alert,
@@ -175,7 +181,9 @@ def alert_queue(
     older = None
     if next_cursor is not None:
         kept = {"min_score": min_score, "date_from": date_from, "date_to": date_to}
-        older = "/alerts?" + urlencode({**{k: v for k, v in kept.items() if v}, "before": next_cursor})
+        older = "/alerts?" + urlencode(
+            {**{k: v for k, v in kept.items() if v}, "before": next_cursor}
+        )
     return _page(
         request,
         "alerts.html",
@@ -198,9 +206,7 @@ def _role_order(engine, history) -> list[tuple[int, str]]:
     """Roles of the active basis (catalogue order), then any other role id the history holds."""
     active = [(role["id"], role["name"]) for role in queries.list_roles(engine)["roles"]]
     known = {role_id for role_id, _ in active}
-    extra_ids = sorted(
-        {int(role_id) for entry in history for role_id in entry["mixture"]} - known
-    )
+    extra_ids = sorted({int(role_id) for entry in history for role_id in entry["mixture"]} - known)
     if extra_ids:
         names = queries.role_names(engine, {entry["basis_version"] for entry in history})
         by_id = {role_id: name for (_, role_id), name in names.items()}
@@ -247,8 +253,9 @@ def account_page(request: Request, account: str, window: str | None = None):
         return session.to_signin(request)
     engine = _engine(request)
     if not queries.account_exists(engine, account):
-        return _page(request, "missing.html", key,
-                     {"title": "Account not found", "account": account}, 404)
+        return _page(
+            request, "missing.html", key, {"title": "Account not found", "account": account}, 404
+        )
     history_list = queries.account_history(engine, account)
     history = {entry["window_id"]: entry for entry in history_list}
     windows = data.all_windows(engine)
@@ -275,7 +282,9 @@ def account_page(request: Request, account: str, window: str | None = None):
 
     selected = None
     if selected_id is not None:
-        meta = next(w for w in windows if w["id"] == selected_id) if selected_id in known_ids else None
+        meta = (
+            next(w for w in windows if w["id"] == selected_id) if selected_id in known_ids else None
+        )
         alert = alerts.get(selected_id)
         entry = history.get(selected_id)
         selected = {
@@ -288,11 +297,17 @@ def account_page(request: Request, account: str, window: str | None = None):
         }
         if alert:
             evidence = alert["evidence"]
-            before = {r["role_id"]: r for r in _mixture_rows(evidence.get("mixture_before"), roles, names)}
-            after = {r["role_id"]: r for r in _mixture_rows(evidence.get("mixture_after"), roles, names)}
+            before = {
+                r["role_id"]: r for r in _mixture_rows(evidence.get("mixture_before"), roles, names)
+            }
+            after = {
+                r["role_id"]: r for r in _mixture_rows(evidence.get("mixture_after"), roles, names)
+            }
             order = [role_id for role_id, _ in roles]
-            shown = sorted(set(before) | set(after),
-                           key=lambda r: order.index(r) if r in order else len(order) + r)
+            shown = sorted(
+                set(before) | set(after),
+                key=lambda r: order.index(r) if r in order else len(order) + r,
+            )
             selected["shift_rows"] = [
                 {
                     "name": (after.get(r) or before.get(r))["name"],
@@ -346,7 +361,9 @@ def _profile_parts(role) -> tuple[dict[str, float], dict[str, float]]:
         return {}, {}
     features = profile.get("features", profile)
     measures = profile.get("measures") or {}
-    return (features if isinstance(features, dict) else {}), (measures if isinstance(measures, dict) else {})
+    return (features if isinstance(features, dict) else {}), (
+        measures if isinstance(measures, dict) else {}
+    )
 
 
 def _roles_context(request: Request) -> dict[str, Any]:
@@ -366,7 +383,11 @@ def _roles_context(request: Request) -> dict[str, Any]:
                 "style": charts.role_style(index),
                 "bars": levels[index],
                 "measures": sorted(
-                    ((name, value) for name, value in (measures or {}).items() if value is not None),
+                    (
+                        (name, value)
+                        for name, value in (measures or {}).items()
+                        if value is not None
+                    ),
                     key=lambda item: -abs(float(item[1])),
                 )[:4],
                 "dominant": counts.get(role["id"], 0),

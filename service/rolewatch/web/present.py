@@ -58,7 +58,9 @@ def strongest_evidence(alert: dict[str, Any]) -> str:
     if new > 0:
         total = activity.get("counterparts")
         tail = f" (of {number(total)})" if total else ""
-        candidates.append((_slog(new), f"{number(new)} new counterpart{'' if new == 1 else 's'}{tail}"))
+        candidates.append(
+            (_slog(new), f"{number(new)} new counterpart{'' if new == 1 else 's'}{tail}")
+        )
     for label, now_key, before_key in (
         ("events out", "events_out", "events_out_before"),
         ("events in", "events_in", "events_in_before"),
@@ -68,15 +70,20 @@ def strongest_evidence(alert: dict[str, Any]) -> str:
         if after is None or before is None or after == before:
             continue
         candidates.append(
-            (abs(_slog(float(after)) - _slog(float(before))),
-             f"{label}: {number(before)} → {number(after)}")
+            (
+                abs(_slog(float(after)) - _slog(float(before))),
+                f"{label}: {number(before)} → {number(after)}",
+            )
         )
     for move in moves:
         if "(" in str(move.get("feature", "")):
             continue
         strength = abs(_slog(float(move["after"])) - _slog(float(move["before"])))
         candidates.append(
-            (strength, f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}")
+            (
+                strength,
+                f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}",
+            )
         )
     if candidates:
         # Ties keep the first candidate: new counterparts, then activity, then features.
@@ -84,5 +91,7 @@ def strongest_evidence(alert: dict[str, Any]) -> str:
         return candidates[best][1]
     if moves:
         move = moves[0]
-        return f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}"
+        return (
+            f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}"
+        )
     return "role mixture changed"

@@ -31,7 +31,9 @@ def history_document(engine, account: str, from_us: int | None, to_us: int | Non
                 "mixture": e["mixture"],
                 "dominant_role": {
                     "id": e["dominant_role"],
-                    "name": names.get((e["basis_version"], e["dominant_role"]), f"role {e['dominant_role']}"),
+                    "name": names.get(
+                        (e["basis_version"], e["dominant_role"]), f"role {e['dominant_role']}"
+                    ),
                 },
                 "score": e["score"],
                 "status": e["status"],
@@ -52,8 +54,12 @@ def history_document(engine, account: str, from_us: int | None, to_us: int | Non
     "/v1/accounts/{account:path}/roles",
     response_model=AccountHistory,
     summary="An account's role history",
-    responses={400: {"model": Problem}, 401: {"model": Problem}, 403: {"model": Problem},
-               404: {"model": Problem}},
+    responses={
+        400: {"model": Problem},
+        401: {"model": Problem},
+        403: {"model": Problem},
+        404: {"model": Problem},
+    },
 )
 async def account_roles(
     request: Request,
@@ -64,7 +70,9 @@ async def account_roles(
 ) -> dict:
     """One entry per closed window in which the account was active, oldest first."""
     start, end = time_range(from_, to)
-    document = await run_in_threadpool(history_document, request.app.state.engine, account, start, end)
+    document = await run_in_threadpool(
+        history_document, request.app.state.engine, account, start, end
+    )
     if document is None:
         raise HTTPException(
             status.HTTP_404_NOT_FOUND,

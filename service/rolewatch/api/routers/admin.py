@@ -25,10 +25,19 @@ def _refit(engine, settings, start_us: int, end_us: int):
     return refit_basis(engine, settings, start_us, end_us)
 
 
-@router.post("/v1/admin/basis", summary="Refit the role basis on a reference period (admin)",
-             responses={400: {"model": Problem}, 401: {"model": Problem}, 403: {"model": Problem},
-                        503: {"model": Problem}})
-async def refit(request: Request, body: RefitRequest = Body(...), key=Depends(require_scope("admin"))):
+@router.post(
+    "/v1/admin/basis",
+    summary="Refit the role basis on a reference period (admin)",
+    responses={
+        400: {"model": Problem},
+        401: {"model": Problem},
+        403: {"model": Problem},
+        503: {"model": Problem},
+    },
+)
+async def refit(
+    request: Request, body: RefitRequest = Body(...), key=Depends(require_scope("admin"))
+):
     """Fit a new feature recipe and role basis on the closed windows of ``[from, to)``; its
     roles are matched to the old ones so ids stay stable where roles persist."""
     start, end = time_range(body.from_, body.to)
@@ -38,8 +47,10 @@ async def refit(request: Request, body: RefitRequest = Body(...), key=Depends(re
             _refit, request.app.state.engine, request.app.state.settings, start, end
         )
     except ImportError:
-        raise HTTPException(status.HTTP_503_SERVICE_UNAVAILABLE,
-                            detail="basis refitting is not available in this build") from None
+        raise HTTPException(
+            status.HTTP_503_SERVICE_UNAVAILABLE,
+            detail="basis refitting is not available in this build",
+        ) from None
     except ValueError as error:
         raise HTTPException(status.HTTP_400_BAD_REQUEST, detail=str(error)) from None
     if hasattr(outcome, "to_dict") and not isinstance(outcome, dict):
@@ -47,13 +58,21 @@ async def refit(request: Request, body: RefitRequest = Body(...), key=Depends(re
     return jsonable_encoder(outcome)
 
 
-@router.get("/v1/admin/keys", response_model=list[KeyInfo], summary="API keys (admin)",
-            responses={401: {"model": Problem}, 403: {"model": Problem}})
+@router.get(
+    "/v1/admin/keys",
+    response_model=list[KeyInfo],
+    summary="API keys (admin)",
+    responses={401: {"model": Problem}, 403: {"model": Problem}},
+)
 async def get_keys(request: Request, _key=Depends(require_scope("admin"))) -> list[dict]:
     keys = await run_in_threadpool(list_keys, request.app.state.engine)
     return [
-        {"key_id": k.key_id, "scopes": list(k.scopes), "label": k.label,
-         "created": format_time_us(k.created_us),
-         "revoked": None if k.revoked_us is None else format_time_us(k.revoked_us)}
+        {
+            "key_id": k.key_id,
+            "scopes": list(k.scopes),
+            "label": k.label,
+            "created": format_time_us(k.created_us),
+            "revoked": None if k.revoked_us is None else format_time_us(k.revoked_us),
+        }
         for k in keys
     ]

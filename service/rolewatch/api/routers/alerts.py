@@ -13,11 +13,17 @@ from rolewatch.store import queries
 router = APIRouter(tags=["alerts"])
 
 
-@router.get("/v1/alerts", response_model=AlertsPage, summary="Alerts, newest first",
-            responses={400: {"model": Problem}, 401: {"model": Problem}, 403: {"model": Problem}})
+@router.get(
+    "/v1/alerts",
+    response_model=AlertsPage,
+    summary="Alerts, newest first",
+    responses={400: {"model": Problem}, 401: {"model": Problem}, 403: {"model": Problem}},
+)
 async def get_alerts(
     request: Request,
-    from_: str | None = Query(None, alias="from", description="RFC 3339; windows ending at or after it."),
+    from_: str | None = Query(
+        None, alias="from", description="RFC 3339; windows ending at or after it."
+    ),
     to: str | None = Query(None, description="RFC 3339; windows ending before it."),
     account: str | None = Query(None, max_length=200),
     min_score: float | None = Query(None, ge=0),
@@ -30,7 +36,10 @@ async def get_alerts(
     after = None
     if cursor:
         if not cursor.isdigit():
-            raise HTTPException(status.HTTP_400_BAD_REQUEST, detail="cursor: use the next_cursor value of a previous page")
+            raise HTTPException(
+                status.HTTP_400_BAD_REQUEST,
+                detail="cursor: use the next_cursor value of a previous page",
+            )
         after = int(cursor)
     filters = queries.AlertFilters(from_us=start, to_us=end, account=account, min_score=min_score)
     found, next_cursor = await run_in_threadpool(
@@ -39,9 +48,15 @@ async def get_alerts(
     return {"alerts": found, "next_cursor": None if next_cursor is None else str(next_cursor)}
 
 
-@router.get("/v1/alerts/{alert_id}", response_model=Alert, summary="One alert with its evidence",
-            responses={401: {"model": Problem}, 403: {"model": Problem}, 404: {"model": Problem}})
-async def get_alert(request: Request, alert_id: int = Path(ge=1, le=2**63 - 1), _key=Depends(require_scope("read"))) -> dict:
+@router.get(
+    "/v1/alerts/{alert_id}",
+    response_model=Alert,
+    summary="One alert with its evidence",
+    responses={401: {"model": Problem}, 403: {"model": Problem}, 404: {"model": Problem}},
+)
+async def get_alert(
+    request: Request, alert_id: int = Path(ge=1, le=2**63 - 1), _key=Depends(require_scope("read"))
+) -> dict:
     found = await run_in_threadpool(queries.get_alert, request.app.state.engine, alert_id)
     if found is None:
         raise HTTPException(status.HTTP_404_NOT_FOUND, detail=f"no alert {alert_id}")

@@ -49,20 +49,29 @@ class DeliveryList(BaseModel):
     next_cursor: str | None
 
 
-@router.get("/v1/deliveries", response_model=DeliveryList, responses=ERRORS,
-            summary="Webhook deliveries, newest first")
+@router.get(
+    "/v1/deliveries",
+    response_model=DeliveryList,
+    responses=ERRORS,
+    summary="Webhook deliveries, newest first",
+)
 async def list_deliveries(
     request: Request,
     status_: Literal["pending", "delivered", "failed"] | None = Query(None, alias="status"),
     subscription: str | None = Query(None, max_length=40),
     limit: int = Query(100, ge=1, le=500),
-    cursor: str | None = Query(None, max_length=64, description="next_cursor of the previous page."),
+    cursor: str | None = Query(
+        None, max_length=64, description="next_cursor of the previous page."
+    ),
     _key=Depends(require_scope("read")),
 ) -> dict:
     def work():
         with request.app.state.engine.connect() as connection:
             return records.list_deliveries(
-                connection, status=status_, subscription_id=subscription, limit=limit,
+                connection,
+                status=status_,
+                subscription_id=subscription,
+                limit=limit,
                 before=cursor,
             )
 
@@ -70,9 +79,15 @@ async def list_deliveries(
     return {"deliveries": found, "next_cursor": found[-1]["id"] if len(found) == limit else None}
 
 
-@router.get("/v1/deliveries/{delivery_id}", response_model=DeliveryDetail, responses=NOT_FOUND,
-            summary="One delivery with its attempts")
-async def get_delivery(request: Request, delivery_id: str, _key=Depends(require_scope("read"))) -> dict:
+@router.get(
+    "/v1/deliveries/{delivery_id}",
+    response_model=DeliveryDetail,
+    responses=NOT_FOUND,
+    summary="One delivery with its attempts",
+)
+async def get_delivery(
+    request: Request, delivery_id: str, _key=Depends(require_scope("read"))
+) -> dict:
     def work():
         with request.app.state.engine.connect() as connection:
             return records.get_delivery(connection, delivery_id)
@@ -80,13 +95,20 @@ async def get_delivery(request: Request, delivery_id: str, _key=Depends(require_
     try:
         return await run_in_threadpool(work)
     except records.DeliveryNotFound as error:
-        raise HTTPException(status.HTTP_404_NOT_FOUND, detail=f"no delivery {delivery_id}") from error
+        raise HTTPException(
+            status.HTTP_404_NOT_FOUND, detail=f"no delivery {delivery_id}"
+        ) from error
 
 
-@router.post("/v1/deliveries/{delivery_id}/redeliver", response_model=DeliveryDetail,
-             responses={**NOT_FOUND, 409: {"model": Problem}},
-             summary="Send a delivery again with the same webhook-id (admin)")
-async def redeliver(request: Request, delivery_id: str, _key=Depends(require_scope("admin"))) -> dict:
+@router.post(
+    "/v1/deliveries/{delivery_id}/redeliver",
+    response_model=DeliveryDetail,
+    responses={**NOT_FOUND, 409: {"model": Problem}},
+    summary="Send a delivery again with the same webhook-id (admin)",
+)
+async def redeliver(
+    request: Request, delivery_id: str, _key=Depends(require_scope("admin"))
+) -> dict:
     def work():
         with write_transaction(request.app.state.engine) as connection:
             return records.redeliver(connection, delivery_id, now_us=time.time_ns() // 1000)
@@ -94,6 +116,8 @@ async def redeliver(request: Request, delivery_id: str, _key=Depends(require_sco
     try:
         return await run_in_threadpool(work)
     except records.DeliveryNotFound:
-        raise HTTPException(status.HTTP_404_NOT_FOUND, detail=f"no delivery {delivery_id}") from None
+        raise HTTPException(
+            status.HTTP_404_NOT_FOUND, detail=f"no delivery {delivery_id}"
+        ) from None
     except records.CannotRedeliver as error:
         raise HTTPException(status.HTTP_409_CONFLICT, detail=str(error)) from None

@@ -61,7 +61,9 @@ _OPENAPI = {
 
 
 def _too_large(message: str) -> HTTPException:
-    return HTTPException(status.HTTP_413_CONTENT_TOO_LARGE, detail=message + "; nothing was stored: split the batch")
+    return HTTPException(
+        status.HTTP_413_CONTENT_TOO_LARGE, detail=message + "; nothing was stored: split the batch"
+    )
 
 
 def _bad(message: str) -> HTTPException:
@@ -151,7 +153,7 @@ def parse_ndjson_batch(body: bytes, max_events: int) -> list:
     response_model=IngestResponse,
     summary="Post a batch of interaction events",
     responses={
-        400: {"model": Problem, "description": "Not UTF-8, not JSON, or not {\"events\": [...]}."},
+        400: {"model": Problem, "description": 'Not UTF-8, not JSON, or not {"events": [...]}.'},
         401: {"model": Problem},
         403: {"model": Problem},
         413: {"model": Problem, "description": "Too many events or bytes."},
@@ -167,7 +169,9 @@ async def post_events(request: Request, _key=Depends(require_scope("ingest"))) -
     media = media.strip().lower()
     charset = params.strip().lower()
     if charset.startswith("charset=") and charset[8:].strip('"') not in ("utf-8", "utf8"):
-        raise HTTPException(status.HTTP_415_UNSUPPORTED_MEDIA_TYPE, detail="only UTF-8 bodies are accepted")
+        raise HTTPException(
+            status.HTTP_415_UNSUPPORTED_MEDIA_TYPE, detail="only UTF-8 bodies are accepted"
+        )
     if media not in JSON_TYPES and media not in NDJSON_TYPES:
         raise HTTPException(
             status.HTTP_415_UNSUPPORTED_MEDIA_TYPE,
@@ -180,14 +184,20 @@ async def post_events(request: Request, _key=Depends(require_scope("ingest"))) -
     else:
         raw_events = parse_ndjson_batch(body, settings.max_batch_events)
     now_us = time.time_ns() // 1000
-    result = await run_in_threadpool(
-        ingest, request.app.state.engine, settings, raw_events, now_us
-    )
+    result = await run_in_threadpool(ingest, request.app.state.engine, settings, raw_events, now_us)
     log.debug(
         "batch ingested",
-        extra={"fields": {"accepted": result.accepted, "duplicates": result.duplicates,
-                          "late": result.late, "rejected": len(result.rejected)}},
+        extra={
+            "fields": {
+                "accepted": result.accepted,
+                "duplicates": result.duplicates,
+                "late": result.late,
+                "rejected": len(result.rejected),
+            }
+        },
     )
     return Response(
-        orjson.dumps(result.to_dict()), status_code=status.HTTP_202_ACCEPTED, media_type="application/json"
+        orjson.dumps(result.to_dict()),
+        status_code=status.HTTP_202_ACCEPTED,
+        media_type="application/json",
     )

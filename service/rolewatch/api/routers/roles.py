@@ -17,16 +17,23 @@ def _opt_time(value):
     return None if value is None else format_time_us(value)
 
 
-@router.get("/v1/roles", response_model=RolesResponse, summary="The frozen role basis",
-            responses={401: {"model": Problem}, 403: {"model": Problem}})
+@router.get(
+    "/v1/roles",
+    response_model=RolesResponse,
+    summary="The frozen role basis",
+    responses={401: {"model": Problem}, 403: {"model": Problem}},
+)
 async def get_roles(request: Request, _key=Depends(require_scope("read"))) -> dict:
     """Each role's id, name, sense-making description and feature profile."""
     found = await run_in_threadpool(queries.list_roles, request.app.state.engine)
     basis = found["basis"]
     if basis is None:
-        return {"basis_version": None, "roles": [],
-                "message": "no role basis yet: it is fitted when the first training windows "
-                "have closed (or by POST /v1/admin/basis)"}
+        return {
+            "basis_version": None,
+            "roles": [],
+            "message": "no role basis yet: it is fitted when the first training windows "
+            "have closed (or by POST /v1/admin/basis)",
+        }
     return {
         "basis_version": basis["version"],
         "recipe_version": basis["recipe_version"],
@@ -37,14 +44,24 @@ async def get_roles(request: Request, _key=Depends(require_scope("read"))) -> di
     }
 
 
-@router.patch("/v1/roles/{role_id}", response_model=Role, summary="Rename a role (admin)",
-              responses={401: {"model": Problem}, 403: {"model": Problem}, 404: {"model": Problem}})
+@router.patch(
+    "/v1/roles/{role_id}",
+    response_model=Role,
+    summary="Rename a role (admin)",
+    responses={401: {"model": Problem}, 403: {"model": Problem}, 404: {"model": Problem}},
+)
 async def patch_role(
-    request: Request, role_id: int = Path(ge=0, le=2**31 - 1), body: RenameRole = Body(...),
+    request: Request,
+    role_id: int = Path(ge=0, le=2**31 - 1),
+    body: RenameRole = Body(...),
     _key=Depends(require_scope("admin")),
 ) -> dict:
     """Give a role of the active basis a new name (shown in alerts, history and pages)."""
-    role = await run_in_threadpool(queries.rename_role, request.app.state.engine, role_id, body.name.strip())
+    role = await run_in_threadpool(
+        queries.rename_role, request.app.state.engine, role_id, body.name.strip()
+    )
     if role is None:
-        raise HTTPException(status.HTTP_404_NOT_FOUND, detail=f"no role {role_id} in the active basis")
+        raise HTTPException(
+            status.HTTP_404_NOT_FOUND, detail=f"no role {role_id} in the active basis"
+        )
     return role

@@ -30,12 +30,14 @@ NOT_FOUND = {**ERRORS, 404: {"model": Problem}}
 class SubscriptionCreate(BaseModel):
     url: str = Field(..., max_length=2000, description="https:// URL that receives the webhooks.")
     format: Literal["json", "text"] = Field(
-        "json", description='json: {"type", "timestamp", "data": alert}; text: {"text": summary} '
-        "for chat channels."
+        "json",
+        description='json: {"type", "timestamp", "data": alert}; text: {"text": summary} '
+        "for chat channels.",
     )
     min_score: float = Field(0.0, ge=0, description="Only alerts scoring at least this much.")
     roles: list[int] | None = Field(
-        None, max_length=1000,
+        None,
+        max_length=1000,
         description="Only alerts whose new dominant role is one of these role ids.",
     )
 
@@ -93,15 +95,24 @@ def _not_found(error: LookupError) -> HTTPException:
     return HTTPException(status.HTTP_404_NOT_FOUND, detail=str(error).strip("'\""))
 
 
-@router.post("/v1/subscriptions", status_code=201, response_model=SubscriptionWithSecret,
-             summary="Subscribe a URL to alerts; the answer shows the signing secret once",
-             responses={**ERRORS, 422: {"model": Problem}})
+@router.post(
+    "/v1/subscriptions",
+    status_code=201,
+    response_model=SubscriptionWithSecret,
+    summary="Subscribe a URL to alerts; the answer shows the signing secret once",
+    responses={**ERRORS, 422: {"model": Problem}},
+)
 async def create(request: Request, body: SubscriptionCreate, _key=ADMIN) -> dict:
     def work():
         with write_transaction(_engine(request)) as connection:
             return store.create_subscription(
-                connection, _settings(request), url=body.url, fmt=body.format,
-                min_score=body.min_score, roles=body.roles, now_us=_now_us(),
+                connection,
+                _settings(request),
+                url=body.url,
+                fmt=body.format,
+                min_score=body.min_score,
+                roles=body.roles,
+                now_us=_now_us(),
             )
 
     try:
@@ -111,8 +122,12 @@ async def create(request: Request, body: SubscriptionCreate, _key=ADMIN) -> dict
     return {**made.subscription, "secret": made.secret}
 
 
-@router.get("/v1/subscriptions", response_model=SubscriptionList, responses=ERRORS,
-            summary="Every subscription (without secrets)")
+@router.get(
+    "/v1/subscriptions",
+    response_model=SubscriptionList,
+    responses=ERRORS,
+    summary="Every subscription (without secrets)",
+)
 async def list_all(request: Request, _key=ADMIN) -> dict:
     def work():
         with _engine(request).connect() as connection:
@@ -121,8 +136,12 @@ async def list_all(request: Request, _key=ADMIN) -> dict:
     return {"subscriptions": await run_in_threadpool(work)}
 
 
-@router.get("/v1/subscriptions/{sub_id}", response_model=Subscription, responses=NOT_FOUND,
-            summary="One subscription (without its secret)")
+@router.get(
+    "/v1/subscriptions/{sub_id}",
+    response_model=Subscription,
+    responses=NOT_FOUND,
+    summary="One subscription (without its secret)",
+)
 async def get_one(request: Request, sub_id: str, _key=ADMIN) -> dict:
     def work():
         with _engine(request).connect() as connection:
@@ -134,8 +153,12 @@ async def get_one(request: Request, sub_id: str, _key=ADMIN) -> dict:
         raise _not_found(error) from None
 
 
-@router.delete("/v1/subscriptions/{sub_id}", status_code=204, responses=NOT_FOUND,
-               summary="Delete a subscription; its pending deliveries are dropped")
+@router.delete(
+    "/v1/subscriptions/{sub_id}",
+    status_code=204,
+    responses=NOT_FOUND,
+    summary="Delete a subscription; its pending deliveries are dropped",
+)
 async def delete(request: Request, sub_id: str, _key=ADMIN) -> Response:
     def work():
         with write_transaction(_engine(request)) as connection:
@@ -148,9 +171,12 @@ async def delete(request: Request, sub_id: str, _key=ADMIN) -> Response:
     return Response(status_code=204)
 
 
-@router.post("/v1/subscriptions/{sub_id}/rotate", response_model=SubscriptionWithSecret,
-             responses=NOT_FOUND,
-             summary="New signing secret (shown once); the old one keeps signing for the overlap")
+@router.post(
+    "/v1/subscriptions/{sub_id}/rotate",
+    response_model=SubscriptionWithSecret,
+    responses=NOT_FOUND,
+    summary="New signing secret (shown once); the old one keeps signing for the overlap",
+)
 async def rotate(request: Request, sub_id: str, _key=ADMIN) -> dict:
     def work():
         with write_transaction(_engine(request)) as connection:
@@ -163,8 +189,12 @@ async def rotate(request: Request, sub_id: str, _key=ADMIN) -> dict:
     return {**made.subscription, "secret": made.secret}
 
 
-@router.post("/v1/subscriptions/{sub_id}/resume", response_model=Subscription,
-             responses=NOT_FOUND, summary="Unpause a subscription; held deliveries go out again")
+@router.post(
+    "/v1/subscriptions/{sub_id}/resume",
+    response_model=Subscription,
+    responses=NOT_FOUND,
+    summary="Unpause a subscription; held deliveries go out again",
+)
 async def resume(request: Request, sub_id: str, _key=ADMIN) -> dict:
     def work():
         with write_transaction(_engine(request)) as connection:
@@ -176,9 +206,13 @@ async def resume(request: Request, sub_id: str, _key=ADMIN) -> dict:
         raise _not_found(error) from None
 
 
-@router.post("/v1/subscriptions/{sub_id}/test", status_code=202, response_model=TestQueued,
-             responses=NOT_FOUND,
-             summary="Queue a clearly marked test alert (event type alert.test)")
+@router.post(
+    "/v1/subscriptions/{sub_id}/test",
+    status_code=202,
+    response_model=TestQueued,
+    responses=NOT_FOUND,
+    summary="Queue a clearly marked test alert (event type alert.test)",
+)
 async def send_test(request: Request, sub_id: str, _key=ADMIN) -> dict:
     def work():
         with write_transaction(_engine(request)) as connection:

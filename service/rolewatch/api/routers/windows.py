@@ -26,8 +26,12 @@ def windows_document(engine, settings, now_us: int, limit: int) -> dict:
         "watermark": _opt(pending["watermark_us"]),
         "latest_event": _opt(pending["max_event_us"]),
         "open": [
-            {"start": format_time_us(w["start_us"]), "end": format_time_us(w["end_us"]),
-             "status": w["status"], "event_count": w["event_count"]}
+            {
+                "start": format_time_us(w["start_us"]),
+                "end": format_time_us(w["end_us"]),
+                "status": w["status"],
+                "event_count": w["event_count"],
+            }
             for w in pending["windows"]
         ],
         "closed": [
@@ -55,8 +59,12 @@ def windows_document(engine, settings, now_us: int, limit: int) -> dict:
     }
 
 
-@router.get("/v1/windows", response_model=WindowsResponse, summary="Closed and open windows",
-            responses={401: {"model": Problem}, 403: {"model": Problem}})
+@router.get(
+    "/v1/windows",
+    response_model=WindowsResponse,
+    summary="Closed and open windows",
+    responses={401: {"model": Problem}, 403: {"model": Problem}},
+)
 async def get_windows(
     request: Request,
     limit: int = Query(200, ge=1, le=5000, description="Most recent closed windows to list."),
@@ -65,6 +73,9 @@ async def get_windows(
     """Closed windows newest first (counts, late counts, reconstruction error) and the open
     windows computed from the settings and the watermark, with their events so far."""
     return await run_in_threadpool(
-        windows_document, request.app.state.engine, request.app.state.settings,
-        time.time_ns() // 1000, limit,
+        windows_document,
+        request.app.state.engine,
+        request.app.state.settings,
+        time.time_ns() // 1000,
+        limit,
     )
