@@ -9,12 +9,13 @@ dropped afterwards. Test directories may define their own ``store_url`` to overr
 from __future__ import annotations
 
 import os
-import time
 import uuid
 from dataclasses import dataclass, field
 
 import pytest
 import sqlalchemy as sa
+
+from rolewatch.clock import now_micros
 
 POSTGRES_URL = os.environ.get("ROLEWATCH_TEST_POSTGRES_URL")
 SKIP_POSTGRES = "PostgreSQL tests need ROLEWATCH_TEST_POSTGRES_URL (CI sets it to postgresql+psycopg://postgres@127.0.0.1:5432/test)"
@@ -104,7 +105,7 @@ def app_client(app_settings):
     from rolewatch.store.keys import create_key
 
     engine = open_store(app_settings)
-    now = time.time_ns() // 1000
+    now = now_micros()
     keys = {
         scope: create_key(engine, [scope], label=f"test {scope}", now_us=now)[1]
         for scope in ("ingest", "read", "admin")

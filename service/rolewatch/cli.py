@@ -15,9 +15,10 @@ import json
 import os
 import signal
 import sys
-import time
 from collections.abc import Iterator
 from pathlib import Path
+
+from rolewatch.clock import now_micros
 
 
 class UsageError(Exception):
@@ -25,7 +26,7 @@ class UsageError(Exception):
 
 
 def _now_us() -> int:
-    return time.time_ns() // 1000
+    return now_micros()
 
 
 def _settings(args, **overrides):
@@ -82,8 +83,8 @@ def cmd_serve(args) -> int:
 
 
 def cmd_keys(args) -> int:
+    from rolewatch.clock import to_rfc3339
     from rolewatch.store import keys
-    from rolewatch.store.events import format_time_us
 
     settings = _settings(args)
     engine = _store(settings)
@@ -98,9 +99,7 @@ def cmd_keys(args) -> int:
         elif args.keys_command == "list":
             for record in keys.list_keys(engine):
                 state = (
-                    "revoked " + format_time_us(record.revoked_us)
-                    if record.revoked_us
-                    else "active"
+                    "revoked " + to_rfc3339(record.revoked_us) if record.revoked_us else "active"
                 )
                 print(
                     "\t".join(
@@ -108,7 +107,7 @@ def cmd_keys(args) -> int:
                             record.key_id,
                             ",".join(record.scopes),
                             state,
-                            format_time_us(record.created_us),
+                            to_rfc3339(record.created_us),
                             record.label or "",
                         ]
                     )

@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import json
-import time
 
 import pytest
 from sqlalchemy import select
 
+from rolewatch.clock import now_micros
 from rolewatch.config import Settings
 from rolewatch.store.db import make_engine, write_transaction
 from rolewatch.store.schema import alerts, metadata, windows
@@ -65,7 +65,7 @@ def receiver():
 
 
 def now_us() -> int:
-    return time.time_ns() // 1000
+    return now_micros()
 
 
 def store_alert(

@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from rolewatch.clock import now_micros
 from rolewatch.config import load_settings
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
@@ -132,7 +133,7 @@ def test_kill_during_window_close_leaves_no_partial_window(store_url, tmp_path):
                 engine,
                 load_settings(database_url=store_url),
                 sample_events(),
-                time.time_ns() // 1000,
+                now_micros(),
             ).accepted
             == 10839
         )

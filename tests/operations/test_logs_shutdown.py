@@ -10,6 +10,7 @@ import time
 
 import pytest
 
+from rolewatch.clock import now_micros
 from rolewatch.config import load_settings
 from rolewatch.logs import configure_logging
 from rolewatch.store.db import open_store
@@ -65,7 +66,7 @@ def test_sigterm_during_a_close_finishes_it_and_exits_0(tmp_path):
     settings = load_settings(database_url=url, training_windows=4)
     engine = open_store(settings)
     try:
-        ingest(engine, settings, sample_events(), time.time_ns() // 1000)
+        ingest(engine, settings, sample_events(), now_micros())
     finally:
         engine.dispose()
     server = Server(url, {"tick_interval": "1s", "training_windows": 4})

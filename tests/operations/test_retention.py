@@ -3,12 +3,12 @@ events the next close still needs are kept; SQLite gives the space back."""
 
 from __future__ import annotations
 
-import time
 from datetime import datetime
 
 import pytest
 import sqlalchemy as sa
 
+from rolewatch.clock import now_micros
 from rolewatch.config import load_settings
 from rolewatch.pipeline.closer import close_due_windows
 from rolewatch.store.db import open_store
@@ -40,7 +40,7 @@ def test_purge_keeps_recent_windows_memberships_and_alerts(store_url):
     engine = open_store(settings)
     try:
         sample = sample_events()[:6500]  # about six weekly windows: keeps the test short
-        now = time.time_ns() // 1000
+        now = now_micros()
         # Nothing is purged before the basis is fitted: the training windows are needed whole.
         ingest(engine, settings, sample[:1000], now)
         close_due_windows(engine, settings, now_us=now)
@@ -87,7 +87,7 @@ def test_retention_zero_keeps_everything(store_url):
     settings = load_settings(database_url=store_url, retention_windows=0)
     engine = open_store(settings)
     try:
-        ingest(engine, settings, sample_events()[:50], time.time_ns() // 1000)
+        ingest(engine, settings, sample_events()[:50], now_micros())
         assert purge_expired(engine, settings).deleted == 0
         assert _count(engine, "SELECT count(*) FROM events") == 50
     finally:
@@ -105,7 +105,7 @@ def test_hopping_windows_keep_what_the_next_close_reads(tmp_path):
     )
     engine = open_store(settings)
     try:
-        now = time.time_ns() // 1000
+        now = now_micros()
         ingest(engine, settings, sample_events()[:4500], now)
         close_due_windows(engine, settings, now_us=now)
         with engine.connect() as connection:

@@ -1,12 +1,7 @@
 """Window geometry and the watermark rule (docs: rolewatch.pipeline.windows)."""
 
-from rolewatch.pipeline.windows import (
-    StreamState,
-    WindowGeometry,
-    is_due,
-    next_window_end,
-    to_rfc3339,
-)
+from rolewatch.clock import to_rfc3339
+from rolewatch.pipeline.windows import StreamState, WindowGeometry, is_due, next_window_end
 
 DAY = 86_400 * 1_000_000
 HOUR = 3_600 * 1_000_000

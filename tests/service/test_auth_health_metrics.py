@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-import time
-
 import pytest
 from fastapi.testclient import TestClient
 from prometheus_client.parser import text_string_to_metric_families
 
 from rolewatch.api.app import create_app
+from rolewatch.clock import now_micros
 from rolewatch.store.keys import create_key, revoke_key, verify_key
 
 ROUTES = [
@@ -63,10 +62,10 @@ def test_scopes(app_client, method, path, scope):
 
 
 def test_revoked_key_is_refused(app_client):
-    record, key = create_key(app_client.engine, ["read"], now_us=time.time_ns() // 1000)
+    record, key = create_key(app_client.engine, ["read"], now_us=now_micros())
     headers = {"Authorization": f"Bearer {key}"}
     assert app_client.client.get("/v1/roles", headers=headers).status_code == 200
-    assert revoke_key(app_client.engine, record.key_id, now_us=time.time_ns() // 1000)
+    assert revoke_key(app_client.engine, record.key_id, now_us=now_micros())
     assert app_client.client.get("/v1/roles", headers=headers).status_code == 401
     assert verify_key(app_client.engine, key) is None
 

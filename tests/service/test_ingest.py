@@ -10,6 +10,7 @@ from datetime import UTC, datetime
 import pytest
 import sqlalchemy as sa
 
+from rolewatch.clock import now_micros
 from rolewatch.store.events import derived_event_id, parse_time_us
 from rolewatch.store.schema import events as events_table
 from rolewatch.store.schema import service_state, windows
@@ -51,7 +52,7 @@ def test_batch_is_stored_and_counted(app_client, make_event):
         last = connection.execute(
             sa.select(service_state.c.value).where(service_state.c.key == "last_ingest_us")
         ).scalar()
-    assert abs(int(last) - time.time_ns() // 1000) < 60_000_000
+    assert abs(int(last) - now_micros()) < 60_000_000
 
 
 def test_duplicate_batch_is_idempotent(app_client, make_event):
@@ -427,7 +428,7 @@ def test_concurrent_batches_share_commits_and_count_exactly(app_settings, make_e
 
     def post(batch):
         try:
-            results.append(ingest(engine, app_settings, batch, time.time_ns() // 1000))
+            results.append(ingest(engine, app_settings, batch, now_micros()))
         except Exception as error:  # pragma: no cover - reported below
             errors.append(error)
 

@@ -18,6 +18,8 @@ from pathlib import Path
 
 import pytest
 
+from rolewatch.clock import now_micros
+
 ROOT = Path(__file__).resolve().parents[2]
 SAMPLE = ROOT / "fixtures" / "sample" / "events.ndjson"
 SCREENSHOTS = ROOT / "artifacts" / "screenshots"
@@ -94,10 +96,10 @@ def site(browser_ready, tmp_path_factory):
     engine = open_store(settings)
     with open(SAMPLE, encoding="utf-8") as handle:
         events = [json.loads(line) for line in handle if line.strip()]
-    now_us = time.time_ns() // 1000
+    now_us = now_micros()
     result = ingest(engine, settings, events, now_us)
     assert not result.rejected, result.rejected[:3]
-    close_due_windows(engine, settings, now_us=time.time_ns() // 1000, drain=True)
+    close_due_windows(engine, settings, now_us=now_micros(), drain=True)
     # One event after the last closed window, from an account whose id is markup.
     late = ingest(
         engine,
@@ -112,7 +114,7 @@ def site(browser_ready, tmp_path_factory):
                 "weight": 3,
             }
         ],
-        time.time_ns() // 1000,
+        now_micros(),
     )
     assert late.accepted == 1
     keys = {

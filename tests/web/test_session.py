@@ -6,13 +6,13 @@ the app runs for real on a SQLite file, reached through Starlette's TestClient.
 
 from __future__ import annotations
 
-import time
 from http.cookies import SimpleCookie
 
 import pytest
 from fastapi.testclient import TestClient
 
 from rolewatch.api.app import create_app
+from rolewatch.clock import now_micros
 from rolewatch.config import load_settings
 from rolewatch.store.db import open_store
 from rolewatch.store.keys import create_key, revoke_key
@@ -26,7 +26,7 @@ def served(request, tmp_path):
         log_json=False,
     )
     engine = open_store(settings)
-    now = time.time_ns() // 1000
+    now = now_micros()
     record, key = create_key(engine, ["read"], label="web session test", now_us=now)
     with TestClient(create_app(settings, run_jobs=False), base_url=request.param) as client:
         yield client, engine, record, key, request.param.startswith("https://")
@@ -72,6 +72,6 @@ def test_revoked_key_is_signed_out(served):
     client, engine, record, key, _ = served
     client.post("/signin", data={"key": key, "next": "/"}, follow_redirects=False)
     assert client.get("/roles", follow_redirects=False).status_code == 200
-    revoke_key(engine, record.key_id, now_us=time.time_ns() // 1000)
+    revoke_key(engine, record.key_id, now_us=now_micros())
     response = client.get("/roles", follow_redirects=False)
     assert response.status_code == 303 and response.headers["location"].startswith("/signin")

@@ -12,6 +12,7 @@ import logging
 import time
 
 from rolewatch import metrics
+from rolewatch.clock import now_micros
 
 log = logging.getLogger(__name__)
 
@@ -36,7 +37,7 @@ def run_job(name: str, engine, settings) -> None:
             log.error("job %s unavailable: %s", name, error)
         return
     try:
-        function(engine, settings, now_us=time.time_ns() // 1000)
+        function(engine, settings, now_us=now_micros())
     except Exception:
         metrics.JOB_RUNS.labels(job=name, outcome="error").inc()
         log.exception("job %s failed", name, extra={"fields": {"job": name}})

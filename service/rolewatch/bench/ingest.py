@@ -21,6 +21,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 from rolewatch.bench import stop_server
+from rolewatch.clock import now_micros
 
 CASES = ("ingest-http",)
 TARGET_EVENTS_PER_S = 20_000
@@ -143,7 +144,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
         http_db, raw_db = Path(tmp) / "http.db", Path(tmp) / "raw.db"
         settings = load_settings(database_url=f"sqlite:///{http_db}")
         engine = open_store(settings)
-        key = create_key(engine, ["ingest"], label="bench", now_us=time.time_ns() // 1000)[1]
+        key = create_key(engine, ["ingest"], label="bench", now_us=now_micros())[1]
         engine.dispose()
         open_store(load_settings(database_url=f"sqlite:///{raw_db}")).dispose()
 
@@ -186,7 +187,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
             (e["id"], parse_time_us(e["time"]), e["actor"], e["target"], e["kind"], e["weight"])
             for e in events[warm * BATCH :]
         ]
-        raw_seconds = _raw_sqlite(raw_db, rows, time.time_ns() // 1000)
+        raw_seconds = _raw_sqlite(raw_db, rows, now_micros())
         stored = sqlite3.connect(http_db).execute("SELECT count(*) FROM events").fetchone()[0]
 
     http_rate = timed / http_seconds

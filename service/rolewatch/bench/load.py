@@ -23,6 +23,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 from rolewatch.bench import stop_server
+from rolewatch.clock import now_micros
 
 CASES = ("load",)
 BATCH = 500
@@ -49,7 +50,7 @@ def _prepare(database_url: str) -> tuple[str, str, int, list[str]]:
     try:
         with open(SAMPLE, encoding="utf-8") as handle:
             events = [json.loads(line) for line in handle if line.strip()]
-        now = time.time_ns() // 1000
+        now = now_micros()
         ingest(engine, settings, events, now)
         close_due_windows(engine, settings, now_us=now)
         ingest_key = create_key(engine, ["ingest"], label="bench load", now_us=now)[1]

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import os
 import secrets
-import time
+
+from rolewatch.clock import now_micros
 
 _CROCKFORD = "0123456789ABCDEFGHJKMNPQRSTVWXYZ"
 
@@ -14,7 +15,7 @@ def ulid(now_ms: int | None = None) -> str:
 
     Sorting ULIDs as text sorts them by creation time, which keeps message ids readable in logs.
     """
-    ms = int(time.time() * 1000) if now_ms is None else int(now_ms)
+    ms = now_micros() // 1000 if now_ms is None else int(now_ms)
     value = (ms & ((1 << 48) - 1)) << 80 | int.from_bytes(os.urandom(10), "big")
     chars = []
     for _ in range(26):

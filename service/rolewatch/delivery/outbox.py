@@ -8,21 +8,21 @@ retry sends identical bytes under the same ``webhook-id``; the worker only signs
 from __future__ import annotations
 
 import json
-import time
 from collections.abc import Iterable
 from typing import Any
 
 from sqlalchemy import select
 from sqlalchemy.engine import Connection
 
+from rolewatch.clock import now_micros, to_rfc3339
 from rolewatch.delivery.ids import message_id
-from rolewatch.delivery.payloads import ALERT_RAISED, ALERT_TEST, build_body, rfc3339
+from rolewatch.delivery.payloads import ALERT_RAISED, ALERT_TEST, build_body
 from rolewatch.delivery.subscriptions import _live
 from rolewatch.store.schema import deliveries, subscriptions
 
 
 def _now_us() -> int:
-    return time.time_ns() // 1000
+    return now_micros()
 
 
 def matches(subscription: Any, alert: dict[str, Any]) -> bool:
@@ -95,9 +95,9 @@ def sample_alert(settings, now_us: int) -> dict[str, Any]:
         "id": 0,
         "account": "test-account",
         "window_id": 0,
-        "window_start": rfc3339(end_us - week_us),
-        "window_end": rfc3339(end_us),
-        "created": rfc3339(now_us),
+        "window_start": to_rfc3339(end_us - week_us),
+        "window_end": to_rfc3339(end_us),
+        "created": to_rfc3339(now_us),
         "score": 1.0,
         "basis_version": "test",
         "role_before": {"id": 0, "name": "TEST role before"},

@@ -14,9 +14,10 @@ from __future__ import annotations
 import json
 import re
 import unicodedata
-from datetime import UTC, datetime
 from typing import Any
 from urllib.parse import quote
+
+from rolewatch.clock import to_rfc3339
 
 ALERT_RAISED = "alert.raised"
 ALERT_TEST = "alert.test"
@@ -27,16 +28,9 @@ _MARKUP = str.maketrans({"@": "\uff20", "<": "\u2039", ">": "\u203a"})
 _SPACES = re.compile(r"\s+")
 
 
-def rfc3339(us: int) -> str:
-    """Microseconds since the epoch as an RFC 3339 UTC timestamp (``...Z``)."""
-    moment = datetime.fromtimestamp(us / 1_000_000, tz=UTC)
-    text = moment.isoformat(timespec="microseconds" if us % 1_000_000 else "seconds")
-    return text.replace("+00:00", "Z")
-
-
 def json_body(alert: dict[str, Any], event_type: str, timestamp_us: int) -> bytes:
     """The ``json`` format: ``{"type", "timestamp", "data": <alert>}`` as compact UTF-8."""
-    document = {"type": event_type, "timestamp": rfc3339(timestamp_us), "data": alert}
+    document = {"type": event_type, "timestamp": to_rfc3339(timestamp_us), "data": alert}
     return json.dumps(document, ensure_ascii=False, separators=(",", ":")).encode("utf-8")
 
 

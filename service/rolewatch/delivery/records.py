@@ -7,7 +7,7 @@ from typing import Any
 from sqlalchemy import select, update
 from sqlalchemy.engine import Connection
 
-from rolewatch.delivery.payloads import rfc3339
+from rolewatch.clock import to_rfc3339
 from rolewatch.store.schema import deliveries, delivery_attempts, subscriptions
 
 STATUSES = ("pending", "delivered", "failed")
@@ -30,9 +30,9 @@ def delivery_view(row: Any) -> dict[str, Any]:
         "event_type": row.event_type,
         "status": row.status,
         "attempts": row.attempts,
-        "created": rfc3339(row.created_us),
-        "next_attempt": rfc3339(row.next_attempt_us) if row.status == "pending" else None,
-        "delivered": rfc3339(row.delivered_us) if row.delivered_us else None,
+        "created": to_rfc3339(row.created_us),
+        "next_attempt": to_rfc3339(row.next_attempt_us) if row.status == "pending" else None,
+        "delivered": to_rfc3339(row.delivered_us) if row.delivered_us else None,
         "last_status_code": row.last_status_code,
         "last_error": row.last_error,
     }
@@ -70,7 +70,7 @@ def get_delivery(connection: Connection, delivery_id: str) -> dict[str, Any]:
     )
     view["attempt_log"] = [
         {
-            "time": rfc3339(a.attempted_us),
+            "time": to_rfc3339(a.attempted_us),
             "status_code": a.status_code,
             "error": a.error,
             "duration_ms": a.duration_ms,

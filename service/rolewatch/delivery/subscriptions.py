@@ -13,8 +13,8 @@ from typing import Any
 from sqlalchemy import select, update
 from sqlalchemy.engine import Connection
 
+from rolewatch.clock import to_rfc3339
 from rolewatch.delivery.ids import subscription_id
-from rolewatch.delivery.payloads import rfc3339
 from rolewatch.delivery.signing import new_secret
 from rolewatch.delivery.urlguard import Resolver, check_url_for
 from rolewatch.store.schema import deliveries, subscriptions
@@ -43,12 +43,12 @@ def public_view(row: Any) -> dict[str, Any]:
         "format": row["format"],
         "min_score": row["min_score"],
         "roles": json.loads(row["roles"]) if row["roles"] else None,
-        "created": rfc3339(row["created_us"]),
+        "created": to_rfc3339(row["created_us"]),
         "paused": bool(row["paused"]),
         "paused_reason": row["paused_reason"],
         "consecutive_failures": row["consecutive_failures"],
         "rotating_until": (
-            rfc3339(row["previous_secret_until_us"])
+            to_rfc3339(row["previous_secret_until_us"])
             if row["previous_secret"] and row["previous_secret_until_us"]
             else None
         ),

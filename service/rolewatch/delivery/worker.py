@@ -34,6 +34,7 @@ from sqlalchemy import select, update
 from sqlalchemy.engine import Engine
 
 from rolewatch import metrics
+from rolewatch.clock import now_micros, now_seconds
 from rolewatch.delivery.payloads import plain
 from rolewatch.delivery.signing import webhook_headers
 from rolewatch.delivery.subscriptions import active_secrets
@@ -246,7 +247,7 @@ def send_one(
         checked = check_url_for(claim.url, settings, resolver)
     except UnsafeURL as refused:
         return result(None, f"not sent: {refused}")
-    headers = webhook_headers(claim.secrets, claim.delivery_id, int(time.time()), claim.body)
+    headers = webhook_headers(claim.secrets, claim.delivery_id, now_seconds(), claim.body)
     headers["content-type"] = "application/json"
     headers["host"] = checked.host_header
     deadline = TotalDeadline(total_s)
@@ -404,7 +405,7 @@ def deliver_due(
     ``webhook-timestamp`` header is always the wall clock at the moment of sending, because
     receivers compare it with their own clock. ``resolver`` replaces ``socket.getaddrinfo``.
     """
-    now_us = time.time_ns() // 1000 if now_us is None else now_us
+    now_us = now_micros() if now_us is None else now_us
     report = DeliveryReport()
     claims = claim_due(engine, settings, now_us)
     if not claims:

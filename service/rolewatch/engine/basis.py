@@ -510,9 +510,7 @@ class RoleBasis:
 
     # -- keeping ids across refits ----------------------------------------------
 
-    def aligned_to(
-        self, previous: RoleBasis, *, max_distance: float | None = None
-    ) -> RoleBasis:
+    def aligned_to(self, previous: RoleBasis, *, max_distance: float | None = None) -> RoleBasis:
         """Return this basis with role ids matched to ``previous`` where roles persist.
 
         Roles are matched by :func:`scipy.optimize.linear_sum_assignment` on the

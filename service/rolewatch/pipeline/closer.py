@@ -23,17 +23,11 @@ import numpy as np
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
 
+from rolewatch.clock import now_micros, to_rfc3339
 from rolewatch.pipeline.compute import PastWindow, WindowResult, compute_window, past_from_result
 from rolewatch.pipeline.loading import WindowEvents, load_window_events
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
-from rolewatch.pipeline.windows import (
-    StreamState,
-    WindowGeometry,
-    is_due,
-    next_window_end,
-    now_micros,
-    to_rfc3339,
-)
+from rolewatch.pipeline.windows import StreamState, WindowGeometry, is_due, next_window_end
 from rolewatch.store.db import lock_windows, store_lock_key, write_transaction
 from rolewatch.store.schema import alerts, events, memberships, service_state, windows
 

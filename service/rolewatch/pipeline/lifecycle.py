@@ -13,9 +13,9 @@ from __future__ import annotations
 import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 
+from rolewatch.clock import now_micros, to_rfc3339
 from rolewatch.pipeline.loading import load_window_events
 from rolewatch.pipeline.model import fit_model, load_active_model, store_model
-from rolewatch.pipeline.windows import now_micros, to_rfc3339
 from rolewatch.store.db import write_transaction
 from rolewatch.store.schema import windows
 

@@ -13,10 +13,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from rolewatch.clock import to_rfc3339
 from rolewatch.pipeline.compute import PastWindow, WindowResult, compute_window, past_from_result
 from rolewatch.pipeline.loading import WindowEvents
 from rolewatch.pipeline.model import FrozenModel, fit_model
-from rolewatch.pipeline.windows import WindowGeometry, to_rfc3339
+from rolewatch.pipeline.windows import WindowGeometry
 
 
 @dataclass(frozen=True)

@@ -18,9 +18,8 @@ A window is due when either
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import UTC, datetime
 
-MICROS = 1_000_000
+from rolewatch.clock import MICROS
 
 
 @dataclass(frozen=True)
@@ -84,16 +83,3 @@ def is_due(
     )
     holds_data = end_us - geometry.period_us <= state.max_event_us
     return idle and holds_data and end_us + geometry.lateness_us <= now_us
-
-
-def to_rfc3339(time_us: int) -> str:
-    """Microseconds since the epoch → RFC 3339 UTC with a ``Z``."""
-    moment = datetime.fromtimestamp(time_us / MICROS, tz=UTC)
-    if moment.microsecond:
-        return moment.isoformat().replace("+00:00", "Z")
-    return moment.replace(microsecond=0).isoformat().replace("+00:00", "Z")
-
-
-def now_micros() -> int:
-    """The wall clock in microseconds since the epoch (the service's only clock read)."""
-    return int(datetime.now(UTC).timestamp() * MICROS)

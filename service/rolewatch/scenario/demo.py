@@ -25,6 +25,7 @@ from pathlib import Path
 
 import httpx
 
+from rolewatch.clock import now_micros
 from rolewatch.scenario import generate
 
 
@@ -123,7 +124,7 @@ def main(args) -> int:
     )
     configure_logging(settings.log_level, json_lines=settings.log_json)
     engine = open_store(settings)
-    now_us = time.time_ns() // 1000
+    now_us = now_micros()
     _, admin_key = create_key(engine, ["admin"], label="demo", now_us=now_us)
     engine.dispose()
 

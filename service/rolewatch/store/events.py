@@ -28,6 +28,7 @@ from sqlalchemy import func, select
 from sqlalchemy.engine import Connection, Engine
 
 from rolewatch import metrics
+from rolewatch.clock import to_rfc3339
 from rolewatch.store.db import lock_windows, write_transaction
 from rolewatch.store.schema import service_state, windows
 
@@ -120,14 +121,6 @@ def parse_time_us(value: Any) -> int:
             f"time: {_show(value)} is not an RFC 3339 timestamp with offset ({error})"
         ) from None
     return (moment - EPOCH) // _ONE_US
-
-
-def format_time_us(time_us: int) -> str:
-    """Microseconds since the epoch → RFC 3339 UTC with "Z" (microseconds shown when not 0)."""
-    moment = EPOCH + timedelta(microseconds=time_us)
-    if moment.microsecond:
-        return moment.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
-    return moment.strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 def _canonical_time(time_us: int) -> str:
@@ -321,7 +314,7 @@ def validate_event(event: Any, max_time_us: int) -> tuple[str, int, str, str, st
     if time_us > max_time_us:
         raise _Reject(
             f"time: {_show(time_value)} is in the future beyond the allowed clock skew "
-            f"(latest accepted now: {format_time_us(max_time_us)}); check the sender's clock"
+            f"(latest accepted now: {to_rfc3339(max_time_us)}); check the sender's clock"
         )
     event_id = _text(event, "id", MAX_ID_CHARS, required=False)
     if event_id is None:

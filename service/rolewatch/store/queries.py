@@ -1,7 +1,7 @@
 """Read functions behind the REST API and the web pages (plus the one rename they allow).
 
 Times come back as integer microseconds (``*_us``) unless a function says it returns the API
-form; :func:`rolewatch.store.events.format_time_us` turns them into RFC 3339 "Z" strings.
+form; :func:`rolewatch.clock.to_rfc3339` turns them into RFC 3339 "Z" strings.
 """
 
 from __future__ import annotations
@@ -13,8 +13,9 @@ from typing import Any
 from sqlalchemy import and_, func, or_, select, update
 from sqlalchemy.engine import Engine
 
+from rolewatch.clock import to_rfc3339
 from rolewatch.store.db import write_transaction
-from rolewatch.store.events import _FORBIDDEN, MAX_ACCOUNT_CHARS, format_time_us
+from rolewatch.store.events import _FORBIDDEN, MAX_ACCOUNT_CHARS
 from rolewatch.store.schema import alerts, bases, events, memberships, roles, service_state, windows
 
 
@@ -314,9 +315,9 @@ def alert_form(row, names: dict[tuple[str, int], str]) -> dict[str, Any]:
         "id": row.id,
         "account": row.account,
         "window_id": row.window_id,
-        "window_start": format_time_us(row.window_start_us),
-        "window_end": format_time_us(row.window_end_us),
-        "created": format_time_us(row.created_us),
+        "window_start": to_rfc3339(row.window_start_us),
+        "window_end": to_rfc3339(row.window_end_us),
+        "created": to_rfc3339(row.created_us),
         "score": row.score,
         "basis_version": row.basis_version,
         "role_before": _role_ref(

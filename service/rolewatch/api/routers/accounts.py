@@ -8,8 +8,8 @@ from starlette.concurrency import run_in_threadpool
 from rolewatch.api.auth import require_scope
 from rolewatch.api.models import AccountHistory, Problem
 from rolewatch.api.timeparams import time_range
+from rolewatch.clock import to_rfc3339
 from rolewatch.store import queries
-from rolewatch.store.events import format_time_us
 
 router = APIRouter(tags=["accounts"])
 
@@ -25,8 +25,8 @@ def history_document(engine, account: str, from_us: int | None, to_us: int | Non
         "windows": [
             {
                 "window_id": e["window_id"],
-                "window_start": format_time_us(e["window_start_us"]),
-                "window_end": format_time_us(e["window_end_us"]),
+                "window_start": to_rfc3339(e["window_start_us"]),
+                "window_end": to_rfc3339(e["window_end_us"]),
                 "basis_version": e["basis_version"],
                 "mixture": e["mixture"],
                 "dominant_role": {

@@ -12,7 +12,7 @@ from starlette.concurrency import run_in_threadpool
 from rolewatch.api.auth import require_scope
 from rolewatch.api.models import KeyInfo, Problem, RefitRequest
 from rolewatch.api.timeparams import time_range
-from rolewatch.store.events import format_time_us
+from rolewatch.clock import to_rfc3339
 from rolewatch.store.keys import list_keys
 
 router = APIRouter(tags=["admin"])
@@ -71,8 +71,8 @@ async def get_keys(request: Request, _key=Depends(require_scope("admin"))) -> li
             "key_id": k.key_id,
             "scopes": list(k.scopes),
             "label": k.label,
-            "created": format_time_us(k.created_us),
-            "revoked": None if k.revoked_us is None else format_time_us(k.revoked_us),
+            "created": to_rfc3339(k.created_us),
+            "revoked": None if k.revoked_us is None else to_rfc3339(k.revoked_us),
         }
         for k in keys
     ]

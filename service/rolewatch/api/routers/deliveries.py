@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import time
 from typing import Literal
 
 from fastapi import APIRouter, Depends, HTTPException, Query, Request, status
@@ -11,6 +10,7 @@ from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
 from rolewatch.api.models import Problem
+from rolewatch.clock import now_micros
 from rolewatch.delivery import records
 from rolewatch.store.db import write_transaction
 
@@ -111,7 +111,7 @@ async def redeliver(
 ) -> dict:
     def work():
         with write_transaction(request.app.state.engine) as connection:
-            return records.redeliver(connection, delivery_id, now_us=time.time_ns() // 1000)
+            return records.redeliver(connection, delivery_id, now_us=now_micros())
 
     try:
         return await run_in_threadpool(work)

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import json
 import logging
-import time
 
 import orjson
 from fastapi import APIRouter, Depends, HTTPException, Request, Response, status
@@ -20,6 +19,7 @@ from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
 from rolewatch.api.models import IngestResponse, Problem
+from rolewatch.clock import now_micros
 from rolewatch.store.events import InvalidEvent, ingest
 
 router = APIRouter(tags=["events"])
@@ -183,7 +183,7 @@ async def post_events(request: Request, _key=Depends(require_scope("ingest"))) -
         raw_events = parse_json_batch(body, settings.max_batch_events)
     else:
         raw_events = parse_ndjson_batch(body, settings.max_batch_events)
-    now_us = time.time_ns() // 1000
+    now_us = now_micros()
     result = await run_in_threadpool(ingest, request.app.state.engine, settings, raw_events, now_us)
     log.debug(
         "batch ingested",

@@ -7,14 +7,14 @@ from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
 from rolewatch.api.models import Problem, RenameRole, Role, RolesResponse
+from rolewatch.clock import to_rfc3339
 from rolewatch.store import queries
-from rolewatch.store.events import format_time_us
 
 router = APIRouter(tags=["roles"])
 
 
 def _opt_time(value):
-    return None if value is None else format_time_us(value)
+    return None if value is None else to_rfc3339(value)
 
 
 @router.get(

@@ -7,7 +7,6 @@ create and rotate; no other answer carries it.
 from __future__ import annotations
 
 import math
-import time
 from typing import Literal
 
 from fastapi import APIRouter, Depends, HTTPException, Request, Response, status
@@ -16,6 +15,7 @@ from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
 from rolewatch.api.models import Problem
+from rolewatch.clock import now_micros
 from rolewatch.delivery import subscriptions as store
 from rolewatch.delivery.outbox import enqueue_test
 from rolewatch.delivery.urlguard import UnsafeURL
@@ -80,7 +80,7 @@ class TestQueued(BaseModel):
 
 
 def _now_us() -> int:
-    return time.time_ns() // 1000
+    return now_micros()
 
 
 def _engine(request: Request):

@@ -2,21 +2,19 @@
 
 from __future__ import annotations
 
-import time
-
 from fastapi import APIRouter, Depends, Query, Request
 from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
 from rolewatch.api.models import Problem, WindowsResponse
+from rolewatch.clock import now_micros, to_rfc3339
 from rolewatch.store import queries
-from rolewatch.store.events import format_time_us
 
 router = APIRouter(tags=["windows"])
 
 
 def _opt(value):
-    return None if value is None else format_time_us(value)
+    return None if value is None else to_rfc3339(value)
 
 
 def windows_document(engine, settings, now_us: int, limit: int) -> dict:
@@ -27,8 +25,8 @@ def windows_document(engine, settings, now_us: int, limit: int) -> dict:
         "latest_event": _opt(pending["max_event_us"]),
         "open": [
             {
-                "start": format_time_us(w["start_us"]),
-                "end": format_time_us(w["end_us"]),
+                "start": to_rfc3339(w["start_us"]),
+                "end": to_rfc3339(w["end_us"]),
                 "status": w["status"],
                 "event_count": w["event_count"],
             }
@@ -37,10 +35,10 @@ def windows_document(engine, settings, now_us: int, limit: int) -> dict:
         "closed": [
             {
                 "id": w["id"],
-                "start": format_time_us(w["start_us"]),
-                "end": format_time_us(w["end_us"]),
+                "start": to_rfc3339(w["start_us"]),
+                "end": to_rfc3339(w["end_us"]),
                 "status": w["status"],
-                "closed": format_time_us(w["closed_us"]),
+                "closed": to_rfc3339(w["closed_us"]),
                 "event_count": w["event_count"],
                 "account_count": w["account_count"],
                 "late_count": w["late_count"],
@@ -76,6 +74,6 @@ async def get_windows(
         windows_document,
         request.app.state.engine,
         request.app.state.settings,
-        time.time_ns() // 1000,
+        now_micros(),
         limit,
     )
