@@ -197,7 +197,7 @@ def baseline_mixture(
     t, n, k = H.shape
     if t == 0:
         return np.full((n, k), np.nan)
-    active = np.isfinite(H).all(axis=2)
+    active = np.asarray(np.isfinite(H).all(axis=2))
     if mode == "previous":
         last = (t - 1) - np.argmax(active[::-1], axis=0)
         out = H[last, np.arange(n)]
@@ -253,7 +253,7 @@ def feature_moves(names: Sequence[str], raw_before, raw_after, top: int = 5) -> 
     idx = idx[np.argsort(-np.abs(ratio[idx]), kind="stable")][: max(int(top), 0)]
     return [
         {
-            "feature": str(names[i]),
+            "feature": str(names[int(i)]),
             "before": float(before[i]),
             "after": float(after[i]),
             "log_ratio": float(ratio[i]),
