@@ -40,14 +40,6 @@ def test_empty_snapshot():
     assert isolated.n_nodes == 2 and isolated.n_edges == 0
 
 
-def test_from_frame_mapping():
-    s = Snapshot.from_frame({"actor": ["a", "b"], "target": ["b", "c"], "weight": [2.0, 3.0]})
-    assert s.weights[1, 2] == 3.0
-    assert Snapshot.from_frame({"actor": ["a"], "target": ["b"]}).weights[0, 1] == 1.0
-    with pytest.raises(ValueError, match="target"):
-        Snapshot.from_frame({"actor": ["a"]})
-
-
 @pytest.mark.parametrize(
     "actor,target,weight,message",
     [

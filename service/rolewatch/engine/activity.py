@@ -123,10 +123,3 @@ class Counterparts:
                 }
             )
         return result
-
-
-def top_counterparts(
-    snapshot: Snapshot, row: int, previous: Snapshot | None = None, *, top: int = 10
-) -> list[dict]:
-    """The accounts ``row`` dealt with most in this snapshot (see :class:`Counterparts`)."""
-    return Counterparts(snapshot, previous).top(row, top=top)

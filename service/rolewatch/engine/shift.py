@@ -23,7 +23,6 @@ __all__ = [
     "activity_change",
     "baseline_mixture",
     "feature_moves",
-    "dominant_role",
     "DISTANCES",
 ]
 
@@ -260,19 +259,3 @@ def feature_moves(names: Sequence[str], raw_before, raw_after, top: int = 5) -> 
         }
         for i in idx
     ]
-
-
-def dominant_role(mixture, role_ids: Sequence[int]) -> np.ndarray:
-    """Role id with the largest weight per row (ties: first role); -1 for NaN rows."""
-    M = _rows(mixture)
-    ids = np.asarray(role_ids, dtype=np.int64)
-    if ids.size != M.shape[1]:
-        raise ValueError(f"{ids.size} role ids for {M.shape[1]} mixture columns")
-    bad = ~np.isfinite(M).all(axis=1)
-    out = (
-        ids[np.argmax(np.where(np.isfinite(M), M, -np.inf), axis=1)]
-        if M.shape[1]
-        else np.full(M.shape[0], -1)
-    )
-    out = np.where(bad, -1, out)
-    return out

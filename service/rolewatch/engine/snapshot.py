@@ -8,7 +8,7 @@ interacted is an edge carrying the number of events and their summed weight.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -188,34 +188,6 @@ class Snapshot:
         counts.has_sorted_indices = True
         weights.has_sorted_indices = True
         return cls(nodes=np.asarray(nodes), counts=counts, weights=weights)
-
-    @classmethod
-    def from_frame(cls, frame) -> Snapshot:
-        """Build a snapshot from a mapping or data frame with ``actor``, ``target`` and optional ``weight``.
-
-        Parameters
-        ----------
-        frame : Mapping or DataFrame-like
-            Anything indexable by column name.
-
-        Returns
-        -------
-        Snapshot
-        """
-        for col in ("actor", "target"):
-            try:
-                frame[col]
-            except (KeyError, IndexError, TypeError):
-                raise ValueError(f"frame needs an {col!r} column") from None
-        weight = None
-        has_weight = (
-            ("weight" in frame)
-            if isinstance(frame, Mapping)
-            else ("weight" in getattr(frame, "columns", ()))
-        )
-        if has_weight:
-            weight = np.asarray(frame["weight"], dtype=np.float64)
-        return cls.from_events(np.asarray(frame["actor"]), np.asarray(frame["target"]), weight)
 
     @property
     def n_nodes(self) -> int:
