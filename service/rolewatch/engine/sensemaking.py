@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from itertools import pairwise
 from typing import Any
 
 import numpy as np
@@ -126,7 +127,7 @@ def _oriented_triangles(
             np.cumsum(work), np.arange(1, int(work.sum() // block_work) + 1) * block_work
         )
         edges = np.unique(np.r_[0, bounds, n].clip(0, n))
-        for lo, hi in zip(edges[:-1], edges[1:]):
+        for lo, hi in pairwise(edges):
             block = (left[lo:hi] @ U).multiply(mask_rows_of[lo:hi]).tocsr()
             t[lo:hi] += np.asarray(block.sum(axis=1)).ravel()
             if add_cols:
@@ -440,7 +441,7 @@ def describe_roles(
                 name=chosen[r],
                 description=descriptions[r],
                 measure_affinity={m: float(E[r, j]) for j, m in enumerate(names)},
-                profile={f: float(v) for f, v in zip(basis.feature_names, basis.F[r])},
+                profile={f: float(v) for f, v in zip(basis.feature_names, basis.F[r], strict=True)},
             )
         )
     return out

@@ -42,7 +42,8 @@ def _check_weights(weight: Any, n_events: int) -> np.ndarray:
         raise ValueError(f"weight must be numbers: {exc}") from None
     if w.ndim != 1 or w.shape[0] != n_events:
         raise ValueError(
-            f"weight has {w.size} values but there are {n_events} events; give one weight per event or none"
+            f"weight has {w.size} values but there are {n_events} events; "
+            "give one weight per event or none"
         )
     bad = ~np.isfinite(w)
     if bad.any():
@@ -158,7 +159,8 @@ class Snapshot:
         if missing.any():
             i = int(np.flatnonzero(missing)[0])
             raise ValueError(
-                f"{what} id {ids[i]!r} (event {i}) is not in the given nodes; list every account of the events"
+                f"{what} id {ids[i]!r} (event {i}) is not in the given nodes; "
+                "list every account of the events"
             )
         return order[pos_c]
 
