@@ -426,6 +426,20 @@ class RoleBasis:
         returned in ascending id order.  Keeping one role basis meaningful over time
         follows Rossi et al. (WWW 2012 / WSDM 2013).
 
+        Parameters
+        ----------
+        previous : RoleBasis
+            The basis whose ids persisting roles keep.
+        max_distance : float, optional
+            Largest Hellinger distance a matched pair may have; None matches every role
+            the assignment pairs.
+
+        Returns
+        -------
+        RoleBasis
+            Same profiles with re-assigned ids; ``summary["aligned_to"]`` records the
+            previous version and the matches.
+
         Raises
         ------
         FeatureMismatch
@@ -487,6 +501,15 @@ class RoleBasis:
     def from_dict(cls, d: dict) -> RoleBasis:
         """Rebuild a basis from :meth:`to_dict` output.
 
+        Parameters
+        ----------
+        d : dict
+            A stored role basis document.
+
+        Returns
+        -------
+        RoleBasis
+
         Raises
         ------
         EngineInputError
@@ -521,9 +544,19 @@ class RoleBasis:
 def role_profile_distances(A: np.ndarray, B: np.ndarray) -> np.ndarray:
     """Hellinger distances between every row of A and every row of B (each row L1-normalised).
 
-    Used to match roles across bases and as the ground cost between roles.  Hellinger
+    Used to match roles across bases (:meth:`RoleBasis.aligned_to`).  Hellinger
     distance H(p, q) = (1/sqrt 2) ||sqrt p - sqrt q||_2 (Hellinger 1909; standard
     statistics texts; recalled from memory).  All-zero rows count as uniform.
+
+    Parameters
+    ----------
+    A : ndarray, shape (k_a, f)
+    B : ndarray, shape (k_b, f)
+        Non-negative role profiles.
+
+    Returns
+    -------
+    ndarray, shape (k_a, k_b)
     """
 
     def norm(X: np.ndarray) -> np.ndarray:

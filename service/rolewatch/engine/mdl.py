@@ -131,6 +131,19 @@ def candidate_role_counts(
 ) -> list[int]:
     """The numbers of roles to try: ``[n_roles]``, or ``k_range`` clipped to the data.
 
+    Parameters
+    ----------
+    n_roles : int or None
+        A fixed number of roles, or None to let MDL choose within ``k_range``.
+    k_range : (int, int)
+        Smallest and largest k, inclusive.
+    n_features, n_rows : int
+        Shape of the reference matrix; k never exceeds either.
+
+    Returns
+    -------
+    list of int
+
     Raises
     ------
     EngineInputError

@@ -301,8 +301,10 @@ def _shift_score(
 def _bridging_rise(
     current_bridging: ArrayLike, baseline_bridging: ArrayLike, scored: np.ndarray
 ) -> np.ndarray:
-    """Rise of the bridging z-score over the baseline window, clipped at 0; NaN where not
-    scored or not finite."""
+    """Rise of the bridging z-score over the baseline window, clipped at 0.
+
+    NaN where the account is not scored or the rise is not finite.
+    """
     now = np.asarray(current_bridging, dtype=np.float64).reshape(-1)
     before = np.asarray(baseline_bridging, dtype=np.float64).reshape(-1)
     if not (now.size == before.size == scored.size):
@@ -334,7 +336,21 @@ def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:
     Base strata are powers of two of activity, ``floor(log2(1 + activity))``; going from
     the busiest stratum down, a stratum joins the next lower one until the group holds
     ``stratum_size`` valid accounts (a thin remainder at the bottom joins the group above
-    it).  Returns a group id per account, -1 where not ``valid``.
+    it). Powers of two are common practice for activity classes (no source).
+
+    Parameters
+    ----------
+    activity : array_like, shape (n,)
+        Events per account.
+    valid : array_like of bool, shape (n,)
+        Accounts to group; the others (and non-finite activity) get -1.
+    stratum_size : int
+        Fewest valid accounts per group (see :class:`ShiftPolicy`).
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+        Group id per account, 0 for the busiest group; -1 where not ``valid``.
     """
     act = np.asarray(activity, dtype=np.float64)
     valid = np.asarray(valid, dtype=bool) & np.isfinite(act)

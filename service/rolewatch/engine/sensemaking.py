@@ -73,6 +73,16 @@ def pagerank(
     spread their rank uniformly and teleportation is uniform, the convention of Page,
     Brin, Motwani & Winograd (1999) as implemented by ``networkx.pagerank``.
 
+    Parameters
+    ----------
+    adjacency : sparse matrix, shape (n, n)
+    alpha : float
+        Damping factor (probability of following a link).
+    tol : float
+        Stop when the L1 change of the scores is below ``n * tol``.
+    max_iter : int
+        Most power iterations.
+
     Returns
     -------
     ndarray, shape (n,)
@@ -142,6 +152,10 @@ def clustering_coefficient(adjacency: sp.spmatrix) -> tuple[np.ndarray, np.ndarr
     of distinct neighbours (Watts & Strogatz 1998); 0 when d_i < 2, as in
     ``networkx.clustering``.  Direction and weights are ignored.
 
+    Parameters
+    ----------
+    adjacency : sparse matrix, shape (n, n)
+
     Returns
     -------
     clustering, triangles : ndarray, shape (n,)
@@ -180,6 +194,10 @@ def betweenness(
     batch : int, optional
         Sources per block (memory is about 4 * batch * n * 8 bytes); chosen
         automatically when None.
+
+    Returns
+    -------
+    ndarray, shape (n,)
     """
     A = _binary(adjacency)
     A = _binary(A + A.T)

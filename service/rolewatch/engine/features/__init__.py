@@ -19,7 +19,8 @@ graph mining using recursive structural features", KDD 2011. The method:
 
 :meth:`FeatureRecipe.discover` runs this on reference snapshots and freezes the outcome
 (kept features and bin edges) so that :meth:`FeatureRecipe.transform` produces exactly the
-same columns, binned on the same scale, for every later window (:mod:`.recipe`).
+same columns, binned on the same scale, for every later window (:mod:`.recipe`, with
+its parameters checked in :mod:`.parameters`).
 """
 
 from .binning import apply_bins, bin_dtype, bin_edges, max_bins

@@ -54,6 +54,14 @@ class FeatureDef:
 def parse_feature(name: str) -> FeatureDef:
     """Feature definition from its readable name, e.g. ``mean_out(sum_in(degree))``.
 
+    Parameters
+    ----------
+    name : str
+
+    Returns
+    -------
+    FeatureDef
+
     Raises
     ------
     ValueError
@@ -72,12 +80,31 @@ def parse_feature(name: str) -> FeatureDef:
 
 
 def base_definitions() -> list[FeatureDef]:
-    """The base features, candidates of the first discovery round."""
+    """The base features, candidates of the first discovery round.
+
+    Returns
+    -------
+    list of FeatureDef
+        One per :data:`BASE_FEATURES` entry, round 0.
+    """
     return [FeatureDef(name, name, None, 0) for name in BASE_FEATURES]
 
 
 def children_of(parents: Sequence[FeatureDef], round_: int) -> list[FeatureDef]:
-    """Every aggregate of every parent: the candidates of recursive round ``round_``."""
+    """Every aggregate of every parent: the candidates of recursive round ``round_``.
+
+    Parameters
+    ----------
+    parents : sequence of FeatureDef
+        Features kept by the previous round.
+    round_ : int
+        The round the children belong to.
+
+    Returns
+    -------
+    list of FeatureDef
+        ``op(parent)`` for each parent, then each op of :data:`AGGREGATES`.
+    """
     return [FeatureDef(f"{op}({d.name})", op, d.name, round_) for d in parents for op in AGGREGATES]
 
 
@@ -125,6 +152,16 @@ def compute_features(graph: SnapshotGraph, defs: Sequence[FeatureDef]) -> np.nda
     Features are evaluated round by round (ReFeX, Henderson et al., KDD 2011), each
     straight into its output column from its parent's column, both contiguous in the
     Fortran-ordered matrix.
+
+    Parameters
+    ----------
+    graph : SnapshotGraph
+    defs : sequence of FeatureDef
+
+    Returns
+    -------
+    numpy.ndarray
+        n x len(defs) float64, Fortran order, column j holding ``defs[j]``.
 
     Raises
     ------

@@ -147,6 +147,18 @@ def raw_columns(
 
     The columns are views of one Fortran-ordered block, filled by :func:`compute_into`,
     the same evaluation :meth:`FeatureRecipe.transform` uses.
+
+    Parameters
+    ----------
+    graph : SnapshotGraph
+    defs : sequence of FeatureDef
+    parents : dict of str to numpy.ndarray
+        Raw columns of the parents of the recursive features in ``defs``.
+
+    Returns
+    -------
+    list of numpy.ndarray
+        One length-n float64 column per definition.
     """
     block = np.empty((graph.n, len(defs)), order="F")
     columns = [block[:, j] for j in range(len(defs))]

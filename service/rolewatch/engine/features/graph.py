@@ -130,7 +130,17 @@ class SnapshotGraph:
         return self._get("R", lambda: sp.csr_matrix(self.A.multiply(self.AT)))
 
     def adjacency_of(self, direction: str) -> sp.csr_matrix:
-        """Matrix whose row ``v`` lists the ``direction`` neighbours of ``v``."""
+        """Matrix whose row ``v`` lists the ``direction`` neighbours of ``v``.
+
+        Parameters
+        ----------
+        direction : {"in", "out", "all"}
+
+        Returns
+        -------
+        scipy.sparse.csr_matrix
+            :attr:`AT`, :attr:`A` or :attr:`S`.
+        """
         return {"in": self.AT, "out": self.A, "all": self.S}[direction]
 
     def degree_of(self, direction: str) -> np.ndarray:
@@ -152,7 +162,17 @@ class SnapshotGraph:
         return self._get("tri", lambda: triangle_counts(self.S, self.R))
 
     def base(self, name: str) -> np.ndarray:
-        """One base feature column (float64, length n; see the module table).
+        """One base feature column (see the module table).
+
+        Parameters
+        ----------
+        name : str
+            One of :data:`BASE_FEATURES`.
+
+        Returns
+        -------
+        numpy.ndarray
+            float64, length n; cached, do not modify.
 
         Raises
         ------

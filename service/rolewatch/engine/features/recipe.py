@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -23,12 +22,12 @@ from .binning import apply_bins, bin_dtype, bin_edges
 from .definitions import FeatureDef, compute_features, parse_feature
 from .discovery import discover_features
 from .graph import SnapshotGraph
+from .parameters import check_binning, check_parameters
 
-__all__ = ["BINNING_MODES", "FeatureRecipe", "FeatureTable"]
+__all__ = ["FeatureRecipe", "FeatureTable"]
 
 FORMAT = "rolewatch.feature-recipe"
 FORMAT_VERSION = 1
-BINNING_MODES = ("frozen", "relative")
 
 
 @dataclass(frozen=True)
@@ -59,6 +58,17 @@ class FeatureTable:
 
     def column(self, name: str, *, binned: bool = False) -> np.ndarray:
         """One feature column by name.
+
+        Parameters
+        ----------
+        name : str
+        binned : bool
+            The bin indices instead of the raw values.
+
+        Returns
+        -------
+        numpy.ndarray
+            A view of length n.
 
         Raises
         ------
@@ -254,7 +264,7 @@ class FeatureRecipe:
         if not isinstance(snapshot, Snapshot):
             raise TypeError(f"transform expects a Snapshot, got {type(snapshot).__name__}")
         mode = self.binning if binning is None else binning
-        _check_binning(mode)
+        check_binning(mode)
         raw = compute_features(SnapshotGraph(snapshot), self.features)
         edges: Sequence[np.ndarray]
         if mode == "frozen":
@@ -307,6 +317,15 @@ class FeatureRecipe:
     def from_dict(cls, d: dict[str, Any]) -> FeatureRecipe:
         """Rebuild a recipe from :meth:`to_dict` output; checks format and version.
 
+        Parameters
+        ----------
+        d : dict
+            A stored recipe; one written before ``tolerance_step`` existed reads it as 0.
+
+        Returns
+        -------
+        FeatureRecipe
+
         Raises
         ------
         ValueError
@@ -357,35 +376,6 @@ def _features_from_dicts(
             raise ValueError(f"feature {f['name']!r} has invalid bin edges")
         edges.append(e)
     return tuple(defs), tuple(edges)
-
-
-def check_parameters(
-    *, bin_fraction: float, tolerance: float, tolerance_step: float, binning: str, max_rounds: int
-) -> None:
-    """Check every recipe parameter under its own name.
-
-    Raises
-    ------
-    ValueError
-        The message names the first parameter out of range and what it must be.
-    """
-    if not (0.0 < float(bin_fraction) < 1.0):
-        raise ValueError(f"bin_fraction must be between 0 and 1 (exclusive), got {bin_fraction!r}")
-    _check_non_negative("tolerance", tolerance)
-    _check_non_negative("tolerance_step", tolerance_step)
-    _check_binning(binning)
-    if int(max_rounds) != max_rounds or max_rounds < 0:
-        raise ValueError(f"max_rounds must be an integer >= 0, got {max_rounds!r}")
-
-
-def _check_non_negative(name: str, value: float) -> None:
-    if not (float(value) >= 0.0) or not math.isfinite(float(value)):
-        raise ValueError(f"{name} must be a finite number >= 0, got {value!r}")
-
-
-def _check_binning(binning: str) -> None:
-    if binning not in BINNING_MODES:
-        raise ValueError(f"binning must be one of {BINNING_MODES}, got {binning!r}")
 
 
 def _canonical(body: dict[str, Any]) -> str:
