@@ -20,7 +20,7 @@ def _random_events(seed: int, n: int = 40, m: int = 300):
 
 def _multigraph(actor, target, weight):
     graph = nx.MultiDiGraph()
-    for a, t, w in zip(actor, target, weight):
+    for a, t, w in zip(actor, target, weight, strict=True):
         graph.add_edge(a, t, weight=w)
     return graph
 

@@ -5,8 +5,9 @@ import pytest
 from scipy.optimize import nnls
 from sklearn.decomposition import NMF
 
-from rolewatch.engine.basis import RoleBasis, description_length
+from rolewatch.engine.basis import RoleBasis
 from rolewatch.engine.errors import FeatureMismatch, RecipeMismatch, TooManyRoles
+from rolewatch.engine.mdl import description_length
 
 from .roles_data import Table, planted_roles
 
@@ -30,7 +31,9 @@ def test_description_length_parts_follow_the_rolx_definition():
     model, error = description_length(V, G, F, bits_per_value=4)
     assert model == 4 * 3 * (20 + 7)
     R = G @ F
-    kl = sum(v * np.log(v / r) - v + r if v > 0 else r for v, r in zip(V.ravel(), R.ravel()))
+    kl = sum(
+        v * np.log(v / r) - v + r if v > 0 else r for v, r in zip(V.ravel(), R.ravel(), strict=True)
+    )
     assert error == pytest.approx(kl / np.log(2), rel=1e-10)
     assert description_length(V, *_exact(V), 4)[1] == pytest.approx(0.0, abs=1e-6)
 
@@ -188,8 +191,8 @@ def test_aligned_to_recovers_ids_of_permuted_roles():
         recipe_version="recipe-a",
     )
     back = shuffled.aligned_to(basis)
-    original = dict(zip(basis.role_ids, basis.F))
-    for rid, row in zip(back.role_ids, back.F):
+    original = dict(zip(basis.role_ids, basis.F, strict=True))
+    for rid, row in zip(back.role_ids, back.F, strict=True):
         np.testing.assert_array_equal(row, original[rid])
     assert back.summary["aligned_to"]["version"] == basis.version
 

@@ -1,5 +1,7 @@
 """ReFeX features (Henderson et al., KDD 2011): binning, pruning, recipe lifecycle, bad input."""
 
+import dataclasses
+import hashlib
 import json
 
 import numpy as np
@@ -15,6 +17,8 @@ from rolewatch.engine.features import (
     prune_agreeing,
     triangles_per_node,
 )
+from rolewatch.engine.features.definitions import compute_features, parse_feature
+from rolewatch.engine.features.graph import SnapshotGraph
 
 # Tolerance 0 in every round: every feature a test compares stays in the recipe.
 UNPRUNED = {"tolerance": 0.0, "tolerance_step": 0.0}
@@ -177,6 +181,45 @@ def test_recipe_round_trip_and_version():
         recipe.binning = "frozen"
 
 
+def test_version_is_the_sha256_of_the_canonical_body():
+    # A stored recipe written by hand; its version is recomputed with the standard library
+    # (sha256, FIPS 180-4; JSON with sorted keys and no spaces), independently of the engine.
+    body = {
+        "format": "rolewatch.feature-recipe",
+        "format_version": 1,
+        "bin_fraction": 0.5,
+        "tolerance": 1.0,
+        "tolerance_step": 1.0,
+        "binning": "frozen",
+        "max_rounds": 3,
+        "reference": {"snapshots": 1, "rows": 4, "rounds": 1},
+        "features": [
+            {"name": "degree", "op": "degree", "parent": None, "round": 0, "edges": [1.0]},
+            {
+                "name": "mean_out(degree)",
+                "op": "mean_out",
+                "parent": "degree",
+                "round": 1,
+                "edges": [0.5, 2.0],
+            },
+        ],
+    }
+    canonical = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+    expected = hashlib.sha256(canonical.encode()).hexdigest()[:12]
+    recipe = FeatureRecipe.from_dict({**body, "version": expected})
+    assert recipe.version == expected
+    assert recipe.to_dict() == {**body, "version": expected}
+    assert recipe.names == ("degree", "mean_out(degree)")
+    # a frozen dataclass: a changed copy gets its own version, the original keeps its own
+    relative = dataclasses.replace(recipe, binning="relative")
+    assert relative.version != recipe.version == expected
+    assert relative == FeatureRecipe.from_dict({**body, "binning": "relative"})
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        recipe.tolerance = 2.0
+    with pytest.raises(ValueError, match="read-only"):
+        recipe.edges["degree"][0] = 3.0
+
+
 def test_frozen_vs_relative_binning_on_a_later_window():
     reference = random_snapshot(2)
     later = random_snapshot(3, n=80, m=900)  # busier window
@@ -205,10 +248,8 @@ def test_transform_computes_only_needed_features():
     ]
     body.pop("version")
     local = FeatureRecipe.from_dict(body)
-    from rolewatch.engine.features import _compute, _Graph, _parse
-
-    g = _Graph(snap)
-    _compute(g, [_parse(n) for n in local.names])
+    g = SnapshotGraph(snap)
+    compute_features(g, [parse_feature(n) for n in local.names])
     assert "tri" not in g._cache  # the triangle kernel was never run
     np.testing.assert_array_equal(
         local.transform(snap).raw,
@@ -250,18 +291,35 @@ def test_all_zero_columns_are_pruned_to_one():
     assert len(zero_cols) <= 1
 
 
-@pytest.mark.parametrize(
-    "kwargs,message",
-    [
-        ({"bin_fraction": 1.0}, "bin_fraction"),
-        ({"tolerance": -1.0}, "tolerance"),
-        ({"binning": "sometimes"}, "binning"),
-        ({"max_rounds": -1}, "max_rounds"),
-    ],
-)
-def test_bad_parameters(kwargs, message):
+BAD_PARAMETERS = [
+    ({"bin_fraction": 1.0}, r"^bin_fraction must be between 0 and 1 \(exclusive\), got 1\.0$"),
+    ({"bin_fraction": 0.0}, r"^bin_fraction must be between 0 and 1 \(exclusive\), got 0\.0$"),
+    ({"tolerance": -1.0}, r"^tolerance must be a finite number >= 0, got -1\.0$"),
+    ({"tolerance": float("inf")}, r"^tolerance must be a finite number >= 0, got inf$"),
+    ({"tolerance_step": -0.5}, r"^tolerance_step must be a finite number >= 0, got -0\.5$"),
+    ({"tolerance_step": float("nan")}, r"^tolerance_step must be a finite number >= 0, got nan$"),
+    (
+        {"binning": "sometimes"},
+        r"^binning must be one of \('frozen', 'relative'\), got 'sometimes'$",
+    ),
+    ({"max_rounds": -1}, r"^max_rounds must be an integer >= 0, got -1$"),
+    ({"max_rounds": 1.5}, r"^max_rounds must be an integer >= 0, got 1\.5$"),
+]
+
+
+@pytest.mark.parametrize("kwargs,message", BAD_PARAMETERS)
+def test_bad_parameters_are_named_in_the_message(kwargs, message):
     with pytest.raises(ValueError, match=message):
         FeatureRecipe.discover([random_snapshot(0)], **kwargs)
+
+
+@pytest.mark.parametrize("kwargs,message", BAD_PARAMETERS)
+def test_stored_recipe_with_a_bad_parameter_names_it(kwargs, message):
+    body = FeatureRecipe.discover([random_snapshot(0)], max_rounds=0).to_dict()
+    body.pop("version")
+    body.update(kwargs)
+    with pytest.raises(ValueError, match=message):
+        FeatureRecipe.from_dict(body)
 
 
 def test_no_snapshots_is_an_error():
@@ -282,9 +340,7 @@ def test_hub_with_50000_leaves_and_a_few_triangles():
     hub = s.index_of(["hub"])[0]
     assert tri[hub] == 3
     assert tri.sum() == 9  # 3 triangles x 3 corners
-    from rolewatch.engine.features import _Graph
-
-    g = _Graph(s)
+    g = SnapshotGraph(s)
     assert g.base("ego_edges")[hub] == 50_000 + 3
     assert g.base("ego_boundary_edges")[hub] == 0
     assert g.base("ego_arcs_within")[hub] == 50_000 + 3

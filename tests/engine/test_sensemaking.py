@@ -59,7 +59,7 @@ def test_pagerank_on_weighted_directed_graph_with_dangling_nodes():
     snap = Snapshot.from_events([ids[i] for i in a], [ids[j] for j in b], nodes=ids)
     D = nx.DiGraph()
     D.add_nodes_from(range(n))
-    for i, j in zip(a, b):
+    for i, j in zip(a, b, strict=True):
         w = D.get_edge_data(i, j, {"weight": 0})["weight"]
         D.add_edge(int(i), int(j), weight=w + 1)
     ref = nx.pagerank(D, weight="weight", tol=1e-13, max_iter=10_000)

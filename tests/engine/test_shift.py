@@ -5,7 +5,6 @@ from rolewatch.engine.shift import (
     activity_change,
     baseline_mixture,
     cosine_distance,
-    dominant_role,
     feature_moves,
     hellinger,
     jensen_shannon,
@@ -100,8 +99,3 @@ def test_feature_moves_ranks_by_log_ratio_and_keeps_raw_values():
     assert feature_moves(names, [0, 0, 0, 0], [1, 2, 3, 4], top=2)[0]["feature"] == "triangles"
     with pytest.raises(ValueError):
         feature_moves(names, [1, 2], [1, 2])
-
-
-def test_dominant_role():
-    mix = np.array([[0.1, 0.7, 0.2], [0.5, 0.5, 0.0], [np.nan] * 3])
-    np.testing.assert_array_equal(dominant_role(mix, [4, 9, 2]), [9, 4, -1])

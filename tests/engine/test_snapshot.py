@@ -40,14 +40,6 @@ def test_empty_snapshot():
     assert isolated.n_nodes == 2 and isolated.n_edges == 0
 
 
-def test_from_frame_mapping():
-    s = Snapshot.from_frame({"actor": ["a", "b"], "target": ["b", "c"], "weight": [2.0, 3.0]})
-    assert s.weights[1, 2] == 3.0
-    assert Snapshot.from_frame({"actor": ["a"], "target": ["b"]}).weights[0, 1] == 1.0
-    with pytest.raises(ValueError, match="target"):
-        Snapshot.from_frame({"actor": ["a"]})
-
-
 @pytest.mark.parametrize(
     "actor,target,weight,message",
     [
@@ -72,7 +64,8 @@ def test_event_outside_explicit_nodes_and_duplicate_nodes():
 
 
 def test_matches_a_plain_dictionary_count():
-    # independent check: a dict accumulation over the same random events (common practice, no source)
+    # independent check: a dict accumulation over the same random events
+    # (common practice, no source)
     rng = np.random.default_rng(3)
     ids = np.array([f"m{i}" for i in range(30)])
     a, t = rng.integers(0, 30, 500), rng.integers(0, 30, 500)
@@ -80,11 +73,11 @@ def test_matches_a_plain_dictionary_count():
     a, t, w = ids[a[keep]], ids[t[keep]], rng.random(keep.sum())
     s = Snapshot.from_events(a, t, w)
     expect_c, expect_w = {}, {}
-    for x, y, z in zip(a.tolist(), t.tolist(), w.tolist()):
+    for x, y, z in zip(a.tolist(), t.tolist(), w.tolist(), strict=True):
         expect_c[(x, y)] = expect_c.get((x, y), 0) + 1
         expect_w[(x, y)] = expect_w.get((x, y), 0.0) + z
     coo = s.counts.tocoo()
-    got = {(s.nodes[i], s.nodes[j]): v for i, j, v in zip(coo.row, coo.col, coo.data)}
+    got = {(s.nodes[i], s.nodes[j]): v for i, j, v in zip(coo.row, coo.col, coo.data, strict=True)}
     assert got == expect_c
     for (x, y), v in expect_w.items():
         i, j = s.index_of([x, y])

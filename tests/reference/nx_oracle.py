@@ -33,7 +33,7 @@ def snapshot_to_digraph(snapshot) -> nx.DiGraph:
     g.add_nodes_from(range(snapshot.n_nodes))
     c = snapshot.counts.tocoo()
     w = snapshot.weights.tocsr()
-    for i, j, cnt in zip(c.row.tolist(), c.col.tolist(), c.data.tolist()):
+    for i, j, cnt in zip(c.row.tolist(), c.col.tolist(), c.data.tolist(), strict=True):
         g.add_edge(i, j, count=cnt, weight=float(w[i, j]))
     return g
 

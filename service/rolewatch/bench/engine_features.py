@@ -131,11 +131,12 @@ def oracle_ratio_case(n_edges: int = 50_000, n_nodes: int = 10_000) -> dict:
     sys.path.insert(0, str(Path(__file__).resolve().parents[3] / "tests" / "reference"))
     import nx_oracle  # noqa: E402  (tests/reference, needs networkx)
 
-    from rolewatch.engine.features import BASE_FEATURES, _Graph
+    from rolewatch.engine.features import BASE_FEATURES
+    from rolewatch.engine.features.graph import SnapshotGraph
 
     snap, _ = _snapshot(n_edges, n_nodes, seed=1)
     t0 = time.perf_counter()
-    g = _Graph(snap)
+    g = SnapshotGraph(snap)
     ours = np.column_stack([g.base(name) for name in BASE_FEATURES])
     ours_s = time.perf_counter() - t0
     t0 = time.perf_counter()
@@ -172,14 +173,14 @@ def triangles_vs_igraph_case(n_edges: int = 1_000_000, n_nodes: int = 200_000) -
             {"skipped": "igraph is not installed (optional bench dependency: pip install igraph)"}
         )
         return out
-    from rolewatch.engine.features import _binary, _triangle_parts
+    from rolewatch.engine.features.triangles import binary_pattern, triangle_counts
 
     snap, _ = _snapshot(n_edges, n_nodes)
-    A = _binary(snap.counts)
+    A = binary_pattern(snap.counts)
     t0 = time.perf_counter()
-    S = _binary(A + A.T)
+    S = binary_pattern(A + A.T)
     S.sort_indices()
-    ours, _ = _triangle_parts(S, None)
+    ours, _ = triangle_counts(S, None)
     ours_s = time.perf_counter() - t0
     upper = S.tocoo()
     keep = upper.row < upper.col

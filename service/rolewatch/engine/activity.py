@@ -36,6 +36,7 @@ class Activity:
 
     @property
     def events(self) -> np.ndarray:
+        """Events the account sent or received (the activity that sets its stratum)."""
         return self.events_out + self.events_in
 
 
@@ -59,7 +60,20 @@ def _pattern_in_node_space(previous: Snapshot, current: Snapshot) -> sp.csr_matr
 
 
 def activity_counts(snapshot: Snapshot, previous: Snapshot | None = None) -> Activity:
-    """Events out/in, distinct counterparts and new counterparts for every node."""
+    """Events out/in, distinct counterparts and new counterparts for every node.
+
+    Parameters
+    ----------
+    snapshot : Snapshot
+        The current window.
+    previous : Snapshot, optional
+        The window before; without it every counterpart counts as new.
+
+    Returns
+    -------
+    Activity
+        In ``snapshot``'s node order.
+    """
     events_out = np.asarray(snapshot.counts.sum(axis=1)).ravel().round().astype(np.int64)
     events_in = np.asarray(snapshot.counts.sum(axis=0)).ravel().round().astype(np.int64)
     current = _undirected_pattern(snapshot)
@@ -78,6 +92,13 @@ class Counterparts:
 
     Transposes and previous-window neighbour patterns are built once, so listing the top
     counterparts of thousands of alerted accounts costs a row slice each.
+
+    Parameters
+    ----------
+    snapshot : Snapshot
+        The current window.
+    previous : Snapshot, optional
+        The window before, to flag counterparts that are new.
     """
 
     def __init__(self, snapshot: Snapshot, previous: Snapshot | None = None) -> None:
@@ -96,8 +117,19 @@ class Counterparts:
     def top(self, row: int, *, top: int = 10) -> list[dict]:
         """The accounts ``row`` dealt with most, by event count then weight.
 
-        Each entry: ``{"account", "direction" (out|in|both), "events", "weight", "new"}``;
-        ``new`` means no interaction with that account in the previous snapshot.
+        Parameters
+        ----------
+        row : int
+            The account's row in the snapshot.
+        top : int
+            Most counterparts listed.
+
+        Returns
+        -------
+        list of dict
+            ``{"account", "direction" (out|in|both), "events", "weight", "new"}`` per
+            counterpart, most events first, then most weight; ``new`` means no
+            interaction with that account in the previous snapshot.
         """
         counts = (self._out_counts[row] + self._in_counts[row]).tocsr()
         if counts.nnz == 0:
@@ -123,10 +155,3 @@ class Counterparts:
                 }
             )
         return result
-
-
-def top_counterparts(
-    snapshot: Snapshot, row: int, previous: Snapshot | None = None, *, top: int = 10
-) -> list[dict]:
-    """The accounts ``row`` dealt with most in this snapshot (see :class:`Counterparts`)."""
-    return Counterparts(snapshot, previous).top(row, top=top)

@@ -13,18 +13,21 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
-import warnings
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 from scipy.optimize import linear_sum_assignment
-from sklearn.decomposition import NMF
-from sklearn.exceptions import ConvergenceWarning
 
 from .errors import EngineInputError, FeatureMismatch, RecipeMismatch, TooManyRoles
+from .mdl import (
+    EPS,
+    candidate_role_counts,
+    choose_roles,
+    default_bits_per_value,
+    description_length,
+)
 from .nnls import nnls_normal
 
 __all__ = [
@@ -36,7 +39,6 @@ __all__ = [
 
 _FORMAT = "rolewatch.role_basis"
 _FORMAT_VERSION = 1
-_EPS = 1e-12
 
 
 @dataclass(frozen=True, eq=False)
@@ -99,11 +101,13 @@ def _valid_rows(V: np.ndarray) -> np.ndarray:
     if V.dtype.kind == "u" or not V.size:
         return np.ones(V.shape[0], dtype=bool)
     if V.dtype.kind == "i":
-        return (V >= 0).all(axis=1)
-    return np.isfinite(V).all(axis=1) & (V >= 0).all(axis=1)
+        return np.asarray((V >= 0).all(axis=1))
+    return np.asarray(np.isfinite(V).all(axis=1) & (V >= 0).all(axis=1))
 
 
-def _float_blocks(V: np.ndarray, rows_per_block: int = 16_384):
+def _float_blocks(
+    V: np.ndarray, rows_per_block: int = 16_384
+) -> Iterator[tuple[slice, np.ndarray]]:
     """Yield ``(row slice, float64 copy of those rows of V)``, a block at a time.
 
     Memberships of a million-row window then need a few MB of float64 at once instead
@@ -132,80 +136,32 @@ def _stack(tables: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]
     return np.vstack([p[0] for p in parts], dtype=np.float64), names, version
 
 
-# ---------------------------------------------------------------------------
-# minimum description length (RolX model selection)
-# ---------------------------------------------------------------------------
+def _reference_rows(tables: Any) -> tuple[np.ndarray, tuple[str, ...], str | None, int]:
+    """Stacked usable reference rows, feature names, recipe version and rows dropped.
 
+    Rows with NaN, inf or negative values are left out; plain arrays get names
+    ``f0, f1, ...``.
 
-def default_bits_per_value(V: np.ndarray) -> int:
-    """Bits b used to encode one value of G or F in the RolX model cost.
-
-    RolX quantises the entries of G and F before counting their cost (Henderson et al.,
-    KDD 2012, Section 3, recalled from memory).  We take b as the number of bits needed
-    to tell apart the distinct non-zero values of V, ``ceil(log2(#distinct + 1))``,
-    clipped to [1, 32]: a factorisation is never encoded more finely than the data it
-    explains.  For binned ReFeX features (small integers) this is a few bits.
+    Raises
+    ------
+    EngineInputError
+        No usable row, or every value is zero.
     """
-    nz = V[V > 0]
-    distinct = np.unique(nz).size if nz.size else 0
-    return int(min(32, max(1, math.ceil(math.log2(distinct + 1)))))
-
-
-def description_length(
-    V: np.ndarray, G: np.ndarray, F: np.ndarray, bits_per_value: int
-) -> tuple[float, float]:
-    """Model and error description lengths (bits) of V ~ G F, as in RolX.
-
-    Parameters
-    ----------
-    V : ndarray, shape (n, f)
-    G : ndarray, shape (n, k)
-    F : ndarray, shape (k, f)
-    bits_per_value : int
-        b, the bits spent per entry of G and F.
-
-    Returns
-    -------
-    model_bits, error_bits : float
-        ``M = b * k * (n + f)`` and ``E = sum_ij V_ij log(V_ij / R_ij) - V_ij + R_ij``
-        (the generalised Kullback-Leibler divergence of V from R = G F) converted from
-        nats to bits.
-
-    Notes
-    -----
-    Henderson et al., KDD 2012, Section 3 ("model selection"), recalled from memory:
-    the total description length is L = M + E with M = b k (n + f) for the quantised
-    factors and E the KL-divergence cost of encoding V given G F; RolX picks the k with
-    the smallest L.  Entries where V = 0 contribute R_ij; entries where R_ij = 0 but
-    V_ij > 0 are floored at a tiny R to keep E finite.
-    """
-    n, f = V.shape
-    k = F.shape[0]
-    R = np.maximum(G @ F, _EPS)
-    pos = V > 0
-    err = float(np.sum(V[pos] * np.log(V[pos] / R[pos])) - V.sum() + R.sum())
-    return float(bits_per_value * k * (n + f)), max(err, 0.0) / math.log(2)
-
-
-def _fit_nmf(V: np.ndarray, k: int, seed: int) -> tuple[np.ndarray, np.ndarray, float]:
-    """One scikit-learn NMF fit (coordinate descent, Frobenius loss, NNDSVDa start).
-
-    scikit-learn's default stopping rule (tol 1e-4, 500 iterations); the memberships are
-    refitted exactly afterwards, so F only needs to be a good basis.
-    """
-    model = NMF(
-        n_components=k,
-        init="nndsvda",
-        solver="cd",
-        beta_loss="frobenius",
-        max_iter=500,
-        tol=1e-4,
-        random_state=seed,
-    )
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ConvergenceWarning)
-        G = model.fit_transform(V)
-    return G, model.components_, float(model.reconstruction_err_)
+    V, names, recipe_version = _stack(tables)
+    n_all, f = V.shape
+    V = V[_valid_rows(V)]
+    if names is None:
+        names = tuple(f"f{j}" for j in range(f))
+    if V.shape[0] == 0 or f == 0:
+        raise EngineInputError(
+            "no usable rows to fit roles on (every row has NaN, inf or negative "
+            "values, or the table is empty)"
+        )
+    if not (V > 0).any():
+        raise EngineInputError(
+            "every feature value is zero; roles need a reference period with activity"
+        )
+    return V, names, recipe_version, int(n_all - V.shape[0])
 
 
 def _normalise_profiles(G: np.ndarray, F: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -359,75 +315,23 @@ class RoleBasis:
         V ~ G F by scikit-learn ``NMF`` (Henderson et al., KDD 2012, Section 3); the
         model selection follows :func:`description_length`.
         """
-        V, names, recipe_version = _stack(tables)
-        n_all, f = V.shape
-        valid = _valid_rows(V)
-        V = V[valid]
-        n = V.shape[0]
-        if names is None:
-            names = tuple(f"f{j}" for j in range(f))
-        if n == 0 or f == 0:
-            raise EngineInputError(
-                "no usable rows to fit roles on (every row has NaN, inf or negative "
-                "values, or the table is empty)"
-            )
-        if not (V > 0).any():
-            raise EngineInputError(
-                "every feature value is zero; roles need a reference period with activity"
-            )
+        V, names, recipe_version, dropped = _reference_rows(tables)
+        n, f = V.shape
         b = int(bits_per_value) if bits_per_value is not None else default_bits_per_value(V)
-        if n_roles is not None:
-            k = int(n_roles)
-            if k < 1:
-                raise EngineInputError(f"n_roles must be at least 1, got {k}")
-            if k > f or k > n:
-                raise TooManyRoles(
-                    f"asked for {k} roles but the reference matrix has only {f} features "
-                    f"and {n} usable rows; ask for at most {min(f, n)} roles"
-                )
-            candidates = [k]
-        else:
-            lo, hi = int(k_range[0]), int(k_range[1])
-            if lo < 1 or hi < lo:
-                raise EngineInputError(
-                    f"k_range must be (lo, hi) with 1 <= lo <= hi, got {k_range}"
-                )
-            hi = min(hi, f, n)
-            lo = min(lo, hi)
-            candidates = list(range(lo, hi + 1))
-        sample = V
-        if len(candidates) > 1 and mdl_max_rows is not None and n > mdl_max_rows:
-            pick = np.random.default_rng(seed).choice(n, size=int(mdl_max_rows), replace=False)
-            sample = V[np.sort(pick)]
-        table, fits = [], {}
-        for k in candidates:
-            G, F, _ = _fit_nmf(sample, k, seed)
-            model_bits, error_bits = description_length(sample, G, F, b)
-            table.append(
-                {
-                    "k": k,
-                    "model_bits": model_bits,
-                    "error_bits": error_bits,
-                    "total_bits": model_bits + error_bits,
-                }
-            )
-            fits[k] = (G, F)
-        best = min(table, key=lambda row: (row["total_bits"], row["k"]))["k"]
-        if sample is not V:
-            fits[best] = _fit_nmf(V, best, seed)[:2]
-        G, F = _normalise_profiles(*fits[best])
-        norm_v = float(np.linalg.norm(V))
-        rel_err = float(np.linalg.norm(V - G @ F) / max(norm_v, _EPS))
+        candidates = candidate_role_counts(n_roles, k_range, f, n)
+        choice = choose_roles(V, candidates, seed=seed, bits_per_value=b, mdl_max_rows=mdl_max_rows)
+        G, F = _normalise_profiles(choice.G, choice.F)
+        rel_err = float(np.linalg.norm(V - G @ F) / max(float(np.linalg.norm(V)), EPS))
         summary = {
             "rows": int(n),
-            "rows_dropped": int(n_all - n),
+            "rows_dropped": dropped,
             "features": int(f),
             "n_roles": int(F.shape[0]),
             "selection": "fixed" if n_roles is not None else "mdl",
             "bits_per_value": b,
             "seed": int(seed),
-            "mdl": table,
-            "mdl_rows": int(sample.shape[0]),
+            "mdl": choice.table,
+            "mdl_rows": choice.sample_rows,
             "relative_error": rel_err,
         }
         return cls(
@@ -497,7 +401,7 @@ class RoleBasis:
             norm = np.sqrt(np.einsum("ij,ij->i", block, block))
             np.subtract(block, G[rows] @ F, out=block)
             resid = np.sqrt(np.einsum("ij,ij->i", block, block))
-            err[rows] = resid / np.maximum(norm, _EPS)
+            err[rows] = resid / np.maximum(norm, EPS)
         sums = G.sum(axis=1, keepdims=True)
         mix = np.divide(G, sums, out=np.full_like(G, 1.0 / k), where=sums > 0)
         if valid.all():
@@ -522,6 +426,20 @@ class RoleBasis:
         returned in ascending id order.  Keeping one role basis meaningful over time
         follows Rossi et al. (WWW 2012 / WSDM 2013).
 
+        Parameters
+        ----------
+        previous : RoleBasis
+            The basis whose ids persisting roles keep.
+        max_distance : float, optional
+            Largest Hellinger distance a matched pair may have; None matches every role
+            the assignment pairs.
+
+        Returns
+        -------
+        RoleBasis
+            Same profiles with re-assigned ids; ``summary["aligned_to"]`` records the
+            previous version and the matches.
+
         Raises
         ------
         FeatureMismatch
@@ -544,7 +462,7 @@ class RoleBasis:
         prev_ids = np.asarray(previous.role_ids)
         new_ids = np.full(self.n_roles, -1, dtype=np.int64)
         matches = []
-        for r, c in zip(rows, cols):
+        for r, c in zip(rows, cols, strict=True):
             if max_distance is not None and cost[r, c] > max_distance:
                 continue
             new_ids[r] = prev_ids[c]
@@ -583,6 +501,15 @@ class RoleBasis:
     def from_dict(cls, d: dict) -> RoleBasis:
         """Rebuild a basis from :meth:`to_dict` output.
 
+        Parameters
+        ----------
+        d : dict
+            A stored role basis document.
+
+        Returns
+        -------
+        RoleBasis
+
         Raises
         ------
         EngineInputError
@@ -617,9 +544,19 @@ class RoleBasis:
 def role_profile_distances(A: np.ndarray, B: np.ndarray) -> np.ndarray:
     """Hellinger distances between every row of A and every row of B (each row L1-normalised).
 
-    Used to match roles across bases and as the ground cost between roles.  Hellinger
+    Used to match roles across bases (:meth:`RoleBasis.aligned_to`).  Hellinger
     distance H(p, q) = (1/sqrt 2) ||sqrt p - sqrt q||_2 (Hellinger 1909; standard
     statistics texts; recalled from memory).  All-zero rows count as uniform.
+
+    Parameters
+    ----------
+    A : ndarray, shape (k_a, f)
+    B : ndarray, shape (k_b, f)
+        Non-negative role profiles.
+
+    Returns
+    -------
+    ndarray, shape (k_a, k_b)
     """
 
     def norm(X: np.ndarray) -> np.ndarray:

@@ -47,6 +47,16 @@ def undirected_ties(counts) -> sp.csr_matrix:
     The logarithm damps pairs that trade very often, so a community is a group of
     accounts that deal with *many* of each other, not a few heavy pairs (common practice,
     no source). The diagonal is dropped.
+
+    Parameters
+    ----------
+    counts : sparse matrix, shape (n, n)
+        Events ``i -> j`` (a :class:`Snapshot`'s ``counts``).
+
+    Returns
+    -------
+    scipy.sparse.csr_matrix, shape (n, n)
+        Symmetric, zero diagonal.
     """
     M = sp.csr_matrix(counts, dtype=np.float64)
     if M.shape[0] != M.shape[1]:

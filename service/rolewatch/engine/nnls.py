@@ -46,7 +46,7 @@ def _solve_groups(
     ends = np.r_[starts[1:], len(order)]
     block = rhs[sorted_rows]
     result = np.zeros_like(block)
-    for start, end in zip(starts, ends):
+    for start, end in zip(starts, ends, strict=True):
         code = int(sorted_codes[start])
         if code == 0:
             continue

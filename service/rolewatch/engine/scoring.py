@@ -23,6 +23,7 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .shift import DISTANCES, activity_change, role_aware_distance
 
@@ -162,16 +163,16 @@ class WindowScores:
 
 
 def score_window(
-    current_mixture,
-    baseline_mixture,
-    current_activity,
-    baseline_activity,
-    current_error,
-    F,
+    current_mixture: ArrayLike,
+    baseline_mixture: ArrayLike,
+    current_activity: ArrayLike,
+    baseline_activity: ArrayLike,
+    current_error: ArrayLike,
+    F: ArrayLike,
     policy: ShiftPolicy = ShiftPolicy(),
     *,
-    current_bridging=None,
-    baseline_bridging=None,
+    current_bridging: ArrayLike | None = None,
+    baseline_bridging: ArrayLike | None = None,
 ) -> WindowScores:
     """Score every account's role shift in one window and pick the alerts.
 
@@ -207,6 +208,40 @@ def score_window(
     Budget mode keeps at most ``floor(budget * n_scored)`` accounts (at least one when
     any account is scored and clears the floor), highest scores first, ties by row.
     """
+    cur, base, a, b, err = _as_window_arrays(
+        current_mixture, baseline_mixture, current_activity, baseline_activity, current_error
+    )
+    has_cur = np.isfinite(cur).all(axis=1)
+    has_base = np.isfinite(base).all(axis=1)
+    comp = _composition(cur, base, F, policy.measure)
+    mag = activity_change(a, b)
+    status = _statuses(has_cur, has_base, a, b, policy.min_events)
+    scored = status == "scored"
+    score = _shift_score(comp, mag, err, a, b, scored, policy)
+    bridging = np.full(cur.shape[0], np.nan)
+    if current_bridging is not None and baseline_bridging is not None:
+        bridging = _bridging_rise(current_bridging, baseline_bridging, scored)
+        if policy.calibration == "stratified":
+            score = np.where(np.isfinite(bridging), np.fmax(score, bridging), score)
+    return WindowScores(
+        score=score,
+        composition=np.where(has_cur & has_base, comp, np.nan),
+        magnitude=mag,
+        error=err,
+        status=status.astype(str),
+        alert=_alerts(score, policy),
+        bridging=bridging,
+    )
+
+
+def _as_window_arrays(
+    current_mixture: ArrayLike,
+    baseline_mixture: ArrayLike,
+    current_activity: ArrayLike,
+    baseline_activity: ArrayLike,
+    current_error: ArrayLike,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The inputs of :func:`score_window` as float64 arrays of matching shapes."""
     cur = np.asarray(current_mixture, dtype=np.float64)
     base = np.asarray(baseline_mixture, dtype=np.float64)
     if cur.ndim != 2 or cur.shape != base.shape:
@@ -220,58 +255,79 @@ def score_window(
     err = np.asarray(current_error, dtype=np.float64).reshape(-1)
     if not (a.size == b.size == err.size == n):
         raise ValueError("activity and error arrays need one value per account row")
-    has_cur = np.isfinite(cur).all(axis=1)
-    has_base = np.isfinite(base).all(axis=1)
-    if policy.measure == "role_aware":
-        comp = role_aware_distance(cur, base, F)
-    else:
-        comp = DISTANCES[policy.measure](cur, base)
-    mag = activity_change(a, b)
-    status = np.full(n, "scored", dtype=object)
-    low = ~(a >= policy.min_events) | ~(b >= policy.min_events)
+    return cur, base, a, b, err
+
+
+def _composition(cur: np.ndarray, base: np.ndarray, F: ArrayLike, measure: str) -> np.ndarray:
+    """Distance between current and baseline mixtures under the policy's measure."""
+    if measure == "role_aware":
+        return np.asarray(role_aware_distance(cur, base, F))
+    return np.asarray(DISTANCES[measure](cur, base))
+
+
+def _statuses(
+    has_cur: np.ndarray, has_base: np.ndarray, a: np.ndarray, b: np.ndarray, min_events: float
+) -> np.ndarray:
+    """One of :data:`STATUSES` per account; later rules override earlier ones."""
+    status = np.full(has_cur.size, "scored", dtype=object)
+    low = ~(a >= min_events) | ~(b >= min_events)
     status[low] = "low_activity"
     status[~has_base] = "new"
     status[~has_cur] = "inactive"
-    scored = status == "scored"
+    return status
+
+
+def _shift_score(
+    comp: np.ndarray,
+    mag: np.ndarray,
+    err: np.ndarray,
+    a: np.ndarray,
+    b: np.ndarray,
+    scored: np.ndarray,
+    policy: ShiftPolicy,
+) -> np.ndarray:
+    """Raw score of the scored accounts, calibrated within activity strata when asked."""
     err_term = np.where(np.isfinite(err), err, 0.0)
     total = comp + policy.magnitude_weight * mag + policy.error_weight * err_term
     score = np.where(scored & np.isfinite(total), total, np.nan)
-    if policy.calibration == "stratified":
-        z = stratified_zscore(
-            score, np.fmax(a, b), stratum_size=policy.stratum_size, min_scale=policy.min_scale
-        )
-        score = np.where(np.isfinite(z), np.maximum(z, 0.0), np.nan)
-    bridging = np.full(n, np.nan)
-    if current_bridging is not None and baseline_bridging is not None:
-        now = np.asarray(current_bridging, dtype=np.float64).reshape(-1)
-        before = np.asarray(baseline_bridging, dtype=np.float64).reshape(-1)
-        if not (now.size == before.size == n):
-            raise ValueError("bridging arrays need one value per account row")
-        with np.errstate(invalid="ignore"):  # inf - inf: no finite rise, dropped below
-            rise = np.maximum(now - before, 0.0)
-        bridging = np.where(scored & np.isfinite(rise), rise, np.nan)
-        if policy.calibration == "stratified":
-            score = np.where(np.isfinite(bridging), np.fmax(score, bridging), score)
-    alert = np.zeros(n, dtype=bool)
+    if policy.calibration != "stratified":
+        return score
+    z = stratified_zscore(
+        score, np.fmax(a, b), stratum_size=policy.stratum_size, min_scale=policy.min_scale
+    )
+    return np.where(np.isfinite(z), np.maximum(z, 0.0), np.nan)
+
+
+def _bridging_rise(
+    current_bridging: ArrayLike, baseline_bridging: ArrayLike, scored: np.ndarray
+) -> np.ndarray:
+    """Rise of the bridging z-score over the baseline window, clipped at 0.
+
+    NaN where the account is not scored or the rise is not finite.
+    """
+    now = np.asarray(current_bridging, dtype=np.float64).reshape(-1)
+    before = np.asarray(baseline_bridging, dtype=np.float64).reshape(-1)
+    if not (now.size == before.size == scored.size):
+        raise ValueError("bridging arrays need one value per account row")
+    with np.errstate(invalid="ignore"):  # inf - inf: no finite rise, dropped below
+        rise = np.maximum(now - before, 0.0)
+    return np.where(scored & np.isfinite(rise), rise, np.nan)
+
+
+def _alerts(score: np.ndarray, policy: ShiftPolicy) -> np.ndarray:
+    """Accounts that alert: over the threshold, or the top of the budget over the floor."""
+    alert = np.zeros(score.size, dtype=bool)
     finite = np.isfinite(score)
     if policy.alert_mode == "threshold":
         alert[finite] = score[finite] >= policy.threshold
-    else:
-        idx = np.flatnonzero(finite)
-        quota = int(np.floor(policy.budget * idx.size + 1e-9))
-        if idx.size and quota == 0:
-            quota = 1
-        top = idx[np.argsort(-score[idx], kind="stable")][:quota]
-        alert[top[score[top] >= policy.floor]] = True
-    return WindowScores(
-        score=score,
-        composition=np.where(has_cur & has_base, comp, np.nan),
-        magnitude=mag,
-        error=err,
-        status=status.astype(str),
-        alert=alert,
-        bridging=bridging,
-    )
+        return alert
+    idx = np.flatnonzero(finite)
+    quota = int(np.floor(policy.budget * idx.size + 1e-9))
+    if idx.size and quota == 0:
+        quota = 1
+    top = idx[np.argsort(-score[idx], kind="stable")][:quota]
+    alert[top[score[top] >= policy.floor]] = True
+    return alert
 
 
 def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:
@@ -280,7 +336,21 @@ def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:
     Base strata are powers of two of activity, ``floor(log2(1 + activity))``; going from
     the busiest stratum down, a stratum joins the next lower one until the group holds
     ``stratum_size`` valid accounts (a thin remainder at the bottom joins the group above
-    it).  Returns a group id per account, -1 where not ``valid``.
+    it). Powers of two are common practice for activity classes (no source).
+
+    Parameters
+    ----------
+    activity : array_like, shape (n,)
+        Events per account.
+    valid : array_like of bool, shape (n,)
+        Accounts to group; the others (and non-finite activity) get -1.
+    stratum_size : int
+        Fewest valid accounts per group (see :class:`ShiftPolicy`).
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+        Group id per account, 0 for the busiest group; -1 where not ``valid``.
     """
     act = np.asarray(activity, dtype=np.float64)
     valid = np.asarray(valid, dtype=bool) & np.isfinite(act)

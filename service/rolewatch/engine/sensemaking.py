@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from itertools import pairwise
 from typing import Any
 
 import numpy as np
@@ -72,6 +73,16 @@ def pagerank(
     spread their rank uniformly and teleportation is uniform, the convention of Page,
     Brin, Motwani & Winograd (1999) as implemented by ``networkx.pagerank``.
 
+    Parameters
+    ----------
+    adjacency : sparse matrix, shape (n, n)
+    alpha : float
+        Damping factor (probability of following a link).
+    tol : float
+        Stop when the L1 change of the scores is below ``n * tol``.
+    max_iter : int
+        Most power iterations.
+
     Returns
     -------
     ndarray, shape (n,)
@@ -126,7 +137,7 @@ def _oriented_triangles(
             np.cumsum(work), np.arange(1, int(work.sum() // block_work) + 1) * block_work
         )
         edges = np.unique(np.r_[0, bounds, n].clip(0, n))
-        for lo, hi in zip(edges[:-1], edges[1:]):
+        for lo, hi in pairwise(edges):
             block = (left[lo:hi] @ U).multiply(mask_rows_of[lo:hi]).tocsr()
             t[lo:hi] += np.asarray(block.sum(axis=1)).ravel()
             if add_cols:
@@ -140,6 +151,10 @@ def clustering_coefficient(adjacency: sp.spmatrix) -> tuple[np.ndarray, np.ndarr
     ``c_i = 2 t_i / (d_i (d_i - 1))`` with t_i triangles through i and d_i its number
     of distinct neighbours (Watts & Strogatz 1998); 0 when d_i < 2, as in
     ``networkx.clustering``.  Direction and weights are ignored.
+
+    Parameters
+    ----------
+    adjacency : sparse matrix, shape (n, n)
 
     Returns
     -------
@@ -179,6 +194,10 @@ def betweenness(
     batch : int, optional
         Sources per block (memory is about 4 * batch * n * 8 bytes); chosen
         automatically when None.
+
+    Returns
+    -------
+    ndarray, shape (n,)
     """
     A = _binary(adjacency)
     A = _binary(A + A.T)
@@ -440,7 +459,7 @@ def describe_roles(
                 name=chosen[r],
                 description=descriptions[r],
                 measure_affinity={m: float(E[r, j]) for j, m in enumerate(names)},
-                profile={f: float(v) for f, v in zip(basis.feature_names, basis.F[r])},
+                profile={f: float(v) for f, v in zip(basis.feature_names, basis.F[r], strict=True)},
             )
         )
     return out

@@ -23,7 +23,6 @@ __all__ = [
     "activity_change",
     "baseline_mixture",
     "feature_moves",
-    "dominant_role",
     "DISTANCES",
 ]
 
@@ -63,7 +62,17 @@ def hellinger(p, q):
     """Hellinger distance per row, in [0, 1].
 
     ``H(p, q) = (1/sqrt 2) * ||sqrt p - sqrt q||_2`` (Hellinger 1909; standard statistics
-    texts, recalled from memory).  Rows are normalised to sum 1 first.
+    texts, recalled from memory).
+
+    Parameters
+    ----------
+    p, q : array_like, shape (n, k) or (k,)
+        Role mixtures, one row per account; rows are normalised to sum 1 first, and a
+        negative, all-zero or non-finite row gives NaN.
+
+    Returns
+    -------
+    ndarray, shape (n,), or float for 1-D input
     """
     P, Q = _pair(p, q)
     d = np.sqrt(0.5 * np.sum((np.sqrt(P) - np.sqrt(Q)) ** 2, axis=1))
@@ -76,6 +85,16 @@ def jensen_shannon(p, q):
     The square root of the Jensen-Shannon divergence ``JS = (KL(p||m) + KL(q||m)) / 2``
     with ``m = (p + q) / 2`` (Lin 1991), the same quantity as
     ``scipy.spatial.distance.jensenshannon(p, q, base=2)``.
+
+    Parameters
+    ----------
+    p, q : array_like, shape (n, k) or (k,)
+        Role mixtures, one row per account; rows are normalised to sum 1 first, and a
+        negative, all-zero or non-finite row gives NaN.
+
+    Returns
+    -------
+    ndarray, shape (n,), or float for 1-D input
     """
     P, Q = _pair(p, q)
     M = 0.5 * (P + Q)
@@ -89,7 +108,21 @@ def jensen_shannon(p, q):
 
 
 def total_variation(p, q):
-    """Total variation distance per row, ``(1/2) * sum |p - q|``, in [0, 1]."""
+    """Total variation distance per row, ``(1/2) * sum |p - q|``, in [0, 1].
+
+    Standard statistics texts, recalled from memory; half the L1 distance, as
+    ``scipy.spatial.distance.cityblock(p, q) / 2``.
+
+    Parameters
+    ----------
+    p, q : array_like, shape (n, k) or (k,)
+        Role mixtures, one row per account; rows are normalised to sum 1 first, and a
+        negative, all-zero or non-finite row gives NaN.
+
+    Returns
+    -------
+    ndarray, shape (n,), or float for 1-D input
+    """
     P, Q = _pair(p, q)
     return _finish(0.5 * np.abs(P - Q).sum(axis=1), np.ndim(p) == 1)
 
@@ -97,7 +130,17 @@ def total_variation(p, q):
 def cosine_distance(p, q):
     """Cosine distance per row, ``1 - p.q / (|p| |q|)``, in [0, 1] for non-negative rows.
 
-    Same quantity as ``scipy.spatial.distance.cosine``.
+    Same quantity as ``scipy.spatial.distance.cosine`` (common practice, no source).
+
+    Parameters
+    ----------
+    p, q : array_like, shape (n, k) or (k,)
+        Role mixtures, one row per account; rows are normalised to sum 1 first, and a
+        negative, all-zero or non-finite row gives NaN.
+
+    Returns
+    -------
+    ndarray, shape (n,), or float for 1-D input
     """
     P, Q = _pair(p, q)
     num = np.sum(P * Q, axis=1)
@@ -132,6 +175,17 @@ def role_aware_distance(p, q, F):
     little; between roles with disjoint profiles it costs as much as plain Hellinger.
     By the data-processing inequality the result never exceeds ``hellinger(p, q)``.
 
+    Parameters
+    ----------
+    p, q : array_like, shape (n, k) or (k,)
+        Role mixtures over the k roles of ``F``.
+    F : array_like, shape (k, f)
+        Non-negative role profiles of the basis.
+
+    Returns
+    -------
+    ndarray, shape (n,), or float for 1-D input
+
     Notes
     -----
     Role profiles are the F of RolX (Henderson et al., KDD 2012); comparing
@@ -150,6 +204,17 @@ def activity_change(current, baseline):
 
     Common practice, no source: a symmetric log-ratio that is 0 for no change and
     treats a doubling and a halving alike; the +1 keeps zero activity finite.
+
+    Parameters
+    ----------
+    current, baseline : array_like
+        Events of each account in the current and the baseline window (negative counts
+        as 0).
+
+    Returns
+    -------
+    ndarray
+        Same shape as the inputs; NaN where an input is NaN.
     """
     a = np.asarray(current, dtype=np.float64)
     b = np.asarray(baseline, dtype=np.float64)
@@ -197,7 +262,7 @@ def baseline_mixture(
     t, n, k = H.shape
     if t == 0:
         return np.full((n, k), np.nan)
-    active = np.isfinite(H).all(axis=2)
+    active = np.asarray(np.isfinite(H).all(axis=2))
     if mode == "previous":
         last = (t - 1) - np.argmax(active[::-1], axis=0)
         out = H[last, np.arange(n)]
@@ -230,6 +295,15 @@ def feature_moves(names: Sequence[str], raw_before, raw_after, top: int = 5) -> 
     move from 0 to 3 counts more than one from 100 to 103.  Features missing (NaN) in
     either window are skipped.
 
+    Parameters
+    ----------
+    names : sequence of str
+        Feature names, one per value.
+    raw_before, raw_after : array_like, shape (f,)
+        Raw (unbinned) feature values of the account in the two windows.
+    top : int
+        Most entries returned.
+
     Returns
     -------
     list of dict
@@ -253,26 +327,10 @@ def feature_moves(names: Sequence[str], raw_before, raw_after, top: int = 5) -> 
     idx = idx[np.argsort(-np.abs(ratio[idx]), kind="stable")][: max(int(top), 0)]
     return [
         {
-            "feature": str(names[i]),
+            "feature": str(names[int(i)]),
             "before": float(before[i]),
             "after": float(after[i]),
             "log_ratio": float(ratio[i]),
         }
         for i in idx
     ]
-
-
-def dominant_role(mixture, role_ids: Sequence[int]) -> np.ndarray:
-    """Role id with the largest weight per row (ties: first role); -1 for NaN rows."""
-    M = _rows(mixture)
-    ids = np.asarray(role_ids, dtype=np.int64)
-    if ids.size != M.shape[1]:
-        raise ValueError(f"{ids.size} role ids for {M.shape[1]} mixture columns")
-    bad = ~np.isfinite(M).all(axis=1)
-    out = (
-        ids[np.argmax(np.where(np.isfinite(M), M, -np.inf), axis=1)]
-        if M.shape[1]
-        else np.full(M.shape[0], -1)
-    )
-    out = np.where(bad, -1, out)
-    return out

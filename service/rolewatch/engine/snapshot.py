@@ -8,7 +8,7 @@ interacted is an edge carrying the number of events and their summed weight.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -42,7 +42,8 @@ def _check_weights(weight: Any, n_events: int) -> np.ndarray:
         raise ValueError(f"weight must be numbers: {exc}") from None
     if w.ndim != 1 or w.shape[0] != n_events:
         raise ValueError(
-            f"weight has {w.size} values but there are {n_events} events; give one weight per event or none"
+            f"weight has {w.size} values but there are {n_events} events; "
+            "give one weight per event or none"
         )
     bad = ~np.isfinite(w)
     if bad.any():
@@ -158,7 +159,8 @@ class Snapshot:
         if missing.any():
             i = int(np.flatnonzero(missing)[0])
             raise ValueError(
-                f"{what} id {ids[i]!r} (event {i}) is not in the given nodes; list every account of the events"
+                f"{what} id {ids[i]!r} (event {i}) is not in the given nodes; "
+                "list every account of the events"
             )
         return order[pos_c]
 
@@ -188,34 +190,6 @@ class Snapshot:
         counts.has_sorted_indices = True
         weights.has_sorted_indices = True
         return cls(nodes=np.asarray(nodes), counts=counts, weights=weights)
-
-    @classmethod
-    def from_frame(cls, frame) -> Snapshot:
-        """Build a snapshot from a mapping or data frame with ``actor``, ``target`` and optional ``weight``.
-
-        Parameters
-        ----------
-        frame : Mapping or DataFrame-like
-            Anything indexable by column name.
-
-        Returns
-        -------
-        Snapshot
-        """
-        for col in ("actor", "target"):
-            try:
-                frame[col]
-            except (KeyError, IndexError, TypeError):
-                raise ValueError(f"frame needs an {col!r} column") from None
-        weight = None
-        has_weight = (
-            ("weight" in frame)
-            if isinstance(frame, Mapping)
-            else ("weight" in getattr(frame, "columns", ()))
-        )
-        if has_weight:
-            weight = np.asarray(frame["weight"], dtype=np.float64)
-        return cls.from_events(np.asarray(frame["actor"]), np.asarray(frame["target"]), weight)
 
     @property
     def n_nodes(self) -> int:
