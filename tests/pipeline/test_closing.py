@@ -254,3 +254,37 @@ def test_refit_on_a_named_period_keeps_persisting_role_ids_and_their_names(store
             connection.execute(sa.select(memberships.c.basis_version).distinct()).scalars()
         )
     assert versions == {before.basis.version}
+
+
+def test_the_window_closed_log_line_carries_the_window_summary(make_settings):
+    """The JSON log line of each closed window holds its summary (it was dropped before)."""
+    import io
+    import logging
+
+    from rolewatch.logs import JsonFormatter
+
+    settings = make_settings(training_windows=4)
+    engine = open_store(settings)
+    # the sample's first two weeks: two training windows, recorded without a model fit
+    early = [e for e in sample_events() if e["time"] < "2026-01-15"]
+    ingest(engine, settings, early, NOW)
+    stream = io.StringIO()
+    handler = logging.StreamHandler(stream)
+    handler.setFormatter(JsonFormatter())
+    pipeline_log = logging.getLogger("rolewatch.pipeline")
+    level = pipeline_log.level
+    pipeline_log.addHandler(handler)
+    pipeline_log.setLevel(logging.INFO)
+    try:
+        closed = close_due_windows(engine, settings, now_us=NOW, drain=True)
+    finally:
+        pipeline_log.removeHandler(handler)
+        pipeline_log.setLevel(level)
+        engine.dispose()
+    lines = [json.loads(line) for line in stream.getvalue().splitlines()]
+    logged = [line["window"] for line in lines if line["message"] == "window closed"]
+    assert len(closed) == 2
+    assert [(entry["id"], entry["end"], entry["events"], entry["training"]) for entry in logged] == [
+        (summary["id"], summary["end"], summary["events"], True) for summary in closed
+    ]
+    assert sum(entry["events"] for entry in logged) == len(early)

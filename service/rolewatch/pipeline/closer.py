@@ -126,11 +126,14 @@ def close_window(engine: Engine, settings, end_us: int, *, now_us: int) -> list[
         except WindowAlreadyClosed:
             return []
         except WindowChanged:
-            log.info("events arrived during the close; computing again", extra={"end_us": end_us})
+            log.info(
+                "events arrived during the close; computing again",
+                extra={"fields": {"window_end": to_rfc3339(end_us)}},
+            )
             continue
         _record_metrics(summaries, time.perf_counter() - started)
         for summary in summaries:
-            log.info("window closed", extra={"window": summary})
+            log.info("window closed", extra={"fields": {"window": summary}})
         return summaries
     raise RuntimeError(
         f"window ending {to_rfc3339(end_us)} kept receiving events during {MAX_RECOMPUTES} "
