@@ -75,13 +75,19 @@ def _snapshot_of_results(engine) -> dict:
 
 
 def test_sample_closes_into_training_then_scored_windows(store):
+    from rolewatch import metrics
+
     engine, settings = store
     result = ingest(engine, settings, sample_events(), NOW)
     assert result.accepted > 10_000 and not result.rejected
+    counted_before = metrics.WINDOWS_CLOSED._value.get()
     closed = close_due_windows(engine, settings, now_us=NOW, drain=True)
     truth = sample_truth()
-    # training windows report twice: when recorded, and again when back-filled
-    assert len({summary["id"] for summary in closed}) == truth["meta"]["weeks"]
+    # one summary per window: a back-filled training window is reported once, measured,
+    # and counted once in rolewatch_windows_closed_total
+    assert [summary["id"] for summary in closed] == sorted({s["id"] for s in closed})
+    assert len(closed) == truth["meta"]["weeks"]
+    assert metrics.WINDOWS_CLOSED._value.get() - counted_before == truth["meta"]["weeks"]
     with engine.connect() as connection:
         rows = connection.execute(sa.select(windows).order_by(windows.c.end_us)).all()
         assert [row.training for row in rows] == [True] * 4 + [False] * (len(rows) - 4)
@@ -284,7 +290,7 @@ def test_the_window_closed_log_line_carries_the_window_summary(make_settings):
     lines = [json.loads(line) for line in stream.getvalue().splitlines()]
     logged = [line["window"] for line in lines if line["message"] == "window closed"]
     assert len(closed) == 2
-    assert [(entry["id"], entry["end"], entry["events"], entry["training"]) for entry in logged] == [
-        (summary["id"], summary["end"], summary["events"], True) for summary in closed
-    ]
+    assert [
+        (entry["id"], entry["end"], entry["events"], entry["training"]) for entry in logged
+    ] == [(summary["id"], summary["end"], summary["events"], True) for summary in closed]
     assert sum(entry["events"] for entry in logged) == len(early)

@@ -11,6 +11,7 @@ import socket
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import httpx
 import pytest
@@ -215,6 +216,35 @@ def test_replay_ndjson_and_csv_store_what_the_api_stores(app_client, tmp_path, m
         assert (summary["accepted"], summary["duplicates"], summary["rejected"]) == (81, 1, 1)
         assert f"line {82 if fmt == 'ndjson' else 83}: time:" in result.stderr  # the naive time
         assert stored_events(url) == through_api, fmt
+
+
+def test_replay_reports_each_closed_window_once(tmp_path):
+    # the fictional marketplace sample's first five weeks (fixtures/sample, invented data):
+    # two training windows, then three scored ones; a back-filled training window is one
+    # window, not two
+    sample = Path(__file__).resolve().parents[2] / "fixtures" / "sample" / "events.ndjson"
+    lines = [
+        line
+        for line in sample.read_text(encoding="utf-8").splitlines()
+        if line.strip() and json.loads(line)["time"] < "2026-02-05"
+    ]
+    path = tmp_path / "five-weeks.ndjson"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    url = f"sqlite:///{tmp_path / 'replay.db'}"
+    result = rolewatch(
+        "replay",
+        str(path),
+        "--no-progress",
+        env={"ROLEWATCH_DATABASE_URL": url, "ROLEWATCH_TRAINING_WINDOWS": "2"},
+    )
+    assert result.returncode == 0, result.stderr
+    summary = json.loads(result.stdout)
+    engine = sa.create_engine(url)
+    with engine.connect() as connection:
+        stored = connection.execute(sa.text("SELECT count(*) FROM windows")).scalar_one()
+    engine.dispose()
+    assert stored == 5
+    assert summary["windows_closed"] == stored
 
 
 # --- serve -------------------------------------------------------------------------------------

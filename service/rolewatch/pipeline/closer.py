@@ -95,10 +95,10 @@ def close_due_windows(
     window closes as soon as the wall clock is past its end plus lateness.
     """
     geometry = WindowGeometry.from_settings(settings)
-    closed: list[dict] = []
+    closed: dict[int, dict] = {}
     with closer_lock(engine) as mine:
         if not mine:
-            return closed
+            return []
         while not SHUTDOWN.is_set():
             now = now_us if now_us is not None else now_micros()
             with engine.connect() as connection:
@@ -106,8 +106,11 @@ def close_due_windows(
             end_us = next_window_end(geometry, state)
             if end_us is None or not is_due(geometry, state, end_us, now, drain=drain):
                 break
-            closed.extend(close_window(engine, settings, end_us, now_us=now))
-    return closed
+            for summary in close_window(engine, settings, end_us, now_us=now):
+                # A training window is reported when it is recorded and again when the end
+                # of training back-fills it: one summary per window, the latest.
+                closed[summary["id"]] = summary
+    return list(closed.values())
 
 
 def close_window(engine: Engine, settings, end_us: int, *, now_us: int) -> list[dict]:
@@ -150,7 +153,8 @@ def _record_metrics(summaries: list[dict], seconds: float) -> None:
     if recorder is None:
         return
     for summary in summaries:
-        recorder(seconds=seconds, alerts=summary["alert_count"])
+        if not summary["backfilled"]:  # a back-filled window was counted when it closed
+            recorder(seconds=seconds, alerts=summary["alert_count"])
 
 
 def _close_once(engine: Engine, settings, end_us: int, now_us: int) -> list[dict]:
@@ -270,6 +274,7 @@ def _close_training(
                 "accounts": int(len(set(current.actor) | set(current.target))),
                 "alert_count": 0,
                 "training": True,
+                "backfilled": False,
             }
         ]
     # The training period is complete: fit the model on all training windows, then measure
@@ -337,7 +342,15 @@ def _close_training(
                 )
             _store_result(connection, settings, model, window_id, w_start, w_end, now_us, result)
             summaries.append(
-                _summary(window_id, w_start, w_end, len(window_events), result, training=True)
+                _summary(
+                    window_id,
+                    w_start,
+                    w_end,
+                    len(window_events),
+                    result,
+                    training=True,
+                    backfilled=w_end != end_us,
+                )
             )
     return summaries
 
@@ -505,7 +518,14 @@ def _store_result(
 
 
 def _summary(
-    window_id, start_us, end_us, event_count, result: WindowResult, *, training: bool
+    window_id,
+    start_us,
+    end_us,
+    event_count,
+    result: WindowResult,
+    *,
+    training: bool,
+    backfilled: bool = False,
 ) -> dict:
     return {
         "id": window_id,
@@ -519,4 +539,5 @@ def _summary(
         "scored": result.scored_count,
         "reconstruction_error": result.reconstruction_error,
         "training": training,
+        "backfilled": backfilled,
     }
