@@ -176,6 +176,28 @@ def _csv_items(lines) -> Iterator[tuple[int, object]]:
         yield reader.line_num, event
 
 
+def _file_digest(path: Path) -> str:
+    """Hex sha256 of the file's bytes."""
+    import hashlib
+
+    digest = hashlib.sha256()
+    with path.open("rb") as handle:
+        for chunk in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def _with_line_ids(items, file_digest: str) -> Iterator[tuple[int, object]]:
+    """Give each event without an id one made from the file and its line
+    (:func:`rolewatch.store.events.file_line_event_id`)."""
+    from rolewatch.store.events import file_line_event_id
+
+    for number, item in items:
+        if isinstance(item, dict) and item.get("id") is None:
+            item["id"] = file_line_event_id(file_digest, number)
+        yield number, item
+
+
 def cmd_replay(args) -> int:
     """Feed a file of events through the same ingest path as the API, then close windows."""
     from tqdm import tqdm
@@ -207,7 +229,10 @@ def cmd_replay(args) -> int:
             ) as bar,
         ):
             counted = _counting(handle, bar)
-            items = _csv_items(counted) if fmt == "csv" else _ndjson_items(counted)
+            items = _with_line_ids(
+                _csv_items(counted) if fmt == "csv" else _ndjson_items(counted),
+                _file_digest(path),
+            )
             batch: list = []
             lines: list[int] = []
 

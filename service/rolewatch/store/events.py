@@ -149,6 +149,17 @@ def derived_event_id(time_us: int, actor: str, target: str, kind: str | None, we
     return "ev_" + hashlib.sha256(body.encode("utf-8")).hexdigest()[:32]
 
 
+def file_line_event_id(file_digest: str, line: int) -> str:
+    """The id of an event read without one from line ``line`` of a replayed file.
+
+    ``ev_`` + 32 hex chars of the sha256 of ``"<file_digest>:<line>"``, where ``file_digest``
+    is the hex sha256 of the file's bytes. Two equal lines (the same interaction twice in one
+    minute) stay two events, and replaying the same file again gives the same ids, so it
+    stores nothing new. (:func:`derived_event_id` would merge equal lines into one event.)
+    """
+    return "ev_" + hashlib.sha256(f"{file_digest}:{line}".encode("ascii")).hexdigest()[:32]
+
+
 def _kind_of(value: Any) -> str:
     if value is None:
         return "null"
