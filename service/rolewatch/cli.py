@@ -269,10 +269,7 @@ def cmd_replay(args) -> int:
             closed = close_due_windows(engine, settings, now_us=_now_us(), drain=True)
         summary = dict(totals, file=str(path), format=fmt)
         if closed is not None:
-            try:
-                summary["windows_closed"] = len(closed)
-            except TypeError:
-                summary["windows_closed"] = closed
+            summary["windows_closed"] = len(closed)
         print(json.dumps(summary))
     except UnicodeDecodeError as error:
         raise UsageError(f"{path} is not UTF-8 text ({error}); convert it to UTF-8") from None

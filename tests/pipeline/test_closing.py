@@ -85,7 +85,7 @@ def test_sample_closes_into_training_then_scored_windows(store):
     truth = sample_truth()
     # one summary per window: a back-filled training window is reported once, measured,
     # and counted once in rolewatch_windows_closed_total
-    assert [summary["id"] for summary in closed] == sorted({s["id"] for s in closed})
+    assert [summary.id for summary in closed] == sorted({s.id for s in closed})
     assert len(closed) == truth["meta"]["weeks"]
     assert metrics.WINDOWS_CLOSED._value.get() - counted_before == truth["meta"]["weeks"]
     with engine.connect() as connection:
@@ -219,9 +219,9 @@ def test_a_crash_mid_close_leaves_no_partial_window_and_the_next_tick_redoes_it(
         count = connection.execute(
             sa.select(sa.func.count())
             .select_from(memberships)
-            .where(memberships.c.window_id == redone[0]["id"])
+            .where(memberships.c.window_id == redone[0].id)
         ).scalar_one()
-    assert count == redone[0]["accounts"] > 0
+    assert count == redone[0].accounts > 0
 
 
 def test_refit_on_a_named_period_keeps_persisting_role_ids_and_their_names(store):
@@ -292,5 +292,5 @@ def test_the_window_closed_log_line_carries_the_window_summary(make_settings):
     assert len(closed) == 2
     assert [
         (entry["id"], entry["end"], entry["events"], entry["training"]) for entry in logged
-    ] == [(summary["id"], summary["end"], summary["events"], True) for summary in closed]
+    ] == [(summary.id, summary.end, summary.events, True) for summary in closed]
     assert sum(entry["events"] for entry in logged) == len(early)

@@ -94,9 +94,9 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     yield {
         "case": case,
         "cores": os.cpu_count(),
-        "events": summary["events"],
-        "accounts": summary["accounts"],
-        "alerts": summary["alert_count"],
+        "events": summary.events,
+        "accounts": summary.accounts,
+        "alerts": summary.alert_count,
         "seconds": round(seconds, 2),
         "training_seconds": round(training_seconds, 2),
         "peak_rss_mb": round(_peak_rss_mb(), 1),
