@@ -6,9 +6,10 @@ are stored and invalid ones reported by their index with a readable reason, so b
 never loses the good input around it. Storing is ``INSERT ... ON CONFLICT (event_id) DO
 NOTHING`` with one ``executemany`` per batch, so a retried batch is harmless.
 
-Wire form of an event (see DESIGN.md "Wire format"): ``id`` (optional, ≤ 200 chars),
-``time`` (RFC 3339 with an offset, required), ``actor`` and ``target`` (≤ 200 chars,
-different), ``kind`` (optional, ≤ 64 chars), ``weight`` (finite number ≥ 0, default 1).
+Wire form of an event (README.md "Posting events"; its schema is api.models.Event): ``id``
+(optional), ``time`` (RFC 3339 with an offset, required), ``actor`` and ``target``
+(different), ``kind`` (optional), ``weight`` (finite number ≥ 0, default 1); the length
+limits are the store's column widths (store.schema ``MAX_*_CHARS``).
 """
 
 from __future__ import annotations
@@ -32,11 +33,15 @@ from sqlalchemy.sql.dml import Insert
 from rolewatch import metrics
 from rolewatch.clock import to_rfc3339
 from rolewatch.store.db import lock_windows, write_transaction
-from rolewatch.store.schema import events, service_state, windows
+from rolewatch.store.schema import (
+    MAX_ACCOUNT_CHARS,
+    MAX_ID_CHARS,
+    MAX_KIND_CHARS,
+    events,
+    service_state,
+    windows,
+)
 
-MAX_ID_CHARS = 200
-MAX_ACCOUNT_CHARS = 200
-MAX_KIND_CHARS = 64
 FIELDS = ("id", "time", "actor", "target", "kind", "weight")
 _FIELD_SET = frozenset(FIELDS)
 

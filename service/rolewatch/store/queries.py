@@ -15,8 +15,17 @@ from sqlalchemy.engine import Engine
 
 from rolewatch.store.alerts import StoredAlert, alert_form
 from rolewatch.store.db import write_transaction
-from rolewatch.store.events import _FORBIDDEN, MAX_ACCOUNT_CHARS
-from rolewatch.store.schema import alerts, bases, events, memberships, roles, service_state, windows
+from rolewatch.store.events import _FORBIDDEN
+from rolewatch.store.schema import (
+    MAX_ACCOUNT_CHARS,
+    alerts,
+    bases,
+    events,
+    memberships,
+    roles,
+    service_state,
+    windows,
+)
 
 
 def _us(value) -> int:
