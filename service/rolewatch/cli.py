@@ -17,8 +17,15 @@ import signal
 import sys
 from collections.abc import Iterator
 from pathlib import Path
+from types import ModuleType
+from typing import TYPE_CHECKING, Any
 
 from rolewatch.clock import now_micros
+
+if TYPE_CHECKING:
+    from sqlalchemy.engine import Engine
+
+    from rolewatch.config import Settings
 
 
 class UsageError(Exception):
@@ -29,13 +36,13 @@ def _now_us() -> int:
     return now_micros()
 
 
-def _settings(args, **overrides):
+def _settings(args: argparse.Namespace, **overrides: Any) -> Settings:
     from rolewatch.config import load_settings
 
     return load_settings(getattr(args, "config", None), **overrides)
 
 
-def _store(settings):
+def _store(settings: Settings) -> Engine:
     from rolewatch.store.db import open_store
 
     return open_store(settings)
@@ -291,7 +298,7 @@ BENCH_MODULES = (
 )
 
 
-def _bench_modules() -> dict[str, object]:
+def _bench_modules() -> dict[str, ModuleType]:
     found = {}
     for name in BENCH_MODULES:
         try:
@@ -304,7 +311,7 @@ def _bench_modules() -> dict[str, object]:
 def cmd_bench(args) -> int:
     """Run one benchmark case (or every case of a module, or ``all``): one JSON line each."""
     modules = _bench_modules()
-    plan: list[tuple[object, str]] = []
+    plan: list[tuple[ModuleType, str]] = []
     wanted = args.case.replace("-", "_")
     for name, module in modules.items():
         cases = tuple(getattr(module, "CASES", ()))

@@ -9,9 +9,14 @@ from __future__ import annotations
 from collections.abc import Iterator
 from contextlib import contextmanager
 from datetime import timedelta
+from typing import TYPE_CHECKING
 
+from alembic.config import Config
 from sqlalchemy import event
 from sqlalchemy.engine import Connection, CursorResult, Engine, create_engine
+
+if TYPE_CHECKING:
+    from rolewatch.config import Settings
 
 __all__ = [
     "Connection",
@@ -155,14 +160,12 @@ def lock_windows(connection: Connection, *, exclusive: bool) -> None:
     connection.exec_driver_sql(f"SELECT {function}({store_lock_key(_WINDOW_LOCK_ID)})")
 
 
-def alembic_config(connection: Connection | None = None):
+def alembic_config(connection: Connection | None = None) -> Config:
     """An Alembic ``Config`` pointing at the migrations shipped inside the installed package.
 
     Built in code (no ``alembic.ini`` lookup, no dependence on the working directory).
     """
     from pathlib import Path
-
-    from alembic.config import Config
 
     config = Config()
     config.set_main_option("script_location", str(Path(__file__).resolve().parent / "migrations"))
@@ -202,7 +205,7 @@ def upgrade_to_head(engine: Engine) -> None:
                 connection.commit()
 
 
-def open_store(settings) -> Engine:
+def open_store(settings: Settings) -> Engine:
     """Make the engine named by ``settings.database_url`` and upgrade its schema to head."""
     engine = make_engine(
         settings.database_url,

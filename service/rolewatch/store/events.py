@@ -28,10 +28,10 @@ from typing import Any
 from sqlalchemy import Table, bindparam, func, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import Connection, Engine
-from sqlalchemy.sql.dml import Insert
 
 from rolewatch import metrics
 from rolewatch.clock import to_rfc3339
+from rolewatch.config import Settings
 from rolewatch.store.db import lock_windows, write_transaction
 from rolewatch.store.schema import (
     MAX_ACCOUNT_CHARS,
@@ -189,11 +189,17 @@ def _show(value: str, limit: int = 60) -> str:
     return repr(text)
 
 
-def _text(event: dict, name: str, limit: int, *, required: bool) -> str | None:
+def _required_text(event: dict, name: str, limit: int) -> str:
+    text = _text(event, name, limit)
+    if text is None:
+        raise _Reject(f"{name}: required")
+    return text
+
+
+def _text(event: dict, name: str, limit: int) -> str | None:
+    """The field's text, checked; None when absent."""
     value = event.get(name)
     if value is None:
-        if required:
-            raise _Reject(f"{name}: required")
         return None
     if not isinstance(value, str):
         raise _Reject(f"{name}: must be a string, got {_kind_of(value)}")
@@ -321,20 +327,20 @@ def validate_event(event: Any, max_time_us: int) -> tuple[str, int, str, str, st
     if time_value is None:
         raise _Reject("time: required")
     time_us = parse_time_us(time_value)
-    actor = _text(event, "actor", MAX_ACCOUNT_CHARS, required=True)
-    target = _text(event, "target", MAX_ACCOUNT_CHARS, required=True)
+    actor = _required_text(event, "actor", MAX_ACCOUNT_CHARS)
+    target = _required_text(event, "target", MAX_ACCOUNT_CHARS)
     if actor == target:
         raise _Reject(
             f"target: same account as actor ({_show(actor)}); self-interactions are not events"
         )
-    kind = _text(event, "kind", MAX_KIND_CHARS, required=False)
+    kind = _text(event, "kind", MAX_KIND_CHARS)
     weight = _weight(event)
     if time_us > max_time_us:
         raise _Reject(
             f"time: {_show(time_value)} is in the future beyond the allowed clock skew "
             f"(latest accepted now: {to_rfc3339(max_time_us)}); check the sender's clock"
         )
-    event_id = _text(event, "id", MAX_ID_CHARS, required=False)
+    event_id = _text(event, "id", MAX_ID_CHARS)
     if event_id is None:
         event_id = derived_event_id(time_us, actor, target, kind, weight)
     return event_id, time_us, actor, target, kind, weight
@@ -366,7 +372,7 @@ _COUNT_LATE = (
 )
 
 
-def _dialect_insert(connection: Connection, table: Table) -> Insert:
+def _dialect_insert(connection: Connection, table: Table) -> postgresql.Insert | sqlite.Insert:
     """``INSERT`` with the dialect's ``ON CONFLICT`` clauses (SQLite and PostgreSQL)."""
     if connection.dialect.name == "postgresql":
         return postgresql.insert(table)
@@ -506,7 +512,7 @@ def _group_writer(engine: Engine) -> _GroupWriter:
 
 
 def ingest(
-    engine: Engine, settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int
+    engine: Engine, settings: Settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int
 ) -> IngestResult:
     """Validate ``raw_events`` (parsed wire events) and store the valid ones in one transaction
     (shared with batches arriving at the same moment: see :class:`_GroupWriter`).

@@ -13,6 +13,7 @@ from typing import Any
 from sqlalchemy import and_, func, or_, select, update
 from sqlalchemy.engine import Engine
 
+from rolewatch.config import Settings
 from rolewatch.store.alerts import StoredAlert, alert_form
 from rolewatch.store.db import write_transaction
 from rolewatch.store.events import _FORBIDDEN
@@ -142,7 +143,9 @@ def get_state(engine: Engine, key: str) -> str | None:
         ).scalar()
 
 
-def open_windows(engine: Engine, settings, *, now_us: int, limit: int = 20) -> dict[str, Any]:
+def open_windows(
+    engine: Engine, settings: Settings, *, now_us: int, limit: int = 20
+) -> dict[str, Any]:
     """The windows not closed yet that hold events, from the settings and the watermark.
 
     Returns ``{"watermark_us", "max_event_us", "windows": [...]}``; each window has start/end,
@@ -178,6 +181,7 @@ def open_windows(engine: Engine, settings, *, now_us: int, limit: int = 20) -> d
         if last_closed is not None:
             first_end = last_closed + period
         else:
+            assert first_event is not None  # some event exists: max_event is set
             first_end = (first_event // period + 1) * period
         first_end = max(first_end, last_end - (limit - 1) * period)
         watermark = max_event - lateness
