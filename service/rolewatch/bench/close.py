@@ -40,7 +40,7 @@ def _power_law_events(
     weights = np.round(rng.lognormal(2.5, 1.0, size=n_events), 2)
     return [
         (f"{prefix}{i}", int(t), f"a-{a:07d}", f"a-{b:07d}", "payment", float(w), int(t), 0)
-        for i, (t, a, b, w) in enumerate(zip(times, actor, target, weights))
+        for i, (t, a, b, w) in enumerate(zip(times, actor, target, weights, strict=True))
     ]
 
 
