@@ -17,8 +17,16 @@ import signal
 import sys
 from collections.abc import Iterator
 from pathlib import Path
+from types import ModuleType
+from typing import TYPE_CHECKING, Any
 
 from rolewatch.clock import now_micros
+
+if TYPE_CHECKING:
+    from sqlalchemy.engine import Engine
+
+    from rolewatch.config import Settings
+    from rolewatch.store.events import IngestResult
 
 
 class UsageError(Exception):
@@ -29,13 +37,13 @@ def _now_us() -> int:
     return now_micros()
 
 
-def _settings(args, **overrides):
+def _settings(args: argparse.Namespace, **overrides: Any) -> Settings:
     from rolewatch.config import load_settings
 
     return load_settings(getattr(args, "config", None), **overrides)
 
 
-def _store(settings):
+def _store(settings: Settings) -> Engine:
     from rolewatch.store.db import open_store
 
     return open_store(settings)
@@ -176,12 +184,94 @@ def _csv_items(lines) -> Iterator[tuple[int, object]]:
         yield reader.line_num, event
 
 
-def cmd_replay(args) -> int:
-    """Feed a file of events through the same ingest path as the API, then close windows."""
+def _file_digest(path: Path) -> str:
+    """Hex sha256 of the file's bytes."""
+    import hashlib
+
+    digest = hashlib.sha256()
+    with path.open("rb") as handle:
+        for chunk in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def _with_line_ids(items, file_digest: str) -> Iterator[tuple[int, object]]:
+    """Give each event without an id one made from the file and its line
+    (:func:`rolewatch.store.events.file_line_event_id`)."""
+    from rolewatch.store.events import file_line_event_id
+
+    for number, item in items:
+        if isinstance(item, dict) and item.get("id") is None:
+            item["id"] = file_line_event_id(file_digest, number)
+        yield number, item
+
+
+class _ReplayTotals:
+    """Counts over every batch of a replay; the first rejected lines are printed."""
+
+    SHOWN = 20
+
+    def __init__(self) -> None:
+        self.counts = {"accepted": 0, "duplicates": 0, "late": 0, "rejected": 0}
+        self.shown = 0
+
+    def add(self, result: IngestResult, lines: list[int]) -> None:
+        """Count one batch's result; ``lines`` are its events' line numbers."""
+        self.counts["accepted"] += result.accepted
+        self.counts["duplicates"] += result.duplicates
+        self.counts["late"] += result.late
+        self.counts["rejected"] += len(result.rejected)
+        for rejected in result.rejected:
+            if self.shown < self.SHOWN:
+                print(f"line {lines[rejected['index']]}: {rejected['error']}", file=sys.stderr)
+                self.shown += 1
+
+    def report_hidden(self) -> None:
+        hidden = self.counts["rejected"] - self.shown
+        if hidden > 0:
+            print(f"... and {hidden} more rejected lines", file=sys.stderr)
+
+
+def _replay_file(
+    engine: Engine, settings: Settings, path: Path, fmt: str, batch_size: int, *, progress: bool
+) -> _ReplayTotals:
+    """Ingest the file's events in batches of ``batch_size``, with a progress bar."""
     from tqdm import tqdm
 
     from rolewatch.store.events import ingest
 
+    totals = _ReplayTotals()
+    handle = path.open("r", encoding="utf-8", errors="strict", newline="" if fmt == "csv" else None)
+    size = path.stat().st_size
+    bar = tqdm(
+        total=size,
+        unit="B",
+        unit_scale=True,
+        file=sys.stderr,
+        desc=f"replay {path.name}",
+        disable=not progress,
+    )
+    with handle, bar:
+        counted = _counting(handle, bar)
+        items = _with_line_ids(
+            _csv_items(counted) if fmt == "csv" else _ndjson_items(counted), _file_digest(path)
+        )
+        batch: list = []
+        lines: list[int] = []
+        for number, item in items:
+            batch.append(item)
+            lines.append(number)
+            if len(batch) >= batch_size:
+                totals.add(ingest(engine, settings, batch, _now_us()), lines)
+                batch, lines = [], []
+        if batch:
+            totals.add(ingest(engine, settings, batch, _now_us()), lines)
+        bar.update(max(0, size - bar.n))
+    return totals
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    """Feed a file of events through the same ingest path as the API, then close windows."""
     path = Path(args.file)
     if not path.is_file():
         raise UsageError(f"{path} does not exist or is not a file: check the path")
@@ -189,65 +279,17 @@ def cmd_replay(args) -> int:
     fmt = args.format or ("csv" if path.suffix.lower() == ".csv" else "ndjson")
     batch_size = args.batch_size or min(settings.max_batch_events, 5000)
     engine = _store(settings)
-    totals = {"accepted": 0, "duplicates": 0, "late": 0, "rejected": 0}
-    shown = 0
     try:
-        handle = path.open(
-            "r", encoding="utf-8", errors="strict", newline="" if fmt == "csv" else None
+        totals = _replay_file(
+            engine, settings, path, fmt, batch_size, progress=not args.no_progress
         )
-        with (
-            handle,
-            tqdm(
-                total=path.stat().st_size,
-                unit="B",
-                unit_scale=True,
-                file=sys.stderr,
-                desc=f"replay {path.name}",
-                disable=args.no_progress,
-            ) as bar,
-        ):
-            counted = _counting(handle, bar)
-            items = _csv_items(counted) if fmt == "csv" else _ndjson_items(counted)
-            batch: list = []
-            lines: list[int] = []
-
-            def flush() -> None:
-                nonlocal shown
-                result = ingest(engine, settings, batch, _now_us())
-                totals["accepted"] += result.accepted
-                totals["duplicates"] += result.duplicates
-                totals["late"] += result.late
-                totals["rejected"] += len(result.rejected)
-                for rejected in result.rejected:
-                    if shown < 20:
-                        print(
-                            f"line {lines[rejected['index']]}: {rejected['error']}", file=sys.stderr
-                        )
-                        shown += 1
-                batch.clear()
-                lines.clear()
-
-            for number, item in items:
-                batch.append(item)
-                lines.append(number)
-                if len(batch) >= batch_size:
-                    flush()
-            if batch:
-                flush()
-            bar.update(max(0, path.stat().st_size - bar.n))
-        if totals["rejected"] > shown:
-            print(f"... and {totals['rejected'] - shown} more rejected lines", file=sys.stderr)
-        closed = None
+        totals.report_hidden()
+        summary: dict[str, Any] = dict(totals.counts, file=str(path), format=fmt)
         if not args.no_close:
             from rolewatch.pipeline.closer import close_due_windows
 
             closed = close_due_windows(engine, settings, now_us=_now_us(), drain=True)
-        summary = dict(totals, file=str(path), format=fmt)
-        if closed is not None:
-            try:
-                summary["windows_closed"] = len(closed)
-            except TypeError:
-                summary["windows_closed"] = closed
+            summary["windows_closed"] = len(closed)
         print(json.dumps(summary))
     except UnicodeDecodeError as error:
         raise UsageError(f"{path} is not UTF-8 text ({error}); convert it to UTF-8") from None
@@ -269,7 +311,7 @@ BENCH_MODULES = (
 )
 
 
-def _bench_modules() -> dict[str, object]:
+def _bench_modules() -> dict[str, ModuleType]:
     found = {}
     for name in BENCH_MODULES:
         try:
@@ -282,7 +324,7 @@ def _bench_modules() -> dict[str, object]:
 def cmd_bench(args) -> int:
     """Run one benchmark case (or every case of a module, or ``all``): one JSON line each."""
     modules = _bench_modules()
-    plan: list[tuple[object, str]] = []
+    plan: list[tuple[ModuleType, str]] = []
     wanted = args.case.replace("-", "_")
     for name, module in modules.items():
         cases = tuple(getattr(module, "CASES", ()))
@@ -327,21 +369,7 @@ def _delegate(module_name: str):
 # --- parser ----------------------------------------------------------------------------------
 
 
-def build_parser() -> argparse.ArgumentParser:
-    common = argparse.ArgumentParser(add_help=False)
-    common.add_argument(
-        "--config",
-        metavar="FILE",
-        default=argparse.SUPPRESS,
-        help="TOML file of settings (also ROLEWATCH_CONFIG)",
-    )
-    parser = argparse.ArgumentParser(
-        prog="rolewatch",
-        parents=[common],
-        description="Streaming detection of structural role changes in an interaction graph.",
-    )
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
-
+def _add_serve(sub: Any, common: argparse.ArgumentParser) -> None:
     serve = sub.add_parser("serve", parents=[common], help="run the HTTP service")
     serve.add_argument("--host", help="address to bind (default: setting host)")
     serve.add_argument("--port", type=int, help="port to listen on (default: setting port)")
@@ -352,6 +380,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
     serve.set_defaults(handler=cmd_serve)
 
+
+def _add_keys(sub: Any, common: argparse.ArgumentParser) -> None:
     keys = sub.add_parser("keys", parents=[common], help="manage API keys")
     keys_sub = keys.add_subparsers(dest="keys_command", metavar="ACTION", required=True)
     create = keys_sub.add_parser("create", parents=[common], help="make a key; prints only the key")
@@ -370,6 +400,8 @@ def build_parser() -> argparse.ArgumentParser:
     revoke.add_argument("key_id", metavar="KEY_ID")
     keys.set_defaults(handler=cmd_keys)
 
+
+def _add_replay(sub: Any, common: argparse.ArgumentParser) -> None:
     replay = sub.add_parser(
         "replay", parents=[common], help="feed a file of events, then close windows"
     )
@@ -386,6 +418,8 @@ def build_parser() -> argparse.ArgumentParser:
     replay.add_argument("--no-progress", action="store_true", help="no progress bar")
     replay.set_defaults(handler=cmd_replay)
 
+
+def _add_bench_demo_evaluate(sub: Any, common: argparse.ArgumentParser) -> None:
     bench = sub.add_parser(
         "bench", parents=[common], help="run a benchmark; one JSON object per line"
     )
@@ -403,6 +437,24 @@ def build_parser() -> argparse.ArgumentParser:
     )
     evaluate.set_defaults(rest=[])
     evaluate.set_defaults(handler=_delegate("rolewatch.scenario.evaluate"))
+
+
+def build_parser() -> argparse.ArgumentParser:
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument(
+        "--config",
+        metavar="FILE",
+        default=argparse.SUPPRESS,
+        help="TOML file of settings (also ROLEWATCH_CONFIG)",
+    )
+    parser = argparse.ArgumentParser(
+        prog="rolewatch",
+        parents=[common],
+        description="Streaming detection of structural role changes in an interaction graph.",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    for add in (_add_serve, _add_keys, _add_replay, _add_bench_demo_evaluate):
+        add(sub, common)
     return parser
 
 

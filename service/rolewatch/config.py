@@ -57,6 +57,13 @@ Duration = Annotated[
 ]
 
 
+def written_duration(text: str) -> Any:
+    """A duration setting's default as an operator writes it (``"7d"``): pydantic parses it
+    when settings load (``validate_default``), and the README's settings table shows it as
+    written. Typed ``Any`` because the field's type is the parsed ``timedelta``."""
+    return text
+
+
 class Settings(BaseSettings):
     """All rolewatch options. Each one can be set as ``ROLEWATCH_<NAME>`` or in the TOML file."""
 
@@ -80,7 +87,8 @@ class Settings(BaseSettings):
         "last commits on power loss.",
     )
     sqlite_busy_timeout: Duration = Field(
-        "30s", description="How long a SQLite writer waits for a lock before failing."
+        written_duration("30s"),
+        description="How long a SQLite writer waits for a lock before failing.",
     )
 
     # --- HTTP --------------------------------------------------------------------------
@@ -109,27 +117,32 @@ class Settings(BaseSettings):
         10_000_000, ge=1024, description="Largest request body of POST /v1/events, in bytes."
     )
     max_future_skew: Duration = Field(
-        "5m",
+        written_duration("5m"),
         description="Events stamped further than this into the future (by this server's clock) "
         "are rejected one by one.",
     )
 
     # --- windows -----------------------------------------------------------------------
     window_period: Duration = Field(
-        "7d", description="How often a window closes; windows are aligned to UTC epoch multiples."
+        written_duration("7d"),
+        description="How often a window closes; windows are aligned to UTC epoch multiples.",
     )
     window_span: Duration = Field(
-        "7d", description="How much history one snapshot covers (≥ period; > period = hopping)."
+        written_duration("7d"),
+        description="How much history one snapshot covers (≥ period; > period = hopping).",
     )
     window_lateness: Duration = Field(
-        "1h", description="How long after a window's end to wait for stragglers before closing it."
+        written_duration("1h"),
+        description="How long after a window's end to wait for stragglers before closing it.",
     )
     idle_close_after: Duration = Field(
-        "10m",
+        written_duration("10m"),
         description="With no event received for this long, windows whose end plus lateness has "
         "passed on the wall clock close even though no newer event moved the watermark.",
     )
-    tick_interval: Duration = Field("10s", description="How often the background jobs run.")
+    tick_interval: Duration = Field(
+        written_duration("10s"), description="How often the background jobs run."
+    )
 
     # --- features and roles ------------------------------------------------------------
     training_windows: int = Field(
@@ -207,15 +220,21 @@ class Settings(BaseSettings):
         12, ge=1, description="Attempts before a delivery is marked failed."
     )
     delivery_backoff: Duration = Field(
-        "30s", description="First retry delay; doubles each attempt, with jitter, capped at 6h."
+        written_duration("30s"),
+        description="First retry delay; doubles each attempt, with jitter, capped at 6h.",
     )
-    delivery_connect_timeout: Duration = Field("5s", description="Webhook connect timeout.")
-    delivery_timeout: Duration = Field("15s", description="Webhook total request timeout.")
+    delivery_connect_timeout: Duration = Field(
+        written_duration("5s"), description="Webhook connect timeout."
+    )
+    delivery_timeout: Duration = Field(
+        written_duration("15s"), description="Webhook total request timeout."
+    )
     subscription_pause_after: int = Field(
         20, ge=1, description="Consecutive failed attempts after which a subscription is paused."
     )
     secret_overlap: Duration = Field(
-        "24h", description="How long a rotated-out signing secret keeps signing beside the new one."
+        written_duration("24h"),
+        description="How long a rotated-out signing secret keeps signing beside the new one.",
     )
     delivery_batch_size: int = Field(
         50, ge=1, description="Most deliveries one worker run claims and sends."

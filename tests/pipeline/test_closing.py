@@ -75,13 +75,19 @@ def _snapshot_of_results(engine) -> dict:
 
 
 def test_sample_closes_into_training_then_scored_windows(store):
+    from rolewatch import metrics
+
     engine, settings = store
     result = ingest(engine, settings, sample_events(), NOW)
     assert result.accepted > 10_000 and not result.rejected
+    counted_before = metrics.WINDOWS_CLOSED._value.get()
     closed = close_due_windows(engine, settings, now_us=NOW, drain=True)
     truth = sample_truth()
-    # training windows report twice: when recorded, and again when back-filled
-    assert len({summary["id"] for summary in closed}) == truth["meta"]["weeks"]
+    # one summary per window: a back-filled training window is reported once, measured,
+    # and counted once in rolewatch_windows_closed_total
+    assert [summary.id for summary in closed] == sorted({s.id for s in closed})
+    assert len(closed) == truth["meta"]["weeks"]
+    assert metrics.WINDOWS_CLOSED._value.get() - counted_before == truth["meta"]["weeks"]
     with engine.connect() as connection:
         rows = connection.execute(sa.select(windows).order_by(windows.c.end_us)).all()
         assert [row.training for row in rows] == [True] * 4 + [False] * (len(rows) - 4)
@@ -213,9 +219,9 @@ def test_a_crash_mid_close_leaves_no_partial_window_and_the_next_tick_redoes_it(
         count = connection.execute(
             sa.select(sa.func.count())
             .select_from(memberships)
-            .where(memberships.c.window_id == redone[0]["id"])
+            .where(memberships.c.window_id == redone[0].id)
         ).scalar_one()
-    assert count == redone[0]["accounts"] > 0
+    assert count == redone[0].accounts > 0
 
 
 def test_refit_on_a_named_period_keeps_persisting_role_ids_and_their_names(store):
@@ -254,3 +260,37 @@ def test_refit_on_a_named_period_keeps_persisting_role_ids_and_their_names(store
             connection.execute(sa.select(memberships.c.basis_version).distinct()).scalars()
         )
     assert versions == {before.basis.version}
+
+
+def test_the_window_closed_log_line_carries_the_window_summary(make_settings):
+    """The JSON log line of each closed window holds its summary (it was dropped before)."""
+    import io
+    import logging
+
+    from rolewatch.logs import JsonFormatter
+
+    settings = make_settings(training_windows=4)
+    engine = open_store(settings)
+    # the sample's first two weeks: two training windows, recorded without a model fit
+    early = [e for e in sample_events() if e["time"] < "2026-01-15"]
+    ingest(engine, settings, early, NOW)
+    stream = io.StringIO()
+    handler = logging.StreamHandler(stream)
+    handler.setFormatter(JsonFormatter())
+    pipeline_log = logging.getLogger("rolewatch.pipeline")
+    level = pipeline_log.level
+    pipeline_log.addHandler(handler)
+    pipeline_log.setLevel(logging.INFO)
+    try:
+        closed = close_due_windows(engine, settings, now_us=NOW, drain=True)
+    finally:
+        pipeline_log.removeHandler(handler)
+        pipeline_log.setLevel(level)
+        engine.dispose()
+    lines = [json.loads(line) for line in stream.getvalue().splitlines()]
+    logged = [line["window"] for line in lines if line["message"] == "window closed"]
+    assert len(closed) == 2
+    assert [
+        (entry["id"], entry["end"], entry["events"], entry["training"]) for entry in logged
+    ] == [(summary.id, summary.end, summary.events, True) for summary in closed]
+    assert sum(entry["events"] for entry in logged) == len(early)

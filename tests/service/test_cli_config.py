@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import hashlib
 import json
 import os
 import re
@@ -11,12 +12,14 @@ import socket
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import httpx
 import pytest
 import sqlalchemy as sa
 
 from rolewatch.config import ConfigError, load_settings
+from rolewatch.store.events import derived_event_id, file_line_event_id, parse_time_us
 from rolewatch.store.schema import events as events_table
 
 KEY_FORM = re.compile(r"rwk_[0-9a-f]{12}_[A-Za-z0-9_-]{43}")
@@ -214,7 +217,76 @@ def test_replay_ndjson_and_csv_store_what_the_api_stores(app_client, tmp_path, m
         summary = json.loads(result.stdout)
         assert (summary["accepted"], summary["duplicates"], summary["rejected"]) == (81, 1, 1)
         assert f"line {82 if fmt == 'ndjson' else 83}: time:" in result.stderr  # the naive time
-        assert stored_events(url) == through_api, fmt
+        # the same events; the one without an id is named by the file and its line (81 in
+        # NDJSON, 82 in CSV after the header) instead of by a hash of its fields
+        digest = hashlib.sha256(path.read_bytes()).hexdigest()
+        line_id = file_line_event_id(digest, 81 if fmt == "ndjson" else 82)
+        replayed = stored_events(url)
+        assert sorted(row[1:] for row in replayed) == sorted(row[1:] for row in through_api)
+        assert {row[0] for row in replayed} ^ {row[0] for row in through_api} == {
+            line_id,
+            derived_event_id(parse_time_us("2026-01-05T08:00:00+02:00"), "m-a", "m-b", None, 1.0),
+        }, fmt
+
+
+def test_replay_keeps_distinct_lines_without_ids_apart_and_stays_idempotent(tmp_path):
+    # Exports at minute resolution often hold the same interaction twice in one minute, with
+    # no ids (invented rows): each line is an event of its own, and replaying the file again
+    # stores nothing new.
+    rows = [
+        {"time": "2026-01-05T10:15:00Z", "actor": "m-a", "target": "m-b", "kind": "message"},
+        {"time": "2026-01-05T10:15:00Z", "actor": "m-a", "target": "m-b", "kind": "message"},
+        {"time": "2026-01-05T10:16:00Z", "actor": "m-b", "target": "m-a", "kind": "message"},
+    ]
+    ndjson = tmp_path / "messages.ndjson"
+    ndjson.write_text("".join(json.dumps(row) + "\n" for row in rows), encoding="utf-8")
+    csv_file = tmp_path / "messages.csv"
+    _write_csv(csv_file, [{"id": None, **row, "weight": None} for row in rows])
+    for path, fmt in ((ndjson, "ndjson"), (csv_file, "csv")):
+        url = f"sqlite:///{tmp_path / (fmt + '.db')}"
+        env = {"ROLEWATCH_DATABASE_URL": url}
+        first = rolewatch("replay", str(path), "--no-close", "--no-progress", env=env)
+        assert first.returncode == 0, first.stderr
+        assert (json.loads(first.stdout)["accepted"], json.loads(first.stdout)["duplicates"]) == (
+            3,
+            0,
+        ), fmt
+        again = rolewatch("replay", str(path), "--no-close", "--no-progress", env=env)
+        assert (json.loads(again.stdout)["accepted"], json.loads(again.stdout)["duplicates"]) == (
+            0,
+            3,
+        ), fmt
+        stored = stored_events(url)
+        assert len(stored) == len({row[0] for row in stored}) == 3, fmt
+
+
+def test_replay_reports_each_closed_window_once(tmp_path):
+    # the fictional marketplace sample's first five weeks (fixtures/sample, invented data):
+    # two training windows, then three scored ones; a back-filled training window is one
+    # window, not two
+    sample = Path(__file__).resolve().parents[2] / "fixtures" / "sample" / "events.ndjson"
+    lines = [
+        line
+        for line in sample.read_text(encoding="utf-8").splitlines()
+        if line.strip() and json.loads(line)["time"] < "2026-02-05"
+    ]
+    path = tmp_path / "five-weeks.ndjson"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    url = f"sqlite:///{tmp_path / 'replay.db'}"
+    result = rolewatch(
+        "replay",
+        str(path),
+        "--no-progress",
+        env={"ROLEWATCH_DATABASE_URL": url, "ROLEWATCH_TRAINING_WINDOWS": "2"},
+    )
+    assert result.returncode == 0, result.stderr
+    summary = json.loads(result.stdout)
+    engine = sa.create_engine(url)
+    with engine.connect() as connection:
+        stored = connection.execute(sa.text("SELECT count(*) FROM windows")).scalar_one()
+    engine.dispose()
+    assert stored == 5
+    assert summary["windows_closed"] == stored
 
 
 # --- serve -------------------------------------------------------------------------------------

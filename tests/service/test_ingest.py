@@ -11,7 +11,7 @@ import pytest
 import sqlalchemy as sa
 
 from rolewatch.clock import now_micros
-from rolewatch.store.events import derived_event_id, parse_time_us
+from rolewatch.store.events import FIELDS, derived_event_id, parse_time_us
 from rolewatch.store.schema import events as events_table
 from rolewatch.store.schema import service_state, windows
 
@@ -279,6 +279,36 @@ def test_per_event_errors_keep_the_good_events(app_client, make_event):
     assert errors[12].startswith("time: must be an RFC 3339 string")
     assert errors[14] == "actor: must not be empty"
     assert sorted(r.event_id for r in stored(app_client)) == ["good-0", "good-1"]
+
+
+def test_the_published_event_schema_holds_the_limits_ingest_enforces(app_client, make_event):
+    document = app_client.client.get("/openapi.json").json()
+    content = document["paths"]["/v1/events"]["post"]["requestBody"]["content"]
+    batch = content["application/json"]["schema"]
+    schema = batch["properties"]["events"]["items"]
+    assert batch["required"] == ["events"]
+    assert set(schema["properties"]) == set(FIELDS) and schema["additionalProperties"] is False
+    assert sorted(schema["required"]) == ["actor", "target", "time"]
+
+    def max_length(name: str) -> int:
+        field = schema["properties"][name]
+        (limit,) = [
+            part["maxLength"] for part in field.get("anyOf", [field]) if "maxLength" in part
+        ]
+        return limit
+
+    # each published limit is the exact boundary ingest enforces, event by event
+    at_limit, over_limit = [], []
+    for name in ("id", "actor", "target", "kind"):
+        limit = max_length(name)
+        for size, found in ((limit, at_limit), (limit + 1, over_limit)):
+            found.append(make_event(**{name: ("z" if name == "target" else "y") * size}))
+    outcome = post(app_client, at_limit + over_limit).json()
+    assert outcome["accepted"] == len(at_limit)
+    assert [r["index"] for r in outcome["rejected"]] == list(
+        range(len(at_limit), len(at_limit) + len(over_limit))
+    )
+    assert all("at most" in r["error"] for r in outcome["rejected"])
 
 
 def test_nan_and_infinite_weights_are_rejected_alone(app_client):

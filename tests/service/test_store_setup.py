@@ -36,7 +36,8 @@ def test_open_store_twice_is_a_no_op(store_url):
 
 def test_two_processes_starting_at_once(store_url, tmp_path):
     script = (
-        "import sys; from rolewatch.config import load_settings; from rolewatch.store.db import alembic_config, open_store;"
+        "import sys; from rolewatch.config import load_settings; "
+        "from rolewatch.store.db import open_store; "
         "open_store(load_settings(database_url=sys.argv[1])).dispose()"
     )
     # Run from an unrelated directory: the migrations are found inside the installed package.

@@ -1,9 +1,10 @@
-"""Pydantic v2 models of the wire format (DESIGN.md "Wire format"), used for validation of
-small request bodies and for the OpenAPI document at /docs.
+"""Pydantic v2 models of the wire format (README.md "Posting events", docs/CONTRACTS.md),
+used for validation of small request bodies and for the OpenAPI document at /docs.
 
-Events themselves are validated by :mod:`rolewatch.store.events` in plain Python (one model
-per event would cost more than the whole insert); :class:`Event` documents their form.
-Times are RFC 3339 strings in UTC with a "Z".
+Events themselves are validated one by one by :mod:`rolewatch.store.events` in plain Python
+(one model per event would cost more than the whole insert, and a bad event must not lose
+the good ones around it); :class:`EventBatch` is the source of the ``POST /v1/events``
+request schema, with the store's field limits. Times are RFC 3339 strings in UTC with a "Z".
 """
 
 from __future__ import annotations
@@ -12,26 +13,35 @@ from typing import Any
 
 from pydantic import BaseModel, ConfigDict, Field
 
+from rolewatch.store.schema import MAX_ACCOUNT_CHARS, MAX_ID_CHARS, MAX_KIND_CHARS
+
 
 class Event(BaseModel):
-    """One interaction event (documentation of the wire form)."""
+    """One interaction event."""
 
     model_config = ConfigDict(extra="forbid")
     id: str | None = Field(
-        None, max_length=200, description="Idempotency key; absent: a hash of the other fields."
+        None,
+        max_length=MAX_ID_CHARS,
+        description="Idempotency key; absent: a hash of the other fields.",
     )
     time: str = Field(
-        ..., description="RFC 3339 timestamp with an offset, e.g. 2026-02-12T09:30:00Z."
+        ...,
+        description="RFC 3339 timestamp with an offset, e.g. 2026-02-12T09:30:00Z.",
+        json_schema_extra={"format": "date-time"},
     )
-    actor: str = Field(..., max_length=200, description="The account that acted.")
+    actor: str = Field(..., max_length=MAX_ACCOUNT_CHARS, description="The account that acted.")
     target: str = Field(
-        ..., max_length=200, description="The account acted upon; differs from actor."
+        ..., max_length=MAX_ACCOUNT_CHARS, description="The account acted upon; differs from actor."
     )
-    kind: str | None = Field(None, max_length=64, description="e.g. payment, message.")
+    kind: str | None = Field(None, max_length=MAX_KIND_CHARS, description="e.g. payment, message.")
     weight: float = Field(1.0, ge=0, description="Finite, ≥ 0, e.g. an amount.")
 
 
 class EventBatch(BaseModel):
+    """The JSON body of ``POST /v1/events``."""
+
+    model_config = ConfigDict(extra="forbid")
     events: list[Event]
 
 

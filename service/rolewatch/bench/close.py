@@ -40,7 +40,7 @@ def _power_law_events(
     weights = np.round(rng.lognormal(2.5, 1.0, size=n_events), 2)
     return [
         (f"{prefix}{i}", int(t), f"a-{a:07d}", f"a-{b:07d}", "payment", float(w), int(t), 0)
-        for i, (t, a, b, w) in enumerate(zip(times, actor, target, weights))
+        for i, (t, a, b, w) in enumerate(zip(times, actor, target, weights, strict=True))
     ]
 
 
@@ -94,9 +94,9 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     yield {
         "case": case,
         "cores": os.cpu_count(),
-        "events": summary["events"],
-        "accounts": summary["accounts"],
-        "alerts": summary["alert_count"],
+        "events": summary.events,
+        "accounts": summary.accounts,
+        "alerts": summary.alert_count,
         "seconds": round(seconds, 2),
         "training_seconds": round(training_seconds, 2),
         "peak_rss_mb": round(_peak_rss_mb(), 1),

@@ -18,9 +18,18 @@ from __future__ import annotations
 import os
 import time
 from collections.abc import Iterator
+from typing import TypedDict
 
 CASES = ("detection",)
-SIZES = {
+
+
+class Size(TypedDict):
+    seeds: tuple[int, ...]
+    members: int
+    weeks: int
+
+
+SIZES: dict[str, Size] = {
     "detection": {"seeds": (0, 1, 2), "members": 3000, "weeks": 16},
     "detection-small": {"seeds": (7,), "members": 400, "weeks": 10},
 }

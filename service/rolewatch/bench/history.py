@@ -42,7 +42,8 @@ def _load(path: Path, rows_total: int) -> tuple[int, float]:
         "trained_to_us, body) VALUES ('b-bench', 'r-bench', 0, 1, 0, 1, '{}')"
     )
     connection.executemany(
-        "INSERT INTO roles (basis_version, role_id, name, description, profile) VALUES (?, ?, ?, ?, '{}')",
+        "INSERT INTO roles (basis_version, role_id, name, description, profile) "
+        "VALUES (?, ?, ?, ?, '{}')",
         [("b-bench", r, f"role {r}", "") for r in range(1, 7)],
     )
     connection.executemany(
@@ -67,8 +68,8 @@ def _load(path: Path, rows_total: int) -> tuple[int, float]:
         json.dumps({"2": 1.0}),
     ]
     sql = (
-        "INSERT INTO memberships (account, window_id, basis_version, mixture, dominant_role, score, "
-        "status, events_out, events_in, counterparts, new_counterparts, error) "
+        "INSERT INTO memberships (account, window_id, basis_version, mixture, dominant_role, "
+        "score, status, events_out, events_in, counterparts, new_counterparts, error) "
         "VALUES (?, ?, 'b-bench', ?, ?, ?, 'scored', ?, ?, ?, ?, ?)"
     )
     for window in range(1, WINDOWS + 1):

@@ -1,9 +1,10 @@
 """Ingest throughput through HTTP, next to a raw sqlite3 executemany of the same rows.
 
 ``ingest-http``: a real ``rolewatch serve --role api`` in a subprocess on a loopback port
-(SQLite file, default durability: synchronous FULL), fed by four concurrent httpx clients (ROLEWATCH_BENCH_CLIENTS) posting JSON
-batches of 1,000 events; then the same rows written by plain ``sqlite3`` ``executemany``
-(one transaction per 1,000 rows, same schema and pragmas) in the same run. Prints events/s
+(SQLite file, default durability: synchronous FULL), fed by four concurrent httpx clients
+(ROLEWATCH_BENCH_CLIENTS) posting JSON batches of 1,000 events; then the same rows written
+by plain ``sqlite3`` ``executemany`` (one transaction per 1,000 rows, same schema and
+pragmas) in the same run. Prints events/s
 of both and their ratio. Target: ≥ 20,000 events/s through HTTP (one server process).
 """
 
@@ -126,6 +127,24 @@ def _raw_sqlite(path: Path, rows: list[tuple], now_us: int) -> float:
     return elapsed
 
 
+def _serve_api(path: Path, port: int) -> subprocess.Popen:
+    """A ``rolewatch serve --role api`` on ``port`` over the SQLite file ``path``."""
+    env = dict(
+        os.environ,
+        ROLEWATCH_DATABASE_URL=f"sqlite:///{path}",
+        ROLEWATCH_LOG_LEVEL="WARNING",
+        ROLEWATCH_MAX_BATCH_EVENTS="10000",
+    )
+    env.pop("ROLEWATCH_CONFIG", None)
+    command = ["serve", "--host", "127.0.0.1", "--port", str(port), "--role", "api"]
+    return subprocess.Popen(
+        [sys.executable, "-m", "rolewatch.cli", *command],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+    )
+
+
 def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     import orjson
 
@@ -150,30 +169,7 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
 
         port = _free_port()
         url = f"http://127.0.0.1:{port}"
-        env = dict(
-            os.environ,
-            ROLEWATCH_DATABASE_URL=f"sqlite:///{http_db}",
-            ROLEWATCH_LOG_LEVEL="WARNING",
-            ROLEWATCH_MAX_BATCH_EVENTS="10000",
-        )
-        env.pop("ROLEWATCH_CONFIG", None)
-        process = subprocess.Popen(
-            [
-                sys.executable,
-                "-m",
-                "rolewatch.cli",
-                "serve",
-                "--host",
-                "127.0.0.1",
-                "--port",
-                str(port),
-                "--role",
-                "api",
-            ],
-            env=env,
-            stdout=subprocess.DEVNULL,
-            stderr=subprocess.PIPE,
-        )
+        process = _serve_api(http_db, port)
         try:
             _wait_healthy(url, process)
             warm = max(1, len(bodies) // 20)  # first 5% warm the server up, not timed

@@ -6,17 +6,42 @@ also run in the detection benchmark with the very same code.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
+from urllib.parse import quote
 
 import numpy as np
 
+from rolewatch.config import Settings
 from rolewatch.engine.activity import Activity, Counterparts, activity_counts
+from rolewatch.engine.basis import Memberships
 from rolewatch.engine.bridging import bridging_zscore, community_labels, undirected_ties
-from rolewatch.engine.scoring import ShiftPolicy, score_window
+from rolewatch.engine.features import FeatureTable
+from rolewatch.engine.scoring import ShiftPolicy, WindowScores, score_window
 from rolewatch.engine.shift import baseline_mixture, feature_moves
 from rolewatch.engine.snapshot import Snapshot
-from rolewatch.pipeline.loading import WindowEvents
+from rolewatch.pipeline.loading import PastWindow, WindowEvents
 from rolewatch.pipeline.model import FrozenModel
+from rolewatch.store.alerts import (
+    ActivityEvidence,
+    Evidence,
+    NewAlert,
+    RoleShare,
+    ShiftComponents,
+    WindowRef,
+)
+from rolewatch.store.memberships import MIXTURE_DECIMALS
+
+__all__ = [
+    "PastWindow",
+    "WindowRef",
+    "WindowResult",
+    "as_stored",
+    "compute_window",
+    "lookback_windows",
+    "past_from_result",
+]
 
 REVIEW_NOTICE = (
     "A lead for human review, not a verdict: check the evidence before acting on this "
@@ -24,17 +49,10 @@ REVIEW_NOTICE = (
 )
 
 
-@dataclass(frozen=True)
-class PastWindow:
-    """Stored memberships of one earlier window, mapped onto the model's role ids."""
-
-    accounts: np.ndarray  # str
-    mixture: np.ndarray  # m x k, columns in model.basis.role_ids order
-    events: np.ndarray  # m
-
-
 @dataclass
 class WindowResult:
+    """Every active account's measures in one window, and the alerts it raised."""
+
     nodes: np.ndarray
     mixture: np.ndarray
     dominant: np.ndarray
@@ -42,7 +60,7 @@ class WindowResult:
     status: np.ndarray
     error: np.ndarray
     activity: Activity
-    alerts: list[dict]
+    alerts: list[NewAlert]
     reconstruction_error: float | None
     new_count: int
     inactive_count: int
@@ -52,7 +70,7 @@ class WindowResult:
 def as_stored(mixture: np.ndarray) -> np.ndarray:
     """Mixtures exactly as they read back from the store (6 decimals, renormalised), so a
     baseline built in memory equals one loaded from stored memberships."""
-    rounded = np.round(np.asarray(mixture, dtype=np.float64), 6)
+    rounded = np.round(np.asarray(mixture, dtype=np.float64), MIXTURE_DECIMALS)
     totals = rounded.sum(axis=1, keepdims=True)
     return np.divide(rounded, totals, out=rounded, where=totals > 0)
 
@@ -66,7 +84,12 @@ def past_from_result(result: WindowResult) -> PastWindow:
     )
 
 
-def policy_from_settings(settings) -> ShiftPolicy:
+def lookback_windows(settings: Settings) -> int:
+    """How many past windows the baseline may look back over."""
+    return max(settings.baseline_windows, int(np.ceil(4 * settings.baseline_half_life)), 8)
+
+
+def policy_from_settings(settings: Settings) -> ShiftPolicy:
     return ShiftPolicy(
         measure=settings.shift_measure,
         baseline=settings.shift_baseline,
@@ -80,7 +103,9 @@ def policy_from_settings(settings) -> ShiftPolicy:
     )
 
 
-def history_tensor(snapshot: Snapshot, past: list[PastWindow], n_roles: int):
+def history_tensor(
+    snapshot: Snapshot, past: list[PastWindow], n_roles: int
+) -> tuple[np.ndarray, np.ndarray]:
     """(t x n x k mixtures with NaN rows where inactive, t x n events) for the snapshot's nodes.
 
     ``past`` runs from the oldest window to the newest.
@@ -104,12 +129,14 @@ def window_bridging(snapshot: Snapshot | None, n_communities: int) -> np.ndarray
     return bridging_zscore(ties, community_labels(ties, n_communities))
 
 
-def bridging_inputs(snapshot: Snapshot, previous: Snapshot | None, n_communities: int):
+def bridging_inputs(
+    snapshot: Snapshot, previous: Snapshot | None, n_communities: int
+) -> tuple[np.ndarray | None, np.ndarray | None]:
     """(current, baseline) bridging z-scores in ``snapshot``'s node order; the baseline is
     the previous window's value, NaN for accounts absent from it. (None, None) when off."""
     current = window_bridging(snapshot, n_communities)
     before = window_bridging(previous, n_communities)
-    if current is None or before is None:
+    if current is None or before is None or previous is None:
         return None, None
     rows = previous.index_of(snapshot.nodes)
     baseline = np.where(rows >= 0, before[np.maximum(rows, 0)], np.nan)
@@ -127,12 +154,12 @@ def _latest_events(events_history: np.ndarray) -> np.ndarray:
 
 def compute_window(
     model: FrozenModel,
-    settings,
+    settings: Settings,
     current: WindowEvents,
     previous: WindowEvents | None,
     past: list[PastWindow],
     *,
-    window: dict,
+    window: WindowRef,
     raise_alerts: bool,
 ) -> WindowResult:
     """Measure every active account of one window against its own history.
@@ -140,42 +167,19 @@ def compute_window(
     Parameters
     ----------
     window
-        ``{"id", "start", "end"}`` of the window (RFC 3339), copied into the evidence.
+        The window's id (None until it is stored), start and end, copied into the evidence.
     raise_alerts
         False for training windows: they are scored for the record but never alert.
     """
     snapshot = current.snapshot()
     previous_snapshot = previous.snapshot() if previous is not None else None
-    role_ids = np.asarray(model.basis.role_ids)
-    k = len(role_ids)
-    n = snapshot.n_nodes
     activity = activity_counts(snapshot, previous_snapshot)
-    if n == 0:
-        return WindowResult(
-            nodes=snapshot.nodes,
-            mixture=np.zeros((0, k)),
-            dominant=np.zeros(0, dtype=np.int64),
-            score=np.zeros(0),
-            status=np.array([], dtype=object),
-            error=np.zeros(0),
-            activity=activity,
-            alerts=[],
-            reconstruction_error=None,
-            new_count=0,
-            inactive_count=len(past[-1].accounts) if past else 0,
-            scored_count=0,
-        )
+    if snapshot.n_nodes == 0:
+        return _empty_result(snapshot, activity, len(model.basis.role_ids), past)
     table = model.recipe.transform(snapshot)
     members = model.basis.memberships(table)
-    history, events_history = history_tensor(snapshot, past, k)
     policy = policy_from_settings(settings)
-    if len(past):
-        baseline = baseline_mixture(
-            history, mode=policy.baseline, last_k=policy.last_k, half_life=policy.half_life
-        )
-    else:
-        baseline = np.full((n, k), np.nan)
-    baseline_events = _latest_events(events_history)
+    baseline, baseline_events = _baselines(snapshot, past, policy, len(model.basis.role_ids))
     current_bridging, baseline_bridging = bridging_inputs(
         snapshot, previous_snapshot, policy.bridge_communities
     )
@@ -190,56 +194,85 @@ def compute_window(
         current_bridging=current_bridging,
         baseline_bridging=baseline_bridging,
     )
-    dominant = role_ids[np.argmax(members.mixture, axis=1)]
+    alerts: list[NewAlert] = []
+    if raise_alerts and np.any(scores.alert):
+        context = _AlertContext(
+            model=model,
+            policy=policy,
+            threshold=float(
+                settings.alert_threshold
+                if policy.alert_mode == "threshold"
+                else settings.alert_floor
+            ),
+            base_url=settings.public_url.rstrip("/"),
+            window=window,
+            snapshot=snapshot,
+            table=table,
+            mixture=members.mixture,
+            baseline=baseline,
+            scores=scores,
+            activity=activity,
+            counterparts=Counterparts(snapshot, previous_snapshot),
+            previous=_previous_window(model, previous_snapshot),
+        )
+        alerts = _raise_alerts(context, current)
+    return _measured_result(model, snapshot, members, scores, activity, alerts, past)
+
+
+def _empty_result(
+    snapshot: Snapshot, activity: Activity, n_roles: int, past: list[PastWindow]
+) -> WindowResult:
+    """The result of a window without events: nobody active, everyone before inactive."""
+    return WindowResult(
+        nodes=snapshot.nodes,
+        mixture=np.zeros((0, n_roles)),
+        dominant=np.zeros(0, dtype=np.int64),
+        score=np.zeros(0),
+        status=np.array([], dtype=object),
+        error=np.zeros(0),
+        activity=activity,
+        alerts=[],
+        reconstruction_error=None,
+        new_count=0,
+        inactive_count=len(past[-1].accounts) if past else 0,
+        scored_count=0,
+    )
+
+
+def _baselines(
+    snapshot: Snapshot, past: list[PastWindow], policy: ShiftPolicy, n_roles: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Each account's baseline mixture (NaN rows without history) and its event count in
+    its latest active past window (NaN when none)."""
+    history, events_history = history_tensor(snapshot, past, n_roles)
+    if len(past):
+        baseline = baseline_mixture(
+            history, mode=policy.baseline, last_k=policy.last_k, half_life=policy.half_life
+        )
+    else:
+        baseline = np.full((snapshot.n_nodes, n_roles), np.nan)
+    return baseline, _latest_events(events_history)
+
+
+def _measured_result(
+    model: FrozenModel,
+    snapshot: Snapshot,
+    members: Memberships,
+    scores: WindowScores,
+    activity: Activity,
+    alerts: list[NewAlert],
+    past: list[PastWindow],
+) -> WindowResult:
     status = np.asarray(scores.status, dtype=object)
     inactive_count = 0
     if past:
         still_here = snapshot.index_of(past[-1].accounts) >= 0
         inactive_count = int((~still_here).sum())
-
-    alerts: list[dict] = []
-    if raise_alerts and np.any(scores.alert):
-        previous_table = (
-            model.recipe.transform(previous_snapshot)
-            if previous_snapshot is not None and previous_snapshot.n_nodes
-            else None
-        )
-        previous_activity = (
-            activity_counts(previous_snapshot) if previous_table is not None else None
-        )
-        threshold = (
-            settings.alert_threshold if policy.alert_mode == "threshold" else settings.alert_floor
-        )
-        alert_rows = np.flatnonzero(scores.alert)
-        counterparts = Counterparts(snapshot, previous_snapshot)
-        samples = _sample_event_ids(snapshot, current, alert_rows)
-        for row in alert_rows:
-            alerts.append(
-                _alert_record(
-                    model,
-                    settings,
-                    row=int(row),
-                    snapshot=snapshot,
-                    previous_snapshot=previous_snapshot,
-                    table=table,
-                    previous_table=previous_table,
-                    previous_activity=previous_activity,
-                    mixture=members.mixture[row],
-                    baseline=baseline[row],
-                    scores=scores,
-                    activity=activity,
-                    baseline_events=baseline_events[row],
-                    counterparts=counterparts,
-                    sample_ids=samples.get(int(row), []),
-                    window=window,
-                    threshold=threshold,
-                    policy=policy,
-                )
-            )
+    role_ids = np.asarray(model.basis.role_ids)
     return WindowResult(
         nodes=snapshot.nodes,
         mixture=members.mixture,
-        dominant=dominant,
+        dominant=role_ids[np.argmax(members.mixture, axis=1)],
         score=np.asarray(scores.score, dtype=np.float64),
         status=status,
         error=members.error,
@@ -249,6 +282,117 @@ def compute_window(
         new_count=int(np.sum(status == "new")),
         inactive_count=inactive_count,
         scored_count=int(np.sum(status == "scored")),
+    )
+
+
+@dataclass(frozen=True)
+class _PreviousWindow:
+    """The span before the window, as the evidence shows it ("before" values)."""
+
+    snapshot: Snapshot
+    table: FeatureTable
+    activity: Activity
+
+
+def _previous_window(model: FrozenModel, snapshot: Snapshot | None) -> _PreviousWindow | None:
+    if snapshot is None or not snapshot.n_nodes:
+        return None
+    return _PreviousWindow(
+        snapshot=snapshot,
+        table=model.recipe.transform(snapshot),
+        activity=activity_counts(snapshot),
+    )
+
+
+@dataclass(frozen=True)
+class _AlertContext:
+    """What every alert of one window draws its evidence from."""
+
+    model: FrozenModel
+    policy: ShiftPolicy
+    threshold: float
+    base_url: str
+    window: WindowRef
+    snapshot: Snapshot
+    table: FeatureTable
+    mixture: np.ndarray
+    baseline: np.ndarray
+    scores: WindowScores
+    activity: Activity
+    counterparts: Counterparts
+    previous: _PreviousWindow | None
+
+
+def _raise_alerts(context: _AlertContext, current: WindowEvents) -> list[NewAlert]:
+    """One alert, with its evidence, per account the scores flagged."""
+    rows = np.flatnonzero(context.scores.alert)
+    samples = _sample_event_ids(context.snapshot, current, rows)
+    return [_alert(context, int(row), samples.get(int(row), [])) for row in rows]
+
+
+def _alert(context: _AlertContext, row: int, sample_ids: list[str]) -> NewAlert:
+    role_ids = context.model.basis.role_ids
+    mixture, baseline = context.mixture[row], context.baseline[row]
+    role_before = (
+        int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
+    )
+    return NewAlert(
+        account=str(context.snapshot.nodes[row]),
+        score=float(context.scores.score[row]),
+        role_before=role_before,
+        role_after=int(role_ids[int(np.argmax(mixture))]),
+        evidence=_evidence(context, row, sample_ids),
+    )
+
+
+def _evidence(context: _AlertContext, row: int, sample_ids: list[str]) -> Evidence:
+    model, scores, activity = context.model, context.scores, context.activity
+    account = str(context.snapshot.nodes[row])
+    before_raw = np.zeros(context.table.raw.shape[1])
+    before = ActivityEvidence(
+        events_out=int(activity.events_out[row]),
+        events_in=int(activity.events_in[row]),
+        counterparts=int(activity.counterparts[row]),
+        new_counterparts=int(activity.new_counterparts[row]),
+    )
+    previous = context.previous
+    if previous is not None:
+        previous_row = previous.snapshot.index_of([account])[0]
+        if previous_row >= 0:
+            before_raw = previous.table.raw[previous_row]
+            before = ActivityEvidence(
+                events_out=before.events_out,
+                events_in=before.events_in,
+                counterparts=before.counterparts,
+                new_counterparts=before.new_counterparts,
+                events_out_before=int(previous.activity.events_out[previous_row]),
+                events_in_before=int(previous.activity.events_in[previous_row]),
+                counterparts_before=int(previous.activity.counterparts[previous_row]),
+            )
+    quoted = quote(account, safe="")
+    return Evidence(
+        threshold=context.threshold,
+        measure=context.policy.measure,
+        mode=context.policy.alert_mode,
+        components=ShiftComponents(
+            composition=_finite(scores.composition[row]),
+            magnitude=_finite(scores.magnitude[row]),
+            error=_finite(scores.error[row]),
+            bridging=_finite(scores.bridging[row]) if scores.bridging is not None else None,
+        ),
+        mixture_before=_mixture_list(model, np.nan_to_num(context.baseline[row])),
+        mixture_after=_mixture_list(model, context.mixture[row]),
+        feature_moves=tuple(
+            _readable_moves(context.table.names, before_raw, context.table.raw[row])
+        ),
+        activity=before,
+        top_counterparts=tuple(context.counterparts.top(row, top=10)),
+        sample_event_ids=tuple(sample_ids),
+        history_url=f"{context.base_url}/v1/accounts/{quoted}/roles",
+        page_url=f"{context.base_url}/accounts/{quoted}",
+        notice=REVIEW_NOTICE,
+        window=context.window,
+        basis_version=model.basis.version,
     )
 
 
@@ -272,108 +416,31 @@ def _sample_event_ids(
     return samples
 
 
-def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> list[dict]:
+def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> tuple[RoleShare, ...]:
+    """The mixture as role shares, largest first (weights to 4 decimals)."""
     entries = [
-        {
-            "role_id": int(role_id),
-            "name": model.role_name(int(role_id)),
-            "weight": round(float(w), 4),
-        }
-        for role_id, w in zip(model.basis.role_ids, mixture)
+        RoleShare(
+            role_id=int(role_id), name=model.role_name(int(role_id)), weight=round(float(w), 4)
+        )
+        for role_id, w in zip(model.basis.role_ids, mixture, strict=True)
     ]
-    return sorted(entries, key=lambda entry: -entry["weight"])
+    return tuple(sorted(entries, key=lambda entry: -entry.weight))
 
 
-def _alert_record(
-    model,
-    settings,
-    *,
-    row,
-    snapshot,
-    previous_snapshot,
-    table,
-    previous_table,
-    previous_activity,
-    mixture,
-    baseline,
-    scores,
-    activity,
-    baseline_events,
-    counterparts,
-    sample_ids,
-    window,
-    threshold,
-    policy,
-) -> dict:
-    account = str(snapshot.nodes[row])
-    role_ids = model.basis.role_ids
-    role_after = int(role_ids[int(np.argmax(mixture))])
-    role_before = (
-        int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
-    )
-    before_raw = np.zeros(table.raw.shape[1])
-    before_counts = {"events_out_before": 0, "events_in_before": 0, "counterparts_before": 0}
-    if previous_table is not None:
-        previous_row = previous_snapshot.index_of([account])[0]
-        if previous_row >= 0:
-            before_raw = previous_table.raw[previous_row]
-            before_counts = {
-                "events_out_before": int(previous_activity.events_out[previous_row]),
-                "events_in_before": int(previous_activity.events_in[previous_row]),
-                "counterparts_before": int(previous_activity.counterparts[previous_row]),
-            }
-    base_url = settings.public_url.rstrip("/")
-    from urllib.parse import quote
-
-    evidence = {
-        "threshold": float(threshold),
-        "measure": policy.measure,
-        "mode": policy.alert_mode,
-        "components": {
-            "composition": _finite(scores.composition[row]),
-            "magnitude": _finite(scores.magnitude[row]),
-            "error": _finite(scores.error[row]),
-            "bridging": _finite(scores.bridging[row]) if scores.bridging is not None else None,
-        },
-        "mixture_before": _mixture_list(model, np.nan_to_num(baseline)),
-        "mixture_after": _mixture_list(model, mixture),
-        "feature_moves": _readable_moves(table.names, before_raw, table.raw[row]),
-        "activity": {
-            "events_out": int(activity.events_out[row]),
-            "events_in": int(activity.events_in[row]),
-            "counterparts": int(activity.counterparts[row]),
-            "new_counterparts": int(activity.new_counterparts[row]),
-            **before_counts,
-        },
-        "top_counterparts": counterparts.top(row, top=10),
-        "sample_event_ids": sample_ids,
-        "history_url": f"{base_url}/v1/accounts/{quote(account, safe='')}/roles",
-        "page_url": f"{base_url}/accounts/{quote(account, safe='')}",
-        "notice": REVIEW_NOTICE,
-        "window": window,
-        "basis_version": model.basis.version,
-    }
-    return {
-        "account": account,
-        "score": float(scores.score[row]),
-        "role_before": role_before,
-        "role_after": role_after,
-        "evidence": evidence,
-    }
-
-
-def _readable_moves(names, before: np.ndarray, after: np.ndarray, top: int = 5) -> list[dict]:
+def _readable_moves(
+    names: Sequence[str], before: np.ndarray, after: np.ndarray, top: int = 5
+) -> list[dict[str, Any]]:
     """The features that moved most, base features first: an analyst reads "out_degree 2 →
     37" at once, while a third-round recursive aggregate needs a manual to decode. Recursive
     features fill the list only when fewer than ``top`` base features moved."""
     depth = np.array([name.count("(") for name in names])
-    moves: list[dict] = []
+    moves: list[dict[str, Any]] = []
     for level in range(int(depth.max(initial=0)) + 1):
         columns = np.flatnonzero(depth == level)
         if len(columns) == 0:
             continue
         picked = feature_moves(
-            [names[c] for c in columns], before[columns], after[columns], top=top
+            [names[int(c)] for c in columns], before[columns], after[columns], top=top
         )
         moves.extend(picked[: top - len(moves)])
         if len(moves) >= top:
@@ -381,6 +448,6 @@ def _readable_moves(names, before: np.ndarray, after: np.ndarray, top: int = 5) 
     return moves
 
 
-def _finite(value) -> float | None:
-    value = float(value)
-    return value if np.isfinite(value) else None
+def _finite(value: float) -> float | None:
+    number = float(value)
+    return number if np.isfinite(number) else None

@@ -10,14 +10,14 @@ basis version they were measured with.
 
 from __future__ import annotations
 
-import sqlalchemy as sa
-from sqlalchemy.engine import Engine
+from typing import Any
 
 from rolewatch.clock import now_micros, to_rfc3339
+from rolewatch.config import Settings
 from rolewatch.pipeline.loading import load_window_events
 from rolewatch.pipeline.model import fit_model, load_active_model, store_model
-from rolewatch.store.db import write_transaction
-from rolewatch.store.schema import windows
+from rolewatch.store.db import Engine, write_transaction
+from rolewatch.store.windows import closed_windows_within
 
 
 class RefitError(ValueError):
@@ -25,8 +25,8 @@ class RefitError(ValueError):
 
 
 def refit_basis(
-    engine: Engine, settings, start_us: int, end_us: int, *, now_us: int | None = None
-) -> dict:
+    engine: Engine, settings: Settings, start_us: int, end_us: int, *, now_us: int | None = None
+) -> dict[str, Any]:
     """Fit a new recipe and basis on the closed windows within ``[start_us, end_us]``.
 
     Returns a summary: new basis version, recipe version, role ids kept and added, and the
@@ -40,11 +40,7 @@ def refit_basis(
             raise RefitError(
                 "no basis has been trained yet: wait until the first training windows close"
             )
-        rows = connection.execute(
-            sa.select(windows.c.start_us, windows.c.end_us)
-            .where(windows.c.start_us >= start_us, windows.c.end_us <= end_us)
-            .order_by(windows.c.end_us)
-        ).all()
+        rows = closed_windows_within(connection, start_us, end_us)
         loaded = [load_window_events(connection, row.start_us, row.end_us) for row in rows]
     snapshots = [window_events.snapshot() for window_events in loaded if len(window_events)]
     if not snapshots:

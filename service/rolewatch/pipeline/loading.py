@@ -1,15 +1,17 @@
-"""Read a window's events from the store into the arrays the engine takes."""
+"""What a window close reads from the store, as the arrays the engine takes: a window's
+events, and the stored memberships of the windows before it."""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
 import numpy as np
-import sqlalchemy as sa
-from sqlalchemy.engine import Connection
 
 from rolewatch.engine.snapshot import Snapshot
-from rolewatch.store.schema import events
+from rolewatch.pipeline.model import FrozenModel
+from rolewatch.store import memberships as stored_memberships
+from rolewatch.store.db import Connection
+from rolewatch.store.windows import events_between
 
 
 @dataclass(frozen=True)
@@ -28,25 +30,57 @@ class WindowEvents:
         return Snapshot.from_events(self.actor, self.target, self.weight)
 
 
+@dataclass(frozen=True)
+class PastWindow:
+    """Stored memberships of one earlier window, mapped onto the model's role ids."""
+
+    accounts: np.ndarray  # str
+    mixture: np.ndarray  # m x k, columns in model.basis.role_ids order
+    events: np.ndarray  # m
+
+
 def load_window_events(connection: Connection, start_us: int, end_us: int) -> WindowEvents:
     """All stored events with ``start_us <= time < end_us``.
 
     Late events are included: a window that is still open takes every event in its range,
     whenever it arrived (a closed window is never reloaded).
     """
-    query = (
-        sa.select(events.c.event_id, events.c.actor, events.c.target, events.c.weight)
-        .where(events.c.time_us >= start_us, events.c.time_us < end_us)
-        .order_by(events.c.time_us, events.c.event_id)
-    )
-    rows = connection.execute(query).all()
+    rows = events_between(connection, start_us, end_us)
     if not rows:
         empty = np.array([], dtype=object)
         return WindowEvents(empty, empty, empty, np.array([], dtype=np.float64))
-    event_id, actor, target, weight = zip(*rows)
+    event_id, actor, target, weight = zip(*rows, strict=True)
     return WindowEvents(
         event_id=np.array(event_id, dtype=object),
         actor=np.array(actor, dtype=object),
         target=np.array(target, dtype=object),
         weight=np.array(weight, dtype=np.float64),
     )
+
+
+def load_past_windows(
+    connection: Connection, model: FrozenModel, *, before_end_us: int, limit: int
+) -> list[PastWindow]:
+    """Stored memberships of the last ``limit`` measured windows before ``before_end_us``,
+    oldest first, with mixtures laid out in the model's role order (missing roles are 0)."""
+    column_of = {str(role_id): column for column, role_id in enumerate(model.basis.role_ids)}
+    k = len(column_of)
+    past = []
+    for window_id in stored_memberships.measured_window_ids(
+        connection, before_end_us=before_end_us, limit=limit
+    ):
+        rows = stored_memberships.window_mixtures(connection, window_id)
+        mixture = np.zeros((len(rows), k))
+        accounts = np.empty(len(rows), dtype=object)
+        counts = np.zeros(len(rows))
+        for index, (account, shares, count) in enumerate(rows):
+            accounts[index] = account
+            counts[index] = count
+            for role_id, weight in shares.items():
+                column = column_of.get(role_id)
+                if column is not None:
+                    mixture[index, column] = weight
+        totals = mixture.sum(axis=1, keepdims=True)
+        np.divide(mixture, totals, out=mixture, where=totals > 0)
+        past.append(PastWindow(accounts=accounts, mixture=mixture, events=counts))
+    return past

@@ -1,27 +1,21 @@
-"""The frozen model (feature recipe, role basis, role names) and its life in the store."""
+"""The frozen model (feature recipe, role basis, role names): fitted here, kept in the store
+(:mod:`rolewatch.store.models`)."""
 
 from __future__ import annotations
 
-import json
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
-import sqlalchemy as sa
-from sqlalchemy.engine import Connection
 
-from rolewatch.engine.basis import RoleBasis
-from rolewatch.engine.features import FeatureRecipe
-from rolewatch.engine.sensemaking import describe_roles, node_measures
+from rolewatch.config import Settings
+from rolewatch.engine.basis import Memberships, RoleBasis
+from rolewatch.engine.features import FeatureRecipe, FeatureTable
+from rolewatch.engine.sensemaking import RoleDescription, describe_roles, node_measures
 from rolewatch.engine.snapshot import Snapshot
-from rolewatch.store.schema import bases, recipes, roles
+from rolewatch.store.db import Connection
+from rolewatch.store.models import RoleInfo, StoredModel, active_model, save_model
 
-
-@dataclass(frozen=True)
-class RoleInfo:
-    role_id: int
-    name: str
-    description: str
-    profile: dict = field(default_factory=dict)
+__all__ = ["FrozenModel", "RoleInfo", "fit_model", "load_active_model", "store_model"]
 
 
 @dataclass(frozen=True)
@@ -40,7 +34,7 @@ class FrozenModel:
 
 
 def fit_model(
-    settings, snapshots: list[Snapshot], previous: FrozenModel | None = None
+    settings: Settings, snapshots: list[Snapshot], previous: FrozenModel | None = None
 ) -> FrozenModel:
     """Discover the recipe, fit the basis and describe its roles on reference snapshots.
 
@@ -82,10 +76,12 @@ def fit_model(
     return FrozenModel(recipe=recipe, basis=basis, roles=tuple(infos))
 
 
-def _describe(basis: RoleBasis, snapshots: list[Snapshot], tables) -> list:
-    measure_names = None
+def _describe(
+    basis: RoleBasis, snapshots: list[Snapshot], tables: list[FeatureTable]
+) -> list[RoleDescription]:
+    measure_names: tuple[str, ...] = ()
     measure_blocks, mixture_blocks = [], []
-    for snapshot, table in zip(snapshots, tables):
+    for snapshot, table in zip(snapshots, tables, strict=True):
         if snapshot.n_nodes == 0:
             continue
         names, values = node_measures(snapshot, betweenness_samples=min(256, snapshot.n_nodes))
@@ -99,9 +95,7 @@ def _describe(basis: RoleBasis, snapshots: list[Snapshot], tables) -> list:
     return describe_roles(basis, stacked, measure_names, stacked_measures)
 
 
-def _stack_memberships(blocks):
-    from rolewatch.engine.basis import Memberships
-
+def _stack_memberships(blocks: list[Memberships]) -> Memberships:
     return Memberships(
         loadings=np.vstack([block.loadings for block in blocks]),
         mixture=np.vstack([block.mixture for block in blocks]),
@@ -118,69 +112,28 @@ def store_model(
     now_us: int,
 ) -> None:
     """Save the model and make it the active one (the previous one stays for history)."""
-    exists = connection.execute(
-        sa.select(recipes.c.version).where(recipes.c.version == model.recipe.version)
-    ).first()
-    if exists is None:
-        connection.execute(
-            recipes.insert().values(
-                version=model.recipe.version,
-                created_us=now_us,
-                body=json.dumps(model.recipe.to_dict()),
-            )
-        )
-    connection.execute(bases.update().values(active=False))
-    already = connection.execute(
-        sa.select(bases.c.version).where(bases.c.version == model.basis.version)
-    ).first()
-    if already is None:
-        connection.execute(
-            bases.insert().values(
-                version=model.basis.version,
-                recipe_version=model.recipe.version,
-                created_us=now_us,
-                active=True,
-                trained_from_us=trained_from_us,
-                trained_to_us=trained_to_us,
-                body=json.dumps(model.basis.to_dict()),
-            )
-        )
-        connection.execute(
-            roles.insert(),
-            [
-                {
-                    "basis_version": model.basis.version,
-                    "role_id": info.role_id,
-                    "name": info.name,
-                    "description": info.description,
-                    "profile": json.dumps(info.profile),
-                }
-                for info in model.roles
-            ],
-        )
-    else:
-        connection.execute(
-            bases.update().where(bases.c.version == model.basis.version).values(active=True)
-        )
+    save_model(
+        connection,
+        StoredModel(
+            recipe_version=model.recipe.version,
+            recipe=model.recipe.to_dict(),
+            basis_version=model.basis.version,
+            basis=model.basis.to_dict(),
+            roles=model.roles,
+        ),
+        trained_from_us=trained_from_us,
+        trained_to_us=trained_to_us,
+        now_us=now_us,
+    )
 
 
 def load_active_model(connection: Connection) -> FrozenModel | None:
     """The active recipe, basis and role names, or None before training has finished."""
-    row = connection.execute(
-        sa.select(bases.c.version, bases.c.body, bases.c.recipe_version).where(bases.c.active)
-    ).first()
-    if row is None:
+    stored = active_model(connection)
+    if stored is None:
         return None
-    recipe_body = connection.execute(
-        sa.select(recipes.c.body).where(recipes.c.version == row.recipe_version)
-    ).scalar_one()
-    role_rows = connection.execute(
-        sa.select(roles).where(roles.c.basis_version == row.version).order_by(roles.c.role_id)
-    ).all()
     return FrozenModel(
-        recipe=FeatureRecipe.from_dict(json.loads(recipe_body)),
-        basis=RoleBasis.from_dict(json.loads(row.body)),
-        roles=tuple(
-            RoleInfo(r.role_id, r.name, r.description, json.loads(r.profile)) for r in role_rows
-        ),
+        recipe=FeatureRecipe.from_dict(stored.recipe),
+        basis=RoleBasis.from_dict(stored.basis),
+        roles=stored.roles,
     )

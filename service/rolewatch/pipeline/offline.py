@@ -14,8 +14,15 @@ from dataclasses import dataclass
 import numpy as np
 
 from rolewatch.clock import to_rfc3339
-from rolewatch.pipeline.compute import PastWindow, WindowResult, compute_window, past_from_result
-from rolewatch.pipeline.loading import WindowEvents
+from rolewatch.config import Settings
+from rolewatch.pipeline.compute import (
+    WindowRef,
+    WindowResult,
+    compute_window,
+    lookback_windows,
+    past_from_result,
+)
+from rolewatch.pipeline.loading import PastWindow, WindowEvents
 from rolewatch.pipeline.model import FrozenModel, fit_model
 from rolewatch.pipeline.windows import WindowGeometry
 
@@ -50,7 +57,7 @@ def split_windows(
 
 
 def run_offline(
-    settings,
+    settings: Settings,
     *,
     event_id: np.ndarray,
     time_us: np.ndarray,
@@ -97,14 +104,12 @@ def run_offline(
 
 
 def measure_windows(
-    settings,
+    settings: Settings,
     model: FrozenModel,
     loaded: list[tuple[int, int, WindowEvents, WindowEvents]],
     training_count: int,
 ) -> Iterator[OfflineWindow]:
     """Measure split windows ``(start, end, events, previous span's events)`` in order."""
-    from rolewatch.pipeline.closer import lookback_windows
-
     lookback = lookback_windows(settings)
     past: list[PastWindow] = []
     for index, (start, end, events, previous) in enumerate(loaded):
@@ -115,7 +120,7 @@ def measure_windows(
             events,
             previous,
             past,
-            window={"id": None, "start": to_rfc3339(start), "end": to_rfc3339(end)},
+            window=WindowRef(id=None, start=to_rfc3339(start), end=to_rfc3339(end)),
             raise_alerts=not training,
         )
         past = (past + [past_from_result(result)])[-lookback:]

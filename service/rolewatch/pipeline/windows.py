@@ -18,8 +18,13 @@ A window is due when either
 from __future__ import annotations
 
 from dataclasses import dataclass
+from datetime import timedelta
 
 from rolewatch.clock import MICROS
+from rolewatch.config import Settings
+from rolewatch.store.windows import StreamState
+
+__all__ = ["StreamState", "WindowGeometry", "is_due", "next_window_end"]
 
 
 @dataclass(frozen=True)
@@ -32,8 +37,8 @@ class WindowGeometry:
     idle_us: int
 
     @classmethod
-    def from_settings(cls, settings) -> WindowGeometry:
-        def micros(delta) -> int:
+    def from_settings(cls, settings: Settings) -> WindowGeometry:
+        def micros(delta: timedelta) -> int:
             return int(round(delta.total_seconds() * MICROS))
 
         return cls(
@@ -49,16 +54,6 @@ class WindowGeometry:
 
     def start_of(self, end_us: int) -> int:
         return end_us - self.span_us
-
-
-@dataclass(frozen=True)
-class StreamState:
-    """What the store knows about the stream when deciding what to close."""
-
-    min_event_us: int | None
-    max_event_us: int | None
-    last_closed_end_us: int | None
-    last_ingest_us: int | None
 
 
 def next_window_end(geometry: WindowGeometry, state: StreamState) -> int | None:

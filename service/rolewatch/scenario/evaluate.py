@@ -110,7 +110,7 @@ def run_seed(settings, *, seed: int, members: int, weeks: int, training_weeks: i
                     index=window.index,
                     training=window.training,
                     nodes=np.asarray(result.nodes).astype(str),
-                    alerts={alert["account"] for alert in result.alerts},
+                    alerts={alert.account for alert in result.alerts},
                     strength=weighted_degree(
                         result.nodes,
                         window.events.actor,

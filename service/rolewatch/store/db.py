@@ -1,13 +1,36 @@
-"""Database engines for the store: SQLite (default) and PostgreSQL from one URL."""
+"""Database engines for the store: SQLite (default) and PostgreSQL from one URL.
+
+``Engine`` and ``Connection`` are re-exported: the pipeline names them in its signatures
+without depending on SQLAlchemy itself.
+"""
 
 from __future__ import annotations
 
 from collections.abc import Iterator
 from contextlib import contextmanager
 from datetime import timedelta
+from typing import TYPE_CHECKING
 
+from alembic.config import Config
 from sqlalchemy import event
-from sqlalchemy.engine import Connection, Engine, create_engine
+from sqlalchemy.engine import Connection, CursorResult, Engine, create_engine
+
+if TYPE_CHECKING:
+    from rolewatch.config import Settings
+
+__all__ = [
+    "Connection",
+    "alembic_config",
+    "Engine",
+    "held_session_lock",
+    "inserted_id",
+    "lock_windows",
+    "make_engine",
+    "open_store",
+    "store_lock_key",
+    "upgrade_to_head",
+    "write_transaction",
+]
 
 
 def make_engine(
@@ -59,6 +82,14 @@ def make_engine(
     return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=10)
 
 
+def inserted_id(result: CursorResult) -> int:
+    """The primary key of the row a single-row INSERT made."""
+    key = result.inserted_primary_key
+    if key is None:
+        raise RuntimeError("the INSERT reported no primary key")
+    return int(key[0])
+
+
 @contextmanager
 def write_transaction(engine: Engine) -> Iterator[Connection]:
     """A transaction that will write: commits on success, rolls back on error.
@@ -90,6 +121,30 @@ def store_lock_key(lock_id: int) -> str:
     return f"hashtext(current_database() || '.' || current_schema()), {int(lock_id)}"
 
 
+@contextmanager
+def held_session_lock(engine: Engine, lock_id: int) -> Iterator[bool]:
+    """Yield True when this process got the store-wide lock ``lock_id``, without waiting.
+
+    PostgreSQL: a session-level advisory lock held on a dedicated connection until the block
+    ends, so among several server processes exactly one holds it. SQLite: always True; there
+    the callers' write transactions are what keeps two processes apart.
+    """
+    if engine.dialect.name != "postgresql":
+        yield True
+        return
+    with engine.connect() as connection:
+        got = connection.exec_driver_sql(
+            f"SELECT pg_try_advisory_lock({store_lock_key(lock_id)})"
+        ).scalar()
+        connection.commit()
+        try:
+            yield bool(got)
+        finally:
+            if got:
+                connection.exec_driver_sql(f"SELECT pg_advisory_unlock({store_lock_key(lock_id)})")
+                connection.commit()
+
+
 def lock_windows(connection: Connection, *, exclusive: bool) -> None:
     """Order event ingest against window closing, until the transaction ends.
 
@@ -105,14 +160,12 @@ def lock_windows(connection: Connection, *, exclusive: bool) -> None:
     connection.exec_driver_sql(f"SELECT {function}({store_lock_key(_WINDOW_LOCK_ID)})")
 
 
-def alembic_config(connection: Connection | None = None):
+def alembic_config(connection: Connection | None = None) -> Config:
     """An Alembic ``Config`` pointing at the migrations shipped inside the installed package.
 
     Built in code (no ``alembic.ini`` lookup, no dependence on the working directory).
     """
     from pathlib import Path
-
-    from alembic.config import Config
 
     config = Config()
     config.set_main_option("script_location", str(Path(__file__).resolve().parent / "migrations"))
@@ -152,7 +205,7 @@ def upgrade_to_head(engine: Engine) -> None:
                 connection.commit()
 
 
-def open_store(settings) -> Engine:
+def open_store(settings: Settings) -> Engine:
     """Make the engine named by ``settings.database_url`` and upgrade its schema to head."""
     engine = make_engine(
         settings.database_url,

@@ -6,9 +6,10 @@ are stored and invalid ones reported by their index with a readable reason, so b
 never loses the good input around it. Storing is ``INSERT ... ON CONFLICT (event_id) DO
 NOTHING`` with one ``executemany`` per batch, so a retried batch is harmless.
 
-Wire form of an event (see DESIGN.md "Wire format"): ``id`` (optional, ≤ 200 chars),
-``time`` (RFC 3339 with an offset, required), ``actor`` and ``target`` (≤ 200 chars,
-different), ``kind`` (optional, ≤ 64 chars), ``weight`` (finite number ≥ 0, default 1).
+Wire form of an event (README.md "Posting events"; its schema is api.models.Event): ``id``
+(optional), ``time`` (RFC 3339 with an offset, required), ``actor`` and ``target``
+(different), ``kind`` (optional), ``weight`` (finite number ≥ 0, default 1); the length
+limits are the store's column widths (store.schema ``MAX_*_CHARS``).
 """
 
 from __future__ import annotations
@@ -24,17 +25,23 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta, timezone
 from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import Table, bindparam, func, select, update
+from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import Connection, Engine
 
 from rolewatch import metrics
 from rolewatch.clock import to_rfc3339
+from rolewatch.config import Settings
 from rolewatch.store.db import lock_windows, write_transaction
-from rolewatch.store.schema import service_state, windows
+from rolewatch.store.schema import (
+    MAX_ACCOUNT_CHARS,
+    MAX_ID_CHARS,
+    MAX_KIND_CHARS,
+    events,
+    service_state,
+    windows,
+)
 
-MAX_ID_CHARS = 200
-MAX_ACCOUNT_CHARS = 200
-MAX_KIND_CHARS = 64
 FIELDS = ("id", "time", "actor", "target", "kind", "weight")
 _FIELD_SET = frozenset(FIELDS)
 
@@ -149,6 +156,17 @@ def derived_event_id(time_us: int, actor: str, target: str, kind: str | None, we
     return "ev_" + hashlib.sha256(body.encode("utf-8")).hexdigest()[:32]
 
 
+def file_line_event_id(file_digest: str, line: int) -> str:
+    """The id of an event read without one from line ``line`` of a replayed file.
+
+    ``ev_`` + 32 hex chars of the sha256 of ``"<file_digest>:<line>"``, where ``file_digest``
+    is the hex sha256 of the file's bytes. Two equal lines (the same interaction twice in one
+    minute) stay two events, and replaying the same file again gives the same ids, so it
+    stores nothing new. (:func:`derived_event_id` would merge equal lines into one event.)
+    """
+    return "ev_" + hashlib.sha256(f"{file_digest}:{line}".encode("ascii")).hexdigest()[:32]
+
+
 def _kind_of(value: Any) -> str:
     if value is None:
         return "null"
@@ -171,11 +189,17 @@ def _show(value: str, limit: int = 60) -> str:
     return repr(text)
 
 
-def _text(event: dict, name: str, limit: int, *, required: bool) -> str | None:
+def _required_text(event: dict, name: str, limit: int) -> str:
+    text = _text(event, name, limit)
+    if text is None:
+        raise _Reject(f"{name}: required")
+    return text
+
+
+def _text(event: dict, name: str, limit: int) -> str | None:
+    """The field's text, checked; None when absent."""
     value = event.get(name)
     if value is None:
-        if required:
-            raise _Reject(f"{name}: required")
         return None
     if not isinstance(value, str):
         raise _Reject(f"{name}: must be a string, got {_kind_of(value)}")
@@ -303,53 +327,73 @@ def validate_event(event: Any, max_time_us: int) -> tuple[str, int, str, str, st
     if time_value is None:
         raise _Reject("time: required")
     time_us = parse_time_us(time_value)
-    actor = _text(event, "actor", MAX_ACCOUNT_CHARS, required=True)
-    target = _text(event, "target", MAX_ACCOUNT_CHARS, required=True)
+    actor = _required_text(event, "actor", MAX_ACCOUNT_CHARS)
+    target = _required_text(event, "target", MAX_ACCOUNT_CHARS)
     if actor == target:
         raise _Reject(
             f"target: same account as actor ({_show(actor)}); self-interactions are not events"
         )
-    kind = _text(event, "kind", MAX_KIND_CHARS, required=False)
+    kind = _text(event, "kind", MAX_KIND_CHARS)
     weight = _weight(event)
     if time_us > max_time_us:
         raise _Reject(
             f"time: {_show(time_value)} is in the future beyond the allowed clock skew "
             f"(latest accepted now: {to_rfc3339(max_time_us)}); check the sender's clock"
         )
-    event_id = _text(event, "id", MAX_ID_CHARS, required=False)
+    event_id = _text(event, "id", MAX_ID_CHARS)
     if event_id is None:
         event_id = derived_event_id(time_us, actor, target, kind, weight)
     return event_id, time_us, actor, target, kind, weight
 
 
-_INSERT_COLUMNS = "(event_id, time_us, actor, target, kind, weight, received_us, late)"
-_INSERT_SQL = {
-    "sqlite": f"INSERT INTO events {_INSERT_COLUMNS} VALUES (?, ?, ?, ?, ?, ?, ?, ?) "
-    "ON CONFLICT (event_id) DO NOTHING",
-    "postgresql": f"INSERT INTO events {_INSERT_COLUMNS} VALUES (%s, %s, %s, %s, %s, %s, %s, %s) "
-    "ON CONFLICT (event_id) DO NOTHING",
-}
-_LATE_COUNT_SQL = {
-    "sqlite": "UPDATE windows SET late_count = late_count + 1 WHERE start_us <= ? AND end_us > ?",
-    "postgresql": "UPDATE windows SET late_count = late_count + 1 "
-    "WHERE start_us <= %s AND end_us > %s",
-}
+# The one raw statement left: the batch insert runs on the DBAPI cursor. Measured side by
+# side (1,000-event batches, one commit each, 200 batches interleaved, this 2-core machine
+# under load): SQLite 27,000 events/s raw against 21,000 through SQLAlchemy Core's
+# executemany (22 % fewer); PostgreSQL 15,000 against 13,000 - and Core's executemany
+# reports no row count on PostgreSQL (-1), which the duplicate count needs (Core with
+# RETURNING: 7,200). Everything else here is Core.
+_EVENT_COLUMNS = ("event_id", "time_us", "actor", "target", "kind", "weight", "received_us", "late")
+_PARAMSTYLE_MARK = {"sqlite": "?", "postgresql": "%s"}
 
 
-def latest_closed_end_us(connection: Connection) -> int | None:
-    """End of the latest closed window: events before it are late."""
-    return connection.execute(
-        select(func.max(windows.c.end_us)).where(windows.c.status == "closed")
-    ).scalar()
+def _raw_insert_sql(dialect: str) -> str:
+    marks = ", ".join([_PARAMSTYLE_MARK[dialect]] * len(_EVENT_COLUMNS))
+    return (
+        f"INSERT INTO {events.name} ({', '.join(_EVENT_COLUMNS)}) VALUES ({marks}) "
+        "ON CONFLICT (event_id) DO NOTHING"
+    )
 
 
-def set_state(connection: Connection, key: str, value: str) -> None:
-    """Upsert one ``service_state`` row."""
+_INSERT_SQL = {dialect: _raw_insert_sql(dialect) for dialect in _PARAMSTYLE_MARK}
+_COUNT_LATE = (
+    update(windows)
+    .where(windows.c.start_us <= bindparam("time_us"), windows.c.end_us > bindparam("time_us"))
+    .values(late_count=windows.c.late_count + 1)
+)
+
+
+def _dialect_insert(connection: Connection, table: Table) -> postgresql.Insert | sqlite.Insert:
+    """``INSERT`` with the dialect's ``ON CONFLICT`` clauses (SQLite and PostgreSQL)."""
     if connection.dialect.name == "postgresql":
-        from sqlalchemy.dialects.postgresql import insert
-    else:
-        from sqlalchemy.dialects.sqlite import insert
-    statement = insert(service_state).values(key=key, value=value)
+        return postgresql.insert(table)
+    return sqlite.insert(table)
+
+
+def _insert_one(connection: Connection, row: tuple) -> bool:
+    """Insert one event row; False when its id was already stored."""
+    statement = (
+        _dialect_insert(connection, events)
+        .on_conflict_do_nothing(index_elements=[events.c.event_id])
+        .returning(events.c.seq)  # a row back only when it was inserted
+    )
+    values = dict(zip(_EVENT_COLUMNS, row, strict=True))
+    return connection.execute(statement, values).first() is not None
+
+
+def _set_last_ingest(connection: Connection, now_us: int) -> None:
+    statement = _dialect_insert(connection, service_state).values(
+        key="last_ingest_us", value=str(now_us)
+    )
     connection.execute(
         statement.on_conflict_do_update(
             index_elements=[service_state.c.key], set_={"value": statement.excluded.value}
@@ -357,44 +401,31 @@ def set_state(connection: Connection, key: str, value: str) -> None:
     )
 
 
-_PARAM = {"sqlite": "?", "postgresql": "%s"}
-
-
 def _store(connection: Connection, rows: list[tuple], now_us: int, result: IngestResult) -> None:
     """Insert validated rows; the work done here holds the write lock, so it is kept short."""
-    dialect = connection.dialect.name
-    insert_sql = _INSERT_SQL[dialect]
-    mark = _PARAM[dialect]
-    received = (now_us, False)
     lock_windows(connection, exclusive=False)
-    cursor = connection.connection.cursor()
-    try:
-        cursor.execute("SELECT max(end_us) FROM windows WHERE status = 'closed'")
-        closed_end = cursor.fetchone()[0]
-        if closed_end is None or min(row[1] for row in rows) >= closed_end:
-            on_time = [row + received for row in rows]
-            late: list[tuple] = []
-        else:
-            on_time = [row + received for row in rows if row[1] >= closed_end]
-            late = [row + (now_us, True) for row in rows if row[1] < closed_end]
-        inserted = 0
-        if on_time:
-            cursor.executemany(insert_sql, on_time)
+    closed_end = connection.execute(
+        select(func.max(windows.c.end_us)).where(windows.c.status == "closed")
+    ).scalar()
+    if closed_end is None or min(row[1] for row in rows) >= closed_end:
+        on_time = [row + (now_us, False) for row in rows]
+        late: list[tuple] = []
+    else:
+        on_time = [row + (now_us, False) for row in rows if row[1] >= closed_end]
+        late = [row + (now_us, True) for row in rows if row[1] < closed_end]
+    inserted = 0
+    if on_time:
+        cursor = connection.connection.cursor()
+        try:
+            cursor.executemany(_INSERT_SQL[connection.dialect.name], on_time)
             inserted = max(cursor.rowcount, 0)
-        late_times = []
-        for row in late:  # rare: one statement each, to know which were new
-            cursor.execute(insert_sql, row)
-            if cursor.rowcount == 1:
-                late_times.append((row[1], row[1]))
-        if late_times:
-            cursor.executemany(_LATE_COUNT_SQL[dialect], late_times)
-        cursor.execute(
-            f"INSERT INTO service_state (key, value) VALUES ({mark}, {mark}) "
-            "ON CONFLICT (key) DO UPDATE SET value = excluded.value",
-            ("last_ingest_us", str(now_us)),
-        )
-    finally:
-        cursor.close()
+        finally:
+            cursor.close()
+    # rare: one statement each, to know which were new
+    late_times = [{"time_us": row[1]} for row in late if _insert_one(connection, row)]
+    if late_times:
+        connection.execute(_COUNT_LATE, late_times)
+    _set_last_ingest(connection, now_us)
     result.accepted = inserted + len(late_times)
     result.late = len(late_times)
     result.duplicates = len(rows) - result.accepted
@@ -481,7 +512,7 @@ def _group_writer(engine: Engine) -> _GroupWriter:
 
 
 def ingest(
-    engine: Engine, settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int
+    engine: Engine, settings: Settings, raw_events: Sequence[Any] | Iterable[Any], now_us: int
 ) -> IngestResult:
     """Validate ``raw_events`` (parsed wire events) and store the valid ones in one transaction
     (shared with batches arriving at the same moment: see :class:`_GroupWriter`).

@@ -13,10 +13,20 @@ from typing import Any
 from sqlalchemy import and_, func, or_, select, update
 from sqlalchemy.engine import Engine
 
-from rolewatch.clock import to_rfc3339
+from rolewatch.config import Settings
+from rolewatch.store.alerts import StoredAlert, alert_form
 from rolewatch.store.db import write_transaction
-from rolewatch.store.events import _FORBIDDEN, MAX_ACCOUNT_CHARS
-from rolewatch.store.schema import alerts, bases, events, memberships, roles, service_state, windows
+from rolewatch.store.events import _FORBIDDEN
+from rolewatch.store.schema import (
+    MAX_ACCOUNT_CHARS,
+    alerts,
+    bases,
+    events,
+    memberships,
+    roles,
+    service_state,
+    windows,
+)
 
 
 def _us(value) -> int:
@@ -133,7 +143,9 @@ def get_state(engine: Engine, key: str) -> str | None:
         ).scalar()
 
 
-def open_windows(engine: Engine, settings, *, now_us: int, limit: int = 20) -> dict[str, Any]:
+def open_windows(
+    engine: Engine, settings: Settings, *, now_us: int, limit: int = 20
+) -> dict[str, Any]:
     """The windows not closed yet that hold events, from the settings and the watermark.
 
     Returns ``{"watermark_us", "max_event_us", "windows": [...]}``; each window has start/end,
@@ -169,6 +181,7 @@ def open_windows(engine: Engine, settings, *, now_us: int, limit: int = 20) -> d
         if last_closed is not None:
             first_end = last_closed + period
         else:
+            assert first_event is not None  # some event exists: max_event is set
             first_end = (first_event // period + 1) * period
         first_end = max(first_end, last_end - (limit - 1) * period)
         watermark = max_event - lateness
@@ -296,40 +309,6 @@ _ALERT_COLUMNS = (
 )
 
 
-def _role_ref(names, basis_version, role_id, evidence_mixture) -> dict[str, Any] | None:
-    if role_id is None:
-        return None
-    name = names.get((basis_version, role_id))
-    if name is None:  # the basis' roles are gone: fall back on the name stored with the alert
-        name = next(
-            (m.get("name") for m in evidence_mixture or () if m.get("role_id") == role_id),
-            f"role {role_id}",
-        )
-    return {"id": role_id, "name": name}
-
-
-def alert_form(row, names: dict[tuple[str, int], str]) -> dict[str, Any]:
-    """A stored alert row in the API form of docs/CONTRACTS.md ("Alert")."""
-    evidence = json.loads(row.evidence)
-    return {
-        "id": row.id,
-        "account": row.account,
-        "window_id": row.window_id,
-        "window_start": to_rfc3339(row.window_start_us),
-        "window_end": to_rfc3339(row.window_end_us),
-        "created": to_rfc3339(row.created_us),
-        "score": row.score,
-        "basis_version": row.basis_version,
-        "role_before": _role_ref(
-            names, row.basis_version, row.role_before, evidence.get("mixture_before")
-        ),
-        "role_after": _role_ref(
-            names, row.basis_version, row.role_after, evidence.get("mixture_after")
-        ),
-        "evidence": evidence,
-    }
-
-
 def list_alerts(
     engine: Engine,
     filters: AlertFilters | None = None,
@@ -368,7 +347,7 @@ def list_alerts(
     rows = rows[:limit]
     names = role_names(engine, (row.basis_version for row in rows))
     next_cursor = rows[-1].id if more and rows else None
-    return [alert_form(row, names) for row in rows], next_cursor
+    return [alert_form(StoredAlert(**row._mapping), names).to_dict() for row in rows], next_cursor
 
 
 def get_alert(engine: Engine, alert_id: int) -> dict[str, Any] | None:
@@ -382,7 +361,9 @@ def get_alert(engine: Engine, alert_id: int) -> dict[str, Any] | None:
         row = connection.execute(query).first()
     if row is None:
         return None
-    return alert_form(row, role_names(engine, [row.basis_version]))
+    return alert_form(
+        StoredAlert(**row._mapping), role_names(engine, [row.basis_version])
+    ).to_dict()
 
 
 __all__ = [
@@ -390,7 +371,6 @@ __all__ = [
     "account_exists",
     "account_history",
     "active_basis",
-    "alert_form",
     "get_alert",
     "get_state",
     "list_alerts",

@@ -34,6 +34,7 @@ from dataclasses import dataclass
 import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 
+from rolewatch.config import Settings
 from rolewatch.store.db import write_transaction
 from rolewatch.store.schema import bases, events, windows
 
@@ -50,7 +51,7 @@ class PurgeResult:
     reclaimed: str | None  # "vacuum", "incremental" or None
 
 
-def purge_cutoff(engine: Engine, settings) -> int | None:
+def purge_cutoff(engine: Engine, settings: Settings) -> int | None:
     """The time before which raw events may be deleted, or None when nothing may go yet."""
     keep = settings.retention_windows
     if keep <= 0:
@@ -75,7 +76,7 @@ def purge_cutoff(engine: Engine, settings) -> int | None:
     return min(recent[-1].start_us, next_reads_from)
 
 
-def purge_expired(engine: Engine, settings, *, now_us: int | None = None) -> PurgeResult:
+def purge_expired(engine: Engine, settings: Settings, *, now_us: int | None = None) -> PurgeResult:
     """Delete raw events older than the retention cutoff, in short transactions, and give
     SQLite space back after a large purge. ``now_us`` is accepted for the scheduler's call
     signature; retention counts closed windows, not wall-clock time."""

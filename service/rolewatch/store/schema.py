@@ -35,15 +35,21 @@ metadata = MetaData(
 
 ID = BigInteger().with_variant(Integer, "sqlite")  # SQLite autoincrements INTEGER PRIMARY KEY
 
+# Event field limits, in characters: the widths of these columns, checked on every event by
+# ingest (store.events) and published in the wire schema (api.models.Event).
+MAX_ID_CHARS = 200
+MAX_ACCOUNT_CHARS = 200
+MAX_KIND_CHARS = 64
+
 events = Table(
     "events",
     metadata,
     Column("seq", ID, primary_key=True, autoincrement=True),
-    Column("event_id", String(200), nullable=False, unique=True),
+    Column("event_id", String(MAX_ID_CHARS), nullable=False, unique=True),
     Column("time_us", BigInteger, nullable=False),
-    Column("actor", String(200), nullable=False),
-    Column("target", String(200), nullable=False),
-    Column("kind", String(64), nullable=True),
+    Column("actor", String(MAX_ACCOUNT_CHARS), nullable=False),
+    Column("target", String(MAX_ACCOUNT_CHARS), nullable=False),
+    Column("kind", String(MAX_KIND_CHARS), nullable=True),
     Column("weight", Float, nullable=False),
     Column("received_us", BigInteger, nullable=False),
     # True when the event's window had already closed when it arrived: stored and counted,
@@ -110,7 +116,7 @@ roles = Table(
 memberships = Table(
     "memberships",
     metadata,
-    Column("account", String(200), primary_key=True),
+    Column("account", String(MAX_ACCOUNT_CHARS), primary_key=True),
     Column("window_id", BigInteger, ForeignKey("windows.id"), primary_key=True),
     Column("basis_version", String(64), nullable=False),
     Column("mixture", Text, nullable=False),  # JSON {role_id: weight}, sums to 1
@@ -130,14 +136,14 @@ alerts = Table(
     metadata,
     Column("id", ID, primary_key=True, autoincrement=True),
     Column("window_id", BigInteger, ForeignKey("windows.id"), nullable=False),
-    Column("account", String(200), nullable=False),
+    Column("account", String(MAX_ACCOUNT_CHARS), nullable=False),
     Column("created_us", BigInteger, nullable=False),
     Column("window_end_us", BigInteger, nullable=False),
     Column("score", Float, nullable=False),
     Column("basis_version", String(64), nullable=False),
     Column("role_before", Integer, nullable=True),
     Column("role_after", Integer, nullable=False),
-    Column("evidence", Text, nullable=False),  # JSON, see DESIGN.md "Alert evidence"
+    Column("evidence", Text, nullable=False),  # JSON, see docs/CONTRACTS.md "Alert"
     UniqueConstraint("window_id", "account"),
     Index("ix_alerts_account", "account"),
     Index("ix_alerts_window_end_us", "window_end_us"),

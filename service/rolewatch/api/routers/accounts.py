@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 from fastapi import APIRouter, Depends, HTTPException, Query, Request, status
+from sqlalchemy.engine import Engine
 from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
@@ -14,7 +17,9 @@ from rolewatch.store import queries
 router = APIRouter(tags=["accounts"])
 
 
-def history_document(engine, account: str, from_us: int | None, to_us: int | None) -> dict | None:
+def history_document(
+    engine: Engine, account: str, from_us: int | None, to_us: int | None
+) -> dict[str, Any] | None:
     """The API form of an account's history, or None when the account is unknown."""
     entries = queries.account_history(engine, account, from_us, to_us)
     if not entries and not queries.account_exists(engine, account):

@@ -12,13 +12,14 @@ from __future__ import annotations
 
 import json
 import logging
+from typing import Any
 
 import orjson
 from fastapi import APIRouter, Depends, HTTPException, Request, Response, status
 from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.auth import require_scope
-from rolewatch.api.models import IngestResponse, Problem
+from rolewatch.api.models import EventBatch, IngestResponse, Problem
 from rolewatch.clock import now_micros
 from rolewatch.store.events import InvalidEvent, ingest
 
@@ -28,30 +29,30 @@ log = logging.getLogger(__name__)
 JSON_TYPES = ("application/json",)
 NDJSON_TYPES = ("application/x-ndjson", "application/ndjson", "application/jsonl")
 
-_EVENT_SCHEMA = {
-    "type": "object",
-    "required": ["time", "actor", "target"],
-    "additionalProperties": False,
-    "properties": {
-        "id": {"type": "string", "maxLength": 200},
-        "time": {"type": "string", "format": "date-time"},
-        "actor": {"type": "string", "maxLength": 200},
-        "target": {"type": "string", "maxLength": 200},
-        "kind": {"type": "string", "maxLength": 64},
-        "weight": {"type": "number", "minimum": 0, "default": 1},
-    },
-}
+
+def _inlined(schema: dict[str, Any]) -> dict[str, Any]:
+    """``schema`` with its ``#/$defs/...`` references replaced by the definitions, so it can
+    sit inside the OpenAPI document."""
+    definitions = schema.pop("$defs", {})
+
+    def resolve(node: Any) -> Any:
+        if isinstance(node, dict):
+            reference = node.get("$ref")
+            if isinstance(reference, str) and reference.startswith("#/$defs/"):
+                return resolve(definitions[reference.removeprefix("#/$defs/")])
+            return {key: resolve(value) for key, value in node.items()}
+        if isinstance(node, list):
+            return [resolve(item) for item in node]
+        return node
+
+    return resolve(schema)
+
+
 _OPENAPI = {
     "requestBody": {
         "required": True,
         "content": {
-            "application/json": {
-                "schema": {
-                    "type": "object",
-                    "required": ["events"],
-                    "properties": {"events": {"type": "array", "items": _EVENT_SCHEMA}},
-                }
-            },
+            "application/json": {"schema": _inlined(EventBatch.model_json_schema())},
             "application/x-ndjson": {
                 "schema": {"type": "string", "description": "One event object per line."}
             },

@@ -1,0 +1,249 @@
+"""Alerts: the typed record of a raised alert with its evidence, and the one API form.
+
+A window close builds :class:`NewAlert` records (pipeline.compute); :func:`insert_alerts`
+stores them and returns each one in the API form of docs/CONTRACTS.md ("Alert"), made by
+:func:`alert_form` — the same function :mod:`rolewatch.store.queries` uses when it reads
+alerts back, so a webhook body and ``GET /v1/alerts/{id}`` can never disagree.
+
+The evidence is stored as JSON text; :meth:`Evidence.to_dict` gives its keys in the
+documented order (docs/CONTRACTS.md "Alert evidence").
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, fields, is_dataclass, replace
+from typing import Any
+
+from sqlalchemy.engine import Connection
+
+from rolewatch.clock import to_rfc3339
+from rolewatch.store.db import inserted_id
+from rolewatch.store.schema import alerts
+
+
+def _json_ready(value: Any) -> Any:
+    """Dataclasses as dicts (fields in declaration order), tuples as lists, the rest as is."""
+    if is_dataclass(value) and not isinstance(value, type):
+        return {item.name: _json_ready(getattr(value, item.name)) for item in fields(value)}
+    if isinstance(value, (list, tuple)):
+        return [_json_ready(item) for item in value]
+    return value
+
+
+@dataclass(frozen=True)
+class RoleShare:
+    """One role's weight in a mixture, with the role's name when the alert was raised."""
+
+    role_id: int
+    name: str
+    weight: float
+
+
+@dataclass(frozen=True)
+class ShiftComponents:
+    """The parts of the shift score (None where a part is not finite or not computed)."""
+
+    composition: float | None
+    magnitude: float | None
+    error: float | None
+    bridging: float | None
+
+
+@dataclass(frozen=True)
+class ActivityEvidence:
+    """The account's activity in this window and in the span before it."""
+
+    events_out: int
+    events_in: int
+    counterparts: int
+    new_counterparts: int
+    events_out_before: int = 0
+    events_in_before: int = 0
+    counterparts_before: int = 0
+
+
+@dataclass(frozen=True)
+class WindowRef:
+    """The window an alert belongs to (its id is known once the window is stored)."""
+
+    id: int | None
+    start: str
+    end: str
+
+
+@dataclass(frozen=True)
+class Evidence:
+    """Why an account was alerted: what a reviewer reads before acting."""
+
+    threshold: float
+    measure: str
+    mode: str
+    components: ShiftComponents
+    mixture_before: tuple[RoleShare, ...]
+    mixture_after: tuple[RoleShare, ...]
+    feature_moves: tuple[dict[str, Any], ...]  # engine.shift.feature_moves entries
+    activity: ActivityEvidence
+    top_counterparts: tuple[dict[str, Any], ...]  # engine.activity.Counterparts.top entries
+    sample_event_ids: tuple[str, ...]
+    history_url: str
+    page_url: str
+    notice: str
+    window: WindowRef
+    basis_version: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """The JSON document stored with the alert and served under ``evidence``."""
+        return _json_ready(self)
+
+
+@dataclass(frozen=True)
+class NewAlert:
+    """An alert a window close raised, before it is stored."""
+
+    account: str
+    score: float
+    role_before: int | None  # the baseline's dominant role; None without a baseline
+    role_after: int
+    evidence: Evidence
+
+
+@dataclass(frozen=True)
+class StoredAlert:
+    """An alert as the store holds it (``window_start_us`` comes from its window)."""
+
+    id: int
+    window_id: int
+    account: str
+    created_us: int
+    window_end_us: int
+    window_start_us: int
+    score: float
+    basis_version: str
+    role_before: int | None
+    role_after: int
+    evidence: str  # JSON text
+
+
+@dataclass(frozen=True)
+class RoleRef:
+    id: int
+    name: str
+
+
+@dataclass(frozen=True)
+class Alert:
+    """An alert in its API form (also the ``data`` of a ``json`` webhook body)."""
+
+    id: int
+    account: str
+    window_id: int
+    window_start: str
+    window_end: str
+    created: str
+    score: float
+    basis_version: str
+    role_before: RoleRef | None
+    role_after: RoleRef
+    evidence: dict[str, Any]
+
+    def to_dict(self) -> dict[str, Any]:
+        return _json_ready(self)
+
+
+def _role_name(
+    names: Mapping[tuple[str, int], str],
+    basis_version: str,
+    role_id: int,
+    evidence_mixture: Iterable[dict[str, Any]] | None,
+) -> str:
+    name = names.get((basis_version, role_id))
+    if name is not None:
+        return name
+    # the basis' roles are gone: fall back on the name stored with the alert
+    stored = next(
+        (m.get("name") for m in evidence_mixture or () if m.get("role_id") == role_id), None
+    )
+    return stored if isinstance(stored, str) else f"role {role_id}"
+
+
+def alert_form(row: StoredAlert, names: Mapping[tuple[str, int], str]) -> Alert:
+    """A stored alert in the API form; ``names`` maps ``(basis_version, role_id)`` to the
+    role's current name."""
+    evidence = json.loads(row.evidence)
+    role_before = None
+    if row.role_before is not None:
+        role_before = RoleRef(
+            id=row.role_before,
+            name=_role_name(
+                names, row.basis_version, row.role_before, evidence.get("mixture_before")
+            ),
+        )
+    return Alert(
+        id=row.id,
+        account=row.account,
+        window_id=row.window_id,
+        window_start=to_rfc3339(row.window_start_us),
+        window_end=to_rfc3339(row.window_end_us),
+        created=to_rfc3339(row.created_us),
+        score=row.score,
+        basis_version=row.basis_version,
+        role_before=role_before,
+        role_after=RoleRef(
+            id=row.role_after,
+            name=_role_name(
+                names, row.basis_version, row.role_after, evidence.get("mixture_after")
+            ),
+        ),
+        evidence=evidence,
+    )
+
+
+def insert_alerts(
+    connection: Connection,
+    raised: Sequence[NewAlert],
+    *,
+    window_id: int,
+    window_start_us: int,
+    window_end_us: int,
+    created_us: int,
+    basis_version: str,
+    names: Mapping[tuple[str, int], str],
+) -> list[Alert]:
+    """Store the alerts of one window (their evidence gets the window's id); return them in
+    the API form."""
+    stored = []
+    for alert in raised:
+        evidence = replace(alert.evidence, window=replace(alert.evidence.window, id=window_id))
+        text = json.dumps(evidence.to_dict())
+        alert_id = inserted_id(
+            connection.execute(
+                alerts.insert().values(
+                    window_id=window_id,
+                    account=alert.account,
+                    created_us=created_us,
+                    window_end_us=window_end_us,
+                    score=alert.score,
+                    basis_version=basis_version,
+                    role_before=alert.role_before,
+                    role_after=alert.role_after,
+                    evidence=text,
+                )
+            )
+        )
+        row = StoredAlert(
+            id=alert_id,
+            window_id=window_id,
+            account=alert.account,
+            created_us=created_us,
+            window_end_us=window_end_us,
+            window_start_us=window_start_us,
+            score=alert.score,
+            basis_version=basis_version,
+            role_before=alert.role_before,
+            role_after=alert.role_after,
+            evidence=text,
+        )
+        stored.append(alert_form(row, names))
+    return stored
