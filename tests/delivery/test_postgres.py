@@ -28,8 +28,8 @@ pytestmark = [
     pytest.mark.postgres,
     pytest.mark.skipif(
         not POSTGRES_URL,
-        reason="set ROLEWATCH_TEST_POSTGRES_URL (e.g. postgresql+psycopg://postgres@127.0.0.1:5432/test) "
-        "to run the PostgreSQL delivery tests",
+        reason="set ROLEWATCH_TEST_POSTGRES_URL (e.g. "
+        "postgresql+psycopg://postgres@127.0.0.1:5432/test) to run the PostgreSQL delivery tests",
     ),
 ]
 
@@ -41,7 +41,8 @@ def pg_url():
     with admin.begin() as connection:
         connection.execute(text(f'CREATE SCHEMA "{schema}"'))
     separator = "&" if "?" in POSTGRES_URL else "?"
-    url = f"{POSTGRES_URL}{separator}options={quote(f'-csearch_path={schema} -cstatement_timeout=20000')}"
+    options = quote(f"-csearch_path={schema} -cstatement_timeout=20000")
+    url = f"{POSTGRES_URL}{separator}options={options}"
     engine = make_engine(url)
     metadata.create_all(engine)
     engine.dispose()

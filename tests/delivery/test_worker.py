@@ -227,6 +227,20 @@ def test_claims_never_print_secrets_or_urls(engine, settings, make_alert):
     assert made.secret[6:] not in shown and "token-in-path" not in shown
 
 
+def test_store_records_never_print_secrets_or_urls(engine, settings, make_alert):
+    from rolewatch.store.outbox import claim_due as claim_rows
+    from rolewatch.store.subscriptions import find_live_subscription
+
+    made = subscribe(engine, settings, "http://127.0.0.1:9/hook/token-in-path")
+    enqueue(engine, settings, [make_alert()])
+    with write_transaction(engine) as connection:
+        record = find_live_subscription(connection, made.subscription["id"])
+        [row] = claim_rows(connection, now_us=now_us(), limit=10, lease_until_us=now_us())
+    assert record is not None and record.secret == made.secret == row.secret
+    for shown in (repr(record), repr(row)):
+        assert made.secret[6:] not in shown and "token-in-path" not in shown
+
+
 def test_two_workers_on_one_sqlite_file_never_send_a_row_twice(
     db_url, settings, receiver, make_alert, engine
 ):

@@ -7,57 +7,49 @@ retry sends identical bytes under the same ``webhook-id``; the worker only signs
 
 from __future__ import annotations
 
-import json
 from collections.abc import Iterable
 from typing import Any
 
-from sqlalchemy import select
-from sqlalchemy.engine import Connection
-
 from rolewatch.clock import now_micros, to_rfc3339
+from rolewatch.config import Settings
 from rolewatch.delivery.ids import message_id
 from rolewatch.delivery.payloads import ALERT_RAISED, ALERT_TEST, build_body
-from rolewatch.delivery.subscriptions import _live
-from rolewatch.store.schema import deliveries, subscriptions
+from rolewatch.delivery.subscriptions import live_subscription
+from rolewatch.store import outbox as outbox_store
+from rolewatch.store import subscriptions as subscription_store
+from rolewatch.store.db import Connection
+from rolewatch.store.outbox import NewDelivery
+from rolewatch.store.subscriptions import SubscriptionRecord
 
 
-def _now_us() -> int:
-    return now_micros()
-
-
-def matches(subscription: Any, alert: dict[str, Any]) -> bool:
+def matches(subscription: SubscriptionRecord, alert: dict[str, Any]) -> bool:
     """True when ``alert`` passes the subscription's filters: score at least ``min_score`` and,
     when a role list is set, the new dominant role (``role_after.id``) in it."""
     score = alert.get("score")
     if score is None or float(score) < float(subscription.min_score or 0.0):
         return False
-    if subscription.roles:
-        wanted = set(json.loads(subscription.roles))
+    if subscription.roles is not None:
         role_after = (alert.get("role_after") or {}).get("id")
-        return role_after in wanted
+        return role_after in set(subscription.roles)
     return True
 
 
-def _row(subscription: Any, alert: dict[str, Any], event_type: str, now_us: int) -> dict:
-    return {
-        "id": message_id(now_us),
-        "subscription_id": subscription.id,
-        "alert_id": alert.get("id") if event_type == ALERT_RAISED else None,
-        "event_type": event_type,
-        "body": build_body(subscription.format, alert, event_type, now_us).decode("utf-8"),
-        "status": "pending",
-        "attempts": 0,
-        "next_attempt_us": now_us,
-        "created_us": now_us,
-        "delivered_us": None,
-        "last_status_code": None,
-        "last_error": None,
-    }
+def _new_delivery(
+    subscription: SubscriptionRecord, alert: dict[str, Any], event_type: str, now_us: int
+) -> NewDelivery:
+    return NewDelivery(
+        id=message_id(now_us),
+        subscription_id=subscription.id,
+        alert_id=alert.get("id") if event_type == ALERT_RAISED else None,
+        event_type=event_type,
+        body=build_body(subscription.format, alert, event_type, now_us).decode("utf-8"),
+        created_us=now_us,
+    )
 
 
 def enqueue_alerts(
     connection: Connection,
-    settings,
+    settings: Settings,
     alerts: Iterable[dict[str, Any]],
     *,
     now_us: int | None = None,
@@ -71,22 +63,19 @@ def enqueue_alerts(
     alerts = list(alerts)
     if not alerts:
         return []
-    now_us = _now_us() if now_us is None else now_us
-    live = connection.execute(
-        select(subscriptions).where(subscriptions.c.deleted_us.is_(None))
-    ).all()
-    rows = [
-        _row(subscription, alert, ALERT_RAISED, now_us)
+    now_us = now_micros() if now_us is None else now_us
+    live = subscription_store.list_live_subscriptions(connection)
+    new = [
+        _new_delivery(subscription, alert, ALERT_RAISED, now_us)
         for alert in alerts
         for subscription in live
         if matches(subscription, alert)
     ]
-    if rows:
-        connection.execute(deliveries.insert(), rows)
-    return [row["id"] for row in rows]
+    outbox_store.insert_deliveries(connection, new)
+    return [delivery.id for delivery in new]
 
 
-def sample_alert(settings, now_us: int) -> dict[str, Any]:
+def sample_alert(settings: Settings, now_us: int) -> dict[str, Any]:
     """A clearly fictional alert for ``POST /v1/subscriptions/{id}/test``."""
     base = settings.public_url.rstrip("/")
     week_us = 7 * 86_400 * 1_000_000
@@ -113,9 +102,11 @@ def sample_alert(settings, now_us: int) -> dict[str, Any]:
     }
 
 
-def enqueue_test(connection: Connection, settings, subscription_id: str, *, now_us: int) -> str:
+def enqueue_test(
+    connection: Connection, settings: Settings, subscription_id: str, *, now_us: int
+) -> str:
     """Queue a test delivery (event type ``alert.test``) to one subscription, filters aside."""
-    subscription = _live(connection, subscription_id)
-    row = _row(subscription, sample_alert(settings, now_us), ALERT_TEST, now_us)
-    connection.execute(deliveries.insert().values(**row))
-    return row["id"]
+    subscription = live_subscription(connection, subscription_id)
+    new = _new_delivery(subscription, sample_alert(settings, now_us), ALERT_TEST, now_us)
+    outbox_store.insert_deliveries(connection, [new])
+    return new.id

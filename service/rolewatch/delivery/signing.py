@@ -42,7 +42,8 @@ def secret_key(secret: str) -> bytes:
 
 
 def sign(secret: str, message_id: str, timestamp: int, body: bytes) -> str:
-    """One ``v1,<base64>`` signature of ``body`` sent as ``message_id`` at ``timestamp`` (unix s)."""
+    """One ``v1,<base64>`` signature of ``body`` sent as ``message_id`` at ``timestamp``
+    (unix seconds)."""
     signed = message_id.encode("utf-8") + b"." + str(int(timestamp)).encode("ascii") + b"." + body
     digest = hmac.new(secret_key(secret), signed, hashlib.sha256).digest()
     return "v1," + base64.b64encode(digest).decode("ascii")

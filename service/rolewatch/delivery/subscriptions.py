@@ -1,4 +1,8 @@
-"""Webhook subscriptions in the store: create, list, read, delete, rotate, pause and resume.
+"""Webhook subscriptions: create, list, read, delete, rotate and resume.
+
+The rows and their statements live in ``rolewatch.store.subscriptions``; this module holds
+the rules (validation, URL checks, secret rotation, what the API shows). Pausing happens in
+the delivery worker, which counts failures.
 
 The signing secret is returned only by ``create_subscription`` and ``rotate_secret``; every
 other view goes through ``public_view``, which leaves the secrets out.
@@ -6,20 +10,21 @@ other view goes through ``public_view``, which leaves the secrets out.
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import select, update
-from sqlalchemy.engine import Connection
-
 from rolewatch.clock import to_rfc3339
+from rolewatch.config import Settings
 from rolewatch.delivery.ids import subscription_id
 from rolewatch.delivery.signing import new_secret
 from rolewatch.delivery.urlguard import Resolver, check_url_for
-from rolewatch.store.schema import deliveries, subscriptions
+from rolewatch.store import outbox as outbox_store
+from rolewatch.store import subscriptions as subscription_store
+from rolewatch.store.db import Connection
+from rolewatch.store.subscriptions import SubscriptionRecord
 
 FORMATS = ("json", "text")
+DELETED_ERROR = "subscription deleted"
 
 
 class SubscriptionNotFound(LookupError):
@@ -34,35 +39,34 @@ class NewSecret:
     secret: str
 
 
-def public_view(row: Any) -> dict[str, Any]:
+def public_view(subscription: SubscriptionRecord) -> dict[str, Any]:
     """The subscription as the API shows it: no secrets, times in RFC 3339."""
-    row = row._mapping if hasattr(row, "_mapping") else row
     return {
-        "id": row["id"],
-        "url": row["url"],
-        "format": row["format"],
-        "min_score": row["min_score"],
-        "roles": json.loads(row["roles"]) if row["roles"] else None,
-        "created": to_rfc3339(row["created_us"]),
-        "paused": bool(row["paused"]),
-        "paused_reason": row["paused_reason"],
-        "consecutive_failures": row["consecutive_failures"],
+        "id": subscription.id,
+        "url": subscription.url,
+        "format": subscription.format,
+        "min_score": subscription.min_score,
+        "roles": list(subscription.roles) if subscription.roles is not None else None,
+        "created": to_rfc3339(subscription.created_us),
+        "paused": subscription.paused,
+        "paused_reason": subscription.paused_reason,
+        "consecutive_failures": subscription.consecutive_failures,
         "rotating_until": (
-            to_rfc3339(row["previous_secret_until_us"])
-            if row["previous_secret"] and row["previous_secret_until_us"]
+            to_rfc3339(subscription.previous_secret_until_us)
+            if subscription.previous_secret and subscription.previous_secret_until_us
             else None
         ),
     }
 
 
-def active_secrets(row: Any, now_us: int) -> list[str]:
+def active_secrets(
+    secret: str, previous_secret: str | None, previous_until_us: int | None, now_us: int
+) -> list[str]:
     """Secrets that sign a message sent at ``now_us``: the current one, and the previous one
     while its rotation overlap lasts."""
-    row = row._mapping if hasattr(row, "_mapping") else row
-    found = [row["secret"]]
-    until = row["previous_secret_until_us"]
-    if row["previous_secret"] and until is not None and now_us < until:
-        found.append(row["previous_secret"])
+    found = [secret]
+    if previous_secret and previous_until_us is not None and now_us < previous_until_us:
+        found.append(previous_secret)
     return found
 
 
@@ -79,7 +83,7 @@ def _validate(fmt: str, min_score: float, roles: list[int] | None) -> None:
 
 def create_subscription(
     connection: Connection,
-    settings,
+    settings: Settings,
     *,
     url: str,
     fmt: str = "json",
@@ -88,54 +92,49 @@ def create_subscription(
     now_us: int,
     resolver: Resolver | None = None,
 ) -> NewSecret:
-    """Check ``url`` (``UnsafeURL`` on refusal), store the subscription, return it with its secret."""
+    """Check ``url`` (``UnsafeURL`` on refusal), store the subscription, return it with its
+    secret."""
     _validate(fmt, min_score, roles)
     check_url_for(url, settings, resolver)
     secret = new_secret()
-    values = {
-        "id": subscription_id(),
-        "url": url,
-        "format": fmt,
-        "min_score": float(min_score),
-        "roles": json.dumps(sorted(set(roles))) if roles is not None else None,
-        "secret": secret,
-        "previous_secret": None,
-        "previous_secret_until_us": None,
-        "created_us": now_us,
-        "paused": False,
-        "paused_reason": None,
-        "consecutive_failures": 0,
-        "deleted_us": None,
-    }
-    connection.execute(subscriptions.insert().values(**values))
-    return NewSecret(public_view(values), secret)
-
-
-def _live(connection: Connection, sub_id: str, *, lock: bool = False):
-    query = select(subscriptions).where(
-        subscriptions.c.id == sub_id, subscriptions.c.deleted_us.is_(None)
+    record = SubscriptionRecord(
+        id=subscription_id(),
+        url=url,
+        format=fmt,
+        min_score=float(min_score),
+        roles=tuple(sorted(set(roles))) if roles is not None else None,
+        secret=secret,
+        previous_secret=None,
+        previous_secret_until_us=None,
+        created_us=now_us,
+        paused=False,
+        paused_reason=None,
+        consecutive_failures=0,
+        deleted_us=None,
     )
-    if lock:
-        query = query.with_for_update()
-    row = connection.execute(query).first()
-    if row is None:
+    subscription_store.insert_subscription(connection, record)
+    return NewSecret(public_view(record), secret)
+
+
+def live_subscription(
+    connection: Connection, sub_id: str, *, lock: bool = False
+) -> SubscriptionRecord:
+    """The subscription unless deleted or unknown (``SubscriptionNotFound``); ``lock`` holds
+    its row until the transaction ends."""
+    found = subscription_store.find_live_subscription(connection, sub_id, lock=lock)
+    if found is None:
         raise SubscriptionNotFound(f"no subscription {sub_id!r}")
-    return row
+    return found
 
 
 def get_subscription(connection: Connection, sub_id: str) -> dict[str, Any]:
     """The public view of one live subscription (``SubscriptionNotFound`` otherwise)."""
-    return public_view(_live(connection, sub_id))
+    return public_view(live_subscription(connection, sub_id))
 
 
 def list_subscriptions(connection: Connection) -> list[dict[str, Any]]:
     """Public views of every live subscription, oldest first."""
-    rows = connection.execute(
-        select(subscriptions)
-        .where(subscriptions.c.deleted_us.is_(None))
-        .order_by(subscriptions.c.created_us, subscriptions.c.id)
-    )
-    return [public_view(row) for row in rows]
+    return [public_view(found) for found in subscription_store.list_live_subscriptions(connection)]
 
 
 def delete_subscription(connection: Connection, sub_id: str, *, now_us: int) -> None:
@@ -143,47 +142,26 @@ def delete_subscription(connection: Connection, sub_id: str, *, now_us: int) -> 
 
     The row is kept (marked deleted, secrets wiped) so past deliveries keep their owner.
     """
-    _live(connection, sub_id, lock=True)
-    connection.execute(
-        update(subscriptions)
-        .where(subscriptions.c.id == sub_id)
-        .values(deleted_us=now_us, secret="", previous_secret=None, previous_secret_until_us=None)
-    )
-    connection.execute(
-        update(deliveries)
-        .where(deliveries.c.subscription_id == sub_id, deliveries.c.status == "pending")
-        .values(status="failed", last_error="subscription deleted")
-    )
+    live_subscription(connection, sub_id, lock=True)
+    subscription_store.mark_deleted(connection, sub_id, now_us=now_us)
+    outbox_store.fail_pending_of(connection, sub_id, error=DELETED_ERROR)
 
 
-def rotate_secret(connection: Connection, sub_id: str, settings, *, now_us: int) -> NewSecret:
+def rotate_secret(
+    connection: Connection, sub_id: str, settings: Settings, *, now_us: int
+) -> NewSecret:
     """Give the subscription a new secret; the old one keeps signing for ``secret_overlap``."""
-    row = _live(connection, sub_id, lock=True)
+    current = live_subscription(connection, sub_id, lock=True)
     secret = new_secret()
     until = now_us + int(settings.secret_overlap.total_seconds() * 1_000_000)
-    connection.execute(
-        update(subscriptions)
-        .where(subscriptions.c.id == sub_id)
-        .values(secret=secret, previous_secret=row.secret, previous_secret_until_us=until)
+    subscription_store.replace_secret(
+        connection, sub_id, secret=secret, previous_secret=current.secret, previous_until_us=until
     )
-    return NewSecret(public_view(_live(connection, sub_id)), secret)
-
-
-def pause_subscription(connection: Connection, sub_id: str, reason: str) -> None:
-    """Stop sending to the subscription until an admin resumes it."""
-    connection.execute(
-        update(subscriptions)
-        .where(subscriptions.c.id == sub_id)
-        .values(paused=True, paused_reason=reason)
-    )
+    return NewSecret(public_view(live_subscription(connection, sub_id)), secret)
 
 
 def resume_subscription(connection: Connection, sub_id: str) -> dict[str, Any]:
     """Unpause the subscription and reset its failure count; queued deliveries go out again."""
-    _live(connection, sub_id, lock=True)
-    connection.execute(
-        update(subscriptions)
-        .where(subscriptions.c.id == sub_id)
-        .values(paused=False, paused_reason=None, consecutive_failures=0)
-    )
-    return public_view(_live(connection, sub_id))
+    live_subscription(connection, sub_id, lock=True)
+    subscription_store.unpause(connection, sub_id)
+    return public_view(live_subscription(connection, sub_id))

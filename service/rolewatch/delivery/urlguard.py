@@ -15,6 +15,8 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from urllib.parse import urlsplit
 
+from rolewatch.config import Settings
+
 IPAddress = ipaddress.IPv4Address | ipaddress.IPv6Address
 Resolver = Callable[..., list]
 
@@ -185,7 +187,7 @@ def check_url(
     )
 
 
-def check_url_for(url: str, settings, resolver: Resolver | None = None) -> CheckedURL:
+def check_url_for(url: str, settings: Settings, resolver: Resolver | None = None) -> CheckedURL:
     """``check_url`` with the operator's settings (allow http, allow-listed hosts)."""
     return check_url(
         url,

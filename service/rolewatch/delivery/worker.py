@@ -1,6 +1,7 @@
 """The delivery worker: claim due deliveries, sign and send them, record every attempt.
 
-One run of ``deliver_due`` has three steps, and only the first and last touch the database:
+One run of ``deliver_due`` has three steps, and only the first and last touch the database
+(through ``rolewatch.store.outbox`` and ``rolewatch.store.subscriptions``):
 
 1. *Claim* (one short write transaction): pick due ``pending`` rows of live, unpaused
    subscriptions — on PostgreSQL with ``SELECT … FOR UPDATE SKIP LOCKED`` so concurrent
@@ -28,19 +29,21 @@ import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from typing import Any
 
 import httpx
-from sqlalchemy import select, update
-from sqlalchemy.engine import Engine
 
 from rolewatch import metrics
 from rolewatch.clock import now_micros, now_seconds
+from rolewatch.config import Settings
 from rolewatch.delivery.payloads import plain
 from rolewatch.delivery.signing import webhook_headers
 from rolewatch.delivery.subscriptions import active_secrets
-from rolewatch.delivery.urlguard import Resolver, UnsafeURL, check_url_for
-from rolewatch.store.db import write_transaction
-from rolewatch.store.schema import deliveries, delivery_attempts, subscriptions
+from rolewatch.delivery.urlguard import CheckedURL, Resolver, UnsafeURL, check_url_for
+from rolewatch.store import outbox as outbox_store
+from rolewatch.store import subscriptions as subscription_store
+from rolewatch.store.db import Connection, Engine, write_transaction
+from rolewatch.store.subscriptions import FailureCount
 
 log = logging.getLogger(__name__)
 
@@ -93,72 +96,49 @@ class DeliveryReport:
 def backoff_seconds(attempt: int, base_s: float, *, rng: random.Random | None = None) -> float:
     """Delay after failed attempt number ``attempt``: base · 2^(attempt-1), ±20 % jitter,
     capped at 6 hours. Jitter spreads retries of many deliveries that failed together."""
-    rng = rng or random
+    uniform = rng.uniform if rng is not None else random.uniform
     delay = base_s * (2 ** min(attempt - 1, 40))
-    return min(delay * rng.uniform(0.8, 1.2), BACKOFF_CAP_S)
+    return min(delay * uniform(0.8, 1.2), BACKOFF_CAP_S)
 
 
-def _lease_us(settings) -> int:
+def _lease_us(settings: Settings) -> int:
     per_send = settings.delivery_connect_timeout + settings.delivery_timeout
     rounds = -(-settings.delivery_batch_size // settings.delivery_concurrency)
     return int((per_send.total_seconds() * rounds + 60) * 1_000_000)
 
 
-def claim_due(engine: Engine, settings, now_us: int) -> list[Claim]:
+def claim_due(engine: Engine, settings: Settings, now_us: int) -> list[Claim]:
     """Take up to ``delivery_batch_size`` due deliveries for this worker (step 1)."""
-    query = (
-        select(
-            deliveries.c.id,
-            deliveries.c.attempts,
-            deliveries.c.body,
-            deliveries.c.subscription_id,
-            subscriptions.c.url,
-            subscriptions.c.secret,
-            subscriptions.c.previous_secret,
-            subscriptions.c.previous_secret_until_us,
-        )
-        .join(subscriptions, subscriptions.c.id == deliveries.c.subscription_id)
-        .where(
-            deliveries.c.status == "pending",
-            deliveries.c.next_attempt_us <= now_us,
-            subscriptions.c.paused.is_(False),
-            subscriptions.c.deleted_us.is_(None),
-        )
-        .order_by(deliveries.c.next_attempt_us, deliveries.c.id)
-        .limit(settings.delivery_batch_size)
-        # PostgreSQL: rows another worker is claiming are skipped, not waited for.
-        # SQLite ignores this; BEGIN IMMEDIATE already serialises claimers.
-        .with_for_update(of=deliveries, skip_locked=True)
-    )
-    lease_until = now_us + _lease_us(settings)
-    claims = []
     with write_transaction(engine) as connection:
-        for row in connection.execute(query).all():
-            attempt = row.attempts + 1
-            connection.execute(
-                update(deliveries)
-                .where(deliveries.c.id == row.id)
-                .values(attempts=attempt, next_attempt_us=lease_until)
-            )
-            claims.append(
-                Claim(
-                    delivery_id=row.id,
-                    subscription_id=row.subscription_id,
-                    attempt=attempt,
-                    body=row.body.encode("utf-8"),
-                    url=row.url,
-                    secrets=tuple(active_secrets(row, now_us)),
+        rows = outbox_store.claim_due(
+            connection,
+            now_us=now_us,
+            limit=settings.delivery_batch_size,
+            lease_until_us=now_us + _lease_us(settings),
+        )
+    return [
+        Claim(
+            delivery_id=row.delivery_id,
+            subscription_id=row.subscription_id,
+            attempt=row.attempt,
+            body=row.body.encode("utf-8"),
+            url=row.url,
+            secrets=tuple(
+                active_secrets(
+                    row.secret, row.previous_secret, row.previous_secret_until_us, now_us
                 )
-            )
-    return claims
+            ),
+        )
+        for row in rows
+    ]
 
 
-def _ssl_context(settings) -> ssl.SSLContext:
+def _ssl_context(settings: Settings) -> ssl.SSLContext:
     context = ssl.create_default_context(cafile=settings.delivery_ca_bundle or None)
     return context
 
 
-def make_client(settings) -> httpx.Client:
+def make_client(settings: Settings) -> httpx.Client:
     """An HTTP client for webhooks: timeouts, no redirects, no proxies from the environment
     (a proxy would defeat the address pinning), certificates checked."""
     return httpx.Client(
@@ -196,6 +176,7 @@ class TotalDeadline:
     """
 
     def __init__(self, seconds: float) -> None:
+        self.seconds = seconds
         self.expired = False
         self._sockets: list[socket.socket] = []
         self._lock = threading.Lock()
@@ -203,7 +184,7 @@ class TotalDeadline:
         self._timer.daemon = True
         self._timer.start()
 
-    def trace(self, event: str, info: dict) -> None:
+    def trace(self, event: str, info: dict[str, Any]) -> None:
         """httpcore ``trace`` callback: remember each socket it connects."""
         if event != "connection.connect_tcp.complete":
             return
@@ -234,11 +215,10 @@ class TotalDeadline:
 
 
 def send_one(
-    claim: Claim, settings, client: httpx.Client, resolver: Resolver | None = None
+    claim: Claim, settings: Settings, client: httpx.Client, resolver: Resolver | None = None
 ) -> AttemptResult:
     """Check, sign and POST one delivery (step 2). Never raises; errors become the result."""
     started = time.monotonic()
-    total_s = settings.delivery_timeout.total_seconds()
 
     def result(status: int | None, error: str | None) -> AttemptResult:
         return AttemptResult(status, error, round((time.monotonic() - started) * 1000, 1))
@@ -250,57 +230,76 @@ def send_one(
     headers = webhook_headers(claim.secrets, claim.delivery_id, now_seconds(), claim.body)
     headers["content-type"] = "application/json"
     headers["host"] = checked.host_header
-    deadline = TotalDeadline(total_s)
-    extensions: dict = {"trace": deadline.trace}
-    if checked.scheme == "https" and not checked.is_ip_literal:
-        extensions["sni_hostname"] = checked.host  # TLS name = the URL's host, not the IP
-    timed_out = f"timed out: no complete answer within the total timeout of {total_s:g}s"
+    deadline = TotalDeadline(settings.delivery_timeout.total_seconds())
     response = None
     try:
-        for address in checked.addresses:  # every one was checked; try the next if one refuses
-            request = client.build_request(
-                "POST",
-                checked.pinned_url(address),
-                content=claim.body,
-                headers=headers,
-                extensions=extensions,
-            )
-            try:
-                response = client.send(request, stream=True)
-                break
-            except httpx.HTTPError as error:
-                if deadline.expired or isinstance(error, httpx.TimeoutException):
-                    return result(None, timed_out)
-                if not isinstance(error, httpx.ConnectError):
-                    return result(None, f"{type(error).__name__}: {plain(error, SNIPPET_CHARS)}")
-                failure = f"could not connect: {plain(error, SNIPPET_CHARS) or 'refused'}"
+        response, failure = _post(client, claim, checked, headers, deadline)
         if response is None:
             return result(None, failure)
-        code = response.status_code
-        if 200 <= code < 300:
-            return result(code, None)
-        if 300 <= code < 400:
-            location = plain(response.headers.get("location", "(none)"), SNIPPET_CHARS)
-            return result(
-                code,
-                f"redirect {code} to {location} not followed: set the subscription URL to "
-                "the final address",
-            )
-        try:
-            snippet = _snippet(response)
-        except httpx.HTTPError:
-            snippet = ""
-        reason = "gone: the receiver asked to stop; subscription paused" if code == 410 else ""
-        return result(code, " — ".join(p for p in (f"HTTP {code}", reason, snippet) if p))
+        return result(*_judge(response))
     finally:
         deadline.cancel()
         if response is not None:
             response.close()
 
 
+def _post(
+    client: httpx.Client,
+    claim: Claim,
+    checked: CheckedURL,
+    headers: dict[str, str],
+    deadline: TotalDeadline,
+) -> tuple[httpx.Response | None, str]:
+    """POST the body to the checked addresses in turn until one answers: the streamed
+    response, or ``None`` and why no answer came."""
+    extensions: dict[str, Any] = {"trace": deadline.trace}
+    if checked.scheme == "https" and not checked.is_ip_literal:
+        extensions["sni_hostname"] = checked.host  # TLS name = the URL's host, not the IP
+    failure = ""
+    for address in checked.addresses:  # every one was checked; try the next if one refuses
+        request = client.build_request(
+            "POST",
+            checked.pinned_url(address),
+            content=claim.body,
+            headers=headers,
+            extensions=extensions,
+        )
+        try:
+            return client.send(request, stream=True), ""
+        except httpx.HTTPError as error:
+            if deadline.expired or isinstance(error, httpx.TimeoutException):
+                return None, (
+                    "timed out: no complete answer within the total timeout of "
+                    f"{deadline.seconds:g}s"
+                )
+            if not isinstance(error, httpx.ConnectError):
+                return None, f"{type(error).__name__}: {plain(error, SNIPPET_CHARS)}"
+            failure = f"could not connect: {plain(error, SNIPPET_CHARS) or 'refused'}"
+    return None, failure
+
+
+def _judge(response: httpx.Response) -> tuple[int, str | None]:
+    """The status code of an answer, and what went wrong unless it is a 2xx."""
+    code = response.status_code
+    if 200 <= code < 300:
+        return code, None
+    if 300 <= code < 400:
+        location = plain(response.headers.get("location", "(none)"), SNIPPET_CHARS)
+        return code, (
+            f"redirect {code} to {location} not followed: set the subscription URL to "
+            "the final address"
+        )
+    try:
+        snippet = _snippet(response)
+    except httpx.HTTPError:
+        snippet = ""
+    reason = "gone: the receiver asked to stop; subscription paused" if code == 410 else ""
+    return code, " — ".join(p for p in (f"HTTP {code}", reason, snippet) if p)
+
+
 def record_attempt(
     engine: Engine,
-    settings,
+    settings: Settings,
     claim: Claim,
     outcome: AttemptResult,
     now_us: int,
@@ -308,93 +307,122 @@ def record_attempt(
 ) -> None:
     """Store the attempt and move the delivery and its subscription on (step 3)."""
     with write_transaction(engine) as connection:
-        connection.execute(
-            delivery_attempts.insert().values(
-                delivery_id=claim.delivery_id,
-                attempted_us=now_us,
-                status_code=outcome.status_code,
-                error=outcome.error,
-                duration_ms=outcome.duration_ms,
-            )
+        outbox_store.insert_attempt(
+            connection,
+            claim.delivery_id,
+            attempted_us=now_us,
+            status_code=outcome.status_code,
+            error=outcome.error,
+            duration_ms=outcome.duration_ms,
         )
-        current = connection.execute(
-            select(deliveries.c.status, deliveries.c.attempts).where(
-                deliveries.c.id == claim.delivery_id
-            )
-        ).first()
+        progress = outbox_store.delivery_progress(connection, claim.delivery_id)
         # Redelivered, deleted or re-claimed after our lease ran out: the attempt is history,
         # the row belongs to whoever holds it now.
-        if current is None or current.status != "pending" or current.attempts != claim.attempt:
+        if progress is None or progress.status != "pending" or progress.attempts != claim.attempt:
             return
-        sub = connection.execute(
-            select(subscriptions.c.consecutive_failures, subscriptions.c.paused).where(
-                subscriptions.c.id == claim.subscription_id
-            )
-        ).first()
-        common = {"last_status_code": outcome.status_code, "last_error": outcome.error}
         if outcome.ok:
-            connection.execute(
-                update(deliveries)
-                .where(deliveries.c.id == claim.delivery_id)
-                .values(status="delivered", delivered_us=now_us, **common)
-            )
-            connection.execute(
-                update(subscriptions)
-                .where(subscriptions.c.id == claim.subscription_id)
-                .values(consecutive_failures=0)
-            )
-            report.delivered += 1
-            metrics.DELIVERIES.labels(outcome="delivered").inc()
+            _record_delivered(connection, claim, outcome, now_us, report)
             return
-        if claim.attempt >= settings.delivery_max_attempts:
-            values = {"status": "failed", **common}
-            report.failed += 1
-            metrics.DELIVERIES.labels(outcome="failed").inc()
-        else:
-            delay = backoff_seconds(claim.attempt, settings.delivery_backoff.total_seconds())
-            values = {"next_attempt_us": now_us + int(delay * 1_000_000), **common}
-            report.retrying += 1
-            metrics.DELIVERIES.labels(outcome="retry").inc()
-        connection.execute(
-            update(deliveries).where(deliveries.c.id == claim.delivery_id).values(**values)
+        counted = subscription_store.failure_count(connection, claim.subscription_id)
+        _record_failed_send(connection, settings, claim, outcome, now_us, report)
+        _count_subscription_failure(connection, settings, claim, outcome, counted, report)
+
+
+def _record_delivered(
+    connection: Connection,
+    claim: Claim,
+    outcome: AttemptResult,
+    now_us: int,
+    report: DeliveryReport,
+) -> None:
+    """The receiver took it: the delivery is done and the subscription's failures reset."""
+    outbox_store.mark_delivered(
+        connection,
+        claim.delivery_id,
+        delivered_us=now_us,
+        status_code=outcome.status_code,
+        error=outcome.error,
+    )
+    subscription_store.reset_failures(connection, claim.subscription_id)
+    report.delivered += 1
+    metrics.DELIVERIES.labels(outcome="delivered").inc()
+
+
+def _record_failed_send(
+    connection: Connection,
+    settings: Settings,
+    claim: Claim,
+    outcome: AttemptResult,
+    now_us: int,
+    report: DeliveryReport,
+) -> None:
+    """The send failed: retry after a backoff, or give up after the last allowed attempt."""
+    if claim.attempt >= settings.delivery_max_attempts:
+        outbox_store.mark_failed(
+            connection, claim.delivery_id, status_code=outcome.status_code, error=outcome.error
         )
-        failures = (sub.consecutive_failures if sub else 0) + 1
-        sub_values: dict = {"consecutive_failures": failures}
-        if sub is not None and not sub.paused:
-            if outcome.gone:
-                sub_values.update(paused=True, paused_reason="the receiver answered 410 Gone")
-            elif failures >= settings.subscription_pause_after:
-                sub_values.update(
-                    paused=True,
-                    paused_reason=f"{failures} consecutive failed attempts; last: "
-                    f"{(outcome.error or '')[:SNIPPET_CHARS]}",
-                )
-            if sub_values.get("paused"):
-                report.paused.append(claim.subscription_id)
-                log.warning(
-                    "webhook subscription paused",
-                    extra={"fields": {"subscription": claim.subscription_id, "failures": failures}},
-                )
-        connection.execute(
-            update(subscriptions)
-            .where(subscriptions.c.id == claim.subscription_id)
-            .values(**sub_values)
+        report.failed += 1
+        metrics.DELIVERIES.labels(outcome="failed").inc()
+        return
+    delay = backoff_seconds(claim.attempt, settings.delivery_backoff.total_seconds())
+    outbox_store.schedule_retry(
+        connection,
+        claim.delivery_id,
+        next_attempt_us=now_us + int(delay * 1_000_000),
+        status_code=outcome.status_code,
+        error=outcome.error,
+    )
+    report.retrying += 1
+    metrics.DELIVERIES.labels(outcome="retry").inc()
+
+
+def _pause_reason(settings: Settings, outcome: AttemptResult, failures: int) -> str | None:
+    """Why the subscription pauses after this failure, or ``None`` while it keeps going."""
+    if outcome.gone:
+        return "the receiver answered 410 Gone"
+    if failures >= settings.subscription_pause_after:
+        return (
+            f"{failures} consecutive failed attempts; last: {(outcome.error or '')[:SNIPPET_CHARS]}"
         )
+    return None
+
+
+def _count_subscription_failure(
+    connection: Connection,
+    settings: Settings,
+    claim: Claim,
+    outcome: AttemptResult,
+    counted: FailureCount | None,
+    report: DeliveryReport,
+) -> None:
+    """One more consecutive failure for the subscription; pause it on ``410 Gone`` or after
+    ``subscription_pause_after`` failures in a row (an already paused one stays as it is)."""
+    failures = (counted.consecutive_failures if counted else 0) + 1
+    reason = None
+    if counted is not None and not counted.paused:
+        reason = _pause_reason(settings, outcome, failures)
+        if reason is not None:
+            report.paused.append(claim.subscription_id)
+            log.warning(
+                "webhook subscription paused",
+                extra={"fields": {"subscription": claim.subscription_id, "failures": failures}},
+            )
+    subscription_store.record_failures(
+        connection, claim.subscription_id, consecutive_failures=failures, pause_reason=reason
+    )
 
 
 def release(engine: Engine, claim: Claim, now_us: int) -> None:
     """Give a claimed delivery back unsent: attempt count and due time as before the claim."""
     with write_transaction(engine) as connection:
-        connection.execute(
-            update(deliveries)
-            .where(deliveries.c.id == claim.delivery_id, deliveries.c.attempts == claim.attempt)
-            .values(attempts=claim.attempt - 1, next_attempt_us=now_us)
+        outbox_store.release_claim(
+            connection, claim.delivery_id, attempt=claim.attempt, now_us=now_us
         )
 
 
 def deliver_due(
     engine: Engine,
-    settings,
+    settings: Settings,
     now_us: int | None = None,
     *,
     resolver: Resolver | None = None,
