@@ -11,8 +11,9 @@ from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
 from fastapi import APIRouter, Depends, FastAPI
-from fastapi.responses import JSONResponse, Response
+from fastapi.responses import JSONResponse, PlainTextResponse, Response
 from starlette.concurrency import run_in_threadpool
+from starlette.datastructures import MutableHeaders
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from rolewatch import metrics
@@ -36,6 +37,20 @@ from rolewatch.web.pages import include_pages
 
 log = logging.getLogger("rolewatch.http")
 _REQUEST_ID_OK = re.compile(r"[A-Za-z0-9._-]{1,64}")
+SECURITY_HEADERS = {
+    "Content-Security-Policy": "default-src 'self'; img-src 'self' data:; style-src 'self'; "
+    "script-src 'self'; object-src 'none'; base-uri 'none'; form-action 'self'; "
+    "frame-ancestors 'none'",
+    "X-Content-Type-Options": "nosniff",
+    "Referrer-Policy": "no-referrer",
+    "Cache-Control": "no-store",
+}
+DOCS_URL = "/docs"
+REDOC_URL = "/redoc"
+# The interactive API docs load their script from a CDN and run an inline script, which the
+# policy above forbids; those pages get every header but the Content-Security-Policy.
+_DOCS_PAGES = frozenset({DOCS_URL, DOCS_URL + "/oauth2-redirect", REDOC_URL})
+
 DESCRIPTION = """Streaming detection of structural role changes in an interaction graph.
 
 Post events to `/v1/events`; windows close automatically; query account role histories,
@@ -45,6 +60,43 @@ Scopes: ingest, read, admin (admin implies the others).
 
 Alerts are leads for human review, not verdicts.
 """
+
+
+class SecurityHeaders:
+    """ASGI middleware: :data:`SECURITY_HEADERS` on every response (pages, API answers,
+    errors, redirects, static files), replacing any value a route set.
+
+    An unhandled error is answered here with Starlette's plain 500 (so it carries the headers
+    too) and raised on for the server to log.
+    """
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        exempt = ("Content-Security-Policy",) if scope["path"] in _DOCS_PAGES else ()
+        started = False
+
+        async def send_with_headers(message: Message) -> None:
+            nonlocal started
+            if message["type"] == "http.response.start":
+                started = True
+                headers = MutableHeaders(scope=message)
+                for name, value in SECURITY_HEADERS.items():
+                    if name not in exempt:
+                        headers[name] = value
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_with_headers)
+        except Exception:
+            if not started:
+                error = PlainTextResponse("Internal Server Error", status_code=500)
+                await error(scope, receive, send_with_headers)
+            raise
 
 
 class RequestContext:
@@ -173,11 +225,13 @@ def create_app(settings: Settings, *, run_jobs: bool | None = None) -> FastAPI:
         version="0.1.0",
         description=DESCRIPTION,
         lifespan=lifespan,
-        docs_url="/docs",
+        docs_url=DOCS_URL,
+        redoc_url=REDOC_URL,
         openapi_url="/openapi.json",
     )
     app.state.settings = settings
-    app.add_middleware(RequestContext)
+    app.add_middleware(SecurityHeaders)
+    app.add_middleware(RequestContext)  # outermost: its log line and id cover the 500s too
     for module in (events, accounts, roles, windows, alerts, admin):
         app.include_router(module.router)
     app.include_router(subscriptions.router)

@@ -33,14 +33,6 @@ NOTICE = (
     "Alerts are leads for human review, not verdicts: check the evidence before acting. "
     "Decisions about people are subject to data-protection law and local rules."
 )
-SECURITY_HEADERS = {
-    "Content-Security-Policy": "default-src 'self'; img-src 'self' data:; style-src 'self'; "
-    "script-src 'self'; object-src 'none'; base-uri 'none'; form-action 'self'; "
-    "frame-ancestors 'none'",
-    "X-Content-Type-Options": "nosniff",
-    "Referrer-Policy": "no-referrer",
-    "Cache-Control": "no-store",
-}
 _CONTROL = re.compile("[\x00-\x1f\x7f-\x9f]")
 PAGE_SIZE = 50
 
@@ -74,9 +66,7 @@ def _render(
     request: Request, name: str, context: dict[str, Any], status_code: int = 200
 ) -> HTMLResponse:
     context = {"notice": NOTICE, "key": None, "form_token": "", "section": "", **context}
-    response = templates.TemplateResponse(request, name, context, status_code=status_code)
-    response.headers.update(SECURITY_HEADERS)
-    return response
+    return templates.TemplateResponse(request, name, context, status_code=status_code)
 
 
 def _page(
@@ -115,7 +105,6 @@ def signin(
         return _render(request, "signin.html", {"next": target, "error": error}, 401)
     response = RedirectResponse(target, status_code=303)
     session.set_key_cookie(response, key, secure=_secure(settings))
-    response.headers.update(SECURITY_HEADERS)
     return response
 
 
@@ -483,9 +472,7 @@ def rename_role(
     if refusal is not None:
         context["error"], status_code = refusal
         return _page(request, "roles.html", key, context, status_code)
-    response = RedirectResponse(f"/roles?renamed={role_id}#role-{role_id}", status_code=303)
-    response.headers.update(SECURITY_HEADERS)
-    return response
+    return RedirectResponse(f"/roles?renamed={role_id}#role-{role_id}", status_code=303)
 
 
 def include_pages(app: FastAPI) -> None:
