@@ -13,7 +13,7 @@ from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.deps import AdminKey, SettingsDep, StoreDep
 from rolewatch.api.models import KeyInfo, Problem, RefitRequest
-from rolewatch.api.timeparams import time_range
+from rolewatch.api.timeparams import required_time_range
 from rolewatch.clock import to_rfc3339
 from rolewatch.config import Settings
 from rolewatch.store.keys import list_keys
@@ -44,7 +44,7 @@ async def refit(
 ) -> Any:
     """Fit a new feature recipe and role basis on the closed windows of ``[from, to)``; its
     roles are matched to the old ones so ids stay stable where roles persist."""
-    start, end = time_range(body.from_, body.to)
+    start, end = required_time_range(body.from_, body.to)
     log.info("basis refit requested", extra={"fields": {"key_id": key.key_id}})
     try:
         outcome = await run_in_threadpool(_refit, store, settings, start, end)
