@@ -205,6 +205,17 @@ def test_bad_time_parameters_are_400(seeded):
     )
 
 
+def test_refit_needs_both_ends_of_the_period(seeded):
+    """An empty ``from`` or ``to`` is a 400 naming it (it used to reach the store as NULL)."""
+    for body, named in (
+        ({"from": "", "to": "2026-01-22T00:00:00Z"}, "from"),
+        ({"from": "2026-01-01T00:00:00Z", "to": ""}, "to"),
+    ):
+        response = seeded.client.post("/v1/admin/basis", json=body, headers=seeded.headers("admin"))
+        assert response.status_code == 400, response.text
+        assert response.json()["detail"].startswith(f"{named}: required")
+
+
 def test_roles_and_rename(seeded):
     body = get(seeded, "/v1/roles").json()
     assert body["basis_version"] == "b-1"

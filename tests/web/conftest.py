@@ -13,6 +13,8 @@ import os
 import socket
 import threading
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -68,11 +70,31 @@ def _free_socket() -> socket.socket:
     return sock
 
 
+@contextmanager
+def serve(app, sock: socket.socket | None = None) -> Iterator[str]:
+    """Serve ``app`` with uvicorn on a loopback socket in a thread; yields its base URL."""
+    import uvicorn
+
+    sock = sock or _free_socket()
+    server = uvicorn.Server(uvicorn.Config(app, log_level="warning", lifespan="on"))
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    deadline = time.monotonic() + 30
+    while not server.started:
+        if time.monotonic() > deadline or not thread.is_alive():
+            raise RuntimeError("the app did not start within 30 s")
+        time.sleep(0.05)
+    try:
+        yield f"http://127.0.0.1:{sock.getsockname()[1]}"
+    finally:
+        server.should_exit = True
+        thread.join(timeout=15)
+        sock.close()
+
+
 @pytest.fixture(scope="session")
 def site(browser_ready, tmp_path_factory):
     """The sample scenario ingested, its windows closed, and the app served on loopback."""
-    import uvicorn
-
     from rolewatch.api.app import create_app
     from rolewatch.config import load_settings
     from rolewatch.pipeline.closer import close_due_windows
@@ -122,20 +144,9 @@ def site(browser_ready, tmp_path_factory):
         for scope in ("ingest", "read", "admin")
     }
 
-    server = uvicorn.Server(
-        uvicorn.Config(create_app(settings, run_jobs=False), log_level="warning", lifespan="on")
-    )
-    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 30
-    while not server.started:
-        if time.monotonic() > deadline or not thread.is_alive():
-            raise RuntimeError("the app did not start within 30 s")
-        time.sleep(0.05)
-    yield Site(url, settings, engine, keys)
-    server.should_exit = True
-    thread.join(timeout=15)
-    sock.close()
+    with serve(create_app(settings, run_jobs=False), sock) as served_url:
+        assert served_url == url
+        yield Site(url, settings, engine, keys)
     engine.dispose()
 
 

@@ -258,7 +258,7 @@ def test_role_catalogue_matches_the_api(page, site):
     page.get(f"{site.url}/roles")
     cards = _css(page, "article.role")
     assert len(cards) == len(roles)
-    for card, role in zip(cards, roles):
+    for card, role in zip(cards, roles, strict=True):
         assert card.find_element(By.CSS_SELECTOR, ".role-name").text == role["name"]
         assert role["description"] in card.find_element(By.CSS_SELECTOR, ".description").text
     # Dominant-role counts add up to the accounts active in the latest window.

@@ -75,3 +75,24 @@ def test_revoked_key_is_signed_out(served):
     revoke_key(engine, record.key_id, now_us=now_micros())
     response = client.get("/roles", follow_redirects=False)
     assert response.status_code == 303 and response.headers["location"].startswith("/signin")
+
+
+def test_a_key_without_read_scope_gets_no_page(served):
+    """Sign-in refuses such a key; one put in the cookie by hand is sent to sign-in by every
+    page, the rename form included (it would otherwise show the role catalogue)."""
+    client, engine, _, _, _ = served
+    _, ingest_only = create_key(engine, ["ingest"], label="ingest only", now_us=now_micros())
+    refused = client.post("/signin", data={"key": ingest_only, "next": "/"})
+    assert refused.status_code == 401 and "lacks the read scope" in refused.text
+    client.cookies.set("rolewatch_key", ingest_only)
+    for method, path in (
+        ("GET", "/alerts"),
+        ("GET", "/roles"),
+        ("GET", "/accounts/m-1"),
+        ("GET", "/accounts?account=m-1"),
+        ("POST", "/roles"),
+    ):
+        data = {"role_id": "1", "name": "renamed", "token": ""} if method == "POST" else None
+        response = client.request(method, path, data=data, follow_redirects=False)
+        assert response.status_code == 303, (method, path)
+        assert response.headers["location"].startswith("/signin?next="), (method, path)

@@ -7,16 +7,18 @@ import logging
 import re
 import time
 import uuid
+from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
-from fastapi import Depends, FastAPI, Request
-from fastapi.responses import JSONResponse, Response
-from fastapi.security import HTTPAuthorizationCredentials
-from sqlalchemy import text
+from fastapi import APIRouter, Depends, FastAPI
+from fastapi.responses import JSONResponse, PlainTextResponse, Response
 from starlette.concurrency import run_in_threadpool
+from starlette.datastructures import MutableHeaders
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from rolewatch import metrics
-from rolewatch.api.auth import _bearer, require_scope
+from rolewatch.api.auth import check_scope
+from rolewatch.api.deps import BearerCredentials, SettingsDep, StoreDep
 from rolewatch.api.models import Health
 from rolewatch.api.routers import (
     accounts,
@@ -28,11 +30,26 @@ from rolewatch.api.routers import (
     subscriptions,
     windows,
 )
+from rolewatch.config import Settings
 from rolewatch.logs import REQUEST_ID
+from rolewatch.store.summaries import ping
 from rolewatch.web.pages import include_pages
 
 log = logging.getLogger("rolewatch.http")
 _REQUEST_ID_OK = re.compile(r"[A-Za-z0-9._-]{1,64}")
+SECURITY_HEADERS = {
+    "Content-Security-Policy": "default-src 'self'; img-src 'self' data:; style-src 'self'; "
+    "script-src 'self'; object-src 'none'; base-uri 'none'; form-action 'self'; "
+    "frame-ancestors 'none'",
+    "X-Content-Type-Options": "nosniff",
+    "Referrer-Policy": "no-referrer",
+    "Cache-Control": "no-store",
+}
+DOCS_URL = "/docs"
+REDOC_URL = "/redoc"
+# The interactive API docs load their script from a CDN and run an inline script, which the
+# policy above forbids; those pages get every header but the Content-Security-Policy.
+_DOCS_PAGES = frozenset({DOCS_URL, DOCS_URL + "/oauth2-redirect", REDOC_URL})
 
 DESCRIPTION = """Streaming detection of structural role changes in an interaction graph.
 
@@ -45,14 +62,51 @@ Alerts are leads for human review, not verdicts.
 """
 
 
+class SecurityHeaders:
+    """ASGI middleware: :data:`SECURITY_HEADERS` on every response (pages, API answers,
+    errors, redirects, static files), replacing any value a route set.
+
+    An unhandled error is answered here with Starlette's plain 500 (so it carries the headers
+    too) and raised on for the server to log.
+    """
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        exempt = ("Content-Security-Policy",) if scope["path"] in _DOCS_PAGES else ()
+        started = False
+
+        async def send_with_headers(message: Message) -> None:
+            nonlocal started
+            if message["type"] == "http.response.start":
+                started = True
+                headers = MutableHeaders(scope=message)
+                for name, value in SECURITY_HEADERS.items():
+                    if name not in exempt:
+                        headers[name] = value
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_with_headers)
+        except Exception:
+            if not started:
+                error = PlainTextResponse("Internal Server Error", status_code=500)
+                await error(scope, receive, send_with_headers)
+            raise
+
+
 class RequestContext:
     """ASGI middleware: request id (``X-Request-ID`` in and out), one log line per request
     and the request counter labelled with the route template (never the raw path)."""
 
-    def __init__(self, app) -> None:
+    def __init__(self, app: ASGIApp) -> None:
         self.app = app
 
-    async def __call__(self, scope, receive, send):
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
@@ -64,7 +118,7 @@ class RequestContext:
         started = time.perf_counter()
         status_code = 500
 
-        async def send_with_id(message):
+        async def send_with_id(message: Message) -> None:
             nonlocal status_code
             if message["type"] == "http.response.start":
                 status_code = message["status"]
@@ -97,20 +151,55 @@ class RequestContext:
             REQUEST_ID.reset(token)
 
 
-def create_app(settings, *, run_jobs: bool | None = None) -> FastAPI:
+service = APIRouter(tags=["service"])
+
+
+@service.get(
+    "/healthz",
+    response_model=Health,
+    summary="Liveness and database check (no key)",
+)
+async def healthz(store: StoreDep) -> dict[str, str] | JSONResponse:
+    try:
+        await run_in_threadpool(ping, store)
+    except Exception:
+        log.exception("health check: database unreachable")
+        return JSONResponse({"status": "unavailable", "database": "unreachable"}, status_code=503)
+    return {"status": "ok", "database": "ok"}
+
+
+def metrics_access(settings: SettingsDep, store: StoreDep, credentials: BearerCredentials) -> None:
+    """Admit anyone when ``metrics_public`` is set, else keys with the read scope."""
+    if not settings.metrics_public:
+        check_scope(store, credentials, "read")
+
+
+@service.get(
+    "/metrics",
+    dependencies=[Depends(metrics_access)],
+    summary="Prometheus text exposition (read scope unless metrics_public)",
+    response_class=Response,
+)
+async def metrics_endpoint() -> Response:
+    body, content_type = metrics.exposition()
+    return Response(body, media_type=content_type)
+
+
+def create_app(settings: Settings, *, run_jobs: bool | None = None) -> FastAPI:
     """The rolewatch application for ``settings``.
 
     The lifespan opens the store (migrating it to head) and, when ``settings.role`` is
     ``all`` or ``worker`` (``run_jobs=None``) or ``run_jobs=True``, starts the scheduler that
     closes windows and delivers webhooks every ``tick_interval``; ``run_jobs=False`` never
-    starts it. Shutdown waits for running jobs, then closes the store.
+    starts it. Shutdown waits for running jobs, then closes the store. Routes reach the
+    settings and the store through :mod:`rolewatch.api.deps`.
     """
     from rolewatch.store.db import open_store
 
     jobs_wanted = settings.role in ("all", "worker") if run_jobs is None else run_jobs
 
     @asynccontextmanager
-    async def lifespan(app: FastAPI):
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         engine = await run_in_threadpool(open_store, settings)
         app.state.engine = engine
         scheduler = None
@@ -136,54 +225,17 @@ def create_app(settings, *, run_jobs: bool | None = None) -> FastAPI:
         version="0.1.0",
         description=DESCRIPTION,
         lifespan=lifespan,
-        docs_url="/docs",
+        docs_url=DOCS_URL,
+        redoc_url=REDOC_URL,
         openapi_url="/openapi.json",
     )
     app.state.settings = settings
-    app.add_middleware(RequestContext)
+    app.add_middleware(SecurityHeaders)
+    app.add_middleware(RequestContext)  # outermost: its log line and id cover the 500s too
     for module in (events, accounts, roles, windows, alerts, admin):
         app.include_router(module.router)
     app.include_router(subscriptions.router)
     app.include_router(deliveries.router)
-    include_pages(app)  # the HTML pages and /static
-
-    @app.get(
-        "/healthz",
-        response_model=Health,
-        tags=["service"],
-        summary="Liveness and database check (no key)",
-    )
-    async def healthz(request: Request):
-        def check() -> bool:
-            try:
-                with request.app.state.engine.connect() as connection:
-                    connection.execute(text("SELECT 1"))
-                return True
-            except Exception:
-                log.exception("health check: database unreachable")
-                return False
-
-        if await run_in_threadpool(check):
-            return {"status": "ok", "database": "ok"}
-        return JSONResponse({"status": "unavailable", "database": "unreachable"}, status_code=503)
-
-    read_scope = require_scope("read")
-
-    def metrics_access(
-        request: Request, credentials: HTTPAuthorizationCredentials | None = Depends(_bearer)
-    ):
-        if not settings.metrics_public:
-            read_scope(request, credentials)
-
-    @app.get(
-        "/metrics",
-        tags=["service"],
-        dependencies=[Depends(metrics_access)],
-        summary="Prometheus text exposition (read scope unless metrics_public)",
-        response_class=Response,
-    )
-    async def metrics_endpoint():
-        body, content_type = metrics.exposition()
-        return Response(body, media_type=content_type)
-
+    include_pages(app)  # the HTML pages, their sign-in redirect and /static
+    app.include_router(service)
     return app

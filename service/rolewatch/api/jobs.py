@@ -10,9 +10,16 @@ from __future__ import annotations
 import importlib
 import logging
 import time
+from typing import TYPE_CHECKING
+
+from sqlalchemy.engine import Engine
 
 from rolewatch import metrics
 from rolewatch.clock import now_micros
+from rolewatch.config import Settings
+
+if TYPE_CHECKING:
+    from apscheduler.schedulers.background import BackgroundScheduler
 
 log = logging.getLogger(__name__)
 
@@ -24,7 +31,7 @@ JOBS = {
 _missing_reported: set[str] = set()
 
 
-def run_job(name: str, engine, settings) -> None:
+def run_job(name: str, engine: Engine, settings: Settings) -> None:
     """Run one job once, catching and logging every error."""
     module_name, function_name = JOBS[name]
     started = time.perf_counter()
@@ -50,7 +57,7 @@ def run_job(name: str, engine, settings) -> None:
     )
 
 
-def stop_scheduler(scheduler) -> None:
+def stop_scheduler(scheduler: BackgroundScheduler) -> None:
     """Graceful stop: the closer finishes the window it is on and takes no other, running
     deliveries finish, then the scheduler's threads end."""
     from rolewatch.pipeline.closer import SHUTDOWN
@@ -62,7 +69,7 @@ def stop_scheduler(scheduler) -> None:
         SHUTDOWN.clear()  # direct callers of the closer in this process (tests, replay) go on
 
 
-def start_scheduler(engine, settings):
+def start_scheduler(engine: Engine, settings: Settings) -> BackgroundScheduler:
     """A started APScheduler 3.x BackgroundScheduler with the jobs (threads, off the loop)."""
     from apscheduler.schedulers.background import BackgroundScheduler
 

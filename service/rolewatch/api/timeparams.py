@@ -24,3 +24,20 @@ def time_range(from_value: str | None, to_value: str | None) -> tuple[int | None
     if start is not None and end is not None and start >= end:
         raise HTTPException(status.HTTP_400_BAD_REQUEST, detail="from must be before to")
     return start, end
+
+
+def _missing(name: str) -> HTTPException:
+    return HTTPException(
+        status.HTTP_400_BAD_REQUEST,
+        detail=f"{name}: required; give an RFC 3339 time such as 2026-02-12T09:30:00Z",
+    )
+
+
+def required_time_range(from_value: str, to_value: str) -> tuple[int, int]:
+    """Like :func:`time_range`, but both ends must be given; 400 naming an empty one."""
+    start, end = time_range(from_value, to_value)
+    if start is None:
+        raise _missing("from")
+    if end is None:
+        raise _missing("to")
+    return start, end

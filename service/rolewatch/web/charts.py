@@ -7,12 +7,15 @@ declarative: the templates only place rectangles and labels at the positions giv
 from __future__ import annotations
 
 import math
+from collections.abc import Collection, Iterable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
 PALETTE_SIZE = 8  # colours in the CSS palette (role-c0 .. role-c7); more roles get hatching
 EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
+Row = dict[str, Any]
+"""A stored row as a mapping: a closed window, or an account's membership entry."""
 
 
 def day(time_us: int) -> str:
@@ -84,7 +87,12 @@ WIDTH = 960
 LEFT, RIGHT = 64, 16
 
 
-def _columns(windows, active_ids, alert_ids, selected_id) -> tuple[list[Column], float]:
+def _columns(
+    windows: list[Row],
+    active_ids: Collection[int],
+    alert_ids: Collection[int],
+    selected_id: int | None,
+) -> tuple[list[Column], float]:
     count = max(len(windows), 1)
     plot_width = WIDTH - LEFT - RIGHT
     step = plot_width / count
@@ -108,7 +116,13 @@ def _columns(windows, active_ids, alert_ids, selected_id) -> tuple[list[Column],
     return columns, plot_width
 
 
-def mixture_chart(windows, history, roles, alert_ids, selected_id) -> MixtureChart:
+def mixture_chart(
+    windows: list[Row],
+    history: dict[int, Row],
+    roles: list[tuple[int, str]],
+    alert_ids: Iterable[int],
+    selected_id: int | None,
+) -> MixtureChart:
     """Stacked columns, one per closed window, one band (SVG group) per role.
 
     ``windows``: closed windows oldest first; ``history``: ``{window_id: membership entry}``
@@ -134,7 +148,7 @@ def mixture_chart(windows, history, roles, alert_ids, selected_id) -> MixtureCha
         column.summary = f"{column.title}: " + "; ".join(
             f"{name} {share:.0%}" for share, name in shares[:3] if share >= 0.005
         )
-        base = top + plot_height
+        base = float(top + plot_height)
         for band in bands:
             share = float(mixture.get(str(band.role_id), mixture.get(band.role_id, 0.0)) or 0.0)
             height = share * plot_height
@@ -169,7 +183,9 @@ def mixture_chart(windows, history, roles, alert_ids, selected_id) -> MixtureCha
     )
 
 
-def activity_chart(windows, history, selected_id) -> ActivityChart:
+def activity_chart(
+    windows: list[Row], history: dict[int, Row], selected_id: int | None
+) -> ActivityChart:
     """Events out (above the axis) and in (below it) per window, on one shared scale."""
     top, half, bottom_margin = 24, 70, 30
     columns, plot_width = _columns(windows, set(history), set(), selected_id)

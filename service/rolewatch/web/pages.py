@@ -15,14 +15,17 @@ from typing import Any
 from urllib.parse import quote, urlencode
 
 import jinja2
-from fastapi import APIRouter, Form, Request
-from fastapi.responses import HTMLResponse, RedirectResponse
+from fastapi import APIRouter, FastAPI, Form, Request
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
+from sqlalchemy.engine import Engine
 
-from rolewatch.store import queries
-from rolewatch.store.keys import verify_key
-from rolewatch.web import charts, data, present, session
+from rolewatch.api.deps import PageKey, SettingsDep, SignInRequired, StoreDep, redirect_to_signin
+from rolewatch.config import Settings
+from rolewatch.store import queries, summaries
+from rolewatch.store.keys import ApiKey, verify_key
+from rolewatch.web import charts, present, session
 
 HERE = Path(__file__).resolve().parent
 STATIC_DIR = HERE / "static"
@@ -30,14 +33,6 @@ NOTICE = (
     "Alerts are leads for human review, not verdicts: check the evidence before acting. "
     "Decisions about people are subject to data-protection law and local rules."
 )
-SECURITY_HEADERS = {
-    "Content-Security-Policy": "default-src 'self'; img-src 'self' data:; style-src 'self'; "
-    "script-src 'self'; object-src 'none'; base-uri 'none'; form-action 'self'; "
-    "frame-ancestors 'none'",
-    "X-Content-Type-Options": "nosniff",
-    "Referrer-Policy": "no-referrer",
-    "Cache-Control": "no-store",
-}
 _CONTROL = re.compile("[\x00-\x1f\x7f-\x9f]")
 PAGE_SIZE = 50
 
@@ -58,30 +53,26 @@ _environment.filters.update(
 templates = Jinja2Templates(env=_environment)
 router = APIRouter(include_in_schema=False)
 
-
-def static_files() -> StaticFiles:
-    """The ``/static`` mount (CSS, the small script, the icon)."""
-    return StaticFiles(directory=str(STATIC_DIR))
+Roles = list[tuple[int, str]]
+"""Role ids with their names, in the order the pages show them."""
 
 
-def _engine(request: Request):
-    return request.app.state.engine
-
-
-def _secure(request: Request) -> bool:
-    return request.app.state.settings.public_url.lower().startswith("https://")
+def _secure(settings: Settings) -> bool:
+    """Whether the sign-in cookie gets the Secure attribute (the service is served over https)."""
+    return settings.public_url.lower().startswith("https://")
 
 
 def _render(
     request: Request, name: str, context: dict[str, Any], status_code: int = 200
 ) -> HTMLResponse:
     context = {"notice": NOTICE, "key": None, "form_token": "", "section": "", **context}
-    response = templates.TemplateResponse(request, name, context, status_code=status_code)
-    response.headers.update(SECURITY_HEADERS)
-    return response
+    return templates.TemplateResponse(request, name, context, status_code=status_code)
 
 
-def _page(request: Request, name: str, key, context: dict[str, Any], status_code: int = 200):
+def _page(
+    request: Request, name: str, key: ApiKey, context: dict[str, Any], status_code: int = 200
+) -> HTMLResponse:
+    """A page for a signed-in key: the header shows the key and forms carry its token."""
     context = {**context, "key": key, "form_token": session.form_token(request)}
     return _render(request, name, context, status_code)
 
@@ -90,15 +81,21 @@ def _page(request: Request, name: str, key, context: dict[str, Any], status_code
 
 
 @router.get("/signin", response_class=HTMLResponse)
-def signin_form(request: Request, next: str = "/"):
+def signin_form(request: Request, next: str = "/") -> HTMLResponse:
     return _render(request, "signin.html", {"next": session.safe_next(next), "error": None})
 
 
 @router.post("/signin", response_class=HTMLResponse)
-def signin(request: Request, key: str = Form(""), next: str = Form("/")):
+def signin(
+    request: Request,
+    store: StoreDep,
+    settings: SettingsDep,
+    key: str = Form(""),
+    next: str = Form("/"),
+) -> Response:
     target = session.safe_next(next)
     key = key.strip()
-    found = verify_key(_engine(request), key) if key and len(key) <= 300 else None
+    found = verify_key(store, key) if key and len(key) <= 300 else None
     if found is None or not found.allows("read"):
         error = (
             "That key is not valid: it is unknown, revoked or mistyped."
@@ -107,15 +104,14 @@ def signin(request: Request, key: str = Form(""), next: str = Form("/")):
         )
         return _render(request, "signin.html", {"next": target, "error": error}, 401)
     response = RedirectResponse(target, status_code=303)
-    session.set_key_cookie(response, key, secure=_secure(request))
-    response.headers.update(SECURITY_HEADERS)
+    session.set_key_cookie(response, key, secure=_secure(settings))
     return response
 
 
 @router.post("/signout")
-def signout(request: Request):
+def signout(settings: SettingsDep) -> RedirectResponse:
     response = RedirectResponse("/signin", status_code=303)
-    session.clear_key_cookie(response, secure=_secure(request))
+    session.clear_key_cookie(response, secure=_secure(settings))
     return response
 
 
@@ -127,7 +123,9 @@ def _day_start_us(text: str) -> int:
     return (moment - charts.EPOCH) // timedelta(microseconds=1)
 
 
-def _alert_filters(min_score: str, date_from: str, date_to: str):
+def _alert_filters(
+    min_score: str, date_from: str, date_to: str
+) -> tuple[queries.AlertFilters, list[str]]:
     """Parse the filter form; bad fields are reported and ignored, good ones kept."""
     errors = []
     filters: dict[str, Any] = {}
@@ -153,23 +151,9 @@ def _alert_filters(min_score: str, date_from: str, date_to: str):
     return queries.AlertFilters(**filters), errors
 
 
-@router.get("/", response_class=HTMLResponse)
-@router.get("/alerts", response_class=HTMLResponse)
-def alert_queue(
-    request: Request,
-    min_score: str = "",
-    date_from: str = "",
-    date_to: str = "",
-    before: int | None = None,
-):
-    key = session.current_key(request)
-    if key is None or not key.allows("read"):
-        return session.to_signin(request)
-    filters, errors = _alert_filters(min_score, date_from, date_to)
-    found, next_cursor = queries.list_alerts(
-        _engine(request), filters, limit=PAGE_SIZE, cursor=before
-    )
-    rows = [
+def _queue_rows(found: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """One row per alert: the alert, its window's days and its strongest evidence."""
+    return [
         {
             "alert": alert,
             "window_start": alert["window_start"][:10],
@@ -178,22 +162,40 @@ def alert_queue(
         }
         for alert in found
     ]
-    older = None
-    if next_cursor is not None:
-        kept = {"min_score": min_score, "date_from": date_from, "date_to": date_to}
-        older = "/alerts?" + urlencode(
-            {**{k: v for k, v in kept.items() if v}, "before": next_cursor}
-        )
+
+
+def _older_link(form: dict[str, str], next_cursor: int | None) -> str | None:
+    """The link to the next page of older alerts (keeping the filled filters), or None."""
+    if next_cursor is None:
+        return None
+    kept = {name: value for name, value in form.items() if value}
+    return "/alerts?" + urlencode({**kept, "before": next_cursor})
+
+
+@router.get("/", response_class=HTMLResponse)
+@router.get("/alerts", response_class=HTMLResponse)
+def alert_queue(
+    request: Request,
+    key: PageKey,
+    store: StoreDep,
+    min_score: str = "",
+    date_from: str = "",
+    date_to: str = "",
+    before: int | None = None,
+) -> HTMLResponse:
+    filters, errors = _alert_filters(min_score, date_from, date_to)
+    found, next_cursor = queries.list_alerts(store, filters, limit=PAGE_SIZE, cursor=before)
+    form = {"min_score": min_score, "date_from": date_from, "date_to": date_to}
     return _page(
         request,
         "alerts.html",
         key,
         {
             "section": "alerts",
-            "rows": rows,
+            "rows": _queue_rows(found),
             "errors": errors,
-            "form": {"min_score": min_score, "date_from": date_from, "date_to": date_to},
-            "older": older,
+            "form": form,
+            "older": _older_link(form, next_cursor),
             "paged": before is not None,
         },
     )
@@ -202,7 +204,7 @@ def alert_queue(
 # --- account page ----------------------------------------------------------------------------
 
 
-def _role_order(engine, history) -> list[tuple[int, str]]:
+def _role_order(engine: Engine, history: list[dict[str, Any]]) -> Roles:
     """Roles of the active basis (catalogue order), then any other role id the history holds."""
     active = [(role["id"], role["name"]) for role in queries.list_roles(engine)["roles"]]
     known = {role_id for role_id, _ in active}
@@ -214,7 +216,7 @@ def _role_order(engine, history) -> list[tuple[int, str]]:
     return active
 
 
-def _mixture_rows(mixture, roles, names) -> list[dict[str, Any]]:
+def _mixture_rows(mixture: Any, roles: Roles, names: dict[int, str]) -> list[dict[str, Any]]:
     """``{role_id: weight}`` (or the evidence's list form) → rows with names, largest first."""
     if isinstance(mixture, dict):
         items = [(int(role_id), float(weight)) for role_id, weight in mixture.items()]
@@ -234,41 +236,47 @@ def _mixture_rows(mixture, roles, names) -> list[dict[str, Any]]:
     return sorted(rows, key=lambda row: -row["weight"])
 
 
-@router.get("/accounts", response_class=HTMLResponse)
-def account_jump(request: Request, account: str = ""):
-    """The header's account box: go to that account's page."""
-    key = session.current_key(request)
-    if key is None or not key.allows("read"):
-        return session.to_signin(request)
-    account = account.strip()
-    if not account:
-        return RedirectResponse("/alerts", status_code=303)
-    return RedirectResponse("/accounts/" + quote(account, safe=""), status_code=303)
-
-
-@router.get("/accounts/{account:path}", response_class=HTMLResponse)
-def account_page(request: Request, account: str, window: str | None = None):
-    key = session.current_key(request)
-    if key is None or not key.allows("read"):
-        return session.to_signin(request)
-    engine = _engine(request)
-    if not queries.account_exists(engine, account):
-        return _page(
-            request, "missing.html", key, {"title": "Account not found", "account": account}, 404
+def _shift_rows(
+    evidence: dict[str, Any], roles: Roles, names: dict[int, str]
+) -> list[dict[str, Any]]:
+    """The alert's mixture before and after, one row per role shown in either, catalogue order."""
+    before = {r["role_id"]: r for r in _mixture_rows(evidence.get("mixture_before"), roles, names)}
+    after = {r["role_id"]: r for r in _mixture_rows(evidence.get("mixture_after"), roles, names)}
+    order = [role_id for role_id, _ in roles]
+    shown = sorted(
+        set(before) | set(after),
+        key=lambda r: order.index(r) if r in order else len(order) + r,
+    )
+    rows = []
+    for r in shown:
+        either = after.get(r) or before[r]
+        rows.append(
+            {
+                "name": either["name"],
+                "style": either["style"],
+                "before": before[r]["weight"] if r in before else 0.0,
+                "after": after[r]["weight"] if r in after else 0.0,
+            }
         )
-    history_list = queries.account_history(engine, account)
-    history = {entry["window_id"]: entry for entry in history_list}
-    windows = data.all_windows(engine)
-    alerts = data.alerts_by_window(engine, account)
-    roles = _role_order(engine, history_list)
-    names = dict(roles)
+    return rows
 
+
+def _pick_window(
+    asked: str | None,
+    known_ids: set[int],
+    alerts: dict[int, dict[str, Any]],
+    history_list: list[dict[str, Any]],
+) -> tuple[int | None, str | None]:
+    """The window whose evidence the page shows, and a message when the asked one is unknown.
+
+    Without a (valid) ``?window=``, the newest window with an alert is shown, else the
+    account's latest active window, else none.
+    """
     selected_id = None
     window_error = None
-    known_ids = {w["id"] for w in windows}
-    if window:
+    if asked:
         try:
-            selected_id = int(window)
+            selected_id = int(asked)
         except ValueError:
             selected_id = None
         if selected_id not in known_ids:
@@ -276,85 +284,111 @@ def account_page(request: Request, account: str, window: str | None = None):
             selected_id = None
     if selected_id is None:
         if alerts:
-            selected_id = max(alerts, key=lambda wid: history.get(wid, {}).get("window_end_us", 0))
+            end_us = {entry["window_id"]: entry["window_end_us"] for entry in history_list}
+            selected_id = max(alerts, key=lambda wid: end_us.get(wid, 0))
         elif history_list:
             selected_id = history_list[-1]["window_id"]
+    return selected_id, window_error
 
-    selected = None
-    if selected_id is not None:
-        meta = (
-            next(w for w in windows if w["id"] == selected_id) if selected_id in known_ids else None
-        )
-        alert = alerts.get(selected_id)
-        entry = history.get(selected_id)
-        selected = {
-            "id": selected_id,
-            "start": charts.day(meta["start_us"]) if meta else None,
-            "end": charts.day(meta["end_us"]) if meta else None,
-            "alert": alert,
-            "entry": entry,
-            "mixture": _mixture_rows(entry["mixture"], roles, names) if entry else [],
-        }
-        if alert:
-            evidence = alert["evidence"]
-            before = {
-                r["role_id"]: r for r in _mixture_rows(evidence.get("mixture_before"), roles, names)
-            }
-            after = {
-                r["role_id"]: r for r in _mixture_rows(evidence.get("mixture_after"), roles, names)
-            }
-            order = [role_id for role_id, _ in roles]
-            shown = sorted(
-                set(before) | set(after),
-                key=lambda r: order.index(r) if r in order else len(order) + r,
-            )
-            selected["shift_rows"] = [
-                {
-                    "name": (after.get(r) or before.get(r))["name"],
-                    "style": (after.get(r) or before.get(r))["style"],
-                    "before": before[r]["weight"] if r in before else 0.0,
-                    "after": after[r]["weight"] if r in after else 0.0,
-                }
-                for r in shown
-            ]
 
-    account_href = "/accounts/" + quote(account, safe="")
-    return _page(
-        request,
-        "account.html",
-        key,
+def _selected_panel(
+    selected_id: int | None,
+    windows: list[dict[str, Any]],
+    history: dict[int, dict[str, Any]],
+    alerts: dict[int, dict[str, Any]],
+    roles: Roles,
+) -> dict[str, Any] | None:
+    """The evidence panel of the selected window: its days, alert, mixture and shift rows."""
+    if selected_id is None:
+        return None
+    names = dict(roles)
+    meta = next((w for w in windows if w["id"] == selected_id), None)
+    alert = alerts.get(selected_id)
+    entry = history.get(selected_id)
+    selected = {
+        "id": selected_id,
+        "start": charts.day(meta["start_us"]) if meta else None,
+        "end": charts.day(meta["end_us"]) if meta else None,
+        "alert": alert,
+        "entry": entry,
+        "mixture": _mixture_rows(entry["mixture"], roles, names) if entry else [],
+    }
+    if alert:
+        selected["shift_rows"] = _shift_rows(alert["evidence"], roles, names)
+    return selected
+
+
+def _table_rows(
+    windows: list[dict[str, Any]],
+    history: dict[int, dict[str, Any]],
+    alerts: dict[int, dict[str, Any]],
+    names: dict[int, str],
+) -> list[dict[str, Any]]:
+    """The "All windows" table, newest first."""
+    return [
         {
-            "section": "accounts",
-            "account": account,
-            "account_href": account_href,
-            "history": history_list,
-            "windows": windows,
-            "alerts": alerts,
-            "roles": roles,
-            "names": names,
-            "chart": charts.mixture_chart(windows, history, roles, alerts.keys(), selected_id),
-            "activity": charts.activity_chart(windows, history, selected_id),
-            "selected": selected,
-            "window_error": window_error,
-            "table_rows": [
-                {
-                    "window": w,
-                    "entry": history.get(w["id"]),
-                    "alert": alerts.get(w["id"]),
-                    "dominant": names.get(history[w["id"]]["dominant_role"])
-                    if w["id"] in history
-                    else None,
-                }
-                for w in reversed(windows)
-            ],
-        },
-    )
+            "window": w,
+            "entry": history.get(w["id"]),
+            "alert": alerts.get(w["id"]),
+            "dominant": names.get(history[w["id"]]["dominant_role"])
+            if w["id"] in history
+            else None,
+        }
+        for w in reversed(windows)
+    ]
+
+
+def _account_context(engine: Engine, account: str, window: str | None) -> dict[str, Any]:
+    """Everything the account page shows for a known ``account``."""
+    history_list = queries.account_history(engine, account)
+    history = {entry["window_id"]: entry for entry in history_list}
+    windows = summaries.windows_oldest_first(engine)
+    alerts = summaries.alerts_by_window(engine, account)
+    roles = _role_order(engine, history_list)
+    names = dict(roles)
+    known_ids = {w["id"] for w in windows}
+    selected_id, window_error = _pick_window(window, known_ids, alerts, history_list)
+    return {
+        "section": "accounts",
+        "account": account,
+        "account_href": "/accounts/" + quote(account, safe=""),
+        "history": history_list,
+        "windows": windows,
+        "alerts": alerts,
+        "roles": roles,
+        "names": names,
+        "chart": charts.mixture_chart(windows, history, roles, alerts.keys(), selected_id),
+        "activity": charts.activity_chart(windows, history, selected_id),
+        "selected": _selected_panel(selected_id, windows, history, alerts, roles),
+        "window_error": window_error,
+        "table_rows": _table_rows(windows, history, alerts, names),
+    }
+
+
+@router.get("/accounts", response_class=HTMLResponse)
+def account_jump(key: PageKey, account: str = "") -> RedirectResponse:
+    """The header's account box: go to that account's page."""
+    account = account.strip()
+    if not account:
+        return RedirectResponse("/alerts", status_code=303)
+    return RedirectResponse("/accounts/" + quote(account, safe=""), status_code=303)
+
+
+@router.get("/accounts/{account:path}", response_class=HTMLResponse)
+def account_page(
+    request: Request, key: PageKey, store: StoreDep, account: str, window: str | None = None
+) -> HTMLResponse:
+    if not queries.account_exists(store, account):
+        return _page(
+            request, "missing.html", key, {"title": "Account not found", "account": account}, 404
+        )
+    return _page(request, "account.html", key, _account_context(store, account, window))
 
 
 # --- role catalogue --------------------------------------------------------------------------
 
 
-def _profile_parts(role) -> tuple[dict[str, float], dict[str, float]]:
+def _profile_parts(role: dict[str, Any]) -> tuple[dict[str, float], dict[str, float]]:
     """A role's stored profile → (feature weights, sense-making measure affinities)."""
     profile = role.get("profile") or {}
     if not isinstance(profile, dict):
@@ -366,34 +400,31 @@ def _profile_parts(role) -> tuple[dict[str, float], dict[str, float]]:
     )
 
 
-def _roles_context(request: Request) -> dict[str, Any]:
-    engine = _engine(request)
+def _strongest_measures(measures: dict[str, float]) -> list[tuple[str, float]]:
+    """The four measures with the largest affinity (either sign), strongest first."""
+    given = ((name, value) for name, value in measures.items() if value is not None)
+    return sorted(given, key=lambda item: -abs(float(item[1])))[:4]
+
+
+def _roles_context(engine: Engine) -> dict[str, Any]:
+    """The role catalogue: each role with its profile bars, measures and dominant count."""
     found = queries.list_roles(engine)
-    latest = data.latest_window_with_members(engine)
-    counts = data.dominant_counts(engine, latest["id"]) if latest else {}
+    latest = summaries.latest_window_with_members(engine)
+    counts = summaries.dominant_counts(engine, latest["id"]) if latest else {}
     total = sum(counts.values())
-    rows = []
     profiles = [_profile_parts(role) for role in found["roles"]]
     levels = charts.profile_levels([features for features, _ in profiles])
-    for index, role in enumerate(found["roles"]):
-        measures = profiles[index][1]
-        rows.append(
-            {
-                "role": role,
-                "style": charts.role_style(index),
-                "bars": levels[index],
-                "measures": sorted(
-                    (
-                        (name, value)
-                        for name, value in (measures or {}).items()
-                        if value is not None
-                    ),
-                    key=lambda item: -abs(float(item[1])),
-                )[:4],
-                "dominant": counts.get(role["id"], 0),
-                "dominant_share": counts.get(role["id"], 0) / total if total else None,
-            }
-        )
+    rows = [
+        {
+            "role": role,
+            "style": charts.role_style(index),
+            "bars": levels[index],
+            "measures": _strongest_measures(profiles[index][1]),
+            "dominant": counts.get(role["id"], 0),
+            "dominant_share": counts.get(role["id"], 0) / total if total else None,
+        }
+        for index, role in enumerate(found["roles"])
+    ]
     return {
         "section": "roles",
         "basis": found["basis"],
@@ -404,44 +435,48 @@ def _roles_context(request: Request) -> dict[str, Any]:
 
 
 @router.get("/roles", response_class=HTMLResponse)
-def role_catalogue(request: Request, renamed: int | None = None):
-    key = session.current_key(request)
-    if key is None or not key.allows("read"):
-        return session.to_signin(request)
-    context = _roles_context(request)
+def role_catalogue(
+    request: Request, key: PageKey, store: StoreDep, renamed: int | None = None
+) -> HTMLResponse:
+    context = _roles_context(store)
     context.update(renamed=renamed, error=None, is_admin=key.allows("admin"))
     return _page(request, "roles.html", key, context)
 
 
+def _rename_refusal(key: ApiKey, request: Request, token: str, name: str) -> tuple[str, int] | None:
+    """Why a rename form is refused (message and status), or None when it may go ahead."""
+    if not key.allows("admin"):
+        return "Renaming a role needs a key with the admin scope; sign in with one.", 403
+    if not session.form_token_ok(request, token):
+        return "The form expired; reload the page and try again.", 403
+    if not name or len(name) > 100 or _CONTROL.search(name):
+        return "A role name needs 1 to 100 printable characters.", 422
+    return None
+
+
 @router.post("/roles", response_class=HTMLResponse)
 def rename_role(
-    request: Request, role_id: int = Form(...), name: str = Form(""), token: str = Form("")
-):
-    key = session.current_key(request)
-    if key is None:
-        return session.to_signin(request)
-    context = _roles_context(request)
+    request: Request,
+    key: PageKey,
+    store: StoreDep,
+    role_id: int = Form(...),
+    name: str = Form(""),
+    token: str = Form(""),
+) -> Response:
+    context = _roles_context(store)
     context.update(renamed=None, is_admin=key.allows("admin"))
-    if not key.allows("admin") or not session.form_token_ok(request, token):
-        context["error"] = (
-            "Renaming a role needs a key with the admin scope; sign in with one."
-            if not key.allows("admin")
-            else "The form expired; reload the page and try again."
-        )
-        return _page(request, "roles.html", key, context, 403)
     name = name.strip()
-    if not name or len(name) > 100 or _CONTROL.search(name):
-        context["error"] = "A role name needs 1 to 100 printable characters."
-        return _page(request, "roles.html", key, context, 422)
-    if queries.rename_role(_engine(request), role_id, name) is None:
-        context["error"] = f"There is no role {role_id} in the active basis."
-        return _page(request, "roles.html", key, context, 404)
-    response = RedirectResponse(f"/roles?renamed={role_id}#role-{role_id}", status_code=303)
-    response.headers.update(SECURITY_HEADERS)
-    return response
+    refusal = _rename_refusal(key, request, token, name)
+    if refusal is None and queries.rename_role(store, role_id, name) is None:
+        refusal = f"There is no role {role_id} in the active basis.", 404
+    if refusal is not None:
+        context["error"], status_code = refusal
+        return _page(request, "roles.html", key, context, status_code)
+    return RedirectResponse(f"/roles?renamed={role_id}#role-{role_id}", status_code=303)
 
 
-def include_pages(app) -> None:
-    """Add the pages and the ``/static`` mount to ``app`` (called by ``create_app``)."""
+def include_pages(app: FastAPI) -> None:
+    """Add the pages, their sign-in redirect and the ``/static`` mount to ``app``."""
     app.include_router(router)
-    app.mount("/static", static_files(), name="static")
+    app.add_exception_handler(SignInRequired, redirect_to_signin)
+    app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")

@@ -41,6 +41,11 @@ def _slog(value: float) -> float:
     return math.copysign(math.log1p(abs(value)), value)
 
 
+def _move_text(move: dict[str, Any]) -> str:
+    """One feature move in words: ``name: before → after``."""
+    return f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}"
+
+
 def strongest_evidence(alert: dict[str, Any]) -> str:
     """The one readable piece of evidence that moved most.
 
@@ -79,19 +84,11 @@ def strongest_evidence(alert: dict[str, Any]) -> str:
         if "(" in str(move.get("feature", "")):
             continue
         strength = abs(_slog(float(move["after"])) - _slog(float(move["before"])))
-        candidates.append(
-            (
-                strength,
-                f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}",
-            )
-        )
+        candidates.append((strength, _move_text(move)))
     if candidates:
         # Ties keep the first candidate: new counterparts, then activity, then features.
         best = max(range(len(candidates)), key=lambda i: (candidates[i][0], -i))
         return candidates[best][1]
     if moves:
-        move = moves[0]
-        return (
-            f"{feature_label(move['feature'])}: {number(move['before'])} → {number(move['after'])}"
-        )
+        return _move_text(moves[0])
     return "role mixture changed"

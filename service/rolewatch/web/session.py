@@ -13,6 +13,7 @@ from urllib.parse import quote
 
 from fastapi import Request
 from fastapi.responses import RedirectResponse, Response
+from sqlalchemy.engine import Engine
 
 from rolewatch.store.keys import ApiKey, verify_key
 
@@ -20,12 +21,12 @@ COOKIE = "rolewatch_key"
 MAX_AGE_SECONDS = 12 * 3600
 
 
-def current_key(request: Request) -> ApiKey | None:
+def current_key(engine: Engine, request: Request) -> ApiKey | None:
     """The valid key in the request's cookie, or None (absent, unknown or revoked)."""
     presented = request.cookies.get(COOKIE)
     if not presented or len(presented) > 300:
         return None
-    return verify_key(request.app.state.engine, presented)
+    return verify_key(engine, presented)
 
 
 def form_token(request: Request) -> str:
@@ -37,6 +38,7 @@ def form_token(request: Request) -> str:
 
 
 def form_token_ok(request: Request, token: str | None) -> bool:
+    """True when ``token`` is the form token of the key in the request's cookie."""
     expected = form_token(request)
     return bool(expected) and hmac.compare_digest(expected, token or "")
 
@@ -55,6 +57,7 @@ def to_signin(request: Request) -> RedirectResponse:
 
 
 def set_key_cookie(response: Response, key: str, *, secure: bool) -> None:
+    """Keep ``key`` in the sign-in cookie (http-only, SameSite=Strict, Secure over https)."""
     response.set_cookie(
         COOKIE,
         key,
@@ -67,4 +70,5 @@ def set_key_cookie(response: Response, key: str, *, secure: bool) -> None:
 
 
 def clear_key_cookie(response: Response, *, secure: bool) -> None:
+    """Sign out: tell the browser to drop the sign-in cookie."""
     response.delete_cookie(COOKIE, path="/", httponly=True, samesite="strict", secure=secure)

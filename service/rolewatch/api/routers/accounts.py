@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from typing import Any
 
-from fastapi import APIRouter, Depends, HTTPException, Query, Request, status
+from fastapi import APIRouter, HTTPException, Query, status
 from sqlalchemy.engine import Engine
 from starlette.concurrency import run_in_threadpool
 
-from rolewatch.api.auth import require_scope
+from rolewatch.api.deps import ReadKey, StoreDep
 from rolewatch.api.models import AccountHistory, Problem
 from rolewatch.api.timeparams import time_range
 from rolewatch.clock import to_rfc3339
@@ -67,17 +67,15 @@ def history_document(
     },
 )
 async def account_roles(
-    request: Request,
+    store: StoreDep,
+    _key: ReadKey,
     account: str,
     from_: str | None = Query(None, alias="from", description="RFC 3339; windows ending after it."),
     to: str | None = Query(None, description="RFC 3339; windows starting before it."),
-    _key=Depends(require_scope("read")),
-) -> dict:
+) -> dict[str, Any]:
     """One entry per closed window in which the account was active, oldest first."""
     start, end = time_range(from_, to)
-    document = await run_in_threadpool(
-        history_document, request.app.state.engine, account, start, end
-    )
+    document = await run_in_threadpool(history_document, store, account, start, end)
     if document is None:
         raise HTTPException(
             status.HTTP_404_NOT_FOUND,

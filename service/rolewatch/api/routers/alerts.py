@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Depends, HTTPException, Path, Query, Request, status
+from typing import Any
+
+from fastapi import APIRouter, HTTPException, Path, Query, status
 from starlette.concurrency import run_in_threadpool
 
-from rolewatch.api.auth import require_scope
+from rolewatch.api.deps import ReadKey, StoreDep
 from rolewatch.api.models import Alert, AlertsPage, Problem
 from rolewatch.api.timeparams import time_range
 from rolewatch.store import queries
@@ -20,7 +22,8 @@ router = APIRouter(tags=["alerts"])
     responses={400: {"model": Problem}, 401: {"model": Problem}, 403: {"model": Problem}},
 )
 async def get_alerts(
-    request: Request,
+    store: StoreDep,
+    _key: ReadKey,
     from_: str | None = Query(
         None, alias="from", description="RFC 3339; windows ending at or after it."
     ),
@@ -29,8 +32,7 @@ async def get_alerts(
     min_score: float | None = Query(None, ge=0),
     limit: int = Query(50, ge=1, le=500),
     cursor: str | None = Query(None, description="next_cursor of the previous page."),
-    _key=Depends(require_scope("read")),
-) -> dict:
+) -> dict[str, Any]:
     """Alerts are leads for human review, not verdicts."""
     start, end = time_range(from_, to)
     after = None
@@ -42,9 +44,7 @@ async def get_alerts(
             )
         after = int(cursor)
     filters = queries.AlertFilters(from_us=start, to_us=end, account=account, min_score=min_score)
-    found, next_cursor = await run_in_threadpool(
-        queries.list_alerts, request.app.state.engine, filters, limit, after
-    )
+    found, next_cursor = await run_in_threadpool(queries.list_alerts, store, filters, limit, after)
     return {"alerts": found, "next_cursor": None if next_cursor is None else str(next_cursor)}
 
 
@@ -55,9 +55,9 @@ async def get_alerts(
     responses={401: {"model": Problem}, 403: {"model": Problem}, 404: {"model": Problem}},
 )
 async def get_alert(
-    request: Request, alert_id: int = Path(ge=1, le=2**63 - 1), _key=Depends(require_scope("read"))
-) -> dict:
-    found = await run_in_threadpool(queries.get_alert, request.app.state.engine, alert_id)
+    store: StoreDep, _key: ReadKey, alert_id: int = Path(ge=1, le=2**63 - 1)
+) -> dict[str, Any]:
+    found = await run_in_threadpool(queries.get_alert, store, alert_id)
     if found is None:
         raise HTTPException(status.HTTP_404_NOT_FOUND, detail=f"no alert {alert_id}")
     return found

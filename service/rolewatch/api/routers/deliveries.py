@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from typing import Literal
 
-from fastapi import APIRouter, Depends, HTTPException, Query, Request, status
+from fastapi import APIRouter, HTTPException, Query, status
 from pydantic import BaseModel
 from starlette.concurrency import run_in_threadpool
 
-from rolewatch.api.auth import require_scope
+from rolewatch.api.deps import AdminKey, ReadKey, StoreDep
 from rolewatch.api.models import Problem
 from rolewatch.clock import now_micros
 from rolewatch.delivery import records
@@ -56,17 +56,17 @@ class DeliveryList(BaseModel):
     summary="Webhook deliveries, newest first",
 )
 async def list_deliveries(
-    request: Request,
+    store: StoreDep,
+    _key: ReadKey,
     status_: Literal["pending", "delivered", "failed"] | None = Query(None, alias="status"),
     subscription: str | None = Query(None, max_length=40),
     limit: int = Query(100, ge=1, le=500),
     cursor: str | None = Query(
         None, max_length=64, description="next_cursor of the previous page."
     ),
-    _key=Depends(require_scope("read")),
 ) -> dict:
     def work():
-        with request.app.state.engine.connect() as connection:
+        with store.connect() as connection:
             return records.list_deliveries(
                 connection,
                 status=status_,
@@ -85,11 +85,9 @@ async def list_deliveries(
     responses=NOT_FOUND,
     summary="One delivery with its attempts",
 )
-async def get_delivery(
-    request: Request, delivery_id: str, _key=Depends(require_scope("read"))
-) -> dict:
+async def get_delivery(store: StoreDep, _key: ReadKey, delivery_id: str) -> dict:
     def work():
-        with request.app.state.engine.connect() as connection:
+        with store.connect() as connection:
             return records.get_delivery(connection, delivery_id)
 
     try:
@@ -106,11 +104,9 @@ async def get_delivery(
     responses={**NOT_FOUND, 409: {"model": Problem}},
     summary="Send a delivery again with the same webhook-id (admin)",
 )
-async def redeliver(
-    request: Request, delivery_id: str, _key=Depends(require_scope("admin"))
-) -> dict:
+async def redeliver(store: StoreDep, _key: AdminKey, delivery_id: str) -> dict:
     def work():
-        with write_transaction(request.app.state.engine) as connection:
+        with write_transaction(store) as connection:
             return records.redeliver(connection, delivery_id, now_us=now_micros())
 
     try:

@@ -15,10 +15,10 @@ import logging
 from typing import Any
 
 import orjson
-from fastapi import APIRouter, Depends, HTTPException, Request, Response, status
+from fastapi import APIRouter, HTTPException, Request, Response, status
 from starlette.concurrency import run_in_threadpool
 
-from rolewatch.api.auth import require_scope
+from rolewatch.api.deps import IngestKey, SettingsDep, StoreDep
 from rolewatch.api.models import EventBatch, IngestResponse, Problem
 from rolewatch.clock import now_micros
 from rolewatch.store.events import InvalidEvent, ingest
@@ -162,9 +162,10 @@ def parse_ndjson_batch(body: bytes, max_events: int) -> list:
     },
     openapi_extra=_OPENAPI,
 )
-async def post_events(request: Request, _key=Depends(require_scope("ingest"))) -> Response:
+async def post_events(
+    request: Request, store: StoreDep, settings: SettingsDep, _key: IngestKey
+) -> Response:
     """Store a batch: JSON ``{"events": [...]}`` or NDJSON. Idempotent on event id."""
-    settings = request.app.state.settings
     content_type = request.headers.get("content-type", "")
     media, _, params = content_type.partition(";")
     media = media.strip().lower()
@@ -185,7 +186,7 @@ async def post_events(request: Request, _key=Depends(require_scope("ingest"))) -
     else:
         raw_events = parse_ndjson_batch(body, settings.max_batch_events)
     now_us = now_micros()
-    result = await run_in_threadpool(ingest, request.app.state.engine, settings, raw_events, now_us)
+    result = await run_in_threadpool(ingest, store, settings, raw_events, now_us)
     log.debug(
         "batch ingested",
         extra={

@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Body, Depends, HTTPException, Path, Request, status
+from typing import Any
+
+from fastapi import APIRouter, Body, HTTPException, Path, status
 from starlette.concurrency import run_in_threadpool
 
-from rolewatch.api.auth import require_scope
+from rolewatch.api.deps import AdminKey, ReadKey, StoreDep
 from rolewatch.api.models import Problem, RenameRole, Role, RolesResponse
 from rolewatch.clock import to_rfc3339
 from rolewatch.store import queries
@@ -13,7 +15,7 @@ from rolewatch.store import queries
 router = APIRouter(tags=["roles"])
 
 
-def _opt_time(value):
+def _opt_time(value: int | None) -> str | None:
     return None if value is None else to_rfc3339(value)
 
 
@@ -23,9 +25,9 @@ def _opt_time(value):
     summary="The frozen role basis",
     responses={401: {"model": Problem}, 403: {"model": Problem}},
 )
-async def get_roles(request: Request, _key=Depends(require_scope("read"))) -> dict:
+async def get_roles(store: StoreDep, _key: ReadKey) -> dict[str, Any]:
     """Each role's id, name, sense-making description and feature profile."""
-    found = await run_in_threadpool(queries.list_roles, request.app.state.engine)
+    found = await run_in_threadpool(queries.list_roles, store)
     basis = found["basis"]
     if basis is None:
         return {
@@ -51,15 +53,13 @@ async def get_roles(request: Request, _key=Depends(require_scope("read"))) -> di
     responses={401: {"model": Problem}, 403: {"model": Problem}, 404: {"model": Problem}},
 )
 async def patch_role(
-    request: Request,
+    store: StoreDep,
+    _key: AdminKey,
     role_id: int = Path(ge=0, le=2**31 - 1),
     body: RenameRole = Body(...),
-    _key=Depends(require_scope("admin")),
-) -> dict:
+) -> dict[str, Any]:
     """Give a role of the active basis a new name (shown in alerts, history and pages)."""
-    role = await run_in_threadpool(
-        queries.rename_role, request.app.state.engine, role_id, body.name.strip()
-    )
+    role = await run_in_threadpool(queries.rename_role, store, role_id, body.name.strip())
     if role is None:
         raise HTTPException(
             status.HTTP_404_NOT_FOUND, detail=f"no role {role_id} in the active basis"

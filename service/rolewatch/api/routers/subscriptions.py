@@ -9,11 +9,11 @@ from __future__ import annotations
 import math
 from typing import Literal
 
-from fastapi import APIRouter, Depends, HTTPException, Request, Response, status
+from fastapi import APIRouter, HTTPException, Response, status
 from pydantic import BaseModel, Field, field_validator
 from starlette.concurrency import run_in_threadpool
 
-from rolewatch.api.auth import require_scope
+from rolewatch.api.deps import AdminKey, SettingsDep, StoreDep
 from rolewatch.api.models import Problem
 from rolewatch.clock import now_micros
 from rolewatch.delivery import subscriptions as store
@@ -22,7 +22,6 @@ from rolewatch.delivery.urlguard import UnsafeURL
 from rolewatch.store.db import write_transaction
 
 router = APIRouter(tags=["subscriptions"])
-ADMIN = Depends(require_scope("admin"))
 ERRORS = {401: {"model": Problem}, 403: {"model": Problem}}
 NOT_FOUND = {**ERRORS, 404: {"model": Problem}}
 
@@ -83,14 +82,6 @@ def _now_us() -> int:
     return now_micros()
 
 
-def _engine(request: Request):
-    return request.app.state.engine
-
-
-def _settings(request: Request):
-    return request.app.state.settings
-
-
 def _not_found(error: LookupError) -> HTTPException:
     return HTTPException(status.HTTP_404_NOT_FOUND, detail=str(error).strip("'\""))
 
@@ -102,12 +93,14 @@ def _not_found(error: LookupError) -> HTTPException:
     summary="Subscribe a URL to alerts; the answer shows the signing secret once",
     responses={**ERRORS, 422: {"model": Problem}},
 )
-async def create(request: Request, body: SubscriptionCreate, _key=ADMIN) -> dict:
+async def create(
+    engine: StoreDep, settings: SettingsDep, _key: AdminKey, body: SubscriptionCreate
+) -> dict:
     def work():
-        with write_transaction(_engine(request)) as connection:
+        with write_transaction(engine) as connection:
             return store.create_subscription(
                 connection,
-                _settings(request),
+                settings,
                 url=body.url,
                 fmt=body.format,
                 min_score=body.min_score,
@@ -128,9 +121,9 @@ async def create(request: Request, body: SubscriptionCreate, _key=ADMIN) -> dict
     responses=ERRORS,
     summary="Every subscription (without secrets)",
 )
-async def list_all(request: Request, _key=ADMIN) -> dict:
+async def list_all(engine: StoreDep, _key: AdminKey) -> dict:
     def work():
-        with _engine(request).connect() as connection:
+        with engine.connect() as connection:
             return store.list_subscriptions(connection)
 
     return {"subscriptions": await run_in_threadpool(work)}
@@ -142,9 +135,9 @@ async def list_all(request: Request, _key=ADMIN) -> dict:
     responses=NOT_FOUND,
     summary="One subscription (without its secret)",
 )
-async def get_one(request: Request, sub_id: str, _key=ADMIN) -> dict:
+async def get_one(engine: StoreDep, _key: AdminKey, sub_id: str) -> dict:
     def work():
-        with _engine(request).connect() as connection:
+        with engine.connect() as connection:
             return store.get_subscription(connection, sub_id)
 
     try:
@@ -159,9 +152,9 @@ async def get_one(request: Request, sub_id: str, _key=ADMIN) -> dict:
     responses=NOT_FOUND,
     summary="Delete a subscription; its pending deliveries are dropped",
 )
-async def delete(request: Request, sub_id: str, _key=ADMIN) -> Response:
+async def delete(engine: StoreDep, _key: AdminKey, sub_id: str) -> Response:
     def work():
-        with write_transaction(_engine(request)) as connection:
+        with write_transaction(engine) as connection:
             store.delete_subscription(connection, sub_id, now_us=_now_us())
 
     try:
@@ -177,10 +170,10 @@ async def delete(request: Request, sub_id: str, _key=ADMIN) -> Response:
     responses=NOT_FOUND,
     summary="New signing secret (shown once); the old one keeps signing for the overlap",
 )
-async def rotate(request: Request, sub_id: str, _key=ADMIN) -> dict:
+async def rotate(engine: StoreDep, settings: SettingsDep, _key: AdminKey, sub_id: str) -> dict:
     def work():
-        with write_transaction(_engine(request)) as connection:
-            return store.rotate_secret(connection, sub_id, _settings(request), now_us=_now_us())
+        with write_transaction(engine) as connection:
+            return store.rotate_secret(connection, sub_id, settings, now_us=_now_us())
 
     try:
         made = await run_in_threadpool(work)
@@ -195,9 +188,9 @@ async def rotate(request: Request, sub_id: str, _key=ADMIN) -> dict:
     responses=NOT_FOUND,
     summary="Unpause a subscription; held deliveries go out again",
 )
-async def resume(request: Request, sub_id: str, _key=ADMIN) -> dict:
+async def resume(engine: StoreDep, _key: AdminKey, sub_id: str) -> dict:
     def work():
-        with write_transaction(_engine(request)) as connection:
+        with write_transaction(engine) as connection:
             return store.resume_subscription(connection, sub_id)
 
     try:
@@ -213,10 +206,10 @@ async def resume(request: Request, sub_id: str, _key=ADMIN) -> dict:
     responses=NOT_FOUND,
     summary="Queue a clearly marked test alert (event type alert.test)",
 )
-async def send_test(request: Request, sub_id: str, _key=ADMIN) -> dict:
+async def send_test(engine: StoreDep, settings: SettingsDep, _key: AdminKey, sub_id: str) -> dict:
     def work():
-        with write_transaction(_engine(request)) as connection:
-            return enqueue_test(connection, _settings(request), sub_id, now_us=_now_us())
+        with write_transaction(engine) as connection:
+            return enqueue_test(connection, settings, sub_id, now_us=_now_us())
 
     try:
         delivery_id = await run_in_threadpool(work)

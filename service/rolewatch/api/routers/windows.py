@@ -2,22 +2,27 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Depends, Query, Request
+from typing import Any
+
+from fastapi import APIRouter, Query
+from sqlalchemy.engine import Engine
 from starlette.concurrency import run_in_threadpool
 
-from rolewatch.api.auth import require_scope
+from rolewatch.api.deps import ReadKey, SettingsDep, StoreDep
 from rolewatch.api.models import Problem, WindowsResponse
 from rolewatch.clock import now_micros, to_rfc3339
+from rolewatch.config import Settings
 from rolewatch.store import queries
 
 router = APIRouter(tags=["windows"])
 
 
-def _opt(value):
+def _opt(value: int | None) -> str | None:
     return None if value is None else to_rfc3339(value)
 
 
-def windows_document(engine, settings, now_us: int, limit: int) -> dict:
+def windows_document(engine: Engine, settings: Settings, now_us: int, limit: int) -> dict[str, Any]:
+    """The API form of the closed windows (newest first) and the open ones at ``now_us``."""
     closed = queries.list_windows(engine, limit=limit)
     pending = queries.open_windows(engine, settings, now_us=now_us)
     return {
@@ -64,16 +69,11 @@ def windows_document(engine, settings, now_us: int, limit: int) -> dict:
     responses={401: {"model": Problem}, 403: {"model": Problem}},
 )
 async def get_windows(
-    request: Request,
+    store: StoreDep,
+    settings: SettingsDep,
+    _key: ReadKey,
     limit: int = Query(200, ge=1, le=5000, description="Most recent closed windows to list."),
-    _key=Depends(require_scope("read")),
-) -> dict:
+) -> dict[str, Any]:
     """Closed windows newest first (counts, late counts, reconstruction error) and the open
     windows computed from the settings and the watermark, with their events so far."""
-    return await run_in_threadpool(
-        windows_document,
-        request.app.state.engine,
-        request.app.state.settings,
-        now_micros(),
-        limit,
-    )
+    return await run_in_threadpool(windows_document, store, settings, now_micros(), limit)

@@ -1,17 +1,27 @@
-"""Reads the web pages need beyond :mod:`rolewatch.store.queries` (read-only, SQLAlchemy Core)."""
+"""Read-only summaries the web pages show beyond :mod:`rolewatch.store.queries`, and the
+store check behind ``GET /healthz``.
+
+Every statement here is a SQLAlchemy Core read; nothing in this module writes.
+"""
 
 from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import func, literal_column, select
 from sqlalchemy.engine import Engine
 
 from rolewatch.store import queries
 from rolewatch.store.schema import memberships, windows
 
 
-def all_windows(engine: Engine, *, limit: int = 520) -> list[dict[str, Any]]:
+def ping(engine: Engine) -> None:
+    """Run ``SELECT 1`` on a fresh connection; raises when the database cannot answer."""
+    with engine.connect() as connection:
+        connection.execute(select(literal_column("1")))
+
+
+def windows_oldest_first(engine: Engine, *, limit: int = 520) -> list[dict[str, Any]]:
     """Closed windows, oldest first (at most ``limit``, the newest ones)."""
     return list(reversed(queries.list_windows(engine, limit=limit)))
 
