@@ -58,11 +58,13 @@ def later(
     return np.minimum(seconds + rng.integers(low, high, len(seconds)), week_end - 1)
 
 
-def amounts(rng: np.random.Generator, median, sigma: float, n: int) -> np.ndarray:
-    """Lognormal amounts rounded to cents (at least 0.5), or 1.0 each when ``median`` is None."""
+def amounts(rng: np.random.Generator, median, sigma: float, n: int, digits: int = 2):
+    """Lognormal amounts rounded to ``digits`` decimals (cents by default) and at least one
+    unit of the last digit, or 1.0 each when ``median`` is None (a network without amounts)."""
     if median is None:
         return np.ones(n)
-    return np.maximum(np.round(rng.lognormal(np.log(median), sigma, n), 2), 0.5)
+    smallest = 10.0**-digits
+    return np.maximum(np.round(rng.lognormal(np.log(median), sigma, n), digits), smallest)
 
 
 @dataclass

@@ -14,7 +14,8 @@ triangles the way a real thread does. Authors answer some replies.
 * ``moderator`` (one per topic, two in big ones): replies to many threads a week and is
   answered about half the time.
 
-Follows are one-off, mostly towards broadcasters. The forum has no amounts: every event
+A tenth of replies quote the post they answer. Follows are one-off, mostly towards
+broadcasters. The forum has no amounts: every event
 weighs 1. Evenings and weekends are busier. All names and data are invented.
 """
 
@@ -54,6 +55,7 @@ TOPIC_NAMES = (
 )
 MAX_FRIENDS = 6
 NESTED_SHARE = 0.45  # replies that go to another replier of the thread, not its author
+QUOTE_SHARE = 0.1  # replies that quote the post they answer
 
 RHYTHM = Rhythm.of(
     [3, 2, 1, 1, 1, 1, 2, 3, 4, 5, 5, 6, 6, 6, 6, 6, 7, 8, 9, 10, 10, 9, 7, 5],
@@ -256,7 +258,7 @@ class Forum:
             pool = np.flatnonzero(present & ((p.topic == t) | (p.topic2 == t)))
             weight = p.author_weight[pool] * mult[pool]
             authors.append(rng.choice(pool, size=k, p=weight / weight.sum()))
-            heat = rng.pareto(1.2, k) + 1.0
+            heat = rng.pareto(1.8, k) + 1.0
             thread[mine] = offset + rng.choice(k, size=len(mine), p=heat / heat.sum())
             offset += k
         return thread, (np.concatenate(authors) if authors else np.zeros(0, np.int64)), offset
@@ -277,7 +279,8 @@ class Forum:
         ok = target != actor
         actor, target = actor[ok], target[ok]
         seconds = self.rhythm.times(rng, week_start, len(actor))
-        log.add(actor, target, seconds, REPLY, 1.0)
+        kind = np.where(rng.random(len(actor)) < QUOTE_SHARE, QUOTE, REPLY)
+        log.add(actor, target, seconds, kind, 1.0)
         chance = np.where(p.archetype[actor] == MODERATOR, 0.4, p.p_answer[target])
         back = rng.random(len(actor)) < chance
         answer_at = later(rng, seconds[back], week_start + WEEK_SECONDS)
@@ -341,7 +344,9 @@ class Forum:
                 (p.topic == p.topic[account]) & (p.archetype == REGULAR) & (p.joined == 0)
             )
             pool = pool[~avoid[pool] & (pool != account) & ~np.isin(pool, mine)]
-            mine = np.concatenate([mine, rng.choice(pool, 3 - len(mine), replace=False)])
+            mine = np.concatenate(
+                [mine, rng.choice(pool, min(3 - len(mine), len(pool)), replace=False)]
+            )
         return mine[:5].astype(np.int64), 0.6, float(np.clip(p.rate[account], 3.0, 8.0))
 
 

@@ -61,8 +61,9 @@ STYLE = Style(
     funnel_in=Act(GIFT, 500.0, 0.6),
     funnel_out=Act(SALE, 3000.0, 0.5),
     bridge=Act(SALE, 150.0, 0.9),
-    presence=Act(SWAP, 80.0, 1.0),
-    steady=Act(SWAP, 80.0, 0.6),
+    presence=Act(GIFT, 20.0, 0.8),
+    steady=Act(SALE, 120.0, 0.6),
+    digits=0,
     fresh_names=("recipient", "farm_bot", "buyer"),
 )
 
@@ -158,7 +159,7 @@ def draw_players(rng, members: int, weeks: int, newcomer_rate: float) -> Players
     )
     craft_rate = np.select(
         [archetype == CRAFTER, archetype == TRADER],
-        [rng.lognormal(np.log(4.0), 0.5, n), rng.lognormal(np.log(10.0), 0.4, n)],
+        [rng.lognormal(np.log(5.0), 0.5, n), rng.lognormal(np.log(10.0), 0.4, n)],
         0.0,
     )
     suppliers = np.full((n, 3), -1, np.int64)
@@ -319,7 +320,7 @@ class Guilds:
         ok = (buyer >= 0) & (buyer != seller)
         seconds = self.rhythm.times(rng, week_start, int(ok.sum()))
         log.add(seller[ok], buyer[ok], seconds, SALE, gold(rng, 250.0, 0.6, int(ok.sum())))
-        buyer = np.repeat(crafters, rng.poisson(3.0 * mult[crafters]))
+        buyer = np.repeat(crafters, rng.poisson(1.5 * mult[crafters]))
         supplier = p.suppliers[buyer, rng.integers(0, 3, len(buyer))]
         ok = supplier >= 0
         seconds = self.rhythm.times(rng, week_start, int(ok.sum()))
@@ -360,12 +361,15 @@ class Guilds:
     def steady_contacts(self, rng, account: int, avoid: np.ndarray):
         """Its party mates (three to five), with whom it swaps: half its events sent."""
         p = self.p
-        mates = np.flatnonzero((p.party == p.party[account]) & (np.arange(len(p.party)) != account))
+        party = (p.party == p.party[account]) & (p.joined == 0)
+        mates = np.flatnonzero(party & (np.arange(len(p.party)) != account))
         mine = mates[~avoid[mates]]
         if len(mine) < 3:
             pool = np.flatnonzero((p.guild == p.guild[account]) & (p.joined == 0))
             pool = pool[~avoid[pool] & (pool != account) & ~np.isin(pool, mine)]
-            mine = np.concatenate([mine, rng.choice(pool, 3 - len(mine), replace=False)])
+            mine = np.concatenate(
+                [mine, rng.choice(pool, min(3 - len(mine), len(pool)), replace=False)]
+            )
         return mine[:5].astype(np.int64), 0.5, float(np.clip(p.rate[account], 3.0, 8.0))
 
 

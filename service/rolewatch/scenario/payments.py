@@ -10,8 +10,8 @@ families and co-workers.
 * ``household`` (about 84 %): card payments to two to eight favourite merchants (lognormal
   rates, a quarter of households bursty and often silent), monthly bills, a salary every
   two or four weeks from its employer, transfers inside its family (a third of households
-  live in families of two to five, which pay each other back), now and then a cash
-  withdrawal through a cash agent;
+  live in families of two to five, which pay each other back), transfers to a few friends,
+  now and then a cash withdrawal through a cash agent;
 * ``merchant`` (7 %): paid by many households (Pareto popularity), pays one to three
   wholesalers a few times a week and refunds the odd customer;
 * ``wholesaler`` (1.5 %): paid by merchants, pays invoices to employers;
@@ -55,6 +55,7 @@ REGIONS = ("cape", "harbour", "mill", "orchard", "upland")
 REGION_SHARES = (0.15, 0.30, 0.25, 0.18, 0.12)
 MAX_FAVOURITES = 8
 MAX_BILLS = 3
+MAX_FRIENDS = 3
 
 RHYTHM = Rhythm.of(
     [1, 1, 1, 1, 1, 2, 3, 5, 8, 10, 11, 12, 13, 12, 11, 11, 12, 12, 10, 8, 6, 4, 2, 1],
@@ -95,6 +96,7 @@ class Accounts:
     bills: np.ndarray  # (n, MAX_BILLS) billers, -1 unused
     bill_phase: np.ndarray
     family: np.ndarray  # family id or -1
+    friends: np.ndarray  # (n, MAX_FRIENDS) households it sends money to now and then
     suppliers: np.ndarray  # (n, 3) wholesalers of merchants, employers and agents
 
 
@@ -191,6 +193,9 @@ def draw_accounts(rng, members: int, weeks: int, newcomer_rate: float) -> Accoun
         bills=billers,
         bill_phase=rng.integers(0, 4, (n, MAX_BILLS)),
         family=_families(rng, house & initial, region),
+        friends=_pick_in_region(
+            rng, region, np.repeat(region, MAX_FRIENDS), house & initial, np.ones(n)
+        ).reshape(n, MAX_FRIENDS),
         suppliers=suppliers,
     )
 
@@ -241,6 +246,7 @@ class Payments:
         self._salaries(rng, week, present, week_start, log)
         self._bills(rng, week, present, week_start, log)
         self._family(rng, present, mult, week_start, log)
+        self._friends(rng, present, mult, week_start, log)
         self._cash(rng, present, mult, week_start, log)
         self._business(rng, present, mult, week_start, log)
 
@@ -282,7 +288,7 @@ class Payments:
         """Family members pay each other (rent shares, pocket money) and pay back."""
         a = self.acc
         member = np.flatnonzero((a.family >= 0) & present)
-        count = rng.poisson(0.35 * mult[member])
+        count = rng.poisson(0.6 * mult[member])
         payer = np.repeat(member, count)
         fam = a.family[payer]
         order = np.argsort(a.family[member], kind="stable")
@@ -293,6 +299,16 @@ class Payments:
         ok = payee != payer
         seconds = self.rhythm.times(rng, week_start, int(ok.sum()))
         log.add(payer[ok], payee[ok], seconds, TRANSFER, amounts(rng, 60.0, 0.8, int(ok.sum())))
+
+    def _friends(self, rng, present, mult, week_start, log: EventLog) -> None:
+        """Households send money to one of three friends in their region now and then."""
+        a = self.acc
+        count = rng.poisson(0.25 * mult) * (present & (a.archetype == HOUSEHOLD))
+        payer = np.repeat(np.arange(len(count)), count)
+        friend = a.friends[payer, rng.integers(0, MAX_FRIENDS, len(payer))]
+        ok = (friend >= 0) & (friend != payer)
+        seconds = self.rhythm.times(rng, week_start, int(ok.sum()))
+        log.add(payer[ok], friend[ok], seconds, TRANSFER, amounts(rng, 40.0, 0.9, int(ok.sum())))
 
     def _cash(self, rng, present, mult, week_start, log: EventLog) -> None:
         a = self.acc
@@ -350,7 +366,9 @@ class Payments:
             near = np.abs(a.region - a.region[account]) <= 1  # its own or a neighbouring region
             pool = np.flatnonzero((a.archetype == MERCHANT) & near & (a.joined == 0))
             pool = pool[~avoid[pool] & ~np.isin(pool, mine)]
-            mine = np.concatenate([mine, rng.choice(pool, 3 - len(mine), replace=False)])
+            mine = np.concatenate(
+                [mine, rng.choice(pool, min(3 - len(mine), len(pool)), replace=False)]
+            )
         return mine[:5].astype(np.int64), 1.0, float(np.clip(a.rate[account], 3.0, 8.0))
 
 
@@ -389,4 +407,6 @@ def generate(
         season_week=season_week,
         instances=default_instances(members) if instances is None else instances,
         start=start,
+        # paid on their own calendar, so not raised in the season window
+        extra_meta={"fixed_schedule_kinds": ["salary", "bill"]},
     )

@@ -6,13 +6,15 @@ a planted event uses (:class:`Style`). The :class:`Director` runs the weeks and 
 
 * ``takeover`` - fan-out after a takeover: the account starts sending to many members it
   never dealt with, few of whom answer. Strength varies per instance from modest (about 12
-  new counterparts, twice its usual events) to heavy (about 90 new, nine times);
+  new counterparts, twice its usual events) to heavy (about 90 new, nine times); later
+  windows add 30-60 % as many new ones and return to some earlier ones;
 * ``contact_point`` - the account starts receiving from 20-70 members that never dealt
-  with it, and answers few;
+  with it (later windows as for a takeover), and answers few;
 * ``funnel`` - a ring of fresh and/or existing accounts pays one collector, who pays out to
   one to three outlets;
 * ``reversal`` - the account's main direction flips (receives -> sends or the reverse)
-  while most of its volume stays;
+  while most of its volume stays (at least 60 % of its usual events, topped up in the new
+  direction when a quiet week would hide the flip);
 * ``bridge`` - the account starts dealing with members of a zone its own zone never dealt
   with, relaying between the two;
 
@@ -58,7 +60,8 @@ CHANGES = STRUCTURAL + CONTROLS
 SEASON_RANGE = (1.3, 1.8)  # everybody's activity factor in the season window
 ANSWER_SHARE = 0.08  # share of new counterparts that answer a fan-out or contact point
 FLIP_SHARE = 0.85  # share of a reversed account's main-direction events that flip
-FADE_KEEP = 0.15  # share of its events a fading quiet account keeps
+REVERSAL_KEEP = 0.6  # a reversed account keeps at least this share of its usual events
+FADE_KEEP = 0.1  # share of its events a fading quiet account keeps
 AWAY_SHARE = 0.12  # share of away-prone members who take one ordinary break of 1-3 weeks
 TAKEOVER_NEW = (12, 90)  # new counterparts in the first window, modest .. heavy
 TAKEOVER_FACTOR = (2.0, 9.0)  # events against the account's usual, modest .. heavy
@@ -90,6 +93,7 @@ class Style:
     funnel_feed: Act | None = None  # if set, each ring member is first paid by a victim
     fresh_targets: float = 0.0  # share of takeover targets that are brand-new accounts
     fresh_outlets: bool = False  # funnel outlets are brand-new accounts (else members)
+    digits: int = 2  # amounts are rounded to this many decimals (0: whole units)
     fresh_names: tuple[str, str, str] = ("recipient", "mule", "cash_out")  # archetype labels
     # of brand-new takeover targets, funnel sources and funnel outlets
 
@@ -318,7 +322,7 @@ class Director:
                 plant.detail = {"fresh_source_share": share}
             elif change == "reversal":
                 outward = bool(prof.out_share[account] > 0.5)
-                plant.state = {"outward": outward}
+                plant.state = {"outward": outward, "prior": prof.activity[account]}
                 plant.detail = {
                     "before": "sends" if outward else "receives",
                     "sent_share_before": round(float(prof.out_share[account]), 2),
@@ -366,7 +370,7 @@ class Director:
 
     def _start_watching(self) -> None:
         """Known counterparts of every planted account, from the weeks drawn so far."""
-        watched = [p.account for p in self.plants if p.change in STRUCTURAL + ("quiet",)]
+        watched = [p.account for p in self.plants if p.change not in ("volume_control",)]
         self.contacts = {a: set() for a in watched}
         self.watched = np.array(sorted(watched), dtype=np.int64)
         for batch in self.log.weeks:
@@ -395,12 +399,12 @@ class Director:
         batch = self._shape(log.drain(), week)
         self._steady(week, week_start, mult)
         for plant in self.plants:
-            if plant.change in STRUCTURAL and plant.change != "reversal" and week >= plant.week:
+            if plant.change in STRUCTURAL and week >= plant.week:
                 getattr(self, "_" + plant.change)(plant, week, week_start)
         batch = Batch.join([batch, log.drain()])
+        batch = batch.where(batch.actor != batch.target)  # a draw may pick the actor itself
         self._keep_present(batch, week, week_start)
         batch = Batch.join([batch, log.drain()])
-        batch = batch.where(batch.actor != batch.target)
         log.commit(batch)
         self._observe(batch)
 
@@ -441,6 +445,27 @@ class Director:
             batch.actor[flip], batch.target[flip] = other, a
         else:
             batch.actor[flip], batch.target[flip] = a, other
+        plant.state["kept"] = int(((batch.actor == a) | (batch.target == a)).sum())
+
+    def _reversal(self, plant: Plant, week: int, week_start: int) -> None:
+        """A quiet week would hide the flip: top the account up to ``REVERSAL_KEEP`` of its
+        usual events, in its new direction, half with known counterparts, half new."""
+        rng, a, st = self.rng, plant.account, plant.state
+        missing = round(REVERSAL_KEEP * st["prior"]) - st["kept"]
+        if missing <= 0:
+            return
+        known = np.array(sorted(self.contacts[a]), dtype=np.int64)
+        known = known[(known < self.m.size) & ~self.protected[np.minimum(known, self.m.size - 1)]]
+        pool = self._pool(int(self.m.zone[a]), week, {a})
+        other = rng.choice(pool, size=missing)
+        if len(known):
+            old = rng.random(missing) < 0.5
+            other[old] = rng.choice(known, size=int(old.sum()))
+        seconds = self.world.rhythm.times(rng, week_start, missing)
+        if st["outward"]:  # it used to send: now it receives
+            self._add(other, a, seconds, self.style.presence)
+        else:
+            self._add(a, other, seconds, self.style.presence)
 
     def _pool(self, zone: int, week: int, exclude=()) -> np.ndarray:
         """Present members of ``zone`` that no plan uses, outside ``exclude``.
@@ -464,7 +489,7 @@ class Director:
 
     def _add(self, actor, target, seconds, act: Act) -> np.ndarray:
         n = len(seconds)
-        weight = amounts(self.rng, act.median, act.sigma, n)
+        weight = amounts(self.rng, act.median, act.sigma, n, self.style.digits)
         self.log.add(
             np.broadcast_to(actor, (n,)), np.broadcast_to(target, (n,)), seconds, act.kind, weight
         )
@@ -485,9 +510,9 @@ class Director:
             outward = rng.random(count) < st["out_share"]
             weight = np.ones(count)
             if st["medians"] is not None:
-                weight = np.maximum(
-                    np.round(st["medians"][turn] * rng.lognormal(0, 0.15, count), 2), 0.5
-                )
+                digits = self.style.digits
+                drawn = st["medians"][turn] * rng.lognormal(0.0, 0.15, count)
+                weight = np.maximum(np.round(drawn, digits), 10.0**-digits)
             self.log.add(
                 np.where(outward, a, other),
                 np.where(outward, other, a),
@@ -497,28 +522,45 @@ class Director:
             )
 
     # planted changes ----------------------------------------------------------------------
-    def _fresh_count(self, plant: Plant, week: int, key: str = "new") -> int:
-        """The first window's count, then 70-110 % of it each later window."""
+    def _fresh_count(self, plant: Plant, week: int) -> int:
+        """New counterparts this window: the planted number in the first window, then
+        30-60 % of it (the campaign goes on, but also returns to earlier counterparts)."""
         if week == plant.week:
-            return plant.state[key]
-        return max(5, round(plant.state[key] * self.rng.uniform(0.7, 1.1)))
+            return plant.state["new"]
+        return max(3, round(plant.state["new"] * self.rng.uniform(0.3, 0.6)))
+
+    def _again(self, plant: Plant) -> np.ndarray:
+        """About 40 % of last window's new counterparts, met again."""
+        last = plant.state.get("last", np.zeros(0, np.int64))
+        return last[self.rng.random(len(last)) < 0.4]
 
     def _takeover(self, plant: Plant, week: int, week_start: int) -> None:
         """Sends to many members it never dealt with (and some brand-new accounts)."""
         rng, a, st = self.rng, plant.account, plant.state
         new = self._fresh_count(plant, week)
-        pool = self._pool(int(self.m.zone[a]), week, self.contacts[a] | {a})
         fresh = min(int(rng.binomial(new, self.style.fresh_targets)), new)
-        members = rng.choice(pool, size=min(new - fresh, len(pool)), replace=False)
-        targets = np.concatenate([members, self.log.new_accounts(fresh, self.style.fresh_names[0])])
-        if len(targets) == 0:
-            return
+        members = self._strangers(a, week, new - fresh)
+        fresh = new - len(members)  # a small zone runs out: the rest are brand-new accounts
+        newcomers = np.concatenate(
+            [members, self.log.new_accounts(fresh, self.style.fresh_names[0])]
+        )
+        targets = np.concatenate([newcomers, self._again(plant)])
+        st["last"] = newcomers
         extra = max(len(targets), round((st["factor"] - 1.0) * st["prior"]))
         per = 1 + rng.multinomial(extra - len(targets), np.full(len(targets), 1 / len(targets)))
         seconds = self.world.rhythm.times(rng, week_start, int(per.sum()))
         self._add(a, np.repeat(targets, per), seconds, self.style.takeover)
-        first = np.cumsum(per) - per
-        self._answer(targets, a, seconds[first], week_start)
+        first = (np.cumsum(per) - per)[: len(newcomers)]
+        self._answer(newcomers, a, seconds[first], week_start)
+
+    def _strangers(self, account: int, week: int, count: int) -> np.ndarray:
+        """Up to ``count`` present members of the account's zone it never dealt with and
+        that no plan uses; fewer when the zone has fewer."""
+        m = self.m
+        pool = np.flatnonzero((m.zone == m.zone[account]) & (m.joined <= week) & ~self.taken)
+        known = np.fromiter(self.contacts[account], np.int64, len(self.contacts[account]))
+        pool = pool[~np.isin(pool, known)]
+        return self.rng.choice(pool, size=min(count, len(pool)), replace=False)
 
     def _answer(self, others: np.ndarray, account: int, seconds, week_start, reverse=False):
         """A few of ``others`` answer (or, with ``reverse``, the account answers a few)."""
@@ -532,12 +574,17 @@ class Director:
         """Many members that never dealt with it start sending to it; it answers few."""
         rng, a = self.rng, plant.account
         new = self._fresh_count(plant, week)
-        pool = self._pool(int(self.m.zone[a]), week, self.contacts[a] | {a})
-        sources = rng.choice(pool, size=min(new, len(pool)), replace=False)
+        strangers = self._strangers(a, week, new)
+        if len(strangers) < new:  # a small zone runs out: the rest are brand-new accounts
+            extra = self.log.new_accounts(new - len(strangers), self.style.fresh_names[0])
+            strangers = np.concatenate([strangers, extra])
+        sources = np.concatenate([strangers, self._again(plant)])
+        plant.state["last"] = strangers
         per = 1 + rng.poisson(0.3, len(sources))
         seconds = self.world.rhythm.times(rng, week_start, int(per.sum()))
         self._add(np.repeat(sources, per), a, seconds, self.style.contact)
-        self._answer(sources, a, seconds[np.cumsum(per) - per], week_start, reverse=True)
+        first = (np.cumsum(per) - per)[: len(strangers)]
+        self._answer(strangers, a, seconds[first], week_start, reverse=True)
 
     def _funnel(self, plant: Plant, week: int, week_start: int) -> None:
         """A ring pays the collector; the collector pays one to three outlets."""
@@ -551,7 +598,7 @@ class Director:
             victims = rng.choice(self._pool(int(self.m.zone[a]), week, {a}), size=len(ring))
             self._add(victims, ring, first, style.funnel_feed)
             first = later(rng, first, week_end)
-        per = 1 + rng.poisson(0.5, len(ring))
+        per = 1 + rng.poisson(1.0, len(ring))
         paid = later(rng, np.repeat(first, per), week_end, 0, 3600)
         self._add(np.repeat(ring, per), a, paid, style.funnel_in)
         dest = np.repeat(outlets, 1 + rng.poisson(1.0, len(outlets)))
@@ -593,12 +640,14 @@ class Director:
             self._add(a, rng.choice(receivers, k), times(rng, week_start, k), self.style.bridge)
 
     def _keep_present(self, batch: Batch, week: int, week_start: int) -> None:
-        """Planted accounts before their change, newcomers in their first week and quiet
-        accounts in the window they come back get at least one event, so each has a
-        baseline, each newcomer shows up when it joins and each break visibly ends."""
+        """Planted accounts before their change, newcomers in their first week, quiet
+        accounts in the window they come back and season accounts in the season window get
+        at least one event, so each has a baseline, each newcomer shows up when it joins,
+        each break visibly ends and each season row has activity to judge."""
         rng, m = self.rng, self.m
         need = [p.account for p in self.plants if p.change in STRUCTURAL and week < p.week]
         need += [p.account for p in self.plants if p.detail.get("back_window") == week]
+        need += [p.account for p in self.plants if p.change == "season" and week == p.week]
         if week > 0:
             need += np.flatnonzero(m.joined == week).tolist()
         seen = np.zeros(self.log.next_fresh, dtype=bool)
@@ -615,7 +664,8 @@ class Director:
                     (m.community == m.community[a]) & (m.joined <= week) & ~self.taken
                 )
                 known = pool[pool != a].tolist() or self._pool(int(m.zone[a]), week, {a})
-            other = int(rng.choice(known))
+            known = np.asarray(known)
+            other = int(rng.choice(known[known != a]))
             self._add(a, other, self.world.rhythm.times(rng, week_start, 1), self.style.presence)
 
     # results ------------------------------------------------------------------------------
@@ -661,6 +711,7 @@ def run_world(
     season_week: int,
     instances: int,
     start: datetime,
+    extra_meta: dict | None = None,
 ) -> Scenario:
     """Run ``world`` through the director and assemble the scenario with truth and meta."""
     director = Director(
@@ -697,6 +748,8 @@ def run_world(
         "zones": list(m.zone_names),
         "communities": len(m.community_names),
         "never_dealing": [[m.zone_names[a], m.zone_names[b]] for a, b in m.never_dealing()],
+        "fixed_schedule_kinds": [],
+        **(extra_meta or {}),
         "plants": director.plant_details(ids),
         "note": "Invented data for demos and tests; no real people, firms or places.",
     }
