@@ -3,11 +3,11 @@
 Five regions lie along a coast road (``cape``, ``harbour``, ``mill``, ``orchard``,
 ``upland``); payments cross only between neighbouring regions, so members of regions two
 or more apart never pay each other until a planted bridge. Money mostly flows one way, so
-reciprocity is low; a few hubs (billers, busy merchants, large employers) meet thousands of
-small accounts, so the network is strongly disassortative, with little clustering beyond
-families and co-workers.
+reciprocity is low and payers are seldom payees (in- and out-degree barely correlate); a
+few hubs (billers, busy merchants, large employers) meet thousands of small accounts, and
+there is little clustering beyond families and friends.
 
-* ``household`` (about 84 %): card payments to two to eight favourite merchants (lognormal
+* ``household`` (about 90 %): card payments to two to eight favourite merchants (lognormal
   rates, a quarter of households bursty and often silent), monthly bills, a salary every
   two or four weeks from its employer, transfers inside its family (a third of households
   live in families of two to five, which pay each other back), transfers to a few friends,
@@ -15,7 +15,7 @@ families and co-workers.
 * ``merchant`` (7 %): paid by many households (Pareto popularity), pays one to three
   wholesalers a few times a week and refunds the odd customer;
 * ``wholesaler`` (1.5 %): paid by merchants, pays invoices to employers;
-* ``employer`` (about 4 % of members, sized by a Pareto law): pays its staff on payday
+* ``employer`` (1.2 %, sized by a Pareto law): pays its staff every two or four weeks
   and buys from wholesalers;
 * ``biller`` (utilities) and ``cash_agent``: paid by very many households; agents settle
   with a wholesaler weekly.

@@ -40,6 +40,7 @@ import numpy as np
 
 from .common import (
     FRESH_PREFIX,
+    GENERATOR_VERSION,
     WEEK_SECONDS,
     Batch,
     EventLog,
@@ -160,7 +161,8 @@ def training_profile(log: EventLog, size: int, training_weeks: int) -> Profile:
         counts[w] = out + into
         sent += out
     total = counts.sum(axis=0)
-    return Profile(counts.mean(axis=0), (counts > 0).all(axis=0), sent / np.maximum(total, 1))
+    every_week = np.asarray((counts > 0).all(axis=0))
+    return Profile(counts.mean(axis=0), every_week, sent / np.maximum(total, 1))
 
 
 class Director:
@@ -656,15 +658,15 @@ class Director:
         for a in need:
             if seen[a]:
                 continue
-            known = [
-                c for c in sorted(self.contacts.get(a, ())) if c < m.size and not self.taken[c]
-            ]
-            if not known:
-                pool = np.flatnonzero(
+            mine = [c for c in sorted(self.contacts.get(a, ())) if c < m.size and not self.taken[c]]
+            known = np.array(mine, dtype=np.int64)
+            if not len(known):
+                known = np.flatnonzero(
                     (m.community == m.community[a]) & (m.joined <= week) & ~self.taken
                 )
-                known = pool[pool != a].tolist() or self._pool(int(m.zone[a]), week, {a})
-            known = np.asarray(known)
+                known = known[known != a]
+            if not len(known):
+                known = self._pool(int(m.zone[a]), week, {a})
             other = int(rng.choice(known[known != a]))
             self._add(a, other, self.world.rhythm.times(rng, week_start, 1), self.style.presence)
 
@@ -730,7 +732,7 @@ def run_world(
     meta = {
         "scenario": description,
         "name": name,
-        "generator_version": "1",
+        "generator_version": GENERATOR_VERSION,
         "seed": seed,
         "members": members,
         "newcomers": int(m.size - m.initial),
