@@ -1,0 +1,29 @@
+"""Comparison baselines and real data for the detection benchmark.
+
+Three baselines score every account active in a window, so that each can alert on the
+same share of active accounts as the role-shift detector (:func:`top_budget`):
+
+* :func:`volume_scores` - robust z-score of the account's weighted degree against its own
+  earlier active windows;
+* :func:`new_counterpart_scores` - how many counterparts the account meets for the first
+  time.
+
+The functions are pure: arrays in, arrays out.
+"""
+
+from .activity import HOUR_US, WEEK_US, window_end
+from .counterparts import new_counterpart_scores
+from .ranking import AccountScores, budget_quota, top_budget
+from .volume import robust_zscore, volume_scores
+
+__all__ = [
+    "HOUR_US",
+    "WEEK_US",
+    "AccountScores",
+    "budget_quota",
+    "new_counterpart_scores",
+    "robust_zscore",
+    "top_budget",
+    "volume_scores",
+    "window_end",
+]
