@@ -85,6 +85,7 @@ def test_two_servers_close_each_window_once_and_deliver_each_alert_once(postgres
     # Both processes served ingest; the closer lock let exactly one close each window.
     late = scalar(postgres_url, "SELECT count(*) FROM events WHERE late")
     print(
-        f"multiprocess: windows={len(windows)} alerts={alerts} late={late} delivered_ids={len(receiver.unique())} "
+        f"multiprocess: windows={len(windows)} alerts={alerts} late={late} "
+        f"delivered_ids={len(receiver.unique())} "
         f"receipts={len(receiver.ids)} seconds={time.monotonic() - started:.0f}"
     )

@@ -6,7 +6,7 @@ computed from the generated event table with numpy, Python sets and networkx, an
 it uses rolewatch's engine, so a check cannot pass because engine and generator share a
 mistake. Thresholds follow from how the generators are built (the bounds are quoted from
 rolewatch.scenario.planting beside each check), not from an outside source. The wire format
-is the one in DESIGN.md ("Wire format"), checked the same way as for the marketplace.
+is the one in README.md ("Posting events"), checked the same way as for the marketplace.
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ from datetime import datetime, timedelta
 import networkx as nx
 import numpy as np
 
-from rolewatch.scenario.planting import CHANGES, STRUCTURAL
+from rolewatch.scenario.plants import CHANGES, STRUCTURAL
 
 WEEK = 7 * 24 * 3600
 SMALL = {"members": 400, "weeks": 10}  # the small draw every test uses
@@ -99,7 +99,7 @@ def check_determinism(generate) -> None:
     assert first.truth != other.truth
 
 
-# wire format (DESIGN.md, "Wire format") ------------------------------------------------
+# wire format (README.md, "Posting events") ----------------------------------------
 
 
 def check_wire_format(sc) -> None:

@@ -52,7 +52,9 @@ class View:
         self.window = (ev.time.astype("int64") - start) // WEEK
         self.actor, self.target = ev.actor, ev.target
         self.sc = sc
-        self.nbh = dict(zip(sc.accounts["id"].tolist(), sc.accounts["neighbourhood"].tolist()))
+        self.nbh = dict(
+            zip(sc.accounts["id"].tolist(), sc.accounts["neighbourhood"].tolist(), strict=False)
+        )
 
     def out(self, account, window):
         return self.target[(self.actor == account) & (self.window == window)]
@@ -117,7 +119,7 @@ def test_sample_has_planted_changes_after_training(sample):
     assert {"takeover", "volume_control"} <= changes
 
 
-# wire format (DESIGN.md, "Wire format") -----------------------------------------------
+# wire format (README.md, "Posting events") ----------------------------------------
 
 
 def test_every_event_is_valid_wire_format(scenario):
@@ -281,7 +283,7 @@ def test_newcomers_first_appear_in_their_window(scenario):
     view = View(scenario)
     first = {}
     for side in (view.actor, view.target):
-        for account, window in zip(side.tolist(), view.window.tolist()):
+        for account, window in zip(side.tolist(), view.window.tolist(), strict=False):
             first[account] = min(first.get(account, window), window)
     newcomers = planted(scenario, "newcomer")
     assert newcomers
@@ -298,7 +300,7 @@ def _training_graph(sc):
     view = View(sc)
     mask = view.window < sc.meta["training_weeks"]
     graph = nx.Graph()
-    graph.add_edges_from(zip(view.actor[mask].tolist(), view.target[mask].tolist()))
+    graph.add_edges_from(zip(view.actor[mask].tolist(), view.target[mask].tolist(), strict=False))
     return graph, view
 
 
@@ -316,8 +318,12 @@ def test_friend_circles_are_reciprocal_and_clustered(sample):
     graph, view = _training_graph(sample)
     directed = nx.DiGraph()
     mask = view.window < sample.meta["training_weeks"]
-    directed.add_edges_from(zip(view.actor[mask].tolist(), view.target[mask].tolist()))
-    arche = dict(zip(sample.accounts["id"].tolist(), sample.accounts["archetype"].tolist()))
+    directed.add_edges_from(
+        zip(view.actor[mask].tolist(), view.target[mask].tolist(), strict=False)
+    )
+    arche = dict(
+        zip(sample.accounts["id"].tolist(), sample.accounts["archetype"].tolist(), strict=False)
+    )
     reciprocity = nx.reciprocity(directed, list(directed))
     clustering = nx.clustering(graph)
 
@@ -336,7 +342,9 @@ def test_friend_circles_are_reciprocal_and_clustered(sample):
 
 def test_shops_have_many_buyers_and_couriers_link_many(sample):
     graph, view = _training_graph(sample)
-    arche = dict(zip(sample.accounts["id"].tolist(), sample.accounts["archetype"].tolist()))
+    arche = dict(
+        zip(sample.accounts["id"].tolist(), sample.accounts["archetype"].tolist(), strict=False)
+    )
     degree = dict(graph.degree())
     mean = {
         k: np.mean([degree[n] for n in graph if arche[n] == k])

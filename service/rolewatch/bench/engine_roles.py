@@ -129,7 +129,7 @@ def run(case: str) -> Iterator[dict]:
 
 
 def _child(case: str) -> dict:
-    result = {
+    result: dict[str, object] = {
         "case": case,
         "cores": os.cpu_count(),
         "blas_threads": os.environ.get("OPENBLAS_NUM_THREADS")

@@ -18,7 +18,7 @@ from collections.abc import Callable
 from . import forum, guilds, payments
 from .marketplace import DEFAULT_START, KINDS, EventColumns, Scenario, generate
 from .output import write
-from .planting import CHANGES as SCENARIO_CHANGES
+from .plants import CHANGES as SCENARIO_CHANGES
 from .truth import CHANGES, PLANTED
 
 SCENARIOS: dict[str, Callable[..., Scenario]] = {

@@ -150,7 +150,8 @@ def main(args) -> int:
     while not server.started:
         if time.monotonic() > deadline or not thread.is_alive():
             _say(
-                f"rolewatch demo: the service did not start on port {options.port}; is it in use? try --port"
+                f"rolewatch demo: the service did not start on port {options.port}; "
+                "is it in use? try --port"
             )
             return 1
         time.sleep(0.1)
@@ -163,7 +164,8 @@ def main(args) -> int:
     AlertPrinter.secret = base64.b64decode(subscription.json()["secret"].removeprefix("whsec_"))
 
     _say(
-        f"rolewatch demo: generating the marketplace (seed {options.seed}, {options.members} members, {options.weeks} weeks)"
+        f"rolewatch demo: generating the marketplace (seed {options.seed}, "
+        f"{options.members} members, {options.weeks} weeks)"
     )
     scenario = generate(seed=options.seed, members=options.members, weeks=options.weeks)
     events = list(scenario.iter_events())
@@ -177,7 +179,8 @@ def main(args) -> int:
         )
         answer.raise_for_status()
     _say(
-        f"rolewatch demo: ingest done in {time.monotonic() - started:.1f} s; windows close as the watermark passes"
+        f"rolewatch demo: ingest done in {time.monotonic() - started:.1f} s; "
+        "windows close as the watermark passes"
     )
 
     expected_windows = options.weeks
@@ -200,7 +203,8 @@ def main(args) -> int:
     caught = sorted({item["account"] for item in alert_items} & set(takeovers))
     _say("")
     _say(
-        f"rolewatch demo: {closed} windows closed, {len(alert_items)} alerts, {len(AlertPrinter.received)} delivered to the receiver"
+        f"rolewatch demo: {closed} windows closed, {len(alert_items)} alerts, "
+        f"{len(AlertPrinter.received)} delivered to the receiver"
     )
     _say(f"  web pages:   {base_url}/   (sign in with the key below)")
     _say(f"  API key:     {admin_key}")

@@ -186,7 +186,7 @@ def volume_alerts(run: SeedRun, budget: Sequence[int]) -> list[set[str]]:
         strength[t, cols] = window.strength
         columns.append(cols)
     out: list[set[str]] = []
-    for t, (window, quota) in enumerate(zip(run.windows, budget)):
+    for t, (window, quota) in enumerate(zip(run.windows, budget, strict=False)):
         if window.training or quota <= 0 or t == 0:
             out.append(set())
             continue
@@ -203,7 +203,7 @@ def volume_alerts(run: SeedRun, budget: Sequence[int]) -> list[set[str]]:
 def score_alerts(run: SeedRun, alerts: Sequence[set[str]]) -> dict:
     """Recall, delay, precision, alert shares and control false alarms of one seed."""
     measured = [w for w in run.windows if not w.training]
-    by_index = {w.index: a for w, a in zip(run.windows, alerts)}
+    by_index = {w.index: a for w, a in zip(run.windows, alerts, strict=False)}
     active = {w.index: len(w.nodes) for w in run.windows}
     planted = {}
     for row in run.truth:
@@ -259,7 +259,7 @@ def summarise(per_seed: Iterable[dict]) -> dict:
     """Mean, standard deviation, min and max of every figure over seeds."""
     rows = list(per_seed)
     keys = rows[0].keys() if rows else ()
-    summary = {}
+    summary: dict[str, dict[str, float | None]] = {}
     for key in keys:
         values = np.array([r[key] for r in rows], dtype=np.float64)
         finite = values[np.isfinite(values)]

@@ -40,7 +40,8 @@ from .common import (
     normalised,
 )
 from .marketplace import DEFAULT_START, Scenario
-from .planting import Act, Style, run_world
+from .planting import run_world
+from .plants import Act, Style
 
 NAME = "guilds"
 KINDS = ("swap", "sale", "gift", "deposit")

@@ -72,7 +72,7 @@ class Scenario:
     accounts: dict = field(repr=False)  # columns: id, archetype, neighbourhood, joined_window
 
     def iter_events(self) -> Iterator[dict]:
-        """Yield events as wire-format dicts (see DESIGN.md) in time order."""
+        """Yield events as wire-format dicts (see README.md, "Posting events") in time order."""
         ev = self.events
         columns = zip(
             ev.id.tolist(),
@@ -81,6 +81,7 @@ class Scenario:
             ev.target.tolist(),
             ev.kind.tolist(),
             ev.weight.tolist(),
+            strict=False,
         )
         for id_, time, actor, target, kind, weight in columns:
             yield {
@@ -116,7 +117,7 @@ class _Events:
         return out
 
     def columns(self) -> tuple[np.ndarray, ...]:
-        return tuple(np.concatenate(part) for part in zip(*self.chunks))
+        return tuple(np.concatenate(part) for part in zip(*self.chunks, strict=False))
 
 
 def _times(rng: np.random.Generator, week_start: int, n: int) -> np.ndarray:

@@ -44,6 +44,7 @@ def write(scenario: Scenario, directory) -> dict[str, Path]:
                 acc["archetype"].tolist(),
                 acc["neighbourhood"].tolist(),
                 acc["joined_window"].tolist(),
+                strict=False,
             )
         )
     return paths

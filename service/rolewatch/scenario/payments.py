@@ -44,7 +44,8 @@ from .common import (
     normalised,
 )
 from .marketplace import DEFAULT_START, Scenario
-from .planting import Act, Style, run_world
+from .planting import run_world
+from .plants import Act, Style
 
 NAME = "payments"
 KINDS = ("card", "transfer", "salary", "bill", "cash", "invoice")

@@ -191,10 +191,10 @@ def draw_population(
         suppliers[mine] = rng.choice(pool, size=(len(mine), MAX_SUPPLIERS))
     n_suppliers[shops] = rng.integers(2, MAX_SUPPLIERS + 1, len(shops))
 
-    friend_pairs = []
+    pairs: list[np.ndarray] = []
     for h in range(3):
         group = rng.permutation(np.flatnonzero((archetype == FRIEND) & (neighbourhood == h)))
-        sizes = []
+        sizes: list[int] = []
         while sum(sizes) + 4 <= len(group):
             sizes.append(int(rng.integers(4, 7)))
         if sizes:
@@ -202,8 +202,8 @@ def draw_population(
         for circle in np.split(group, np.cumsum(sizes)[:-1]):
             a, b = np.meshgrid(circle, circle, indexing="ij")
             keep = a != b
-            friend_pairs.append(np.stack([a[keep], b[keep]], axis=1))
-    friend_pairs = np.concatenate(friend_pairs) if friend_pairs else np.zeros((0, 2), np.int64)
+            pairs.append(np.stack([a[keep], b[keep]], axis=1))
+    friend_pairs = np.concatenate(pairs) if pairs else np.zeros((0, 2), np.int64)
 
     return Population(
         archetype=archetype,

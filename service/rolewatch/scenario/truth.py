@@ -70,11 +70,11 @@ def draw_plan(
 
     plan: list[Planted] = []
     quiet = (arche == BUYER) & (rate >= 0.6) & (rate <= 2.0)
-    for a, w in zip(pick(quiet, instances), when(instances)):
+    for a, w in zip(pick(quiet, instances), when(instances), strict=False):
         plan.append(Planted(int(a), "takeover", int(w)))
 
     ordinary = ((arche == BUYER) | (arche == SELLER)) & (rate >= 0.4)
-    for a, w in zip(pick(ordinary, instances), when(instances)):
+    for a, w in zip(pick(ordinary, instances), when(instances), strict=False):
         plan.append(Planted(int(a), "funnel", int(w)))
 
     shops = arche == SHOP
@@ -82,16 +82,16 @@ def draw_plan(
         local = np.flatnonzero(shops & (pop.neighbourhood == h))
         taken[local[np.argmax(pop.popularity[local])]] = True
     keepers = taken & shops
-    for a, w in zip(pick(shops, instances, prefer=pop.popularity), when(instances)):
+    for a, w in zip(pick(shops, instances, prefer=pop.popularity), when(instances), strict=False):
         local = np.flatnonzero(keepers & (pop.neighbourhood == pop.neighbourhood[a]))
         plan.append(Planted(int(a), "reversal", int(w), partner=int(local[0])))
 
     edge = (arche == COURIER) & np.isin(pop.neighbourhood, NEVER_TRADING)
-    for a, w in zip(pick(edge, instances), when(instances)):
+    for a, w in zip(pick(edge, instances), when(instances), strict=False):
         plan.append(Planted(int(a), "bridge", int(w)))
 
     steady = (arche == BUYER) & (rate >= 2.5) & (rate <= 6.0)
-    for a, w in zip(pick(steady, instances), when(instances)):
+    for a, w in zip(pick(steady, instances), when(instances), strict=False):
         plan.append(Planted(int(a), "volume_control", int(w)))
     return plan
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import Any, Literal
 
 from fastapi import APIRouter, HTTPException, Query, status
 from pydantic import BaseModel
@@ -15,8 +15,8 @@ from rolewatch.delivery import records
 from rolewatch.store.db import write_transaction
 
 router = APIRouter(tags=["deliveries"])
-ERRORS = {401: {"model": Problem}, 403: {"model": Problem}}
-NOT_FOUND = {**ERRORS, 404: {"model": Problem}}
+ERRORS: dict[int | str, dict[str, Any]] = {401: {"model": Problem}, 403: {"model": Problem}}
+NOT_FOUND: dict[int | str, dict[str, Any]] = {**ERRORS, 404: {"model": Problem}}
 
 
 class Delivery(BaseModel):

@@ -7,7 +7,7 @@ create and rotate; no other answer carries it.
 from __future__ import annotations
 
 import math
-from typing import Literal
+from typing import Any, Literal
 
 from fastapi import APIRouter, HTTPException, Response, status
 from pydantic import BaseModel, Field, field_validator
@@ -22,8 +22,8 @@ from rolewatch.delivery.urlguard import UnsafeURL
 from rolewatch.store.db import write_transaction
 
 router = APIRouter(tags=["subscriptions"])
-ERRORS = {401: {"model": Problem}, 403: {"model": Problem}}
-NOT_FOUND = {**ERRORS, 404: {"model": Problem}}
+ERRORS: dict[int | str, dict[str, Any]] = {401: {"model": Problem}, 403: {"model": Problem}}
+NOT_FOUND: dict[int | str, dict[str, Any]] = {**ERRORS, 404: {"model": Problem}}
 
 
 class SubscriptionCreate(BaseModel):
