@@ -3,12 +3,7 @@
 # test extras into .venv first, like scripts/test.sh. Fails on any finding.
 set -euo pipefail
 cd "$(dirname "$0")/.."
-PYTHON="${PYTHON:-python3}"
-if [ ! -x .venv/bin/python ]; then
-  "$PYTHON" -m venv .venv
-fi
-.venv/bin/python -m pip install --quiet --upgrade pip
-.venv/bin/python -m pip install --quiet -e '.[test]'
+source scripts/venv.sh
 .venv/bin/ruff format --check service tests scripts
 .venv/bin/ruff check service tests scripts
 .venv/bin/mypy

@@ -4,12 +4,7 @@
 # Debian's chromium and chromium-driver are installed. Extra arguments go to pytest.
 set -euo pipefail
 cd "$(dirname "$0")/.."
-PYTHON="${PYTHON:-python3}"
-if [ ! -x .venv/bin/python ]; then
-  "$PYTHON" -m venv .venv
-fi
-.venv/bin/python -m pip install --quiet --upgrade pip
-.venv/bin/python -m pip install --quiet -e '.[test]'
+source scripts/venv.sh
 status=0
 .venv/bin/python -m pytest "$@" || status=$?
 if [ "$status" -eq 5 ]; then

@@ -23,45 +23,6 @@ def scenario():
     return forum.generate(seed=11, **checks.SMALL)
 
 
-def test_same_seed_same_draw_and_other_seed_differs():
-    checks.check_determinism(forum.generate)
-
-
-def test_events_are_valid_wire_format(scenario):
-    checks.check_wire_format(scenario)
-
-
-def test_every_type_is_planted_in_allowed_windows(scenario):
-    checks.check_truth_types_and_windows(scenario)
-
-
-def test_truth_accounts_exist_with_baselines(scenario):
-    checks.check_truth_accounts_in_events(scenario)
-
-
-def test_takeovers_fan_out_to_new_counterparts(scenario):
-    checks.check_takeover(scenario)
-    checks.check_takeover_prior_activity_varies(scenario)
-
-
-def test_volume_controls_keep_their_counterparts(scenario):
-    checks.check_volume_controls(scenario)
-
-
-def test_contact_points_funnels_reversals_bridges(scenario):
-    checks.check_contact_points(scenario)
-    checks.check_funnels(scenario)
-    checks.check_reversals(scenario)
-    checks.check_bridges(scenario)
-
-
-def test_quiet_season_and_activity_shape(scenario):
-    checks.check_quiet(scenario)
-    checks.check_season(scenario)
-    checks.check_activity_shape(scenario)
-    checks.check_daily_rhythm(scenario)
-
-
 def _by_archetype(scenario, name):
     planted = {r["account"] for r in scenario.truth}
     acc = scenario.accounts

@@ -31,15 +31,11 @@ from .common import (
     EventLog,
     Members,
     Rhythm,
-    aligned_start,
-    check_sizes,
-    default_instances,
-    default_season_week,
     later,
     normalised,
 )
 from .marketplace import DEFAULT_START, Scenario
-from .planting import run_world
+from .planting import generate_world
 from .plants import Act, Style
 
 NAME = "forum"
@@ -367,23 +363,18 @@ def generate(
     Parameters are those of :func:`rolewatch.scenario.generate`; ``instances`` defaults to
     about one planted account per type per 300 members (10 at 3,000, at least 3).
     """
-    check_sizes(members, weeks, training_weeks)
-    start = aligned_start(start)
-    if season_week is None:
-        season_week = default_season_week(weeks, training_weeks)
-    rng = np.random.default_rng(seed)
-    return run_world(
-        Forum(rng, members, weeks, newcomer_rate),
-        rng,
+    return generate_world(
+        Forum,
         name=NAME,
         description="hobby forum: replies, mentions and follows in topic communities (fictional)",
         kinds=KINDS,
-        id_prefix=f"fo{seed}-",
+        id_stem="fo",
         seed=seed,
         members=members,
         weeks=weeks,
         training_weeks=training_weeks,
-        season_week=season_week,
-        instances=default_instances(members) if instances is None else instances,
         start=start,
+        season_week=season_week,
+        instances=instances,
+        newcomer_rate=newcomer_rate,
     )

@@ -36,15 +36,11 @@ from .common import (
     EventLog,
     Members,
     Rhythm,
-    aligned_start,
     amounts,
-    check_sizes,
-    default_instances,
-    default_season_week,
     normalised,
 )
 from .marketplace import DEFAULT_START, Scenario
-from .planting import run_world
+from .planting import generate_world
 from .plants import Act, Style
 
 NAME = "payments"
@@ -389,25 +385,20 @@ def generate(
     Parameters are those of :func:`rolewatch.scenario.generate`; ``instances`` defaults to
     about one planted account per type per 300 members (10 at 3,000, at least 3).
     """
-    check_sizes(members, weeks, training_weeks)
-    start = aligned_start(start)
-    if season_week is None:
-        season_week = default_season_week(weeks, training_weeks)
-    rng = np.random.default_rng(seed)
-    return run_world(
-        Payments(rng, members, weeks, newcomer_rate),
-        rng,
+    return generate_world(
+        Payments,
         name=NAME,
         description="regional payments network: households, merchants, employers (fictional)",
         kinds=KINDS,
-        id_prefix=f"pay{seed}-",
+        id_stem="pay",
         seed=seed,
         members=members,
         weeks=weeks,
         training_weeks=training_weeks,
-        season_week=season_week,
-        instances=default_instances(members) if instances is None else instances,
         start=start,
+        season_week=season_week,
+        instances=instances,
+        newcomer_rate=newcomer_rate,
         # paid on their own calendar, so not raised in the season window
         extra_meta={"fixed_schedule_kinds": ["salary", "bill"]},
     )

@@ -32,6 +32,7 @@ the scenario's one ``numpy.random.Generator`` in a fixed order.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from datetime import datetime
 
 import numpy as np
@@ -43,7 +44,11 @@ from .common import (
     WEEK_SECONDS,
     Batch,
     EventLog,
+    aligned_start,
     assemble,
+    check_sizes,
+    default_instances,
+    default_season_week,
     rfc3339,
     window_start_text,
 )
@@ -428,4 +433,50 @@ def run_world(
         start=start,
         truth=truth,
         meta=meta,
+    )
+
+
+def generate_world(
+    make_world: Callable[[np.random.Generator, int, int, float], World],
+    *,
+    name: str,
+    description: str,
+    kinds: tuple[str, ...],
+    id_stem: str,
+    seed: int,
+    members: int,
+    weeks: int,
+    training_weeks: int,
+    start: datetime,
+    season_week: int | None,
+    instances: int | None,
+    newcomer_rate: float,
+    extra_meta: dict | None = None,
+) -> Scenario:
+    """The shared body of every scenario's ``generate``: check the sizes, align the start,
+    choose the season window and instance count, draw the world and run it.
+
+    ``make_world(rng, members, weeks, newcomer_rate)`` builds the scenario's world; ids are
+    ``f"{id_stem}{seed}-..."``.
+    """
+    check_sizes(members, weeks, training_weeks)
+    start = aligned_start(start)
+    if season_week is None:
+        season_week = default_season_week(weeks, training_weeks)
+    rng = np.random.default_rng(seed)
+    return run_world(
+        make_world(rng, members, weeks, newcomer_rate),
+        rng,
+        name=name,
+        description=description,
+        kinds=kinds,
+        id_prefix=f"{id_stem}{seed}-",
+        seed=seed,
+        members=members,
+        weeks=weeks,
+        training_weeks=training_weeks,
+        season_week=season_week,
+        instances=default_instances(members) if instances is None else instances,
+        start=start,
+        extra_meta=extra_meta,
     )
