@@ -71,12 +71,15 @@ class StateChange:
 
 
 def clean_text(text: str | None) -> str | None:
-    """Free text with outer spaces removed (None when empty); too long is refused."""
+    """Free text with outer spaces removed (None when empty); too long text, or control
+    characters other than line breaks and tabs, are refused."""
     text = (text or "").strip()
     if not text:
         return None
     if len(text) > MAX_TEXT:
         raise ReviewRuleError(f"the text is {len(text)} characters; keep it under {MAX_TEXT}")
+    if any((ord(ch) < 32 and ch not in "\n\r\t") or 127 <= ord(ch) < 160 for ch in text):
+        raise ReviewRuleError("the text holds control characters; remove them")
     return text
 
 

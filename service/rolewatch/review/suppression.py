@@ -59,6 +59,8 @@ def check_entry(kind: str, value: str, reason: str) -> tuple[str, str]:
     reason = reason.strip()
     if not reason or len(reason) > MAX_REASON:
         raise SuppressionError(f"a suppression needs a reason of 1 to {MAX_REASON} characters")
+    if any(ord(ch) < 32 and ch not in "\n\t" or ord(ch) == 127 for ch in reason):
+        raise SuppressionError("the reason must not hold control characters")
     return value, reason
 
 

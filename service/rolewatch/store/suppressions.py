@@ -94,10 +94,10 @@ def active_entries(connection: Connection, now_us: int) -> list[SuppressionRecor
 
 
 def list_entries(
-    connection: Connection, *, now_us: int, include_inactive: bool
+    connection: Connection, *, now_us: int, include_inactive: bool, entry_id: int | None = None
 ) -> list[SuppressionRecord]:
     """Entries newest first, each with its hit count; only those in force unless
-    ``include_inactive``."""
+    ``include_inactive``; only the one with ``entry_id`` when given."""
     hits = (
         select(
             suppressed_alerts.c.suppression_id,
@@ -118,6 +118,8 @@ def list_entries(
     )
     if not include_inactive:
         query = query.where(_active(now_us))
+    if entry_id is not None:
+        query = query.where(suppressions.c.id == entry_id)
     return [SuppressionRecord(**row._mapping) for row in connection.execute(query)]
 
 
