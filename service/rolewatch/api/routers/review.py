@@ -45,7 +45,7 @@ def _not_found(error: LookupError) -> HTTPException:
 
 
 def _unprocessable(error: ValueError) -> HTTPException:
-    return HTTPException(status.HTTP_422_UNPROCESSABLE_ENTITY, detail=str(error))
+    return HTTPException(422, detail=str(error))
 
 
 def _assignee_filter(assignee: str | None, me: str) -> str | None:

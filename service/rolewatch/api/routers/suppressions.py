@@ -65,7 +65,7 @@ async def add_suppression(
             )
         )
     except SuppressionError as error:
-        raise HTTPException(status.HTTP_422_UNPROCESSABLE_ENTITY, detail=str(error)) from None
+        raise HTTPException(422, detail=str(error)) from None
 
 
 @router.delete(
