@@ -280,32 +280,34 @@ def _filter_conditions(filters: CaseFilters) -> list[Any]:
     return conditions
 
 
+def named_roles(table: Any) -> tuple[Any, Any, Any]:
+    """``table`` joined (outer: a basis' roles may be gone) to the current names of its
+    ``role_before`` and ``role_after``; returns the join and the two labelled name columns
+    (``before_name``, ``after_name``)."""
+    before = roles.alias(f"{table.name}_role_before")
+    after = roles.alias(f"{table.name}_role_after")
+    joined = table.outerjoin(
+        before,
+        (before.c.basis_version == table.c.basis_version)
+        & (before.c.role_id == table.c.role_before),
+    ).outerjoin(
+        after,
+        (after.c.basis_version == table.c.basis_version) & (after.c.role_id == table.c.role_after),
+    )
+    return joined, before.c.name.label("before_name"), after.c.name.label("after_name")
+
+
 def _with_move(query_columns: Sequence[Any]) -> Any:
     """SELECT ``query_columns`` plus the newest alert's role move, from cases."""
-    before = roles.alias("role_before_row")
-    after = roles.alias("role_after_row")
-    return (
-        select(
-            *query_columns,
-            alerts.c.basis_version,
-            alerts.c.role_before,
-            alerts.c.role_after,
-            before.c.name.label("before_name"),
-            after.c.name.label("after_name"),
-        )
-        .select_from(cases)
-        .join(alerts, alerts.c.id == cases.c.latest_alert_id)
-        .outerjoin(
-            before,
-            (before.c.basis_version == alerts.c.basis_version)
-            & (before.c.role_id == alerts.c.role_before),
-        )
-        .outerjoin(
-            after,
-            (after.c.basis_version == alerts.c.basis_version)
-            & (after.c.role_id == alerts.c.role_after),
-        )
-    )
+    joined, before_name, after_name = named_roles(alerts)
+    return select(
+        *query_columns,
+        alerts.c.basis_version,
+        alerts.c.role_before,
+        alerts.c.role_after,
+        before_name,
+        after_name,
+    ).select_from(cases.join(joined, alerts.c.id == cases.c.latest_alert_id))
 
 
 def _move(row: Any) -> RoleMove:

@@ -11,8 +11,9 @@ from typing import Any
 from sqlalchemy import and_, select
 from sqlalchemy.engine import Connection
 
+from rolewatch.store.review import named_roles
 from rolewatch.store.review_schema import case_alerts, suppressed_alerts
-from rolewatch.store.schema import alerts, roles, windows
+from rolewatch.store.schema import alerts, windows
 
 
 def _range(column: Any, from_us: int | None, to_us: int | None) -> Any:
@@ -24,27 +25,12 @@ def _range(column: Any, from_us: int | None, to_us: int | None) -> Any:
     return and_(True, *conditions)
 
 
-def _role_names(table: Any) -> tuple[Any, Any, Any]:
-    """Joins that name the table's role_before and role_after (outer: names may be gone)."""
-    before = roles.alias(f"{table.name}_before")
-    after = roles.alias(f"{table.name}_after")
-    joined = table.outerjoin(
-        before,
-        (before.c.basis_version == table.c.basis_version)
-        & (before.c.role_id == table.c.role_before),
-    ).outerjoin(
-        after,
-        (after.c.basis_version == table.c.basis_version) & (after.c.role_id == table.c.role_after),
-    )
-    return joined, before.c.name.label("before_name"), after.c.name.label("after_name")
-
-
 def alert_outcomes(
     connection: Connection, *, from_us: int | None = None, to_us: int | None = None
 ) -> list[dict[str, Any]]:
     """One row per alert whose window ends in ``[from_us, to_us)``: window, raise time,
     roles, and the decision that applies to it now with its first decision time."""
-    joined, before_name, after_name = _role_names(alerts)
+    joined, before_name, after_name = named_roles(alerts)
     query = (
         select(
             alerts.c.id.label("alert_id"),
@@ -75,7 +61,7 @@ def held_back(
     connection: Connection, *, from_us: int | None = None, to_us: int | None = None
 ) -> list[dict[str, Any]]:
     """One row per alert a suppression held back in a window ending in ``[from_us, to_us)``."""
-    joined, before_name, after_name = _role_names(suppressed_alerts)
+    joined, before_name, after_name = named_roles(suppressed_alerts)
     query = (
         select(
             suppressed_alerts.c.window_id,

@@ -10,7 +10,7 @@ from __future__ import annotations
 from typing import Any
 from urllib.parse import urlencode
 
-from fastapi import APIRouter, Form, Request
+from fastapi import APIRouter, Form, Path, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from sqlalchemy.engine import Engine
 
@@ -130,7 +130,7 @@ def lift_suppression(
     key: PageKey,
     store: StoreDep,
     settings: SettingsDep,
-    entry_id: int,
+    entry_id: int = Path(ge=1, le=2**63 - 1),
     token: str = Form(""),
 ) -> Response:
     error = _refusal(request, key, token)

@@ -16,7 +16,7 @@ from datetime import UTC, date, datetime
 from typing import Any
 from urllib.parse import quote, urlencode
 
-from fastapi import APIRouter, FastAPI, Form, Request
+from fastapi import APIRouter, FastAPI, Form, Path, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from sqlalchemy.engine import Engine
 
@@ -39,6 +39,8 @@ from rolewatch.web.pages import NOTICE, templates
 
 router = APIRouter(include_in_schema=False)
 PAGE_SIZE = 50
+CASE_ID = Path(ge=1, le=2**63 - 1)
+VERSION = Form(..., ge=1, le=2**31 - 1)
 DONE = {
     "in_review": "Review started: the case is yours unless it was assigned.",
     "open": "The case is open again.",
@@ -303,7 +305,7 @@ def case_page(
     key: PageKey,
     store: StoreDep,
     settings: SettingsDep,
-    case_id: int,
+    case_id: int = CASE_ID,
     done: str = "",
 ) -> HTMLResponse:
     return _case_page(request, key, store, settings, case_id, done=done[:20])
@@ -366,8 +368,8 @@ def change_state(
     key: PageKey,
     store: StoreDep,
     settings: SettingsDep,
-    case_id: int,
-    version: int = Form(...),
+    case_id: int = CASE_ID,
+    version: int = VERSION,
     state: str = Form(""),
     reason: str = Form(""),
     text: str = Form(""),
@@ -396,8 +398,8 @@ def assign(
     key: PageKey,
     store: StoreDep,
     settings: SettingsDep,
-    case_id: int,
-    version: int = Form(...),
+    case_id: int = CASE_ID,
+    version: int = VERSION,
     assignee: str = Form(""),
     token: str = Form(""),
     back: str = Form("case"),
@@ -419,7 +421,7 @@ def add_note(
     key: PageKey,
     store: StoreDep,
     settings: SettingsDep,
-    case_id: int,
+    case_id: int = CASE_ID,
     text: str = Form(""),
     token: str = Form(""),
     back: str = Form("case"),
