@@ -24,6 +24,12 @@ def upgrade() -> None:
         batch_op.add_column(sa.Column("display_name", sa.String(length=100), nullable=True))
     with op.batch_alter_table("subscriptions", schema=None) as batch_op:
         batch_op.add_column(sa.Column("event_types", sa.Text(), nullable=True))
+    _create_cases()
+    _create_case_alerts_and_history()
+    _create_suppressions()
+
+
+def _create_cases() -> None:
     op.create_table(
         "cases",
         sa.Column("id", _ID, autoincrement=True, nullable=False),
@@ -51,6 +57,9 @@ def upgrade() -> None:
         batch_op.create_index("ix_cases_account", ["account"], unique=False)
         batch_op.create_index("ix_cases_state", ["state"], unique=False)
         batch_op.create_index("ix_cases_latest_score", ["latest_score"], unique=False)
+
+
+def _create_case_alerts_and_history() -> None:
     op.create_table(
         "case_alerts",
         sa.Column("alert_id", sa.BigInteger(), nullable=False),
@@ -91,6 +100,9 @@ def upgrade() -> None:
     )
     with op.batch_alter_table("case_history", schema=None) as batch_op:
         batch_op.create_index("ix_case_history_case_id", ["case_id"], unique=False)
+
+
+def _create_suppressions() -> None:
     op.create_table(
         "suppressions",
         sa.Column("id", _ID, autoincrement=True, nullable=False),
