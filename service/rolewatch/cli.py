@@ -99,7 +99,9 @@ def cmd_keys(args) -> int:
     try:
         if args.keys_command == "create":
             try:
-                _, key = keys.create_key(engine, args.scope, label=args.label, now_us=_now_us())
+                _, key = keys.create_key(
+                    engine, args.scope, label=args.label, now_us=_now_us(), name=args.name
+                )
             except ValueError as error:
                 raise UsageError(str(error)) from None
             print(key)  # only the key on stdout, so `KEY=$(rolewatch keys create ...)` works
@@ -117,6 +119,7 @@ def cmd_keys(args) -> int:
                             state,
                             to_rfc3339(record.created_us),
                             record.label or "",
+                            record.display_name or "",
                         ]
                     )
                 )
@@ -126,6 +129,16 @@ def cmd_keys(args) -> int:
                     f"no active key with id {args.key_id!r}: see 'rolewatch keys list'"
                 )
             print(f"revoked {args.key_id}", file=sys.stderr)
+        elif args.keys_command == "name":
+            try:
+                named = keys.set_display_name(engine, args.key_id, args.name)
+            except ValueError as error:
+                raise UsageError(str(error)) from None
+            if not named:
+                raise UsageError(
+                    f"no active key with id {args.key_id!r}: see 'rolewatch keys list'"
+                )
+            print(f"named {args.key_id}", file=sys.stderr)
     finally:
         engine.dispose()
     return 0
@@ -389,15 +402,22 @@ def _add_keys(sub: Any, common: argparse.ArgumentParser) -> None:
         "--scope",
         action="append",
         required=True,
-        choices=("ingest", "read", "admin"),
-        help="a scope the key gets (repeat for several; admin implies the others)",
+        choices=("ingest", "read", "review", "admin"),
+        help="a scope the key gets (repeat for several; admin implies the others, review "
+        "implies read)",
     )
     create.add_argument("--label", help="a note saying who or what uses the key")
+    create.add_argument("--name", help="the display name reviewers see on cases")
     keys_sub.add_parser(
-        "list", parents=[common], help="list keys (id, scopes, state, created, label)"
+        "list", parents=[common], help="list keys (id, scopes, state, created, label, name)"
     )
     revoke = keys_sub.add_parser("revoke", parents=[common], help="revoke a key by its id")
     revoke.add_argument("key_id", metavar="KEY_ID")
+    name = keys_sub.add_parser(
+        "name", parents=[common], help="set the display name of a key (empty clears it)"
+    )
+    name.add_argument("key_id", metavar="KEY_ID")
+    name.add_argument("name", metavar="NAME")
     keys.set_defaults(handler=cmd_keys)
 
 

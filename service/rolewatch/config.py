@@ -248,6 +248,25 @@ class Settings(BaseSettings):
         "receivers behind an internal CA (empty: the system's trusted authorities).",
     )
 
+    # --- review (cases and suppressions) -----------------------------------------------
+    case_group_windows: int = Field(
+        4,
+        ge=1,
+        description="A new alert joins its account's latest case when that case's newest alert "
+        "is at most this many windows (window_period) older; otherwise it opens a new case.",
+    )
+    case_reopen_ratio: float = Field(
+        1.5,
+        ge=1,
+        description="A new alert reopens a dismissed case only when its score is at least this "
+        "multiple of the highest score the case had when it was dismissed; a weaker alert joins "
+        "the case and leaves it dismissed.",
+    )
+    suppression_default_expiry: Duration = Field(
+        written_duration("90d"),
+        description="How long a suppression lasts when it is made without an expiry date.",
+    )
+
     # --- retention and logging ---------------------------------------------------------
     retention_windows: int = Field(
         0,

@@ -15,6 +15,8 @@ ROUTE_PARAMS = {
     "alert_id": "1",
     "sub_id": "sub_x",
     "delivery_id": "msg_x",
+    "case_id": "1",
+    "entry_id": "1",
 }
 
 
@@ -49,8 +51,14 @@ def test_every_route_but_healthz_needs_a_key(app_client):
 
 
 def test_scopes_are_enforced(app_client):
-    # README "Keys": ingest to post events, read to read, admin to rename roles, refit the
-    # basis, manage subscriptions and redeliver.
+    # README "Keys": ingest to post events, read to read and comment on cases, review to
+    # change cases and the suppression list, admin to rename roles, refit the basis, manage
+    # subscriptions and redeliver.
+    review_only = {
+        ("/v1/cases/{case_id}", "patch"),
+        ("/v1/suppressions", "post"),
+        ("/v1/suppressions/{entry_id}", "delete"),
+    }
     admin_only = {
         ("/v1/admin/basis", "post"),
         ("/v1/admin/keys", "get"),
@@ -65,6 +73,8 @@ def test_scopes_are_enforced(app_client):
             if path == "/v1/events"
             else "admin"
             if (path, method) in admin_only or path.startswith("/v1/subscriptions")
+            else "review"
+            if (path, method) in review_only
             else "read"
         )
         for scope in ("ingest", "read"):

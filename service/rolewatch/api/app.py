@@ -26,14 +26,17 @@ from rolewatch.api.routers import (
     alerts,
     deliveries,
     events,
+    review,
     roles,
     subscriptions,
+    suppressions,
     windows,
 )
 from rolewatch.config import Settings
 from rolewatch.logs import REQUEST_ID
 from rolewatch.store.summaries import ping
 from rolewatch.web.pages import include_pages
+from rolewatch.web.review_pages import include_review_pages
 
 log = logging.getLogger("rolewatch.http")
 _REQUEST_ID_OK = re.compile(r"[A-Za-z0-9._-]{1,64}")
@@ -56,7 +59,7 @@ DESCRIPTION = """Streaming detection of structural role changes in an interactio
 Post events to `/v1/events`; windows close automatically; query account role histories,
 roles, windows and alerts. Every route except `/healthz` needs an API key:
 `Authorization: Bearer rwk_<key_id>_<secret>` (make one with `rolewatch keys create --scope read`).
-Scopes: ingest, read, admin (admin implies the others).
+Scopes: ingest, read, review, admin (admin implies the others; review implies read).
 
 Alerts are leads for human review, not verdicts.
 """
@@ -236,6 +239,10 @@ def create_app(settings: Settings, *, run_jobs: bool | None = None) -> FastAPI:
         app.include_router(module.router)
     app.include_router(subscriptions.router)
     app.include_router(deliveries.router)
+    # Review: cases, notes, reviewers, figures, the suppression list, and their pages.
+    app.include_router(review.router)
+    app.include_router(suppressions.router)
+    include_review_pages(app)
     include_pages(app)  # the HTML pages, their sign-in redirect and /static
     app.include_router(service)
     return app

@@ -55,6 +55,7 @@ def require_scope(scope: str) -> Callable[[Engine, HTTPAuthorizationCredentials 
 ReadKey = Annotated[ApiKey, Depends(require_scope("read"))]
 IngestKey = Annotated[ApiKey, Depends(require_scope("ingest"))]
 AdminKey = Annotated[ApiKey, Depends(require_scope("admin"))]
+ReviewKey = Annotated[ApiKey, Depends(require_scope("review"))]
 
 
 class SignInRequired(Exception):

@@ -7,14 +7,14 @@ retry sends identical bytes under the same ``webhook-id``; the worker only signs
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from typing import Any
 
 from rolewatch.clock import now_micros, to_rfc3339
 from rolewatch.config import Settings
 from rolewatch.delivery.ids import message_id
 from rolewatch.delivery.payloads import ALERT_RAISED, ALERT_TEST, build_body
-from rolewatch.delivery.subscriptions import live_subscription
+from rolewatch.delivery.subscriptions import live_subscription, wants
 from rolewatch.store import outbox as outbox_store
 from rolewatch.store import subscriptions as subscription_store
 from rolewatch.store.db import Connection
@@ -35,14 +35,19 @@ def matches(subscription: SubscriptionRecord, alert: dict[str, Any]) -> bool:
 
 
 def _new_delivery(
-    subscription: SubscriptionRecord, alert: dict[str, Any], event_type: str, now_us: int
+    subscription: SubscriptionRecord,
+    alert: dict[str, Any],
+    event_type: str,
+    now_us: int,
+    case_url: str | None = None,
 ) -> NewDelivery:
+    body = build_body(subscription.format, alert, event_type, now_us, case_url=case_url)
     return NewDelivery(
         id=message_id(now_us),
         subscription_id=subscription.id,
         alert_id=alert.get("id") if event_type == ALERT_RAISED else None,
         event_type=event_type,
-        body=build_body(subscription.format, alert, event_type, now_us).decode("utf-8"),
+        body=body.decode("utf-8"),
         created_us=now_us,
     )
 
@@ -53,20 +58,28 @@ def enqueue_alerts(
     alerts: Iterable[dict[str, Any]],
     *,
     now_us: int | None = None,
+    case_urls: Mapping[int, str] | None = None,
 ) -> list[str]:
     """Queue one delivery per alert and live subscription whose filters it passes.
 
     ``alerts`` are dicts in the API alert form (docs/CONTRACTS.md). Paused subscriptions get
     their deliveries queued too; the worker holds them until the subscription is resumed.
-    Returns the new delivery (``webhook-id``) ids. Runs in the caller's transaction.
+    Only subscriptions that receive ``alert.raised`` get them; ``case_urls`` (alert id → the
+    web address of its case) adds the case link to the text format. Returns the new delivery
+    (``webhook-id``) ids. Runs in the caller's transaction.
     """
     alerts = list(alerts)
     if not alerts:
         return []
     now_us = now_micros() if now_us is None else now_us
-    live = subscription_store.list_live_subscriptions(connection)
+    live = [
+        subscription
+        for subscription in subscription_store.list_live_subscriptions(connection)
+        if wants(subscription, ALERT_RAISED)
+    ]
+    links = case_urls or {}
     new = [
-        _new_delivery(subscription, alert, ALERT_RAISED, now_us)
+        _new_delivery(subscription, alert, ALERT_RAISED, now_us, links.get(alert.get("id") or 0))
         for alert in alerts
         for subscription in live
         if matches(subscription, alert)

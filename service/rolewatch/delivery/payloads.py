@@ -83,8 +83,11 @@ def strongest_evidence(evidence: dict[str, Any]) -> str | None:
     return "; ".join(parts) or None
 
 
-def text_summary(alert: dict[str, Any], event_type: str = ALERT_RAISED) -> str:
-    """A short human summary of ``alert`` for chat channels (under ``TEXT_LIMIT`` characters)."""
+def text_summary(
+    alert: dict[str, Any], event_type: str = ALERT_RAISED, case_url: str | None = None
+) -> str:
+    """A short human summary of ``alert`` for chat channels (under ``TEXT_LIMIT`` characters);
+    ``case_url`` links the review case the alert was filed into."""
     evidence = alert.get("evidence") or {}
     lines = []
     if event_type == ALERT_TEST:
@@ -102,6 +105,8 @@ def text_summary(alert: dict[str, Any], event_type: str = ALERT_RAISED) -> str:
         lines.append(f"Strongest evidence: {strongest}")
     if evidence.get("page_url"):
         lines.append(f"Details: {safe_link(evidence['page_url'])}")
+    if case_url:
+        lines.append(f"Case: {safe_link(case_url)}")
     lines.append(REVIEW_LINE)
     text = "\n".join(lines)
     if len(text) > TEXT_LIMIT:  # only if the parts above grew; keep the review line
@@ -109,16 +114,26 @@ def text_summary(alert: dict[str, Any], event_type: str = ALERT_RAISED) -> str:
     return text
 
 
-def text_body(alert: dict[str, Any], event_type: str = ALERT_RAISED) -> bytes:
+def text_body(
+    alert: dict[str, Any], event_type: str = ALERT_RAISED, case_url: str | None = None
+) -> bytes:
     """The ``text`` format: ``{"text": <summary>}`` as UTF-8 JSON."""
-    document = {"text": text_summary(alert, event_type)}
+    document = {"text": text_summary(alert, event_type, case_url)}
     return json.dumps(document, ensure_ascii=False, separators=(",", ":")).encode("utf-8")
 
 
-def build_body(fmt: str, alert: dict[str, Any], event_type: str, timestamp_us: int) -> bytes:
-    """The body bytes of one delivery in the subscription's format."""
+def build_body(
+    fmt: str,
+    alert: dict[str, Any],
+    event_type: str,
+    timestamp_us: int,
+    *,
+    case_url: str | None = None,
+) -> bytes:
+    """The body bytes of one delivery in the subscription's format (``case_url``: the text
+    format links the alert's case)."""
     if fmt == "text":
-        return text_body(alert, event_type)
+        return text_body(alert, event_type, case_url)
     if fmt == "json":
         return json_body(alert, event_type, timestamp_us)
     raise ValueError(f"unknown webhook format {fmt!r}: use json or text")

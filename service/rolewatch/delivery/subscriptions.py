@@ -25,6 +25,19 @@ from rolewatch.store.subscriptions import SubscriptionRecord
 
 FORMATS = ("json", "text")
 DELETED_ERROR = "subscription deleted"
+# Event types a subscription can choose; one made without a choice gets alerts only.
+EVENT_TYPES = ("alert.raised", "case.updated")
+DEFAULT_EVENT_TYPES = ("alert.raised",)
+
+
+def event_types_of(subscription: SubscriptionRecord) -> tuple[str, ...]:
+    """The event types the subscription receives (alerts only when it never chose)."""
+    return subscription.event_types or DEFAULT_EVENT_TYPES
+
+
+def wants(subscription: SubscriptionRecord, event_type: str) -> bool:
+    """True when the subscription receives events of ``event_type``."""
+    return event_type in event_types_of(subscription)
 
 
 class SubscriptionNotFound(LookupError):
@@ -47,6 +60,7 @@ def public_view(subscription: SubscriptionRecord) -> dict[str, Any]:
         "format": subscription.format,
         "min_score": subscription.min_score,
         "roles": list(subscription.roles) if subscription.roles is not None else None,
+        "events": list(event_types_of(subscription)),
         "created": to_rfc3339(subscription.created_us),
         "paused": subscription.paused,
         "paused_reason": subscription.paused_reason,
@@ -81,6 +95,15 @@ def _validate(fmt: str, min_score: float, roles: list[int] | None) -> None:
         raise ValueError("roles must list at least one role id, or be left out for every role")
 
 
+def _check_events(events: list[str] | None) -> tuple[str, ...]:
+    if events is None:
+        return DEFAULT_EVENT_TYPES
+    unknown = [event for event in events if event not in EVENT_TYPES]
+    if unknown or not events:
+        raise ValueError(f"events must list one or more of {', '.join(EVENT_TYPES)}")
+    return tuple(event for event in EVENT_TYPES if event in events)
+
+
 def create_subscription(
     connection: Connection,
     settings: Settings,
@@ -91,10 +114,12 @@ def create_subscription(
     roles: list[int] | None = None,
     now_us: int,
     resolver: Resolver | None = None,
+    events: list[str] | None = None,
 ) -> NewSecret:
     """Check ``url`` (``UnsafeURL`` on refusal), store the subscription, return it with its
-    secret."""
+    secret. ``events`` chooses the event types sent (default: alerts only)."""
     _validate(fmt, min_score, roles)
+    event_types = _check_events(events)
     check_url_for(url, settings, resolver)
     secret = new_secret()
     record = SubscriptionRecord(
@@ -111,6 +136,7 @@ def create_subscription(
         paused_reason=None,
         consecutive_failures=0,
         deleted_us=None,
+        event_types=event_types,
     )
     subscription_store.insert_subscription(connection, record)
     return NewSecret(public_view(record), secret)

@@ -19,7 +19,7 @@ import logging
 import threading
 import time
 from contextlib import AbstractContextManager
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Any
 
 from rolewatch.clock import now_micros, to_rfc3339
@@ -35,6 +35,7 @@ from rolewatch.pipeline.compute import (
 from rolewatch.pipeline.loading import WindowEvents, load_past_windows, load_window_events
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
+from rolewatch.review.intake import file_window_alerts, screen_alerts
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.alerts import Alert, insert_alerts
 from rolewatch.store.db import (
@@ -194,6 +195,9 @@ def _close_once(
     seconds = time.perf_counter() - started
     with write_transaction(engine) as connection:
         _claim_window(connection, start_us, end_us, len(current))
+        # Review: suppressed accounts raise no alert (their memberships are still stored).
+        screened = screen_alerts(connection, result.alerts, now_us=now_us)
+        result = replace(result, alerts=screened.kept)
         window_id = stored_windows.insert_window(
             connection,
             start_us=start_us,
@@ -204,10 +208,26 @@ def _close_once(
             measures=_measures(model, result, seconds),
         )
         api_alerts = _store_result(connection, model, window_id, start_us, end_us, now_us, result)
+        # Review: file the alerts into cases and count what the suppressions held back.
+        filed = file_window_alerts(
+            connection,
+            settings,
+            window_id=window_id,
+            window_end_us=end_us,
+            basis_version=model.basis.version,
+            alerts=api_alerts,
+            screened=screened,
+            now_us=now_us,
+        )
         if api_alerts:
             from rolewatch.delivery.outbox import enqueue_alerts
 
-            enqueue_alerts(connection, settings, [alert.to_dict() for alert in api_alerts])
+            enqueue_alerts(
+                connection,
+                settings,
+                [alert.to_dict() for alert in api_alerts],
+                case_urls=filed.case_urls,
+            )
     return [_summary(window_id, start_us, end_us, len(current), result, training=False)]
 
 

@@ -126,6 +126,9 @@ def main(args) -> int:
     engine = open_store(settings)
     now_us = now_micros()
     _, admin_key = create_key(engine, ["admin"], label="demo", now_us=now_us)
+    _, reviewer_key = create_key(
+        engine, ["review"], label="demo reviewer", now_us=now_us, name="Demo reviewer"
+    )
     engine.dispose()
 
     receiver_port = _free_port()
@@ -197,6 +200,11 @@ def main(args) -> int:
             break
         time.sleep(1)
 
+    from rolewatch.scenario.demo_review import review_a_few
+
+    reviewed = review_a_few(
+        client, {"authorization": f"Bearer {reviewer_key}"}, list(scenario.truth)
+    )
     alerts = client.get("/v1/alerts", params={"limit": 200}).json()
     alert_items = alerts["alerts"]
     takeovers = [record["account"] for record in scenario.truth if record["change"] == "takeover"]
@@ -206,8 +214,13 @@ def main(args) -> int:
         f"rolewatch demo: {closed} windows closed, {len(alert_items)} alerts, "
         f"{len(AlertPrinter.received)} delivered to the receiver"
     )
+    _say(
+        f"  review:      {reviewed['confirmed']} cases confirmed, {reviewed['dismissed']} "
+        f"dismissed by the demo reviewer; figures at {base_url}/review/stats"
+    )
     _say(f"  web pages:   {base_url}/   (sign in with the key below)")
     _say(f"  API key:     {admin_key}")
+    _say(f"  reviewer key: {reviewer_key}   (review scope: can confirm and dismiss cases)")
     _say(f"  API docs:    {base_url}/docs")
     if caught:
         _say(f"  a taken-over account: {base_url}/accounts/{caught[0]}")

@@ -160,6 +160,7 @@ api_keys = Table(
     Column("label", String(200), nullable=True),
     Column("created_us", BigInteger, nullable=False),
     Column("revoked_us", BigInteger, nullable=True),
+    Column("display_name", String(100), nullable=True),  # the reviewer's name on cases
 )
 
 subscriptions = Table(
@@ -178,6 +179,8 @@ subscriptions = Table(
     Column("paused_reason", Text, nullable=True),
     Column("consecutive_failures", Integer, nullable=False, default=0),
     Column("deleted_us", BigInteger, nullable=True),
+    # JSON list of the event types sent (alert.raised, case.updated); null: alert.raised only
+    Column("event_types", Text, nullable=True),
 )
 
 deliveries = Table(
@@ -217,3 +220,7 @@ service_state = Table(
     Column("key", String(64), primary_key=True),
     Column("value", Text, nullable=False),
 )
+
+# The review tables (cases, their history, suppressions) live in their own module on this
+# metadata; importing it here registers them for Alembic and create_all.
+from rolewatch.store import review_schema as _review_schema  # noqa: E402,F401

@@ -34,6 +34,8 @@ class SubscriptionRecord:
     paused_reason: str | None
     consecutive_failures: int
     deleted_us: int | None
+    # The event types sent; None: alert.raised only (what subscriptions got before types).
+    event_types: tuple[str, ...] | None = None
 
 
 @dataclass(frozen=True)
@@ -59,6 +61,7 @@ def _record(row: Any) -> SubscriptionRecord:
         paused_reason=row.paused_reason,
         consecutive_failures=row.consecutive_failures,
         deleted_us=row.deleted_us,
+        event_types=tuple(json.loads(row.event_types)) if row.event_types else None,
     )
 
 
@@ -79,6 +82,9 @@ def insert_subscription(connection: Connection, record: SubscriptionRecord) -> N
             paused_reason=record.paused_reason,
             consecutive_failures=record.consecutive_failures,
             deleted_us=record.deleted_us,
+            event_types=(
+                json.dumps(list(record.event_types)) if record.event_types is not None else None
+            ),
         )
     )
 

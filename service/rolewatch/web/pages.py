@@ -1,4 +1,5 @@
-"""The HTML pages: alert queue, account history, role catalogue, sign-in.
+"""The HTML pages: alert list, account history, role catalogue, sign-in (the case queue,
+the home page, is in :mod:`rolewatch.web.review_pages`).
 
 Server-rendered with Jinja2 (autoescape on: account ids and role names are untrusted data),
 so every page works without JavaScript; ``static/account.js`` only swaps the evidence panel
@@ -172,7 +173,6 @@ def _older_link(form: dict[str, str], next_cursor: int | None) -> str | None:
     return "/alerts?" + urlencode({**kept, "before": next_cursor})
 
 
-@router.get("/", response_class=HTMLResponse)
 @router.get("/alerts", response_class=HTMLResponse)
 def alert_queue(
     request: Request,
@@ -376,13 +376,25 @@ def account_jump(key: PageKey, account: str = "") -> RedirectResponse:
 
 @router.get("/accounts/{account:path}", response_class=HTMLResponse)
 def account_page(
-    request: Request, key: PageKey, store: StoreDep, account: str, window: str | None = None
+    request: Request,
+    key: PageKey,
+    store: StoreDep,
+    settings: SettingsDep,
+    account: str,
+    window: str | None = None,
+    case: str | None = None,
+    done: str = "",
 ) -> HTMLResponse:
     if not queries.account_exists(store, account):
         return _page(
             request, "missing.html", key, {"title": "Account not found", "account": account}, 404
         )
-    return _page(request, "account.html", key, _account_context(store, account, window))
+    context = _account_context(store, account, window)
+    # Review: the account's case with its notes and review forms (web/review_pages.py).
+    from rolewatch.web.review_pages import account_case_context
+
+    context.update(account_case_context(store, settings, key, account, case, done[:20]))
+    return _page(request, "account.html", key, context)
 
 
 # --- role catalogue --------------------------------------------------------------------------

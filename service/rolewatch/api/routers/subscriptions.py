@@ -39,6 +39,12 @@ class SubscriptionCreate(BaseModel):
         max_length=1000,
         description="Only alerts whose new dominant role is one of these role ids.",
     )
+    events: list[Literal["alert.raised", "case.updated"]] | None = Field(
+        None,
+        min_length=1,
+        description="Event types to receive: alert.raised (new alerts) and/or case.updated "
+        "(review changes of cases). Left out: alert.raised only.",
+    )
 
     @field_validator("min_score")
     @classmethod
@@ -54,6 +60,7 @@ class Subscription(BaseModel):
     format: str
     min_score: float
     roles: list[int] | None
+    events: list[str] = Field(["alert.raised"], description="Event types this URL receives.")
     created: str
     paused: bool
     paused_reason: str | None
@@ -106,6 +113,7 @@ async def create(
                 min_score=body.min_score,
                 roles=body.roles,
                 now_us=_now_us(),
+                events=list(body.events) if body.events is not None else None,
             )
 
     try:
