@@ -57,6 +57,7 @@ def cmd_serve(args) -> int:
     import uvicorn
 
     from rolewatch.api.app import create_app
+    from rolewatch.api.serving import http_protocol
     from rolewatch.logs import configure_logging
 
     overrides = {
@@ -81,6 +82,7 @@ def cmd_serve(args) -> int:
             log_config=None,
             timeout_graceful_shutdown=30,
             access_log=False,
+            http=http_protocol(settings),
         )
     except SystemExit as stop:  # uvicorn exits 3 when startup fails: report it as 1
         return 0 if not stop.code else 1

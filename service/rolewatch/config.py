@@ -103,6 +103,22 @@ class Settings(BaseSettings):
         description="Serve GET /metrics without an API key (for a scraper on a private "
         "network); by default it needs a key with the read scope.",
     )
+    max_body_bytes: int = Field(
+        65_536,
+        ge=1024,
+        description="Largest request body of every route but POST /v1/events, in bytes; a "
+        "larger Content-Length is refused before any of the body is read.",
+    )
+    http_header_timeout: Duration = Field(
+        written_duration("10s"),
+        description="A connection whose request head (line and headers) is not complete this "
+        "long after it began is closed.",
+    )
+    http_body_timeout: Duration = Field(
+        written_duration("30s"),
+        description="A request body that stops arriving for this long is refused (408) and "
+        "its connection closed.",
+    )
     role: Literal["all", "api", "worker"] = Field(
         "all",
         description="What this process runs: all (API and background jobs), api (HTTP only) "

@@ -19,6 +19,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from rolewatch import metrics
 from rolewatch.api.auth import check_scope
 from rolewatch.api.deps import BearerCredentials, SettingsDep, StoreDep
+from rolewatch.api.limits import BodyGate
 from rolewatch.api.models import Health
 from rolewatch.api.routers import (
     accounts,
@@ -230,6 +231,7 @@ def create_app(settings: Settings, *, run_jobs: bool | None = None) -> FastAPI:
         openapi_url="/openapi.json",
     )
     app.state.settings = settings
+    app.add_middleware(BodyGate, settings=settings)  # inside SecurityHeaders: its refusals too
     app.add_middleware(SecurityHeaders)
     app.add_middleware(RequestContext)  # outermost: its log line and id cover the 500s too
     for module in (events, accounts, roles, windows, alerts, admin):
