@@ -214,7 +214,7 @@ class _ReplayTotals:
     SHOWN = 20
 
     def __init__(self) -> None:
-        self.counts = {"accepted": 0, "duplicates": 0, "late": 0, "rejected": 0}
+        self.counts = {"accepted": 0, "duplicates": 0, "late": 0, "rejected": 0, "conflicts": 0}
         self.shown = 0
 
     def add(self, result: IngestResult, lines: list[int]) -> None:
@@ -223,15 +223,16 @@ class _ReplayTotals:
         self.counts["duplicates"] += result.duplicates
         self.counts["late"] += result.late
         self.counts["rejected"] += len(result.rejected)
-        for rejected in result.rejected:
+        self.counts["conflicts"] += len(result.conflicts)
+        for rejected in result.rejected + result.conflicts:
             if self.shown < self.SHOWN:
                 print(f"line {lines[rejected['index']]}: {rejected['error']}", file=sys.stderr)
                 self.shown += 1
 
     def report_hidden(self) -> None:
-        hidden = self.counts["rejected"] - self.shown
+        hidden = self.counts["rejected"] + self.counts["conflicts"] - self.shown
         if hidden > 0:
-            print(f"... and {hidden} more rejected lines", file=sys.stderr)
+            print(f"... and {hidden} more rejected or conflicting lines", file=sys.stderr)
 
 
 def _replay_file(

@@ -137,6 +137,12 @@ class Settings(BaseSettings):
         description="Events stamped further than this into the future (by this server's clock) "
         "are rejected one by one.",
     )
+    max_event_age: Duration = Field(
+        written_duration("365d"),
+        description="Events older than this (by this server's clock) are rejected one by one; "
+        "0 accepts any age. Times before 1970-01-01T00:00:00Z are always rejected. Raise it "
+        "to replay older history.",
+    )
 
     # --- windows -----------------------------------------------------------------------
     window_period: Duration = Field(

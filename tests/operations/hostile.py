@@ -20,6 +20,7 @@ from .servers import Server
 # Short read timeouts so the suite can watch a half-sent request being dropped.
 LIVE_SETTINGS = {
     "role": "api",
+    "max_event_age": "365d",  # the default, which servers.py otherwise turns off
     "http_header_timeout": "2s",
     "http_body_timeout": "2s",
 }

@@ -54,9 +54,16 @@ class Rejection(BaseModel):
 
 class IngestResponse(BaseModel):
     accepted: int = Field(..., description="Events newly stored.")
-    duplicates: int = Field(..., description="Events whose id was already stored.")
+    duplicates: int = Field(
+        ..., description="Events whose id was already stored with the same content."
+    )
     late: int = Field(0, description="Accepted events whose window had already closed.")
     rejected: list[Rejection]
+    conflicts: list[Rejection] = Field(
+        default_factory=list,
+        description="Events whose id is already stored with other content; the stored event "
+        "is kept.",
+    )
 
 
 class Problem(BaseModel):

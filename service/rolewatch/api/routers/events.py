@@ -98,6 +98,30 @@ def _utf8_problem(body: bytes) -> str | None:
     return None
 
 
+def _top_level_keys(pairs: list[tuple[str, Any]]) -> list[tuple[str, Any]]:
+    return pairs  # keeps repeated keys, which a dict would merge
+
+
+def _repeated_top_level_key(body: bytes) -> str | None:
+    """A key the body's top-level object names twice, or None.
+
+    JSON parsers keep only the last of repeated keys (RFC 8259 section 4 leaves it open), so
+    ``{"events": [...], "events": [...]}`` would silently lose the first list. A second
+    ``events`` key needs either the literal ``"events"`` twice or a ``\\u`` escape, so the
+    slower check runs only on such bodies.
+    """
+    if body.count(b'"events"') < 2 and b"\\u" not in body:
+        return None
+    try:
+        pairs = json.loads(body, object_pairs_hook=_top_level_keys)
+    except (ValueError, RecursionError):
+        return None  # the caller's parse reports what is wrong
+    if not isinstance(pairs, list) or not all(isinstance(p, tuple) for p in pairs):
+        return None
+    names = [name for name, _ in pairs]
+    return next((name for name in names if names.count(name) > 1), None)
+
+
 def parse_json_batch(body: bytes, max_events: int) -> list:
     """``{"events": [...]}`` → the list of raw events; HTTPException 400/413 otherwise."""
     try:
@@ -114,6 +138,9 @@ def parse_json_batch(body: bytes, max_events: int) -> list:
             raise _bad(f"the body is not valid JSON: {error}") from None
     if not isinstance(document, dict) or not isinstance(document.get("events"), list):
         raise _bad('the body must be a JSON object {"events": [...]}')
+    repeated = _repeated_top_level_key(body)
+    if repeated is not None:
+        raise _bad(f"the key {repeated!r} appears more than once; name events once")
     extra = sorted(set(document) - {"events"})
     if extra:
         raise _bad(f'unexpected field {extra[0]!r} beside "events"')
