@@ -119,6 +119,10 @@ class Settings(BaseSettings):
         description="A request body that stops arriving for this long is refused (408) and "
         "its connection closed.",
     )
+    session_lifetime: Duration = Field(
+        written_duration("12h"),
+        description="How long a web sign-in lasts; signing out or revoking the key ends it sooner.",
+    )
     role: Literal["all", "api", "worker"] = Field(
         "all",
         description="What this process runs: all (API and background jobs), api (HTTP only) "

@@ -295,7 +295,7 @@ def test_per_event_errors_keep_the_good_events(app_client, make_event):
 
 
 def test_the_published_event_schema_holds_the_limits_ingest_enforces(app_client, make_event):
-    document = app_client.client.get("/openapi.json").json()
+    document = app_client.client.get("/openapi.json", headers=app_client.headers("read")).json()
     content = document["paths"]["/v1/events"]["post"]["requestBody"]["content"]
     batch = content["application/json"]["schema"]
     schema = batch["properties"]["events"]["items"]

@@ -8,6 +8,7 @@ real SQLite file or the real PostgreSQL server (see ``conftest.py``).
 
 from __future__ import annotations
 
+import re
 import socket
 import time
 from dataclasses import dataclass, field
@@ -122,3 +123,22 @@ def closed_by_server(sock: socket.socket, within: float) -> bool:
         if not chunk:
             return True
     return False
+
+
+_TOKEN = re.compile(r'name="token" value="([^"]*)"')
+
+
+def form_token(html: str) -> str:
+    """The value of the page's first hidden ``token`` field."""
+    found = _TOKEN.search(html)
+    assert found is not None, "the page has no form token"
+    return found.group(1)
+
+
+def sign_in_http(client: httpx.Client, key: str, next_path: str = "/", **headers: str):
+    """Sign ``client`` in the way the sign-in form does: fetch the form (which sets its
+    token cookie), then post the key with the form's token."""
+    page = client.get("/signin")
+    assert page.status_code == 200
+    data = {"key": key, "next": next_path, "token": form_token(page.text)}
+    return client.post("/signin", data=data, headers=headers, follow_redirects=False)

@@ -41,7 +41,9 @@ StoreDep = Annotated[Engine, Depends(get_store)]
 BearerCredentials = Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)]
 
 
-def require_scope(scope: str) -> Callable[[Engine, HTTPAuthorizationCredentials | None], ApiKey]:
+def require_scope(
+    scope: str,
+) -> Callable[[Request, Engine, HTTPAuthorizationCredentials | None], ApiKey]:
     """A dependency that admits keys allowed ``scope`` and returns the key (401/403 otherwise)."""
     if scope not in SCOPES:
         raise ValueError(f"unknown scope {scope!r}")

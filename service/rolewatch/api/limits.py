@@ -20,6 +20,7 @@ never read; so does any answer given before the route read the whole body.
 from __future__ import annotations
 
 import asyncio
+from collections.abc import MutableMapping
 from typing import Any
 
 from fastapi import HTTPException, status
@@ -159,7 +160,7 @@ class BodyGate:
         await self.app(scope, limited_receive, closing_send)
 
 
-def checked_key(scope: dict[str, Any], presented: str) -> Any:
+def checked_key(scope: MutableMapping[str, Any], presented: str) -> Any:
     """The key the gate already verified for this request when ``presented`` is the same
     credential, else None (the route then verifies it itself)."""
     found = scope.get("state", {}).get(CHECKED_KEY)

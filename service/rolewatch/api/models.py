@@ -1,5 +1,5 @@
 """Pydantic v2 models of the wire format (README.md "Posting events", docs/CONTRACTS.md),
-used for validation of small request bodies and for the OpenAPI document at /docs.
+used for validation of small request bodies and for the OpenAPI document at /openapi.json.
 
 Events themselves are validated one by one by :mod:`rolewatch.store.events` in plain Python
 (one model per event would cost more than the whole insert, and a bad event must not lose

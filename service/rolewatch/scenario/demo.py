@@ -209,7 +209,7 @@ def main(args) -> int:
     )
     _say(f"  web pages:   {base_url}/   (sign in with the key below)")
     _say(f"  API key:     {admin_key}")
-    _say(f"  API docs:    {base_url}/docs")
+    _say(f"  API schema:  {base_url}/openapi.json   (with the key, as a Bearer header)")
     if caught:
         _say(f"  a taken-over account: {base_url}/accounts/{caught[0]}")
     _say("  Alerts are leads for human review, not verdicts.")
