@@ -11,6 +11,8 @@ from __future__ import annotations
 import re
 import socket
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 
@@ -142,3 +144,28 @@ def sign_in_http(client: httpx.Client, key: str, next_path: str = "/", **headers
     assert page.status_code == 200
     data = {"key": key, "next": next_path, "token": form_token(page.text)}
     return client.post("/signin", data=data, headers=headers, follow_redirects=False)
+
+
+@contextmanager
+def serve_in_thread(app) -> Iterator[str]:
+    """Serve ``app`` with uvicorn on a loopback port in a thread of this process (for tests
+    that change the process's environment, such as its resolver); yields the base URL."""
+    import threading
+
+    import uvicorn
+
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock.bind(("127.0.0.1", 0))
+    server = uvicorn.Server(uvicorn.Config(app, log_level="warning", lifespan="on"))
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    deadline = time.monotonic() + 30
+    while not server.started:
+        assert time.monotonic() < deadline and thread.is_alive(), "the app did not start"
+        time.sleep(0.05)
+    try:
+        yield f"http://127.0.0.1:{sock.getsockname()[1]}"
+    finally:
+        server.should_exit = True
+        thread.join(timeout=15)
+        sock.close()
