@@ -15,7 +15,7 @@ import json
 import os
 import signal
 import sys
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 from types import ModuleType
 from typing import TYPE_CHECKING, Any
@@ -171,12 +171,33 @@ def _csv_cell(name: str, value: str):
     return value
 
 
+def _check_csv_header(names: Sequence[str]) -> None:
+    """Stop the replay (exit 2) when the header lacks a required column or names one that is
+    no event field: every line would be rejected for the same reason."""
+    from rolewatch.store.events import FIELDS
+
+    missing = [name for name in ("time", "actor", "target") if name not in names]
+    if missing:
+        raise UsageError(
+            f"the CSV header lacks the column{'s' if len(missing) > 1 else ''} "
+            f"{', '.join(missing)}; the first line must name the columns, e.g. "
+            "id,time,actor,target,kind,weight. Nothing was stored"
+        )
+    unknown = [name for name in names if name not in FIELDS]
+    if unknown:
+        raise UsageError(
+            f"the CSV header names the column {unknown[0]!r}, which is no event field; "
+            f"allowed: {', '.join(FIELDS)}. Nothing was stored"
+        )
+
+
 def _csv_items(lines) -> Iterator[tuple[int, object]]:
     """(line number, event) for each CSV row; the header names the fields, empty cells are
     absent fields."""
     reader = csv.DictReader(lines)
     if reader.fieldnames is None:
         return
+    _check_csv_header(reader.fieldnames)
     for row in reader:
         event = {
             k: _csv_cell(k, v) for k, v in row.items() if k is not None and v not in (None, "")

@@ -230,6 +230,25 @@ def test_replay_ndjson_and_csv_store_what_the_api_stores(app_client, tmp_path, m
         }, fmt
 
 
+@pytest.mark.parametrize(
+    "header, said",
+    [
+        ("time,actor,kind", "lacks the column target"),  # not "target: required" per line
+        ("id,time,actor,target,weigth", "column 'weigth', which is no event field"),
+    ],
+)
+def test_replay_of_a_csv_with_a_wrong_header_stops_at_once(tmp_path, header, said):
+    path = tmp_path / "events.csv"
+    lines = [header] + [f"e-{n},2026-01-05T10:15:00Z,m-a,m-b,1" for n in range(50)]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    url = f"sqlite:///{tmp_path / 'replay.db'}"
+    done = rolewatch("replay", str(path), "--no-progress", env={"ROLEWATCH_DATABASE_URL": url})
+    assert done.returncode == 2, done.stderr
+    assert said in done.stderr and done.stderr.count("\n") <= 2
+    assert "line " not in done.stderr  # no per-line reasons
+    assert stored_events(url) == []
+
+
 def test_replay_keeps_distinct_lines_without_ids_apart_and_stays_idempotent(tmp_path):
     # Exports at minute resolution often hold the same interaction twice in one minute, with
     # no ids (invented rows): each line is an event of its own, and replaying the file again
