@@ -18,6 +18,9 @@ import sqlalchemy as sa
 from rolewatch.clock import now_micros
 
 POSTGRES_URL = os.environ.get("ROLEWATCH_TEST_POSTGRES_URL")
+# The fixture sample and the tests' events are dated in 2026: history, whatever today is.
+# Tests of the age limit set max_event_age themselves.
+os.environ.setdefault("ROLEWATCH_MAX_EVENT_AGE", "0")
 SKIP_POSTGRES = "PostgreSQL tests need ROLEWATCH_TEST_POSTGRES_URL (CI sets it to postgresql+psycopg://postgres@127.0.0.1:5432/test)"
 
 

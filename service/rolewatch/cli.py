@@ -15,7 +15,7 @@ import json
 import os
 import signal
 import sys
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 from types import ModuleType
 from typing import TYPE_CHECKING, Any
@@ -57,6 +57,7 @@ def cmd_serve(args) -> int:
     import uvicorn
 
     from rolewatch.api.app import create_app
+    from rolewatch.api.serving import http_protocol
     from rolewatch.logs import configure_logging
 
     overrides = {
@@ -81,6 +82,7 @@ def cmd_serve(args) -> int:
             log_config=None,
             timeout_graceful_shutdown=30,
             access_log=False,
+            http=http_protocol(settings),
         )
     except SystemExit as stop:  # uvicorn exits 3 when startup fails: report it as 1
         return 0 if not stop.code else 1
@@ -182,12 +184,33 @@ def _csv_cell(name: str, value: str):
     return value
 
 
+def _check_csv_header(names: Sequence[str]) -> None:
+    """Stop the replay (exit 2) when the header lacks a required column or names one that is
+    no event field: every line would be rejected for the same reason."""
+    from rolewatch.store.events import FIELDS
+
+    missing = [name for name in ("time", "actor", "target") if name not in names]
+    if missing:
+        raise UsageError(
+            f"the CSV header lacks the column{'s' if len(missing) > 1 else ''} "
+            f"{', '.join(missing)}; the first line must name the columns, e.g. "
+            "id,time,actor,target,kind,weight. Nothing was stored"
+        )
+    unknown = [name for name in names if name not in FIELDS]
+    if unknown:
+        raise UsageError(
+            f"the CSV header names the column {unknown[0]!r}, which is no event field; "
+            f"allowed: {', '.join(FIELDS)}. Nothing was stored"
+        )
+
+
 def _csv_items(lines) -> Iterator[tuple[int, object]]:
     """(line number, event) for each CSV row; the header names the fields, empty cells are
     absent fields."""
     reader = csv.DictReader(lines)
     if reader.fieldnames is None:
         return
+    _check_csv_header(reader.fieldnames)
     for row in reader:
         event = {
             k: _csv_cell(k, v) for k, v in row.items() if k is not None and v not in (None, "")
@@ -225,7 +248,7 @@ class _ReplayTotals:
     SHOWN = 20
 
     def __init__(self) -> None:
-        self.counts = {"accepted": 0, "duplicates": 0, "late": 0, "rejected": 0}
+        self.counts = {"accepted": 0, "duplicates": 0, "late": 0, "rejected": 0, "conflicts": 0}
         self.shown = 0
 
     def add(self, result: IngestResult, lines: list[int]) -> None:
@@ -234,15 +257,16 @@ class _ReplayTotals:
         self.counts["duplicates"] += result.duplicates
         self.counts["late"] += result.late
         self.counts["rejected"] += len(result.rejected)
-        for rejected in result.rejected:
+        self.counts["conflicts"] += len(result.conflicts)
+        for rejected in result.rejected + result.conflicts:
             if self.shown < self.SHOWN:
                 print(f"line {lines[rejected['index']]}: {rejected['error']}", file=sys.stderr)
                 self.shown += 1
 
     def report_hidden(self) -> None:
-        hidden = self.counts["rejected"] - self.shown
+        hidden = self.counts["rejected"] + self.counts["conflicts"] - self.shown
         if hidden > 0:
-            print(f"... and {hidden} more rejected lines", file=sys.stderr)
+            print(f"... and {hidden} more rejected or conflicting lines", file=sys.stderr)
 
 
 def _replay_file(

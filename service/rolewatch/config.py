@@ -103,6 +103,26 @@ class Settings(BaseSettings):
         description="Serve GET /metrics without an API key (for a scraper on a private "
         "network); by default it needs a key with the read scope.",
     )
+    max_body_bytes: int = Field(
+        65_536,
+        ge=1024,
+        description="Largest request body of every route but POST /v1/events, in bytes; a "
+        "larger Content-Length is refused before any of the body is read.",
+    )
+    http_header_timeout: Duration = Field(
+        written_duration("10s"),
+        description="A connection whose request head (line and headers) is not complete this "
+        "long after it began is closed.",
+    )
+    http_body_timeout: Duration = Field(
+        written_duration("30s"),
+        description="A request body that stops arriving for this long is refused (408) and "
+        "its connection closed.",
+    )
+    session_lifetime: Duration = Field(
+        written_duration("12h"),
+        description="How long a web sign-in lasts; signing out or revoking the key ends it sooner.",
+    )
     role: Literal["all", "api", "worker"] = Field(
         "all",
         description="What this process runs: all (API and background jobs), api (HTTP only) "
@@ -120,6 +140,12 @@ class Settings(BaseSettings):
         written_duration("5m"),
         description="Events stamped further than this into the future (by this server's clock) "
         "are rejected one by one.",
+    )
+    max_event_age: Duration = Field(
+        written_duration("365d"),
+        description="Events older than this (by this server's clock) are rejected one by one; "
+        "0 accepts any age. Times before 1970-01-01T00:00:00Z are always rejected. Raise it "
+        "to replay older history.",
     )
 
     # --- windows -----------------------------------------------------------------------

@@ -44,7 +44,13 @@ def test_batch_is_stored_and_counted(app_client, make_event):
     batch = [make_event(id=f"e{i}", kind="payment", weight=2.5) for i in range(5)]
     response = post(app_client, batch)
     assert response.status_code == 202
-    assert response.json() == {"accepted": 5, "duplicates": 0, "late": 0, "rejected": []}
+    assert response.json() == {
+        "accepted": 5,
+        "duplicates": 0,
+        "late": 0,
+        "rejected": [],
+        "conflicts": [],
+    }
     rows = stored(app_client)
     assert [r.event_id for r in rows] == [f"e{i}" for i in range(5)]
     assert all(r.weight == 2.5 and r.kind == "payment" and not r.late for r in rows)
@@ -59,12 +65,13 @@ def test_duplicate_batch_is_idempotent(app_client, make_event):
     batch = [make_event(id=f"d{i}") for i in range(10)]
     assert post(app_client, batch).json()["accepted"] == 10
     again = post(app_client, batch).json()
-    assert again == {"accepted": 0, "duplicates": 10, "late": 0, "rejected": []}
-    # A repeat inside one batch is a duplicate too; the first copy wins.
-    twice = post(
-        app_client, [make_event(id="same", weight=1), make_event(id="same", weight=9)]
-    ).json()
+    assert again == {"accepted": 0, "duplicates": 10, "late": 0, "rejected": [], "conflicts": []}
+    # A repeat inside one batch is a duplicate too; the first copy wins. With other content
+    # it is reported as a conflict.
+    same = make_event(id="same", weight=1)
+    twice = post(app_client, [same, same, {**same, "weight": 9}]).json()
     assert (twice["accepted"], twice["duplicates"]) == (1, 1)
+    assert [item["index"] for item in twice["conflicts"]] == [2]
     assert len(stored(app_client)) == 11
     assert [r.weight for r in stored(app_client) if r.event_id == "same"] == [1.0]
 
@@ -128,7 +135,7 @@ def test_late_events_are_flagged_and_counted_on_closed_windows(app_client, make_
         make_event(time="2026-01-01T00:00:00Z", id="late-uncovered"),
     ]
     result = post(app_client, batch).json()
-    assert result == {"accepted": 4, "duplicates": 0, "late": 3, "rejected": []}
+    assert result == {"accepted": 4, "duplicates": 0, "late": 3, "rejected": [], "conflicts": []}
     flags = {r.event_id: r.late for r in stored(app_client)}
     assert flags == {"late-1": True, "late-2": True, "on-time": False, "late-uncovered": True}
     # Retrying the late events counts nothing twice.
@@ -140,7 +147,13 @@ def test_late_events_are_flagged_and_counted_on_closed_windows(app_client, make_
 def test_empty_batch(app_client):
     response = post(app_client, [])
     assert response.status_code == 202
-    assert response.json() == {"accepted": 0, "duplicates": 0, "late": 0, "rejected": []}
+    assert response.json() == {
+        "accepted": 0,
+        "duplicates": 0,
+        "late": 0,
+        "rejected": [],
+        "conflicts": [],
+    }
 
 
 @pytest.mark.parametrize(
@@ -282,7 +295,7 @@ def test_per_event_errors_keep_the_good_events(app_client, make_event):
 
 
 def test_the_published_event_schema_holds_the_limits_ingest_enforces(app_client, make_event):
-    document = app_client.client.get("/openapi.json").json()
+    document = app_client.client.get("/openapi.json", headers=app_client.headers("read")).json()
     content = document["paths"]["/v1/events"]["post"]["requestBody"]["content"]
     batch = content["application/json"]["schema"]
     schema = batch["properties"]["events"]["items"]
@@ -423,10 +436,12 @@ def test_wrong_scope_cannot_ingest(app_client, make_event):
 
 def test_ndjson_lines_split_only_on_newline(app_client, make_event):
     # U+2028 and U+0085 may appear unescaped inside JSON strings (RFC 8259 section 7); a line
-    # separator there must not cut the line. (U+0085 is a C1 control, so that event is refused.)
+    # separator there must not cut the line. (Ids may hold neither - U+2028 is a line
+    # separator, U+0085 a C1 control - so both events are refused, each as one event.)
     lines = [
         json.dumps(make_event(id="a\u2028b"), ensure_ascii=False),
         json.dumps(make_event(id="c\u0085d"), ensure_ascii=False) + "\r",
+        json.dumps(make_event(id="e-f"), ensure_ascii=False),
     ]
     response = app_client.client.post(
         "/v1/events",
@@ -435,10 +450,10 @@ def test_ndjson_lines_split_only_on_newline(app_client, make_event):
     )
     result = response.json()
     assert result["accepted"] == 1
-    assert [r["index"] for r in result["rejected"]] == [1] and "U+0085" in result["rejected"][0][
-        "error"
-    ]
-    assert [r.event_id for r in stored(app_client)] == ["a\u2028b"]
+    reasons = [(r["index"], r["error"]) for r in result["rejected"]]
+    assert [index for index, _ in reasons] == [0, 1]
+    assert "U+2028" in reasons[0][1] and "U+0085" in reasons[1][1]
+    assert [r.event_id for r in stored(app_client)] == ["e-f"]
 
 
 def test_concurrent_batches_share_commits_and_count_exactly(app_settings, make_event):

@@ -27,6 +27,7 @@ KEY_FORM = re.compile(r"rwk_[0-9a-f]{12}_[A-Za-z0-9_-]{43}")
 
 def rolewatch(*args, env=None, timeout=120) -> subprocess.CompletedProcess:
     environment = {k: v for k, v in os.environ.items() if not k.startswith("ROLEWATCH_")}
+    environment["ROLEWATCH_MAX_EVENT_AGE"] = "0"  # the tests' events are dated in 2026
     environment.update(env or {})
     return subprocess.run(
         [sys.executable, "-m", "rolewatch.cli", *args],
@@ -227,6 +228,25 @@ def test_replay_ndjson_and_csv_store_what_the_api_stores(app_client, tmp_path, m
             line_id,
             derived_event_id(parse_time_us("2026-01-05T08:00:00+02:00"), "m-a", "m-b", None, 1.0),
         }, fmt
+
+
+@pytest.mark.parametrize(
+    "header, said",
+    [
+        ("time,actor,kind", "lacks the column target"),  # not "target: required" per line
+        ("id,time,actor,target,weigth", "column 'weigth', which is no event field"),
+    ],
+)
+def test_replay_of_a_csv_with_a_wrong_header_stops_at_once(tmp_path, header, said):
+    path = tmp_path / "events.csv"
+    lines = [header] + [f"e-{n},2026-01-05T10:15:00Z,m-a,m-b,1" for n in range(50)]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    url = f"sqlite:///{tmp_path / 'replay.db'}"
+    done = rolewatch("replay", str(path), "--no-progress", env={"ROLEWATCH_DATABASE_URL": url})
+    assert done.returncode == 2, done.stderr
+    assert said in done.stderr and done.stderr.count("\n") <= 2
+    assert "line 2" not in done.stderr  # no per-line reasons
+    assert stored_events(url) == []
 
 
 def test_replay_keeps_distinct_lines_without_ids_apart_and_stays_idempotent(tmp_path):

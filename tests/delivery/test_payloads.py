@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 from datetime import datetime
 
+import pytest
 from sqlalchemy import select
 
 from rolewatch.delivery.outbox import enqueue_alerts, enqueue_test
@@ -128,3 +129,30 @@ def test_enqueue_joins_the_callers_transaction(engine, settings, make_alert):
         pass
     with engine.connect() as connection:
         assert connection.execute(select(deliveries)).all() == []
+
+
+@pytest.mark.parametrize(
+    "account, shown",
+    [
+        ("[Verify now](https://verify.example.test/login)", None),
+        ("*m-1* _x_ # y", None),
+        ("m`1", None),
+        ("``m-2``", None),
+        ("`", None),
+        (" m-3", "‹U+0020›m-3"),  # stored before the ingest rule: the edge space made visible
+        ("m-0\u200b2240", "m-0‹U+200B›2240"),
+        ("m-02240\u00a0", "m-02240‹U+00A0›"),
+        ("\u202e04220-m", "‹U+202E›04220-m"),
+    ],
+)
+def test_account_ids_are_one_code_span_in_commonmark(make_alert, account, shown):
+    """The account line parsed by markdown-it-py, a CommonMark 0.31 reference parser: the
+    id is exactly one inline code span whose content is the (visible) id, and no link."""
+    from markdown_it import MarkdownIt
+
+    text = text_summary(make_alert(account=account))
+    line = next(line for line in text.splitlines() if line.startswith("Role change"))
+    tokens = MarkdownIt("commonmark").parseInline(line)[0].children
+    codes = [token.content for token in tokens if token.type == "code_inline"]
+    assert codes == [shown or account]
+    assert not any(token.type in ("link_open", "em_open", "strong_open") for token in tokens)

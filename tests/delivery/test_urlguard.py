@@ -52,6 +52,17 @@ def fake_dns(table):
         ("ftp://files.example.org/hook", "scheme 'ftp' is not supported"),
         ("https://user:pw@hooks.example.org/hook", "user name or password"),
         ("https:///hook", "no host"),
+        # 6to4, RFC 3056 section 2: 2002:V4ADDR::/48 carries the IPv4 address in bits 16-47.
+        ("https://[2002:7f00:1::]/hook", "6to4 address carrying 127.0.0.1, a loopback"),
+        ("https://[2002:a9fe:a9fe::1]/", "6to4 address carrying 169.254.169.254, a cloud"),
+        ("https://[2002:5db8:d822::1]/", "a 6to4 address (carrying 93.184.216.34)"),
+        # NAT64, RFC 6052 section 2.1: 64:ff9b::/96 carries it in the last 32 bits.
+        ("https://[64:ff9b::7f00:1]/hook", "NAT64 address carrying 127.0.0.1, a loopback"),
+        ("https://[64:ff9b::a00:1]/hook", "NAT64 address carrying 10.0.0.1, a private"),
+        # Teredo, RFC 4380 section 4: 2001::/32, server IPv4 in bits 32-63, client IPv4
+        # bit-inverted in the last 32 bits (0x80fffffe = NOT 127.0.0.1).
+        ("https://[2001:0:5db8:d822:8000:63bf:80ff:fffe]/", "Teredo client address carrying 127"),
+        ("https://[2001:0:a9fe:a9fe:8000:63bf:a2c7:2bdd]/", "Teredo server address carrying 169"),
     ],
 )
 def test_refused_urls_say_why(url, reason):

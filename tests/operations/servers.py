@@ -91,6 +91,9 @@ def server_env(database_url: str, **settings) -> dict[str, str]:
     """The environment of a server: this test's settings only, as ROLEWATCH_* variables."""
     env = {k: v for k, v in os.environ.items() if not k.startswith("ROLEWATCH_")}
     env["ROLEWATCH_DATABASE_URL"] = database_url
+    # The fixture sample is dated in 2026: history, whatever today is (tests of the age
+    # limit pass max_event_age themselves).
+    env["ROLEWATCH_MAX_EVENT_AGE"] = "0"
     for name, value in settings.items():
         if isinstance(value, (list, dict, bool)):
             value = json.dumps(value)

@@ -21,7 +21,7 @@ ROUTE_PARAMS = {
 
 
 def _paths(app_client):
-    schema = app_client.client.get("/openapi.json").json()
+    schema = app_client.client.get("/openapi.json", headers=app_client.headers("read")).json()
     for path, operations in schema["paths"].items():
         concrete = path.format(**ROUTE_PARAMS)
         for method in operations:

@@ -46,8 +46,8 @@ def live(tmp_path_factory):
 def test_no_request_gets_a_server_error(live):
     """Every operation, positive and negative examples (schemathesis generation modes)."""
     server, keys = live
-    schema = schemathesis.openapi.from_url(server.url + "/openapi.json")
     headers = {"Authorization": f"Bearer {keys['admin']}"}
+    schema = schemathesis.openapi.from_url(server.url + "/openapi.json", headers=headers)
     failures = []
     operations = [result.ok() for result in schema.get_all_operations()]
     assert len(operations) >= 19

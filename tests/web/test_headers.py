@@ -21,13 +21,14 @@ from rolewatch.store.db import open_store
 from rolewatch.store.keys import create_key
 
 from .conftest import serve
+from .signin import form_token, sign_in_http
 
 EXPECTED = {
     "content-security-policy": "default-src 'self'; img-src 'self' data:; style-src 'self'; "
     "script-src 'self'; object-src 'none'; base-uri 'none'; form-action 'self'; "
     "frame-ancestors 'none'",
     "x-content-type-options": "nosniff",
-    "referrer-policy": "no-referrer",
+    "referrer-policy": "same-origin",
     "cache-control": "no-store",
 }
 
@@ -53,10 +54,11 @@ def assert_protected(response: httpx.Response) -> None:
 
 def test_sign_out_and_not_found_carry_the_headers(live):
     client, _, key = live
-    signed_in = client.post("/signin", data={"key": key, "next": "/roles"})
+    signed_in = sign_in_http(client, key, "/roles")
     assert signed_in.status_code == 303
     assert_protected(signed_in)
-    signed_out = client.post("/signout")
+    token = form_token(client.get("/roles").text)
+    signed_out = client.post("/signout", data={"token": token})
     assert signed_out.status_code == 303 and signed_out.headers["location"] == "/signin"
     assert_protected(signed_out)
     missing = client.get("/no-such-page")
@@ -90,13 +92,15 @@ def test_a_server_error_carries_the_headers_and_a_request_id(live):
     assert_protected(failed)
 
 
-def test_api_docs_keep_their_scripts(live):
-    """The interactive docs load a script from a CDN and run an inline one: they get every
-    header but the Content-Security-Policy, which would leave them blank."""
-    client, _, _ = live
+def test_no_page_runs_scripts_from_elsewhere(live):
+    """The interactive API docs (a CDN script and an inline one) are not served; the OpenAPI
+    document needs a key like every route but /healthz, and carries the same headers."""
+    client, _, key = live
     for path in ("/docs", "/redoc"):
-        page = client.get(path)
-        assert page.status_code == 200 and "<script" in page.text
-        assert "content-security-policy" not in page.headers
-        for name in ("x-content-type-options", "referrer-policy", "cache-control"):
-            assert page.headers[name] == EXPECTED[name]
+        missing = client.get(path)
+        assert missing.status_code == 404
+        assert_protected(missing)
+    assert client.get("/openapi.json").status_code == 401
+    document = client.get("/openapi.json", headers={"Authorization": f"Bearer {key}"})
+    assert document.status_code == 200 and "/v1/events" in document.json()["paths"]
+    assert_protected(document)

@@ -16,6 +16,9 @@ from rolewatch.clock import now_micros
 from rolewatch.config import load_settings
 from rolewatch.store.db import open_store
 from rolewatch.store.keys import create_key, revoke_key
+from rolewatch.store.sessions import start_session
+
+from .signin import sign_in_http
 
 
 @pytest.fixture(params=["https://rolewatch.example.test", "http://127.0.0.1:8000"])
@@ -35,15 +38,16 @@ def served(request, tmp_path):
 
 def _set_cookie(response) -> SimpleCookie:
     cookie = SimpleCookie()
-    cookie.load(response.headers["set-cookie"])
+    for header in response.headers.get_list("set-cookie"):
+        cookie.load(header)
     return cookie
 
 
 def test_sign_in_cookie_attributes(served):
     client, _, _, key, https = served
-    response = client.post("/signin", data={"key": key, "next": "/roles"}, follow_redirects=False)
+    response = sign_in_http(client, key, "/roles")
     assert response.status_code == 303 and response.headers["location"] == "/roles"
-    morsel = _set_cookie(response)["rolewatch_key"]
+    morsel = _set_cookie(response)["rolewatch_session"]
     assert morsel["httponly"] is True
     assert morsel["samesite"] == "strict"
     assert bool(morsel["secure"]) is https  # Secure exactly when public_url is https
@@ -53,13 +57,13 @@ def test_sign_in_cookie_attributes(served):
 def test_next_never_leaves_the_site(served):
     client, _, _, key, _ = served
     for target in ("https://elsewhere.example.test/", "//elsewhere.example.test/", "/\\evil"):
-        response = client.post("/signin", data={"key": key, "next": target}, follow_redirects=False)
+        response = sign_in_http(client, key, target)
         assert response.headers["location"] == "/"
 
 
 def test_pages_send_protective_headers_and_no_secret(served):
     client, _, record, key, _ = served
-    client.post("/signin", data={"key": key, "next": "/"}, follow_redirects=False)
+    sign_in_http(client, key)
     response = client.get("/alerts")
     assert response.status_code == 200
     assert "script-src 'self'" in response.headers["content-security-policy"]
@@ -70,7 +74,7 @@ def test_pages_send_protective_headers_and_no_secret(served):
 
 def test_revoked_key_is_signed_out(served):
     client, engine, record, key, _ = served
-    client.post("/signin", data={"key": key, "next": "/"}, follow_redirects=False)
+    sign_in_http(client, key)
     assert client.get("/roles", follow_redirects=False).status_code == 200
     revoke_key(engine, record.key_id, now_us=now_micros())
     response = client.get("/roles", follow_redirects=False)
@@ -82,9 +86,13 @@ def test_a_key_without_read_scope_gets_no_page(served):
     page, the rename form included (it would otherwise show the role catalogue)."""
     client, engine, _, _, _ = served
     _, ingest_only = create_key(engine, ["ingest"], label="ingest only", now_us=now_micros())
-    refused = client.post("/signin", data={"key": ingest_only, "next": "/"})
+    refused = sign_in_http(client, ingest_only)
     assert refused.status_code == 401 and "lacks the read scope" in refused.text
-    client.cookies.set("rolewatch_key", ingest_only)
+    # A session for that key made in the store directly: its cookie opens no page either.
+    token = start_session(
+        engine, ingest_only.split("_")[1], now_us=now_micros(), lifetime_us=3_600_000_000
+    )
+    client.cookies.set("rolewatch_session", token)
     for method, path in (
         ("GET", "/alerts"),
         ("GET", "/roles"),

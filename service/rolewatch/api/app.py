@@ -10,7 +10,7 @@ import uuid
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
-from fastapi import APIRouter, Depends, FastAPI
+from fastapi import APIRouter, Depends, FastAPI, Request
 from fastapi.responses import JSONResponse, PlainTextResponse, Response
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import MutableHeaders
@@ -18,7 +18,8 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from rolewatch import metrics
 from rolewatch.api.auth import check_scope
-from rolewatch.api.deps import BearerCredentials, SettingsDep, StoreDep
+from rolewatch.api.deps import BearerCredentials, ReadKey, SettingsDep, StoreDep
+from rolewatch.api.limits import BodyGate
 from rolewatch.api.models import Health
 from rolewatch.api.routers import (
     accounts,
@@ -45,19 +46,19 @@ SECURITY_HEADERS = {
     "script-src 'self'; object-src 'none'; base-uri 'none'; form-action 'self'; "
     "frame-ancestors 'none'",
     "X-Content-Type-Options": "nosniff",
-    "Referrer-Policy": "no-referrer",
+    # same-origin, not no-referrer: with no-referrer browsers send "Origin: null" on the
+    # pages' own form posts (Fetch standard, "append a request Origin header"), and the
+    # sign-in and sign-out forms are checked by their Origin (web/session.py).
+    "Referrer-Policy": "same-origin",
     "Cache-Control": "no-store",
 }
-DOCS_URL = "/docs"
-REDOC_URL = "/redoc"
-# The interactive API docs load their script from a CDN and run an inline script, which the
-# policy above forbids; those pages get every header but the Content-Security-Policy.
-_DOCS_PAGES = frozenset({DOCS_URL, DOCS_URL + "/oauth2-redirect", REDOC_URL})
+OPENAPI_URL = "/openapi.json"
 
 DESCRIPTION = """Streaming detection of structural role changes in an interaction graph.
 
 Post events to `/v1/events`; windows close automatically; query account role histories,
-roles, windows and alerts. Every route except `/healthz` needs an API key:
+roles, windows and alerts. Every route except `/healthz` (this document included) needs an
+API key:
 `Authorization: Bearer rwk_<key_id>_<secret>` (make one with `rolewatch keys create --scope read`).
 Scopes: ingest, read, review, admin (admin implies the others; review implies read).
 
@@ -80,7 +81,6 @@ class SecurityHeaders:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
-        exempt = ("Content-Security-Policy",) if scope["path"] in _DOCS_PAGES else ()
         started = False
 
         async def send_with_headers(message: Message) -> None:
@@ -89,8 +89,7 @@ class SecurityHeaders:
                 started = True
                 headers = MutableHeaders(scope=message)
                 for name, value in SECURITY_HEADERS.items():
-                    if name not in exempt:
-                        headers[name] = value
+                    headers[name] = value
             await send(message)
 
         try:
@@ -188,6 +187,13 @@ async def metrics_endpoint() -> Response:
     return Response(body, media_type=content_type)
 
 
+@service.get(OPENAPI_URL, include_in_schema=False)
+async def openapi_document(request: Request, _key: ReadKey) -> JSONResponse:
+    """The OpenAPI document (read scope). No interactive documentation page is served: it
+    would need scripts from outside the package; load this document into a local viewer."""
+    return JSONResponse(request.app.openapi())
+
+
 def create_app(settings: Settings, *, run_jobs: bool | None = None) -> FastAPI:
     """The rolewatch application for ``settings``.
 
@@ -228,11 +234,12 @@ def create_app(settings: Settings, *, run_jobs: bool | None = None) -> FastAPI:
         version="0.1.0",
         description=DESCRIPTION,
         lifespan=lifespan,
-        docs_url=DOCS_URL,
-        redoc_url=REDOC_URL,
-        openapi_url="/openapi.json",
+        docs_url=None,
+        redoc_url=None,
+        openapi_url=None,
     )
     app.state.settings = settings
+    app.add_middleware(BodyGate, settings=settings)  # inside SecurityHeaders: its refusals too
     app.add_middleware(SecurityHeaders)
     app.add_middleware(RequestContext)  # outermost: its log line and id cover the 500s too
     for module in (events, accounts, roles, windows, alerts, admin):

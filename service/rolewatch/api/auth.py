@@ -21,40 +21,54 @@ bearer = HTTPBearer(
     "`Authorization: Bearer rwk_<key_id>_<secret>`.",
 )
 REALM = 'Bearer realm="rolewatch"'
+MISSING_KEY = (
+    "missing API key: send the header 'Authorization: Bearer <key>' with a key made "
+    "by 'rolewatch keys create'"
+)
+UNKNOWN_KEY = (
+    "invalid API key: it is unknown, revoked or mistyped; make a new one with "
+    "'rolewatch keys create'"
+)
+
+
+def challenge(invalid: bool) -> str:
+    """The ``WWW-Authenticate`` value of a 401 (RFC 6750 section 3)."""
+    return REALM + (', error="invalid_token"' if invalid else "")
 
 
 def _unauthorized(message: str, *, invalid: bool) -> HTTPException:
-    challenge = REALM + (', error="invalid_token"' if invalid else "")
     return HTTPException(
         status_code=status.HTTP_401_UNAUTHORIZED,
         detail=message,
-        headers={"WWW-Authenticate": challenge},
+        headers={"WWW-Authenticate": challenge(invalid)},
     )
 
 
-def authenticate(engine: Engine, credentials: HTTPAuthorizationCredentials | None) -> ApiKey:
-    """The key presented in ``credentials``; raises 401 when there is none or it is not valid."""
+def authenticate(
+    engine: Engine,
+    credentials: HTTPAuthorizationCredentials | None,
+    checked: ApiKey | None = None,
+) -> ApiKey:
+    """The key presented in ``credentials``; raises 401 when there is none or it is not valid.
+
+    ``checked`` is the key the body gate (:mod:`rolewatch.api.limits`) already verified for
+    these credentials in this request, if any."""
     if credentials is None:
-        raise _unauthorized(
-            "missing API key: send the header 'Authorization: Bearer <key>' with a key made "
-            "by 'rolewatch keys create'",
-            invalid=False,
-        )
-    key = verify_key(engine, credentials.credentials)
+        raise _unauthorized(MISSING_KEY, invalid=False)
+    key = checked or verify_key(engine, credentials.credentials)
     if key is None:
-        raise _unauthorized(
-            "invalid API key: it is unknown, revoked or mistyped; make a new one with "
-            "'rolewatch keys create'",
-            invalid=True,
-        )
+        raise _unauthorized(UNKNOWN_KEY, invalid=True)
     return key
 
 
 def check_scope(
-    engine: Engine, credentials: HTTPAuthorizationCredentials | None, scope: str
+    engine: Engine,
+    credentials: HTTPAuthorizationCredentials | None,
+    scope: str,
+    checked: ApiKey | None = None,
 ) -> ApiKey:
     """The presented key when it is allowed ``scope``; raises 401 or 403 otherwise."""
-    key = authenticate(engine, credentials)
+    key = authenticate(engine, credentials, checked)
     if not key.allows(scope):
         raise HTTPException(
             status_code=status.HTTP_403_FORBIDDEN,

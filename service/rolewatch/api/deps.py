@@ -20,6 +20,7 @@ from fastapi.security import HTTPAuthorizationCredentials
 from sqlalchemy.engine import Engine
 
 from rolewatch.api.auth import bearer, check_scope
+from rolewatch.api.limits import checked_key
 from rolewatch.config import Settings
 from rolewatch.store.keys import SCOPES, ApiKey
 from rolewatch.web import session
@@ -40,13 +41,18 @@ StoreDep = Annotated[Engine, Depends(get_store)]
 BearerCredentials = Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)]
 
 
-def require_scope(scope: str) -> Callable[[Engine, HTTPAuthorizationCredentials | None], ApiKey]:
+def require_scope(
+    scope: str,
+) -> Callable[[Request, Engine, HTTPAuthorizationCredentials | None], ApiKey]:
     """A dependency that admits keys allowed ``scope`` and returns the key (401/403 otherwise)."""
     if scope not in SCOPES:
         raise ValueError(f"unknown scope {scope!r}")
 
-    def dependency(store: StoreDep, credentials: BearerCredentials) -> ApiKey:
-        return check_scope(store, credentials, scope)
+    def dependency(request: Request, store: StoreDep, credentials: BearerCredentials) -> ApiKey:
+        checked = (
+            None if credentials is None else checked_key(request.scope, credentials.credentials)
+        )
+        return check_scope(store, credentials, scope, checked)
 
     dependency.__name__ = f"require_{scope}"
     return dependency

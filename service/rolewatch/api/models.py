@@ -1,5 +1,5 @@
 """Pydantic v2 models of the wire format (README.md "Posting events", docs/CONTRACTS.md),
-used for validation of small request bodies and for the OpenAPI document at /docs.
+used for validation of small request bodies and for the OpenAPI document at /openapi.json.
 
 Events themselves are validated one by one by :mod:`rolewatch.store.events` in plain Python
 (one model per event would cost more than the whole insert, and a bad event must not lose
@@ -54,9 +54,16 @@ class Rejection(BaseModel):
 
 class IngestResponse(BaseModel):
     accepted: int = Field(..., description="Events newly stored.")
-    duplicates: int = Field(..., description="Events whose id was already stored.")
+    duplicates: int = Field(
+        ..., description="Events whose id was already stored with the same content."
+    )
     late: int = Field(0, description="Accepted events whose window had already closed.")
     rejected: list[Rejection]
+    conflicts: list[Rejection] = Field(
+        default_factory=list,
+        description="Events whose id is already stored with other content; the stored event "
+        "is kept.",
+    )
 
 
 class Problem(BaseModel):

@@ -134,6 +134,7 @@ def _serve_api(path: Path, port: int) -> subprocess.Popen:
         ROLEWATCH_DATABASE_URL=f"sqlite:///{path}",
         ROLEWATCH_LOG_LEVEL="WARNING",
         ROLEWATCH_MAX_BATCH_EVENTS="10000",
+        ROLEWATCH_MAX_EVENT_AGE="0",  # the generated events are dated January 2026
     )
     env.pop("ROLEWATCH_CONFIG", None)
     command = ["serve", "--host", "127.0.0.1", "--port", str(port), "--role", "api"]

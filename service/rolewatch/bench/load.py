@@ -45,7 +45,8 @@ def _prepare(database_url: str) -> tuple[str, str, int, list[str]]:
     from rolewatch.store.events import ingest, parse_time_us
     from rolewatch.store.keys import create_key
 
-    settings = load_settings(database_url=database_url)
+    # The fixture sample is dated January to March 2026: history, whatever today is.
+    settings = load_settings(database_url=database_url, max_event_age="0")
     engine = open_store(settings)
     try:
         with open(SAMPLE, encoding="utf-8") as handle:

@@ -6,7 +6,10 @@ every retry carries identical bytes under the same ``webhook-id``.
 The ``text`` form goes to chat channels, where account ids and role names are *data*: they
 must never become mentions, channel pings or links. Every value taken from the alert has its
 control characters removed, ``@`` replaced by the full-width ``＠`` and angle brackets by
-``‹ ›`` (chat markup such as ``<!channel>`` or ``<@U123>`` needs them).
+``‹ ›`` (chat markup such as ``<!channel>`` or ``<@U123>`` needs them). The account id
+keeps every other character, in a Markdown code span, with each character a reader could miss
+written as ``‹U+XXXX›`` (:mod:`rolewatch.delivery.markdown`): two ids that look alike must
+not read the same.
 """
 
 from __future__ import annotations
@@ -18,6 +21,7 @@ from typing import Any
 from urllib.parse import quote
 
 from rolewatch.clock import to_rfc3339
+from rolewatch.delivery.markdown import account_code
 
 ALERT_RAISED = "alert.raised"
 ALERT_TEST = "alert.test"
@@ -92,7 +96,7 @@ def text_summary(
     lines = []
     if event_type == ALERT_TEST:
         lines.append("TEST — a test message from rolewatch; no account changed role.")
-    lines.append(f"Role change for account {plain(alert.get('account'), 200)}")
+    lines.append(f"Role change for account {account_code(alert.get('account'), _MARKUP)}")
     window = ""
     if alert.get("window_start") and alert.get("window_end"):
         window = f" (window {plain(alert['window_start'], 40)} to {plain(alert['window_end'], 40)})"

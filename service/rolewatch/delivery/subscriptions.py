@@ -17,7 +17,7 @@ from rolewatch.clock import to_rfc3339
 from rolewatch.config import Settings
 from rolewatch.delivery.ids import subscription_id
 from rolewatch.delivery.signing import new_secret
-from rolewatch.delivery.urlguard import Resolver, check_url_for
+from rolewatch.delivery.urlguard import CheckedURL, Resolver, check_url_for
 from rolewatch.store import outbox as outbox_store
 from rolewatch.store import subscriptions as subscription_store
 from rolewatch.store.db import Connection
@@ -115,12 +115,16 @@ def create_subscription(
     now_us: int,
     resolver: Resolver | None = None,
     events: list[str] | None = None,
+    checked: CheckedURL | None = None,
 ) -> NewSecret:
     """Check ``url`` (``UnsafeURL`` on refusal), store the subscription, return it with its
-    secret. ``events`` chooses the event types sent (default: alerts only)."""
+    secret. ``events`` chooses the event types sent (default: alerts only). ``checked`` is the
+    result of :func:`check_url_for` when the caller checked the URL before its transaction
+    (the DNS lookup must not hold the write lock)."""
     _validate(fmt, min_score, roles)
     event_types = _check_events(events)
-    check_url_for(url, settings, resolver)
+    if checked is None or checked.url != url:
+        check_url_for(url, settings, resolver)
     secret = new_secret()
     record = SubscriptionRecord(
         id=subscription_id(),

@@ -26,6 +26,9 @@ METADATA_ADDRESSES = frozenset(
 )
 #: Shared address space for carrier-grade NAT (RFC 6598); not "private" to Python.
 SHARED_ADDRESS_SPACE = ipaddress.ip_network("100.64.0.0/10")
+#: IPv6 ranges that embed an IPv4 address (see ``_embedded_ipv4``).
+SIX_TO_FOUR = ipaddress.ip_network("2002::/16")  # RFC 3056
+NAT64_PREFIX = ipaddress.ip_network("64:ff9b::/96")  # RFC 6052 well-known prefix
 
 
 class UnsafeURL(ValueError):
@@ -69,13 +72,40 @@ def _parse_ip(text: str) -> IPAddress | None:
         return None
 
 
+def _embedded_ipv4(address: ipaddress.IPv6Address) -> list[tuple[str, ipaddress.IPv4Address]]:
+    """The IPv4 addresses an IPv6 address carries inside it, each with the form's name."""
+    found = []
+    if address in SIX_TO_FOUR and address.sixtofour is not None:
+        # RFC 3056 section 2: 2002:V4ADDR::/48, the IPv4 address in bits 16-47.
+        found.append(("6to4", address.sixtofour))
+    if address in NAT64_PREFIX:
+        # RFC 6052 section 2.1-2.2: the well-known prefix 64:ff9b::/96, IPv4 in the last 32 bits.
+        found.append(("NAT64", ipaddress.IPv4Address(int(address) & 0xFFFF_FFFF)))
+    if address.teredo is not None:
+        # RFC 4380 section 4: 2001::/32, the Teredo server's IPv4 in bits 32-63 and the
+        # client's, bit-inverted, in the last 32 bits (ipaddress undoes the inversion).
+        server, client = address.teredo
+        found += [("Teredo server", server), ("Teredo client", client)]
+    return found
+
+
 def blocked_reason(address: IPAddress) -> str | None:
-    """Why ``address`` must not be reached, or None when it is an ordinary public address."""
+    """Why ``address`` must not be reached, or None when it is an ordinary public address.
+
+    IPv6 addresses that carry an IPv4 address (IPv4-mapped, 6to4, NAT64, Teredo) are judged
+    by the IPv4 address as well; 6to4 is refused whole (its relays are deprecated, RFC 7526).
+    """
     if isinstance(address, ipaddress.IPv6Address):
         mapped = address.ipv4_mapped
         if mapped is not None:
             inner = blocked_reason(mapped)
             return f"the IPv4-mapped form of {mapped}, {inner}" if inner else None
+        for form, inner_address in _embedded_ipv4(address):
+            inner = blocked_reason(inner_address)
+            if inner:
+                return f"a {form} address carrying {inner_address}, {inner}"
+        if address in SIX_TO_FOUR:
+            return f"a 6to4 address (carrying {address.sixtofour}); 6to4 is deprecated"
     if address in METADATA_ADDRESSES:
         return "a cloud metadata address"
     if address.is_loopback:

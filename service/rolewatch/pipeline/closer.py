@@ -118,11 +118,33 @@ def close_due_windows(
             end_us = next_window_end(geometry, state)
             if end_us is None or not is_due(geometry, state, end_us, now, drain=drain):
                 break
+            end_us = _first_window_with_events(engine, geometry, end_us)
+            if end_us is None or not is_due(geometry, state, end_us, now, drain=drain):
+                break
             for summary in close_window(engine, settings, end_us, now_us=now):
                 # A training window is reported when it is recorded and again when the end
                 # of training back-fills it: one summary per window, the latest.
                 closed[summary.id] = summary
     return list(closed.values())
+
+
+def _first_window_with_events(engine: Engine, geometry: WindowGeometry, end_us: int) -> int | None:
+    """``end_us``, or the end of the first later window holding an event when the window
+    ending at ``end_us`` holds none: a run of empty windows (one stray old event, a pause in
+    the stream) is skipped, never recorded, so training never fits on empty windows. None
+    when no event lies at or after the window's start."""
+    with engine.connect() as connection:
+        first = stored_windows.first_event_time_from(connection, geometry.start_of(end_us))
+    if first is None:
+        return None
+    found = max(end_us, geometry.end_after(first))
+    if found != end_us:
+        skipped = (found - end_us) // geometry.period_us
+        log.info(
+            "skipped empty windows",
+            extra={"fields": {"skipped": skipped, "next_window_end": to_rfc3339(found)}},
+        )
+    return found
 
 
 def close_window(

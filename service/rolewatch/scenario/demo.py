@@ -121,6 +121,7 @@ def main(args) -> int:
         delivery_backoff="2s",
         log_level="WARNING",
         sqlite_synchronous="NORMAL",
+        max_event_age="0",  # the scenario's weeks are fixed dates, history whatever today is
     )
     configure_logging(settings.log_level, json_lines=settings.log_json)
     engine = open_store(settings)
@@ -221,7 +222,7 @@ def main(args) -> int:
     _say(f"  web pages:   {base_url}/   (sign in with the key below)")
     _say(f"  API key:     {admin_key}")
     _say(f"  reviewer key: {reviewer_key}   (review scope: can confirm and dismiss cases)")
-    _say(f"  API docs:    {base_url}/docs")
+    _say(f"  API schema:  {base_url}/openapi.json   (with the key, as a Bearer header)")
     if caught:
         _say(f"  a taken-over account: {base_url}/accounts/{caught[0]}")
     _say("  Alerts are leads for human review, not verdicts.")

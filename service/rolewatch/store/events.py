@@ -32,6 +32,8 @@ from sqlalchemy.engine import Connection, Engine
 from rolewatch import metrics
 from rolewatch.clock import to_rfc3339
 from rolewatch.config import Settings
+from rolewatch.identifiers import plain_ascii, text_problem
+from rolewatch.store.conflicts import find_conflicts
 from rolewatch.store.db import lock_windows, write_transaction
 from rolewatch.store.schema import (
     MAX_ACCOUNT_CHARS,
@@ -48,11 +50,16 @@ _FIELD_SET = frozenset(FIELDS)
 EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
 _ONE_US = timedelta(microseconds=1)
 # RFC 3339 section 5.6 date-time; "T" may be written "t" or a space (section 5.6, NOTE).
+# Digits are ASCII only (RFC 3339 section 5.6 uses the ABNF DIGIT, %x30-39), so full-width
+# and other Unicode digits are refused.
 _RFC3339 = re.compile(
-    r"(\d{4})-(\d{2})-(\d{2})[Tt ](\d{2}):(\d{2}):(\d{2})(\.\d{1,9})?([Zz]|[+-]\d{2}:\d{2})?"
+    r"([0-9]{4})-([0-9]{2})-([0-9]{2})[Tt ]([0-9]{2}):([0-9]{2}):([0-9]{2})(\.[0-9]{1,9})?"
+    r"([Zz]|[+-][0-9]{2}:[0-9]{2})?"
 )
-# C0 and C1 control characters, and lone UTF-16 surrogates (not encodable as UTF-8).
-_FORBIDDEN = re.compile("[\x00-\x1f\x7f-\x9f\ud800-\udfff]")
+_BEFORE_YEAR_ONE = (
+    "is before the year 1 in UTC; events must be no older than max_event_age and never "
+    "before 1970-01-01T00:00:00Z"
+)
 
 
 class InvalidEvent:
@@ -75,6 +82,7 @@ class IngestResult:
     duplicates: int = 0
     late: int = 0
     rejected: list[dict[str, Any]] = field(default_factory=list)
+    conflicts: list[dict[str, Any]] = field(default_factory=list)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -82,6 +90,7 @@ class IngestResult:
             "duplicates": self.duplicates,
             "late": self.late,
             "rejected": self.rejected,
+            "conflicts": self.conflicts,
         }
 
 
@@ -110,6 +119,8 @@ def parse_time_us(value: Any) -> int:
         return (datetime.fromisoformat(value) - EPOCH) // _ONE_US
     except ValueError:
         pass  # lowercase t/z, or an impossible date: the checks below say which
+    except OverflowError:  # year 1 with a positive offset: before the year 1 in UTC
+        raise _Reject(f"time: {_show(value)} {_BEFORE_YEAR_ONE}") from None
     year, month, day, hour, minute, second = (int(match.group(i)) for i in range(1, 7))
     fraction = match.group(7) or ""
     micro = int((fraction[1:] + "000000")[:6]) if fraction else 0
@@ -127,7 +138,10 @@ def parse_time_us(value: Any) -> int:
         raise _Reject(
             f"time: {_show(value)} is not an RFC 3339 timestamp with offset ({error})"
         ) from None
-    return (moment - EPOCH) // _ONE_US
+    try:
+        return (moment - EPOCH) // _ONE_US
+    except OverflowError:
+        raise _Reject(f"time: {_show(value)} {_BEFORE_YEAR_ONE}") from None
 
 
 def _canonical_time(time_us: int) -> str:
@@ -207,12 +221,9 @@ def _text(event: dict, name: str, limit: int) -> str | None:
         raise _Reject(f"{name}: must not be empty")
     if len(value) > limit:
         raise _Reject(f"{name}: {len(value)} characters, at most {limit} allowed")
-    bad = _FORBIDDEN.search(value)
-    if bad is not None:
-        raise _Reject(
-            f"{name}: contains the control character U+{ord(bad.group()):04X} at position "
-            f"{bad.start()}; remove it"
-        )
+    problem = text_problem(value)
+    if problem is not None:
+        raise _Reject(f"{name}: {problem} (README.md, ingest rules)")
     return value
 
 
@@ -233,7 +244,7 @@ def _weight(event: dict) -> float:
     return number
 
 
-def _fast_event(event: Any, max_time_us: int):
+def _fast_event(event: Any, max_time_us: int, min_time_us: int):
     """The common case of a well-formed event, checked in as few steps as possible.
 
     Returns the stored tuple, or None when anything is unusual; :func:`validate_event` then
@@ -254,17 +265,16 @@ def _fast_event(event: Any, max_time_us: int):
         or not 0 < len(target) <= MAX_ACCOUNT_CHARS
     ):
         return None
-    text = actor + target
+    if not (plain_ascii(actor) and plain_ascii(target)):
+        return None
     if kind is not None:
-        if type(kind) is not str or not 0 < len(kind) <= MAX_KIND_CHARS:
+        if type(kind) is not str or not 0 < len(kind) <= MAX_KIND_CHARS or not plain_ascii(kind):
             return None
-        text += kind
     if event_id is not None:
         if type(event_id) is not str or not 0 < len(event_id) <= MAX_ID_CHARS:
             return None
-        text += event_id
-    if _FORBIDDEN.search(text) is not None:
-        return None
+        if not plain_ascii(event_id):
+            return None
     weight_type = type(weight)
     if weight_type is int:
         if not 0 <= weight < 2**53:
@@ -296,24 +306,27 @@ def _fast_event(event: Any, max_time_us: int):
         return None
     try:
         moment = datetime.fromisoformat(time_value)
-    except ValueError:
+        if moment.tzinfo is None:
+            return None
+        time_us = (moment - EPOCH) // _ONE_US
+    except (ValueError, OverflowError):
         return None
-    if moment.tzinfo is None:
-        return None
-    time_us = (moment - EPOCH) // _ONE_US
-    if time_us > max_time_us:
+    if not min_time_us <= time_us <= max_time_us:
         return None
     if event_id is None:
         event_id = derived_event_id(time_us, actor, target, kind, weight)
     return event_id, time_us, actor, target, kind, weight
 
 
-def validate_event(event: Any, max_time_us: int) -> tuple[str, int, str, str, str | None, float]:
+def validate_event(
+    event: Any, max_time_us: int, min_time_us: int = 0
+) -> tuple[str, int, str, str, str | None, float]:
     """Check one wire event; return ``(event_id, time_us, actor, target, kind, weight)``.
 
-    Raises ``ValueError`` whose message names the field and what is wrong with it.
+    Times must lie in ``[min_time_us, max_time_us]`` (``min_time_us`` is never before the
+    Unix epoch). Raises ``ValueError`` whose message names the field and what is wrong.
     """
-    fast = _fast_event(event, max_time_us)
+    fast = _fast_event(event, max_time_us, min_time_us)
     if fast is not None:
         return fast
     if isinstance(event, InvalidEvent):
@@ -340,10 +353,28 @@ def validate_event(event: Any, max_time_us: int) -> tuple[str, int, str, str, st
             f"time: {_show(time_value)} is in the future beyond the allowed clock skew "
             f"(latest accepted now: {to_rfc3339(max_time_us)}); check the sender's clock"
         )
+    if time_us < min_time_us:
+        raise _Reject(_too_old(time_value, min_time_us))
     event_id = _text(event, "id", MAX_ID_CHARS)
     if event_id is None:
         event_id = derived_event_id(time_us, actor, target, kind, weight)
     return event_id, time_us, actor, target, kind, weight
+
+
+def _too_old(time_value: str, min_time_us: int) -> str:
+    if min_time_us <= 0:
+        return f"time: {_show(time_value)} is before 1970-01-01T00:00:00Z, the earliest time kept"
+    return (
+        f"time: {_show(time_value)} is older than max_event_age allows (oldest accepted now: "
+        f"{to_rfc3339(min_time_us)}); to replay older history, raise max_event_age"
+    )
+
+
+def oldest_accepted_us(settings: Settings, now_us: int) -> int:
+    """The earliest event time ingest accepts at ``now_us``: ``now - max_event_age``, never
+    before the Unix epoch (``max_event_age = 0`` leaves only that floor)."""
+    age_us = settings.max_event_age // _ONE_US
+    return max(0, now_us - age_us) if age_us > 0 else 0
 
 
 # The one raw statement left: the batch insert runs on the DBAPI cursor. Measured side by
@@ -401,7 +432,9 @@ def _set_last_ingest(connection: Connection, now_us: int) -> None:
     )
 
 
-def _store(connection: Connection, rows: list[tuple], now_us: int, result: IngestResult) -> None:
+def _store(
+    connection: Connection, rows: list[tuple], indexes: list[int], now_us: int, result: IngestResult
+) -> None:
     """Insert validated rows; the work done here holds the write lock, so it is kept short."""
     lock_windows(connection, exclusive=False)
     closed_end = connection.execute(
@@ -428,14 +461,18 @@ def _store(connection: Connection, rows: list[tuple], now_us: int, result: Inges
     _set_last_ingest(connection, now_us)
     result.accepted = inserted + len(late_times)
     result.late = len(late_times)
-    result.duplicates = len(rows) - result.accepted
+    if result.accepted < len(rows):  # some ids were stored already: same content or not?
+        result.conflicts = find_conflicts(connection, rows, indexes)
+    result.duplicates = len(rows) - result.accepted - len(result.conflicts)
 
 
 class _Job:
-    __slots__ = ("rows", "now_us", "result", "done", "error")
+    __slots__ = ("rows", "indexes", "now_us", "result", "done", "error")
 
-    def __init__(self, rows: list[tuple], now_us: int, result: IngestResult) -> None:
-        self.rows, self.now_us, self.result = rows, now_us, result
+    def __init__(
+        self, rows: list[tuple], indexes: list[int], now_us: int, result: IngestResult
+    ) -> None:
+        self.rows, self.indexes, self.now_us, self.result = rows, indexes, now_us, result
         self.done = False
         self.error: BaseException | None = None
 
@@ -457,8 +494,10 @@ class _GroupWriter:
         self.pending: list[_Job] = []
         self.busy = False
 
-    def write(self, rows: list[tuple], now_us: int, result: IngestResult) -> None:
-        job = _Job(rows, now_us, result)
+    def write(
+        self, rows: list[tuple], indexes: list[int], now_us: int, result: IngestResult
+    ) -> None:
+        job = _Job(rows, indexes, now_us, result)
         with self.condition:
             self.pending.append(job)
             while not job.done and self.busy:
@@ -484,7 +523,7 @@ class _GroupWriter:
         try:
             with write_transaction(self.engine) as connection:
                 for member in group:
-                    _store(connection, member.rows, member.now_us, member.result)
+                    _store(connection, member.rows, member.indexes, member.now_us, member.result)
             return
         except Exception as error:
             if len(group) == 1:
@@ -492,9 +531,10 @@ class _GroupWriter:
                 return
         for member in group:  # the shared transaction failed: each batch on its own
             member.result.accepted = member.result.duplicates = member.result.late = 0
+            member.result.conflicts = []
             try:
                 with write_transaction(self.engine) as connection:
-                    _store(connection, member.rows, member.now_us, member.result)
+                    _store(connection, member.rows, member.indexes, member.now_us, member.result)
             except Exception as error:
                 member.error = error
 
@@ -520,20 +560,25 @@ def ingest(
     ``now_us`` is the receive time (microseconds, UTC): it bounds the future clock skew,
     is stored as each event's ``received_us`` and becomes ``service_state.last_ingest_us``
     when the batch holds at least one valid event. Returns counts of accepted (newly stored),
-    duplicate (id already stored, or repeated in the batch) and late events, and the rejected
-    ones as ``{"index": i, "error": "..."}`` in input order.
+    duplicate (id already stored with the same content, or repeated in the batch) and late
+    events, the rejected ones as ``{"index": i, "error": "..."}`` in input order, and the
+    conflicts (an id already stored with other content; the stored event is kept) in the
+    same form.
     """
     result = IngestResult()
     max_time_us = now_us + settings.max_future_skew // _ONE_US
+    min_time_us = oldest_accepted_us(settings, now_us)
     rows: list[tuple] = []
+    indexes: list[int] = []
     rejected = result.rejected
     for index, event in enumerate(raw_events):
         try:
-            rows.append(validate_event(event, max_time_us))
+            rows.append(validate_event(event, max_time_us, min_time_us))
+            indexes.append(index)
         except _Reject as error:
             rejected.append({"index": index, "error": str(error)})
     if rows:
-        _group_writer(engine).write(rows, now_us, result)
+        _group_writer(engine).write(rows, indexes, now_us, result)
         metrics.EVENTS_ACCEPTED.inc(result.accepted)
         metrics.EVENTS_DUPLICATE.inc(result.duplicates)
         metrics.EVENTS_LATE.inc(result.late)

@@ -18,7 +18,7 @@ from sqlalchemy import insert, select, update
 from sqlalchemy.engine import Connection, Engine
 
 from rolewatch.store.db import write_transaction
-from rolewatch.store.schema import api_keys
+from rolewatch.store.schema import api_keys, web_sessions
 
 SCOPES = ("ingest", "read", "admin", "review")
 PREFIX = "rwk_"
@@ -146,14 +146,28 @@ def list_keys(engine: Engine, *, include_revoked: bool = True) -> list[ApiKey]:
 
 
 def revoke_key(engine: Engine, key_id: str, *, now_us: int) -> bool:
-    """Revoke a key by id; False when no active key has that id."""
+    """Revoke a key by id, ending its web sessions; False when no active key has that id."""
     with write_transaction(engine) as connection:
         changed = connection.execute(
             update(api_keys)
             .where(api_keys.c.key_id == key_id, api_keys.c.revoked_us.is_(None))
             .values(revoked_us=now_us)
         ).rowcount
+        connection.execute(
+            update(web_sessions)
+            .where(web_sessions.c.key_id == key_id, web_sessions.c.ended_us.is_(None))
+            .values(ended_us=now_us)
+        )
     return changed == 1
+
+
+def active_key(engine: Engine, key_id: str) -> ApiKey | None:
+    """The key record with id ``key_id`` unless it is unknown or revoked."""
+    with engine.connect() as connection:
+        row = connection.execute(select(api_keys).where(api_keys.c.key_id == key_id)).first()
+    if row is None or row.revoked_us is not None:
+        return None
+    return _record(row)
 
 
 def verify_key(engine: Engine, key: str) -> ApiKey | None:

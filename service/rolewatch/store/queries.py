@@ -7,6 +7,7 @@ form; :func:`rolewatch.clock.to_rfc3339` turns them into RFC 3339 "Z" strings.
 from __future__ import annotations
 
 import json
+import re
 from dataclasses import dataclass
 from typing import Any
 
@@ -16,7 +17,6 @@ from sqlalchemy.engine import Engine
 from rolewatch.config import Settings
 from rolewatch.store.alerts import StoredAlert, alert_form
 from rolewatch.store.db import write_transaction
-from rolewatch.store.events import _FORBIDDEN
 from rolewatch.store.schema import (
     MAX_ACCOUNT_CHARS,
     alerts,
@@ -36,10 +36,16 @@ def _us(value) -> int:
 # --- accounts --------------------------------------------------------------------------------
 
 
+# C0 and C1 controls and lone surrogates: ingest has never stored them (PostgreSQL refuses
+# NUL in a parameter). Ingest's current rule (rolewatch.identifiers) refuses more, but ids
+# stored before it must stay reachable.
+_NEVER_STORED = re.compile("[\x00-\x1f\x7f-\x9f\ud800-\udfff]")
+
+
 def _could_be_stored(account: str) -> bool:
     """False for ids ingest never stores (too long, control characters): such an account
     cannot exist, and PostgreSQL refuses NUL in a query parameter."""
-    return len(account) <= MAX_ACCOUNT_CHARS and not _FORBIDDEN.search(account)
+    return len(account) <= MAX_ACCOUNT_CHARS and not _NEVER_STORED.search(account)
 
 
 def account_exists(engine: Engine, account: str) -> bool:

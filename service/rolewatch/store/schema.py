@@ -221,6 +221,22 @@ service_state = Table(
     Column("value", Text, nullable=False),
 )
 
+# Web sign-in sessions: the browser's cookie holds a random token; only its sha256 is stored.
+# A session ends when it expires, when the person signs out (ended_us), or when its key is
+# revoked (the key is checked on every request).
+web_sessions = Table(
+    "web_sessions",
+    metadata,
+    Column("id", ID, primary_key=True, autoincrement=True),
+    Column("token_hash", String(64), nullable=False, unique=True),
+    Column("key_id", String(32), nullable=False),
+    Column("created_us", BigInteger, nullable=False),
+    Column("expires_us", BigInteger, nullable=False),
+    Column("ended_us", BigInteger, nullable=True),
+    Index("ix_web_sessions_expires_us", "expires_us"),
+)
+
+
 # The review tables (cases, their history, suppressions) live in their own module on this
 # metadata; importing it here registers them for Alembic and create_all.
 from rolewatch.store import review_schema as _review_schema  # noqa: E402,F401

@@ -144,3 +144,10 @@ def insert_window(
 def set_measures(connection: Connection, window_id: int, measures: WindowMeasures) -> None:
     """Fill in the measures of a training window recorded before the model existed."""
     connection.execute(windows.update().where(windows.c.id == window_id).values(**asdict(measures)))
+
+
+def first_event_time_from(connection: Connection, start_us: int) -> int | None:
+    """The earliest stored event time at or after ``start_us`` (late ones included), or None."""
+    return connection.execute(
+        sa.select(sa.func.min(events.c.time_us)).where(events.c.time_us >= start_us)
+    ).scalar()

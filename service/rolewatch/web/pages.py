@@ -17,13 +17,15 @@ from urllib.parse import quote, urlencode
 
 import jinja2
 from fastapi import APIRouter, FastAPI, Form, Request
-from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from fastapi.responses import HTMLResponse, PlainTextResponse, RedirectResponse, Response
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
 from sqlalchemy.engine import Engine
 
 from rolewatch.api.deps import PageKey, SettingsDep, SignInRequired, StoreDep, redirect_to_signin
+from rolewatch.api.integers import INT32_MAX, stored_integer
 from rolewatch.config import Settings
+from rolewatch.identifiers import visible
 from rolewatch.store import queries, summaries
 from rolewatch.store.keys import ApiKey, verify_key
 from rolewatch.web import charts, present, session
@@ -50,17 +52,14 @@ _environment.filters.update(
     feature=present.feature_label,
     day=charts.day,
     account_url=lambda account: "/accounts/" + quote(str(account), safe=""),
+    visible=lambda text: visible(str(text)),
+    shown_id=present.shown_id,
 )
 templates = Jinja2Templates(env=_environment)
 router = APIRouter(include_in_schema=False)
 
 Roles = list[tuple[int, str]]
 """Role ids with their names, in the order the pages show them."""
-
-
-def _secure(settings: Settings) -> bool:
-    """Whether the sign-in cookie gets the Secure attribute (the service is served over https)."""
-    return settings.public_url.lower().startswith("https://")
 
 
 def _render(
@@ -81,9 +80,23 @@ def _page(
 # --- sign-in ---------------------------------------------------------------------------------
 
 
+CROSS_SITE = "This form did not come from this site, or it expired: reload the page and try again."
+
+
+def _signin_page(
+    request: Request, settings: Settings, target: str, error: str | None, status_code: int = 200
+) -> HTMLResponse:
+    """The sign-in form with a fresh form token (also set in its cookie)."""
+    token = session.new_signin_token()
+    context = {"next": target, "error": error, "signin_token": token}
+    response = _render(request, "signin.html", context, status_code)
+    session.set_signin_cookie(response, token, settings)
+    return response
+
+
 @router.get("/signin", response_class=HTMLResponse)
-def signin_form(request: Request, next: str = "/") -> HTMLResponse:
-    return _render(request, "signin.html", {"next": session.safe_next(next), "error": None})
+def signin_form(request: Request, settings: SettingsDep, next: str = "/") -> HTMLResponse:
+    return _signin_page(request, settings, session.safe_next(next), None)
 
 
 @router.post("/signin", response_class=HTMLResponse)
@@ -93,8 +106,11 @@ def signin(
     settings: SettingsDep,
     key: str = Form(""),
     next: str = Form("/"),
+    token: str = Form(""),
 ) -> Response:
     target = session.safe_next(next)
+    if not session.same_site(request, settings) or not session.signin_token_ok(request, token):
+        return _signin_page(request, settings, target, CROSS_SITE, 403)
     key = key.strip()
     found = verify_key(store, key) if key and len(key) <= 300 else None
     if found is None or not found.allows("read"):
@@ -103,16 +119,20 @@ def signin(
             if found is None
             else "That key lacks the read scope; ask an administrator for a read key."
         )
-        return _render(request, "signin.html", {"next": target, "error": error}, 401)
+        return _signin_page(request, settings, target, error, 401)
     response = RedirectResponse(target, status_code=303)
-    session.set_key_cookie(response, key, secure=_secure(settings))
+    session.sign_in(store, response, found, settings)
     return response
 
 
 @router.post("/signout")
-def signout(settings: SettingsDep) -> RedirectResponse:
+def signout(
+    request: Request, store: StoreDep, settings: SettingsDep, token: str = Form("")
+) -> Response:
+    if not session.same_site(request, settings) or not session.form_token_ok(request, token):
+        return PlainTextResponse(CROSS_SITE, status_code=403)
     response = RedirectResponse("/signin", status_code=303)
-    session.clear_key_cookie(response, secure=_secure(settings))
+    session.sign_out(store, request, response, settings)
     return response
 
 
@@ -181,10 +201,13 @@ def alert_queue(
     min_score: str = "",
     date_from: str = "",
     date_to: str = "",
-    before: int | None = None,
+    before: str = "",
 ) -> HTMLResponse:
     filters, errors = _alert_filters(min_score, date_from, date_to)
-    found, next_cursor = queries.list_alerts(store, filters, limit=PAGE_SIZE, cursor=before)
+    cursor = stored_integer(before, low=1)
+    if before and cursor is None:
+        errors.append(f"Page position “{before[:40]}” is not valid; showing the newest alerts.")
+    found, next_cursor = queries.list_alerts(store, filters, limit=PAGE_SIZE, cursor=cursor)
     form = {"min_score": min_score, "date_from": date_from, "date_to": date_to}
     return _page(
         request,
@@ -196,7 +219,7 @@ def alert_queue(
             "errors": errors,
             "form": form,
             "older": _older_link(form, next_cursor),
-            "paged": before is not None,
+            "paged": cursor is not None,
         },
     )
 
@@ -275,10 +298,7 @@ def _pick_window(
     selected_id = None
     window_error = None
     if asked:
-        try:
-            selected_id = int(asked)
-        except ValueError:
-            selected_id = None
+        selected_id = stored_integer(asked, low=1)
         if selected_id not in known_ids:
             window_error = "There is no closed window with that id; showing the latest one."
             selected_id = None
@@ -448,18 +468,21 @@ def _roles_context(engine: Engine) -> dict[str, Any]:
 
 @router.get("/roles", response_class=HTMLResponse)
 def role_catalogue(
-    request: Request, key: PageKey, store: StoreDep, renamed: int | None = None
+    request: Request, key: PageKey, store: StoreDep, renamed: str = ""
 ) -> HTMLResponse:
     context = _roles_context(store)
-    context.update(renamed=renamed, error=None, is_admin=key.allows("admin"))
+    renamed_id = stored_integer(renamed, high=INT32_MAX)
+    context.update(renamed=renamed_id, error=None, is_admin=key.allows("admin"))
     return _page(request, "roles.html", key, context)
 
 
-def _rename_refusal(key: ApiKey, request: Request, token: str, name: str) -> tuple[str, int] | None:
+def _rename_refusal(
+    key: ApiKey, request: Request, settings: Settings, token: str, name: str
+) -> tuple[str, int] | None:
     """Why a rename form is refused (message and status), or None when it may go ahead."""
     if not key.allows("admin"):
         return "Renaming a role needs a key with the admin scope; sign in with one.", 403
-    if not session.form_token_ok(request, token):
+    if not session.same_site(request, settings) or not session.form_token_ok(request, token):
         return "The form expired; reload the page and try again.", 403
     if not name or len(name) > 100 or _CONTROL.search(name):
         return "A role name needs 1 to 100 printable characters.", 422
@@ -471,20 +494,22 @@ def rename_role(
     request: Request,
     key: PageKey,
     store: StoreDep,
-    role_id: int = Form(...),
+    settings: SettingsDep,
+    role_id: str = Form(""),
     name: str = Form(""),
     token: str = Form(""),
 ) -> Response:
     context = _roles_context(store)
     context.update(renamed=None, is_admin=key.allows("admin"))
     name = name.strip()
-    refusal = _rename_refusal(key, request, token, name)
-    if refusal is None and queries.rename_role(store, role_id, name) is None:
-        refusal = f"There is no role {role_id} in the active basis.", 404
+    refusal = _rename_refusal(key, request, settings, token, name)
+    number = stored_integer(role_id, high=INT32_MAX)
+    if refusal is None and (number is None or queries.rename_role(store, number, name) is None):
+        refusal = f"There is no role “{role_id[:40]}” in the active basis.", 404
     if refusal is not None:
         context["error"], status_code = refusal
         return _page(request, "roles.html", key, context, status_code)
-    return RedirectResponse(f"/roles?renamed={role_id}#role-{role_id}", status_code=303)
+    return RedirectResponse(f"/roles?renamed={number}#role-{number}", status_code=303)
 
 
 def include_pages(app: FastAPI) -> None:

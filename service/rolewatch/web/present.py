@@ -5,6 +5,10 @@ from __future__ import annotations
 import math
 from typing import Any
 
+from markupsafe import Markup
+
+from rolewatch.identifiers import visible
+
 
 def number(value: Any) -> str:
     """A feature or count value: whole numbers without decimals, others with two."""
@@ -92,3 +96,10 @@ def strongest_evidence(alert: dict[str, Any]) -> str:
     if moves:
         return _move_text(moves[0])
     return "role mixture changed"
+
+
+def shown_id(value: Any) -> Markup:
+    """An account id as page markup: isolated from the text around it (``<bdi>``, so
+    right-to-left characters cannot reorder its neighbours, HTML 5 section 4.5.24) and with
+    any character a reader could miss written as ``<U+XXXX>`` (escaped for HTML)."""
+    return Markup("<bdi>{}</bdi>").format(visible(str(value)))

@@ -8,6 +8,7 @@ from fastapi import APIRouter, HTTPException, Path, Query, status
 from starlette.concurrency import run_in_threadpool
 
 from rolewatch.api.deps import ReadKey, StoreDep
+from rolewatch.api.integers import stored_integer
 from rolewatch.api.models import Alert, AlertsPage, Problem
 from rolewatch.api.timeparams import time_range
 from rolewatch.store import queries
@@ -37,12 +38,12 @@ async def get_alerts(
     start, end = time_range(from_, to)
     after = None
     if cursor:
-        if not cursor.isdigit():
+        after = stored_integer(cursor, low=1)
+        if after is None:
             raise HTTPException(
                 status.HTTP_400_BAD_REQUEST,
                 detail="cursor: use the next_cursor value of a previous page",
             )
-        after = int(cursor)
     filters = queries.AlertFilters(from_us=start, to_us=end, account=account, min_score=min_score)
     found, next_cursor = await run_in_threadpool(queries.list_alerts, store, filters, limit, after)
     return {"alerts": found, "next_cursor": None if next_cursor is None else str(next_cursor)}

@@ -18,7 +18,7 @@ from rolewatch.api.models import Problem
 from rolewatch.clock import now_micros
 from rolewatch.delivery import subscriptions as store
 from rolewatch.delivery.outbox import enqueue_test
-from rolewatch.delivery.urlguard import UnsafeURL
+from rolewatch.delivery.urlguard import CheckedURL, UnsafeURL, check_url_for
 from rolewatch.store.db import write_transaction
 
 router = APIRouter(tags=["subscriptions"])
@@ -103,7 +103,7 @@ def _not_found(error: LookupError) -> HTTPException:
 async def create(
     engine: StoreDep, settings: SettingsDep, _key: AdminKey, body: SubscriptionCreate
 ) -> dict:
-    def work():
+    def work(checked: CheckedURL):
         with write_transaction(engine) as connection:
             return store.create_subscription(
                 connection,
@@ -114,10 +114,14 @@ async def create(
                 roles=body.roles,
                 now_us=_now_us(),
                 events=list(body.events) if body.events is not None else None,
+                checked=checked,
             )
 
     try:
-        made = await run_in_threadpool(work)
+        # The DNS lookup happens before the transaction: a slow resolver must not hold the
+        # store's write lock (on SQLite that would stall every ingest meanwhile).
+        checked = await run_in_threadpool(check_url_for, body.url, settings)
+        made = await run_in_threadpool(work, checked)
     except (UnsafeURL, ValueError) as error:
         raise HTTPException(422, detail=str(error)) from None
     return {**made.subscription, "secret": made.secret}

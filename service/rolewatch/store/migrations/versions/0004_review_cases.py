@@ -12,7 +12,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision = "0004"
-down_revision = "0001"
+down_revision = "0003"
 branch_labels = None
 depends_on = None
 
