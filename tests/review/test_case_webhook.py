@@ -105,7 +105,7 @@ def test_case_updates_reach_subscribers_signed_like_alerts(live):
         assert len(chat) == 3  # the alert, the case opened, the dismissal
         case_link = f"Case: {live.url}/cases/{case['id']}"
         assert all(case_link in text for text in chat), chat
-        assert any(text.startswith("Role change for account m-fay") for text in chat)
+        assert any(text.startswith("Role change for account `m-fay`") for text in chat)
         assert any("Reason: known account" in text and "Mira (T&S)" in text for text in chat)
 
         ((alert_headers, alert_body),) = inbox.at("/alerts")

@@ -10,6 +10,8 @@ from __future__ import annotations
 import csv
 import io
 import re
+from collections.abc import Iterator
+from contextlib import contextmanager
 from urllib.parse import quote, urlsplit
 
 import httpx
@@ -22,6 +24,7 @@ from rolewatch.clock import now_micros
 from rolewatch.store.keys import create_key
 
 from .conftest import api_get, screenshot, sign_in, wait_for
+from .signin import sign_in_http
 
 pytestmark = pytest.mark.browser
 _TOKEN = re.compile(r'name="token" value="([0-9a-f]+)"')
@@ -120,6 +123,15 @@ def test_a_review_cycle_on_the_account_page(page, site, reviewers):
     assert api_get(site, f"/v1/cases/{case['id']}")["state"] == "open"
 
 
+@contextmanager
+def _signed_in(site, scope: str) -> Iterator[httpx.Client]:
+    """An HTTP client signed in through the sign-in form with the ``scope`` key."""
+    with httpx.Client(base_url=site.url) as client:
+        answer = sign_in_http(client, site.keys[scope])
+        assert answer.status_code == 303, answer.text[:300]
+        yield client
+
+
 def _form_token(client: httpx.Client, path: str) -> str:
     page = client.get(path)
     assert page.status_code == 200, page.text[:300]
@@ -129,7 +141,7 @@ def _form_token(client: httpx.Client, path: str) -> str:
 def test_forms_work_without_javascript_and_scopes_are_checked_on_the_server(site, reviewers):
     case = _open_case(site)
     path = f"/cases/{case['id']}"
-    with httpx.Client(base_url=site.url, cookies={"rolewatch_key": site.keys["read"]}) as reader:
+    with _signed_in(site, "read") as reader:
         token = _form_token(reader, path)
         assert "data-move" not in reader.get(path).text  # no review buttons for a read key
         refused = reader.post(
@@ -138,7 +150,7 @@ def test_forms_work_without_javascript_and_scopes_are_checked_on_the_server(site
         assert refused.status_code == 403 and "review scope" in refused.text
         noted = reader.post(f"{path}/notes", data={"text": "read-only remark", "token": token})
         assert noted.status_code == 303
-    with httpx.Client(base_url=site.url, cookies={"rolewatch_key": site.keys["review"]}) as rev:
+    with _signed_in(site, "review") as rev:
         forged = rev.post(
             f"{path}/state", data={"version": case["version"], "state": "confirmed", "token": "x"}
         )
@@ -261,6 +273,6 @@ def test_figures_page_matches_the_api(page, site, reviewers):
     assert len(windows) == len(figures["windows"])
     screenshot(page, "review-figures")
     link = page.find_element(By.LINK_TEXT, "per window").get_attribute("href")
-    with httpx.Client(cookies={"rolewatch_key": site.keys["read"]}) as client:
+    with _signed_in(site, "read") as client:
         table = list(csv.DictReader(io.StringIO(client.get(link).text)))
     assert [int(row["raised"]) for row in table] == [w["raised"] for w in figures["windows"]]
