@@ -202,7 +202,7 @@ class Settings(BaseSettings):
     alert_budget: float = Field(
         0.01, gt=0, le=1, description="Share of active accounts alerted per window (budget mode)."
     )
-    alert_floor: float = Field(4.0, ge=0, description="Lowest score alerted in budget mode.")
+    alert_floor: float = Field(3.5, ge=0, description="Lowest score alerted in budget mode.")
     min_events: int = Field(
         1, ge=0, description="Events an account needs in both windows before it is scored."
     )

@@ -108,7 +108,7 @@ class ShiftPolicy:
     alert_mode: str = "budget"
     threshold: float = 5.0
     budget: float = 0.01
-    floor: float = 4.0
+    floor: float = 3.5
     min_events: float = 1.0
     magnitude_weight: float = 0.0
     error_weight: float = 0.0
