@@ -76,6 +76,17 @@ def _cache_dir(option: str | None) -> Path | None:
     return Path(base) / "rolewatch"
 
 
+def _json_safe(value):
+    """The report with NaN (a figure that does not apply) written as null: strict JSON."""
+    if isinstance(value, dict):
+        return {key: _json_safe(item) for key, item in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_safe(item) for item in value]
+    if isinstance(value, float) and value != value:
+        return None
+    return value
+
+
 def _arguments(args) -> tuple[list[str], str | None]:
     if args is None:
         return sys.argv[1:], None
@@ -142,7 +153,7 @@ def main(args=None) -> int:
     if real:
         report["real"] = evaluate_real(settings, cache=cache, progress=progress)
     if options.json:
-        print(json.dumps(report, indent=2, default=str))
+        print(json.dumps(_json_safe(report), indent=2, default=str))
     else:
         print(format_report(report, mode=options.budget_mode))
         if real:
