@@ -221,16 +221,34 @@ class Settings(BaseSettings):
         "budget",
         description="threshold: alert when the score reaches alert_threshold; budget: alert on "
         "the top alert_budget share of scored accounts whose score reaches alert_floor. "
-        "Scores are robust z-scores within the window's activity stratum "
-        "(docs/detection.md explains the defaults).",
+        "Scores are z-scores of the account's change against its own past "
+        "(docs/detection.md explains them and the defaults).",
     )
     alert_threshold: float = Field(5.0, ge=0, description="Score an alert needs (threshold mode).")
     alert_budget: float = Field(
         0.01, gt=0, le=1, description="Share of active accounts alerted per window (budget mode)."
     )
-    alert_floor: float = Field(4.0, ge=0, description="Lowest score alerted in budget mode.")
+    alert_floor: float = Field(3.5, ge=0, description="Lowest score alerted in budget mode.")
     min_events: int = Field(
         1, ge=0, description="Events an account needs in both windows before it is scored."
+    )
+    novelty_windows: int = Field(
+        8,
+        ge=1,
+        description="Earlier active windows an account's usual rate of meeting new "
+        "counterparts is estimated from.",
+    )
+    tie_smoothing: float = Field(
+        2.0,
+        ge=0,
+        description="Pseudo-counts added to an account's baseline window when the shares of "
+        "its ties (known/new, sent/received) are compared with this window's.",
+    )
+    bridge_resolution: float = Field(
+        0.2,
+        ge=0,
+        description="Resolution of the Leiden communities the bridging component uses (lower: "
+        "fewer, larger communities); 0 turns bridging off.",
     )
 
     # --- delivery ----------------------------------------------------------------------

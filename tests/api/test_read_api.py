@@ -178,6 +178,30 @@ def test_account_history(seeded):
     assert [h["window_end"] for h in ranged["windows"]] == ["2026-01-22T00:00:00Z"]
 
 
+def test_too_little_activity_has_no_role_in_the_api(seeded):
+    with write_transaction(seeded.engine) as connection:
+        window_id = connection.execute(sa.select(sa.func.min(windows.c.id))).scalar_one()
+        connection.execute(
+            sa.insert(memberships).values(
+                account="m-00099",
+                window_id=window_id,
+                basis_version="b-1",
+                mixture="{}",
+                dominant_role=None,
+                score=None,
+                status="too_little",
+                events_out=1,
+                events_in=0,
+                counterparts=1,
+                new_counterparts=1,
+                error=0.0,
+            )
+        )
+    entry = get(seeded, "/v1/accounts/m-00099/roles").json()["windows"][0]
+    assert entry["dominant_role"] is None and entry["mixture"] == {}
+    assert entry["status"] == "too_little" and entry["score"] is None
+
+
 def test_unknown_account_is_404_with_a_message(seeded):
     response = get(seeded, "/v1/accounts/m-99999/roles")
     assert response.status_code == 404

@@ -9,6 +9,7 @@ from rolewatch.engine.bridging import (
     DENSE_BELOW,
     bridging_zscore,
     community_labels,
+    leiden_communities,
     undirected_ties,
 )
 from rolewatch.engine.scoring import ShiftPolicy, score_window
@@ -67,48 +68,80 @@ def test_undirected_ties_symmetric_log_counts():
 
 def test_bridging_zscore_hand_worked():
     # Two 5-cliques a0..a4 (community 0) and b0..b4 (community 1); a0 also ties to b0 and
-    # b1. Worked by hand from the definition:
-    # a0: 4 counterparts in its home 0, 2 in community 1, degree 6. Everybody else's ties
-    #   from home 0: 16 inside, 0 across, so P(1 | 0) = (0 + 1) / (16 + 2) = 1/18, the
-    #   expected count 6/18 = 1/3 and P[X >= 2] = 1 - e^(-1/3) (1 + 1/3) = 0.044625...
-    # b0 (and b1): home 1 with 4 ties, 1 tie to a0. Others from home 1: 16 inside, 1 across
-    #   (b1's or b0's tie to a0), so P(0 | 1) = 2/19, expected 5 * 2/19, P[X >= 1] =
-    #   1 - e^(-10/19).
+    # b1. Worked by hand from the definition. Tie ends: 22 in each community, so each
+    # community's share s_c is 1/2. Ties by home: home 0 (a0..a4) 20 inside and 2 across,
+    # home 1 likewise.
+    # a0: 4 counterparts at home (0), 2 in community 1, degree 6. Everybody else's ties from
+    #   home 0: 16, none across, so P(1 | 0) = (0 + 1/2) / (16 + 1) and the expected count
+    #   6 * 0.5 / 17 = 3/17; P[X >= 2] = 1 - e^(-3/17) (1 + 3/17). One other community
+    #   touched: no correction.
+    # b0 (and b1): home 1, 4 ties there and 1 to a0, degree 5. Others from home 1: 17 ties,
+    #   1 across (b1's or b0's tie to a0): P(0 | 1) = (1 + 1/2) / (17 + 1), expected
+    #   5 * 1.5 / 18; P[X >= 1] = 1 - e^(-7.5/18).
     # Normal quantiles from scipy.stats.norm (reference implementation).
     graph = nx.disjoint_union(nx.complete_graph(5), nx.complete_graph(5))
     graph.add_edges_from([(0, 5), (0, 6)])
     labels = np.repeat([0, 1], 5)
     z = bridging_zscore(_adjacency(graph), labels)
-    tail_a0 = 1 - np.exp(-1 / 3) * (1 + 1 / 3)
-    tail_b = 1 - np.exp(-10 / 19)
-    assert tail_a0 == pytest.approx(0.044625, abs=1e-6)
+    mu_a0 = 3 / 17
+    tail_a0 = 1 - np.exp(-mu_a0) * (1 + mu_a0)
+    tail_b = 1 - np.exp(-7.5 / 18)
     assert z[0] == pytest.approx(norm.isf(tail_a0), rel=1e-9)
     assert z[5] == pytest.approx(norm.isf(tail_b), rel=1e-9)
     assert z[6] == pytest.approx(z[5])
     np.testing.assert_array_equal(z[[1, 2, 3, 4, 7, 8, 9]], 0.0)
 
 
-def test_bridging_zscore_isolated_and_shape_errors():
+def test_bridging_zscore_isolated_unlabelled_and_shape_errors():
     z = bridging_zscore(sp.csr_matrix((3, 3)), np.zeros(3, dtype=int))
     assert np.isnan(z).all()
+    # counterparts without a reference community are left out: the ends of the path 0-1-2
+    # only deal with the unlabelled middle, which sees one tie in each community
+    graph = nx.path_graph(3)
+    z = bridging_zscore(_adjacency(graph), np.array([0, -1, 1]))
+    assert np.isnan(z[[0, 2]]).all() and z[1] == 0.0
     with pytest.raises(ValueError, match="one entry per node"):
         bridging_zscore(sp.csr_matrix((3, 3)), np.zeros(2, dtype=int))
 
 
-def test_bridge_between_never_connected_groups_stands_out():
-    # Three planted groups in a chain (0-1 and 1-2 trade a little, 0 and 2 never), built
-    # with networkx's stochastic_block_model; one extra node ties to ten members of group 0
-    # and ten of group 2: a local bridge across a structural hole (Granovetter 1973; Burt
-    # 1992; both as recalled).
+def _chain_of_groups(seed: int):
+    """Three planted groups in a chain (0-1 and 1-2 trade a little, 0 and 2 never), built
+    with networkx's stochastic_block_model."""
     sizes = [80, 80, 80]
     p = [[0.15, 0.01, 0.0], [0.01, 0.15, 0.01], [0.0, 0.01, 0.15]]
-    graph = nx.stochastic_block_model(sizes, p, seed=3)
-    bridge = graph.number_of_nodes()
-    graph.add_edges_from((bridge, j) for j in list(range(10)) + list(range(160, 170)))
-    A = _adjacency(graph)
-    z = bridging_zscore(A, community_labels(A, 3))
-    assert np.argmax(z) == bridge and z[bridge] > 5
-    assert np.sort(z)[-2] < 4
+    return nx.stochastic_block_model(sizes, p, seed=seed)
+
+
+def test_leiden_recovers_networkx_planted_partition():
+    # Reference: networkx planted_partition_graph (Condon & Karp's planted l-partition
+    # model) records the blocks it planted; scikit-learn's adjusted Rand index compares.
+    graph = nx.planted_partition_graph(4, 60, 0.3, 0.01, seed=7)
+    truth = _planted_truth(graph)
+    labels = leiden_communities(_adjacency(graph), resolution=1.0)
+    assert adjusted_rand_score(truth, labels) > 0.95
+    again = leiden_communities(_adjacency(graph), resolution=1.0)
+    np.testing.assert_array_equal(labels, again)  # seeded: the same every time
+    # networkx ring_of_cliques(4, 6): the cliques are the communities
+    ring = leiden_communities(_adjacency(nx.ring_of_cliques(4, 6)), resolution=1.0)
+    assert adjusted_rand_score(np.repeat(np.arange(4), 6), ring) == 1.0
+    assert leiden_communities(sp.csr_matrix((0, 0))).size == 0
+
+
+def test_a_new_broker_stands_out_against_the_window_before():
+    # The groups of the window before (reference communities, found by Leiden there) are
+    # used to judge this window, in which one extra node ties to ten members of group 0
+    # and ten of group 2, which never deal with each other: a local bridge across a
+    # structural hole (Granovetter 1973; Burt 1992; both as recalled).
+    before = _chain_of_groups(3)
+    reference = leiden_communities(_adjacency(before), resolution=0.5)
+    assert adjusted_rand_score(_planted_truth(before), reference) > 0.9
+    now = _chain_of_groups(4)
+    bridge = now.number_of_nodes()
+    now.add_edges_from((bridge, j) for j in list(range(10)) + list(range(160, 170)))
+    labels = np.append(reference, -1)  # the broker's own label does not matter
+    z = bridging_zscore(_adjacency(now), labels)
+    assert np.nanargmax(z) == bridge and z[bridge] > 5
+    assert np.sort(z[np.isfinite(z)])[-2] < 4
 
 
 def _case(n=60):
@@ -122,9 +155,10 @@ def _case(n=60):
 F = np.eye(3)
 
 
-def test_score_takes_the_larger_of_shift_and_bridging_rise():
+def test_stratified_score_takes_the_larger_of_shift_and_bridging_rise():
     cur, base, act = _case()
-    plain = score_window(cur, base, act, act, np.zeros(len(act)), F, ShiftPolicy())
+    policy = ShiftPolicy(calibration="stratified")
+    plain = score_window(cur, base, act, act, np.zeros(len(act)), F, policy)
     before = np.zeros(len(act))
     now = before.copy()
     now[5] = 7.5
@@ -136,57 +170,17 @@ def test_score_takes_the_larger_of_shift_and_bridging_rise():
         act,
         np.zeros(len(act)),
         F,
-        ShiftPolicy(),
+        policy,
         current_bridging=now,
         baseline_bridging=before,
     )
     assert out.score[5] == pytest.approx(7.5) and out.alert[5]
     assert out.score[6] == pytest.approx(max(plain.score[6], 2.0))
-    assert out.bridging[5] == pytest.approx(7.5) and out.bridging[0] == 0.0
-    assert plain.bridging is not None and np.isnan(plain.bridging).all()
     np.testing.assert_allclose(np.delete(out.score, [5, 6]), np.delete(plain.score, [5, 6]))
-    # a drop in bridging is no shift; an unknown baseline leaves the shift score alone
-    before[7], now[8], before[8] = 9.0, 9.0, np.nan
-    out = score_window(
-        cur,
-        base,
-        act,
-        act,
-        np.zeros(len(act)),
-        F,
-        ShiftPolicy(),
-        current_bridging=now,
-        baseline_bridging=before,
-    )
-    assert out.score[7] == plain.score[7] and out.score[8] == plain.score[8]
-    raw = score_window(
-        cur,
-        base,
-        act,
-        act,
-        np.zeros(len(act)),
-        F,
-        ShiftPolicy(calibration="none"),
-        current_bridging=now,
-        baseline_bridging=before,
-    )
-    assert not raw.alert[5]  # a raw distance is no z-score: bridging is not mixed in
-    with pytest.raises(ValueError, match="bridging"):
-        score_window(
-            cur,
-            base,
-            act,
-            act,
-            np.zeros(len(act)),
-            F,
-            ShiftPolicy(),
-            current_bridging=now[:3],
-            baseline_bridging=before[:3],
-        )
 
 
-def test_policy_bridge_communities():
-    assert ShiftPolicy().bridge_communities == 3
-    assert ShiftPolicy(bridge_communities=0).bridge_communities == 0
-    with pytest.raises(ValueError, match="bridge_communities"):
-        ShiftPolicy(bridge_communities=1)
+def test_policy_bridge_resolution():
+    assert ShiftPolicy().bridge_resolution > 0
+    assert ShiftPolicy(bridge_resolution=0).bridge_resolution == 0
+    with pytest.raises(ValueError, match="bridge_resolution"):
+        ShiftPolicy(bridge_resolution=-1)

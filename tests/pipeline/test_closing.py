@@ -17,7 +17,7 @@ from rolewatch.pipeline import closer as closer_module
 from rolewatch.pipeline.closer import close_due_windows
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
-from rolewatch.store.schema import alerts, deliveries, events, memberships, windows
+from rolewatch.store.schema import alerts, deliveries, events, memberships, pair_history, windows
 
 from .conftest import sample_events, sample_truth
 
@@ -197,6 +197,7 @@ def test_a_crash_mid_close_leaves_no_partial_window_and_the_next_tick_redoes_it(
         connection.execute(deliveries.delete())
         connection.execute(alerts.delete().where(alerts.c.window_id == last))
         connection.execute(memberships.delete().where(memberships.c.window_id == last))
+        connection.execute(pair_history.delete().where(pair_history.c.window_id == last))
         connection.execute(windows.delete().where(windows.c.id == last))
     original_store = closer_module._store_result
 

@@ -201,7 +201,11 @@ def test_selecting_a_window_shows_its_evidence(page, site):
     newest = _newest_alert(site)
     account = newest["account"]
     history = api_get(site, f"/v1/accounts/{quote(account, safe='')}/roles")["windows"]
-    quiet = [entry for entry in history if entry["window_id"] != newest["window_id"]]
+    quiet = [
+        entry
+        for entry in history
+        if entry["window_id"] != newest["window_id"] and entry["dominant_role"] is not None
+    ]
     assert quiet, "the alerted account needs another active window for this test"
     other = quiet[-1]
 
@@ -245,6 +249,32 @@ def test_selecting_a_window_shows_its_evidence(page, site):
         lambda: "No alert in this window" in page.find_element(By.ID, "evidence").text,
         "going back did not restore the previous window",
     )
+
+
+def test_a_window_with_too_little_activity_shows_no_role(page, site):
+    # The reference: the store's own memberships, read through rolewatch.store.queries'
+    # engine (an account the pipeline found too little structure in, in some window).
+    import sqlalchemy as sa
+
+    from rolewatch.store.schema import memberships
+
+    with site.engine.connect() as connection:
+        row = connection.execute(
+            sa.select(memberships.c.account, memberships.c.window_id)
+            .where(memberships.c.status == "too_little")
+            .limit(1)
+        ).first()
+    assert row is not None, "the sample holds accounts with too little activity"
+    account, window_id = row
+    history = api_get(site, f"/v1/accounts/{quote(account, safe='')}/roles")["windows"]
+    entry = next(e for e in history if e["window_id"] == window_id)
+    assert entry["dominant_role"] is None and entry["mixture"] == {}
+    sign_in(page, site)
+    page.get(f"{site.url}/accounts/{quote(account, safe='')}?window={window_id}")
+    membership = page.find_element(By.CSS_SELECTOR, "#evidence dl.membership").text
+    assert "too little activity" in membership and "role 0" not in membership
+    row_text = page.find_element(By.CSS_SELECTOR, ".windows tr.selected").text
+    assert "too little activity" in row_text
 
 
 def test_account_ids_are_shown_as_text(page, site):

@@ -87,12 +87,23 @@ class HistoryEntry(BaseModel):
     window_start: str
     window_end: str
     basis_version: str
-    mixture: dict[str, float] = Field(..., description="{role_id: weight}, sums to 1.")
-    dominant_role: RoleRef
+    mixture: dict[str, float] = Field(
+        ...,
+        description="{role_id: weight}, sums to 1; empty when the account had too little "
+        "activity in the window to fit a role (status too_little).",
+    )
+    dominant_role: RoleRef | None = Field(
+        ..., description="Null when the account had too little activity to fit a role."
+    )
     score: float | None = Field(
         ..., description="Shift score; null on first appearance or when not scored."
     )
-    status: str = Field(..., description="new | scored | low_activity")
+    status: str = Field(
+        ...,
+        description="scored | new (no earlier window to compare with) | too_little (too "
+        "little activity to fit a role: not scored, no role) | low_activity (fewer than "
+        "min_events in either window)",
+    )
     activity: Activity
     reconstruction_error: float
 

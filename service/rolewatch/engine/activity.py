@@ -1,7 +1,8 @@
 """Activity counts and counterparts: the plain numbers an analyst reads beside a role shift.
 
-Everything here is computed with sparse matrix operations on a :class:`Snapshot`; the
-previous snapshot is only used to tell which counterparts are new.
+Everything here is computed with sparse matrix operations on a :class:`Snapshot`. Which
+counterparts are new is told by the known-pair history
+(:class:`rolewatch.engine.pairs.KnownPairs`) or, without one, by the previous snapshot.
 """
 
 from __future__ import annotations
@@ -11,6 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from rolewatch.engine.pairs import KnownPairs, account_keys, pair_keys
 from rolewatch.engine.snapshot import Snapshot
 
 
@@ -99,11 +101,22 @@ class Counterparts:
         The current window.
     previous : Snapshot, optional
         The window before, to flag counterparts that are new.
+    known : KnownPairs, optional
+        The known-pair history; when given, a counterpart is new when the pair never
+        interacted in any earlier window (``previous`` is then not needed).
     """
 
-    def __init__(self, snapshot: Snapshot, previous: Snapshot | None = None) -> None:
+    def __init__(
+        self,
+        snapshot: Snapshot,
+        previous: Snapshot | None = None,
+        *,
+        known: KnownPairs | None = None,
+    ) -> None:
         self.snapshot = snapshot
         self.previous = previous
+        self.known = known
+        self._keys = account_keys(snapshot.nodes) if known is not None else None
         self._out_counts = snapshot.counts.tocsr()
         self._in_counts = snapshot.counts.T.tocsr()
         self._out_weights = snapshot.weights.tocsr()
@@ -129,7 +142,8 @@ class Counterparts:
         list of dict
             ``{"account", "direction" (out|in|both), "events", "weight", "new"}`` per
             counterpart, most events first, then most weight; ``new`` means no
-            interaction with that account in the previous snapshot.
+            interaction with that account in any earlier window of the known history (or,
+            without one, in the previous snapshot).
         """
         counts = (self._out_counts[row] + self._in_counts[row]).tocsr()
         if counts.nnz == 0:
@@ -141,6 +155,12 @@ class Counterparts:
         sends = set(self._out_counts[row].indices.tolist())
         receives = set(self._in_counts[row].indices.tolist())
         known = set(self._known[row].indices.tolist()) if self._known is not None else set()
+        if self.known is not None and self._keys is not None:
+            listed = columns[order]
+            seen = self.known.contains(
+                pair_keys(self._keys[listed], self._keys[[row] * listed.size])
+            )
+            known = set(listed[seen].tolist())
         result = []
         for position in order:
             column = int(columns[position])
@@ -151,7 +171,8 @@ class Counterparts:
                     "direction": "both" if out and into else ("out" if out else "in"),
                     "events": int(round(events[position])),
                     "weight": float(weights[position]),
-                    "new": self.previous is not None and column not in known,
+                    "new": (self.previous is not None or self.known is not None)
+                    and column not in known,
                 }
             )
         return result

@@ -7,22 +7,28 @@ the graph that never traded: what changes is *where* its counterparts sit. Grano
 (1992, "Structural holes", as recalled) an account that spans a structural hole between
 groups with few other ties.
 
-Two steps, both on one window's undirected interaction graph:
+Two steps:
 
-1. :func:`community_labels` splits the graph into ``k`` communities by regularised
-   spectral clustering: the leading ``k`` eigenvectors of the regularised normalised
-   adjacency ``D_t^{-1/2} (A + tau/n 11^T) D_t^{-1/2}`` (Qin & Rohe, NIPS 2013, as
-   recalled; Amini et al., Ann. Statist. 2013), rows scaled to unit length and grouped by
-   k-means (Ng, Jordan & Weiss, NIPS 2002). The ``tau`` term keeps the eigenvectors of a
-   sparse graph from settling on its small dangling pieces.
+1. Communities. :func:`leiden_communities` (the default) groups each closed window's
+   undirected graph by the Leiden algorithm on modularity with a resolution parameter
+   (Traag, Waltman & van Eck, "From Louvain to Leiden: guaranteeing well-connected
+   communities", Scientific Reports 2019; Reichardt & Bornholdt 2006 for the resolution;
+   run by the igraph library), which finds the number of communities itself.
+   :func:`community_labels` keeps the earlier regularised spectral clustering with a
+   fixed ``k`` (Qin & Rohe, NIPS 2013, as recalled; Amini et al., Ann. Statist. 2013;
+   Ng, Jordan & Weiss, NIPS 2002).
 2. :func:`bridging_zscore` asks, for every account, how surprising its number of
    counterparts in each *other* community is: each account's home is the community most
    of its counterparts sit in; the chance that a tie from home community ``h`` lands in
-   community ``c`` is estimated from everybody else's ties (leave-one-out, one pseudo-tie
-   per pair); the account's count is compared with a Poisson law of mean
-   ``degree * P(c | h)`` and the upper-tail probability turned into a normal z-score.
-   Adding ties to an adjacent, busy community barely moves it; a dozen ties into a
-   community its home never deals with gives z of 5-10.
+   community ``c`` is estimated from everybody else's ties (leave-one-out, smoothed toward
+   the communities' overall shares); the account's count is compared with a Poisson law
+   of mean ``degree * P(c | h)``, the smallest upper-tail probability is Sidak-corrected
+   for the communities it touches and turned into a normal z-score.
+
+The communities come from a *reference* window, the window before (its labels are kept
+with its memberships): labelled on the window being judged, a new broker pulls the
+counterparts it joins into one community and its ties look ordinary. Counterparts the
+reference did not see carry label -1 and are left out.
 
 Pure: arrays in, arrays out; vectorised with scipy.sparse (no loop over nodes).
 """
@@ -36,7 +42,13 @@ from scipy.special import ndtri_exp
 from scipy.stats import poisson
 from sklearn.cluster import KMeans
 
-__all__ = ["undirected_ties", "community_labels", "bridging_zscore", "DENSE_BELOW"]
+__all__ = [
+    "DENSE_BELOW",
+    "bridging_zscore",
+    "community_labels",
+    "leiden_communities",
+    "undirected_ties",
+]
 
 DENSE_BELOW = 200  # below this many nodes a dense eigendecomposition is simpler and exact
 
@@ -125,6 +137,56 @@ def community_labels(ties, n_communities: int, *, seed: int = 0) -> np.ndarray:
     return model.fit_predict(points).astype(np.int64)
 
 
+def leiden_communities(
+    ties, *, resolution: float = 0.2, seed: int = 0, iterations: int = 2
+) -> np.ndarray:
+    """Communities of an undirected weighted graph by the Leiden algorithm (modularity).
+
+    Parameters
+    ----------
+    ties : sparse or dense array, shape (n, n)
+        Symmetric non-negative tie strengths (e.g. :func:`undirected_ties`).
+    resolution : float
+        Resolution of the modularity (Reichardt & Bornholdt 2006): below 1 fewer, larger
+        communities.
+    seed : int
+        Seed of the algorithm's random choices (igraph's generator is set for the call and
+        restored), so a window always gets the same communities.
+    iterations : int
+        Leiden iterations (each refines and aggregates once more).
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+        Community of each node, ``0 .. k-1``; isolated nodes get communities of their own.
+
+    Notes
+    -----
+    Traag, Waltman & van Eck (Scientific Reports 2019), as implemented by
+    ``igraph.Graph.community_leiden``.
+    """
+    import random
+
+    import igraph
+
+    A = sp.triu(sp.csr_matrix(ties, dtype=np.float64), k=1).tocoo()
+    n = A.shape[0]
+    if n == 0:
+        return np.zeros(0, dtype=np.int64)
+    graph = igraph.Graph(n=n, edges=list(zip(A.row.tolist(), A.col.tolist(), strict=True)))
+    previous = igraph.set_random_number_generator(random.Random(seed))
+    try:
+        found = graph.community_leiden(
+            objective_function="modularity",
+            weights=A.data.tolist(),
+            resolution=resolution,
+            n_iterations=iterations,
+        )
+    finally:
+        igraph.set_random_number_generator(previous if previous is not None else random)
+    return np.asarray(found.membership, dtype=np.int64)
+
+
 def bridging_zscore(ties, labels) -> np.ndarray:
     """How surprising each node's ties into other communities are, as a normal z-score.
 
@@ -133,49 +195,83 @@ def bridging_zscore(ties, labels) -> np.ndarray:
     ties : sparse or dense array, shape (n, n)
         Symmetric tie matrix; only which pairs are tied matters (distinct counterparts).
     labels : array of int, shape (n,)
-        Community of each node (:func:`community_labels`).
+        Community of each node (:func:`leiden_communities` of a reference window); -1 for
+        a node without one, whose ties are left out.
 
     Returns
     -------
     ndarray, shape (n,)
-        ``max`` over the communities ``c`` other than the node's home of
-        ``-Phi^{-1}(P[X >= o_c])`` with ``X ~ Poisson(d * P(c | home))``, clipped at 0; 0
-        for a node without ties outside its home, NaN for a node without ties.
+        Per node, over the communities ``c`` other than its home it has ties into, the
+        smallest ``P[X >= o_c]`` with ``X ~ Poisson(d * P(c | home))``, Sidak-corrected
+        for how many such communities there are, as ``-Phi^-1(p)`` clipped at 0; 0 for a
+        node without ties outside its home, NaN for a node without labelled ties.
 
     Notes
     -----
     ``o_c`` is the node's number of counterparts in ``c`` and ``d`` its number of
-    counterparts. The home is the community holding most of its counterparts (ties go to
-    the lower label). ``P(c | h) = (T_hc + 1) / (T_h + k)`` where ``T_hc`` counts the ties
-    from nodes whose home is ``h`` into ``c``, leaving the node's own ties out, so an
+    labelled counterparts. The home is the community holding most of them (ties go to the
+    lower label). ``P(c | h) = (T_hc + s_c) / (T_h + 1)`` where ``T_hc`` counts the ties
+    from nodes whose home is ``h`` into ``c``, leaving the node's own ties out (so an
     account that is the only link between two communities does not make its own ties look
-    ordinary. The tail probability goes to a z-score with ``scipy.special.ndtri_exp`` on
-    its logarithm, exact far into the tail.
+    ordinary), and ``s_c`` is ``c``'s share of all labelled tie ends (one pseudo-tie
+    spread by size). Sparse throughout, so thousands of communities cost no more than a
+    few. The tail probability goes to a z-score with ``scipy.special.ndtri_exp`` on its
+    logarithm, exact far into the tail.
     """
     pattern = sp.csr_matrix(ties, dtype=np.float64)
     pattern.setdiag(0.0)
     pattern.eliminate_zeros()
-    pattern.data[:] = 1.0
     lab = np.asarray(labels, dtype=np.int64).reshape(-1)
     n = pattern.shape[0]
     if lab.size != n:
         raise ValueError(f"labels need one entry per node ({n}), got {lab.size}")
-    if n == 0:
-        return np.zeros(0)
-    k = int(lab.max()) + 1
+    if n == 0 or not (lab >= 0).any():
+        return np.full(n, np.nan)
     coo = pattern.tocoo()
-    # per node: counterparts in each community
-    by_community = sp.csr_matrix((coo.data, (coo.row, lab[coo.col])), shape=(n, k)).toarray()
-    degree = by_community.sum(axis=1)
-    home = np.argmax(by_community, axis=1)
-    pair_ties = np.zeros((k, k))
-    np.add.at(pair_ties, (home[coo.row], lab[coo.col]), 1.0)
-    others = pair_ties[home] - by_community  # leave the node's own ties out
-    share = (others + 1.0) / (others.sum(axis=1, keepdims=True) + k)
-    expected = share * degree[:, None]
-    log_tail = poisson.logsf(by_community - 1.0, expected)  # log P[X >= observed]
-    outside = by_community > 0
-    outside[np.arange(n), home] = False
-    log_tail = np.where(outside, log_tail, 0.0)
-    z = np.maximum(-ndtri_exp(np.minimum(log_tail.min(axis=1), 0.0)), 0.0)
+    keep = lab[coo.col] >= 0
+    node, community = coo.row[keep].astype(np.int64), lab[coo.col[keep]]
+    if node.size == 0:
+        return np.full(n, np.nan)
+    k = int(lab.max()) + 1
+    # counterparts per (node, community), sorted by node then count (desc) then community
+    cells, count = np.unique(node * k + community, return_counts=True)
+    cell_node, cell_comm = cells // k, cells % k
+    order = np.lexsort((cell_comm, -count, cell_node))
+    first = np.ones(order.size, dtype=bool)
+    first[1:] = cell_node[order][1:] != cell_node[order][:-1]
+    home = np.full(n, -1, dtype=np.int64)
+    home[cell_node[order][first]] = cell_comm[order][first]
+    degree = np.bincount(cell_node, weights=count, minlength=n)
+    return _bridging_tails(cell_node, cell_comm, count.astype(np.float64), home, degree, k)
+
+
+def _bridging_tails(
+    cell_node: np.ndarray,
+    cell_comm: np.ndarray,
+    count: np.ndarray,
+    home: np.ndarray,
+    degree: np.ndarray,
+    k: int,
+) -> np.ndarray:
+    """Poisson tails of every (node, other community) cell, combined per node."""
+    n = home.size
+    pair_key = home[cell_node] * k + cell_comm
+    _, pair_index = np.unique(pair_key, return_inverse=True)
+    pair_total = np.bincount(pair_index, weights=count)
+    home_total = np.bincount(home[cell_node], weights=count, minlength=k)
+    share = np.bincount(cell_comm, weights=count, minlength=k) / count.sum()
+    others = pair_total[pair_index] - count  # leave the node's own ties out
+    others_home = home_total[home[cell_node]] - degree[cell_node]
+    expected = degree[cell_node] * (others + share[cell_comm]) / (others_home + 1.0)
+    outside = cell_comm != home[cell_node]
+    log_tail = np.where(outside, poisson.logsf(count - 1.0, expected), 0.0)
+    touched = np.bincount(cell_node, weights=outside.astype(np.float64), minlength=n)
+    smallest = np.zeros(n)
+    np.minimum.at(smallest, cell_node, log_tail)
+    # Sidak over the communities touched: 1 - (1 - p)**m, as m p far in the tail
+    with np.errstate(divide="ignore", invalid="ignore"):
+        exact = np.log(-np.expm1(touched * np.log1p(-np.exp(smallest))))
+    corrected = np.where(smallest < -30.0, np.log(np.maximum(touched, 1)) + smallest, exact)
+    corrected = np.where(touched > 0, corrected, 0.0)
+    z = np.maximum(-ndtri_exp(np.clip(corrected, -1e5, 0.0)), 0.0)
     return np.where(degree > 0, z, np.nan)

@@ -1,34 +1,39 @@
 """The per-window shift decision shared by the service and the detection benchmark.
 
 Given each account's current role mixture (refitted against the frozen RolX basis,
-Henderson et al., KDD 2012) and its baseline mixture (role dynamics, Rossi et al.,
-WSDM 2013), :func:`score_window` says which accounts are scored, their shift score and
-which of them raise an alert.  It is pure: arrays in, arrays out.
+Henderson et al., KDD 2012), its baseline (role dynamics, Rossi et al., WSDM 2013) and
+the tie-level counts of both windows, :func:`score_window` says which accounts are scored,
+their shift score and which of them raise an alert.  It is pure: arrays in, arrays out.
 
-Mixture distances are noisy for accounts with little activity: a member with one or two
-payments a week can swing between roles by chance, while a busy shop's mixture barely
-moves. Comparing raw distances across accounts therefore ranks quiet accounts first. The
-default ``calibration="stratified"`` turns each raw score into a robust z-score *within
-its activity stratum* (accounts of similar activity in the same window), so a score says
-how unusual the shift is for accounts that active; see :func:`stratified_zscore`.
+The default ``calibration="evidence"`` scores every account by components that each ask
+how surprising its change is under an explicit count model of its own past
+(:mod:`rolewatch.engine.components`, tests in :mod:`rolewatch.engine.calibration`): the
+role-mixture shift as an evidence-weighted chi-square, surges of new counterparts, the
+shares of known/new and sent/received ties, and bridging into communities its home never
+deals with. The score is the largest component z-score, corrected for how many were
+tested; two events cannot make a large score and a busy stratum cannot make a tiny spread
+explode, so scores compare across windows and activity levels.
 
-A role mixture only sees an account's local structure. An account that starts tying two
-communities that never dealt with each other (a *bridge*) keeps its mixture, so the score
-also takes the rise of its bridging z-score (:mod:`rolewatch.engine.bridging`) over its
-baseline window, when the caller passes both, and keeps the larger of the two z-scores.
+``calibration="stratified"`` keeps the earlier rule (a robust z-score of the mixture
+distance within the account's activity stratum, :func:`stratified_zscore`, the larger of
+it and the bridging rise), ``"none"`` the raw distance.
 """
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
 from numpy.typing import ArrayLike
 
+from .calibration import combine_zscores
+from .components import COMPONENTS, TieEvidence, component_zscores
 from .shift import DISTANCES, activity_change, role_aware_distance
 
 __all__ = [
     "ShiftPolicy",
+    "TieEvidence",
+    "alert_mask",
     "WindowScores",
     "score_window",
     "stratified_zscore",
@@ -38,8 +43,8 @@ __all__ = [
 ]
 
 MEASURES = ("role_aware", "hellinger", "jensen_shannon", "total_variation", "cosine")
-STATUSES = ("new", "inactive", "low_activity", "scored")
-CALIBRATIONS = ("stratified", "none")
+STATUSES = ("new", "inactive", "too_little", "low_activity", "scored")
+CALIBRATIONS = ("evidence", "stratified", "none")
 MAD_SCALE = (
     1.4826  # MAD -> standard deviation for normal data (Rousseeuw & Croux 1993, as recalled)
 )
@@ -52,7 +57,7 @@ class ShiftPolicy:
     Attributes
     ----------
     measure : str
-        Composition distance, one of :data:`MEASURES`.  Default ``"role_aware"``.
+        Role-mixture distance, one of :data:`MEASURES`.  Default ``"role_aware"``.
     baseline : str
         Baseline mode for :func:`rolewatch.engine.shift.baseline_mixture`.
     last_k, half_life :
@@ -61,34 +66,39 @@ class ShiftPolicy:
         ``"threshold"``: alert when score >= ``threshold``.  ``"budget"`` (default): alert
         on the top ``budget`` share of scored accounts by score, provided score >= ``floor``.
     threshold : float
-        Score an alert needs in threshold mode.  With stratified calibration the score is
-        a robust z-score, and the default 5.0 was chosen by the detection benchmark
-        (docs/detection.md); with ``calibration="none"`` it is a distance in [0, 1].
+        Score an alert needs in threshold mode (a z-score, except with
+        ``calibration="none"``, where it is a distance in [0, 1]).
     budget : float
         Share in (0, 1] of scored accounts that may alert per window in budget mode.
     floor : float
-        Smallest score that may alert in budget mode (default 4.0, a robust z-score;
-        chosen by the detection benchmark, docs/detection.md).
+        Smallest score that may alert in budget mode (a z-score; chosen by the detection
+        benchmark, docs/detection.md).
     min_events : float
-        Activity (events) an account needs in both windows to be scored (default 1:
-        stratified calibration copes with quiet accounts, and a quiet buyer that is taken
-        over has only one or two events in its baseline window).
+        Activity (events) an account needs in both windows to be scored.
     magnitude_weight, error_weight : float
-        Weights of the activity-change and reconstruction-error components added to the
-        composition distance (0 by default: the score is the composition distance).
+        ``calibration="stratified"`` / ``"none"`` only: weights of the activity-change and
+        reconstruction-error terms added to the distance.
     calibration : str
-        ``"stratified"`` (default): the raw score becomes a robust z-score within the
-        window's activity stratum (:func:`stratified_zscore`).  ``"none"``: the raw score.
+        ``"evidence"`` (default): the score combines the component z-scores of
+        :mod:`rolewatch.engine.components`.  ``"stratified"``: a robust z-score of the
+        distance within the window's activity stratum (:func:`stratified_zscore`), the
+        larger of it and the bridging rise.  ``"none"``: the raw distance.
     stratum_size : int
         Fewest scored accounts one activity stratum may hold; thinner strata are merged
-        with the next lower one.
+        with the next lower one (the role component's genomic control, and the
+        ``"stratified"`` rule).
     min_scale : float
-        Smallest spread (in raw score units) a stratum may have, so a stratum whose
-        accounts all sit still does not turn a tiny move into a huge z-score.
-    bridge_communities : int
-        Communities the window graph is split into for the bridging component
-        (:func:`rolewatch.engine.bridging.community_labels`); 0 turns the component off.
-        Default 3 (docs/detection.md: 3 and 4 catch every planted bridge).
+        ``"stratified"`` only: smallest spread a stratum may have.
+    components : tuple of str
+        The components the ``"evidence"`` score takes (a subset of
+        :data:`rolewatch.engine.components.COMPONENTS`; default all).
+    novelty_windows : int
+        Earlier active windows an account's rate of new counterparts is estimated from.
+    tie_smoothing : float
+        Pseudo-counts added to the baseline window in the homogeneity tests.
+    bridge_resolution : float
+        Resolution of the Leiden communities the bridging component uses
+        (:func:`rolewatch.engine.bridging.leiden_communities`); 0 turns bridging off.
     """
 
     measure: str = "role_aware"
@@ -98,14 +108,17 @@ class ShiftPolicy:
     alert_mode: str = "budget"
     threshold: float = 5.0
     budget: float = 0.01
-    floor: float = 4.0
+    floor: float = 3.5
     min_events: float = 1.0
     magnitude_weight: float = 0.0
     error_weight: float = 0.0
-    calibration: str = "stratified"
+    calibration: str = "evidence"
     stratum_size: int = 25
     min_scale: float = 0.02
-    bridge_communities: int = 3
+    components: tuple[str, ...] = COMPONENTS
+    novelty_windows: int = 8
+    tie_smoothing: float = 2.0
+    bridge_resolution: float = 0.2
 
     def __post_init__(self) -> None:
         if self.measure not in MEASURES:
@@ -124,9 +137,14 @@ class ShiftPolicy:
             raise ValueError(f"unknown calibration {self.calibration!r}; use one of {CALIBRATIONS}")
         if self.stratum_size < 1 or not self.min_scale > 0:
             raise ValueError("stratum_size must be >= 1 and min_scale > 0")
-        if self.bridge_communities < 0 or self.bridge_communities == 1:
+        unknown = sorted(set(self.components) - set(COMPONENTS))
+        if unknown or not self.components:
             raise ValueError(
-                f"bridge_communities must be 0 (off) or >= 2, got {self.bridge_communities}"
+                f"components must be a non-empty subset of {COMPONENTS}, got {self.components}"
+            )
+        if self.novelty_windows < 1 or self.tie_smoothing < 0 or self.bridge_resolution < 0:
+            raise ValueError(
+                "novelty_windows must be >= 1, tie_smoothing and bridge_resolution >= 0"
             )
 
     def to_dict(self) -> dict:
@@ -146,11 +164,15 @@ class WindowScores:
     magnitude : float array, activity change ``|log((1+a)/(1+b))|``
     error : float array, current relative reconstruction error
     status : str array, one of :data:`STATUSES` ("new": no baseline; "inactive": no
-        current mixture; "low_activity": fewer than ``min_events`` in either window;
+        current mixture; "too_little": no structure to fit a role to (all features zero
+        or an empty fit); "low_activity": fewer than ``min_events`` in either window;
         "scored")
     alert : bool array
-    bridging : float array, rise of the bridging z-score over the baseline window,
-        clipped at 0 (NaN where not scored or not given)
+    bridging : float array, the bridging z-score taken into the score (the rise over the
+        baseline with ``"stratified"``), NaN where not scored or not given
+    components : dict of str to float array, the component z-scores of the
+        ``"evidence"`` score (empty otherwise)
+    strongest : str array, the component with the largest z-score ("" where none)
     """
 
     score: np.ndarray
@@ -160,6 +182,8 @@ class WindowScores:
     status: np.ndarray
     alert: np.ndarray
     bridging: np.ndarray | None = None
+    components: dict[str, np.ndarray] = field(default_factory=dict)
+    strongest: np.ndarray | None = None
 
 
 def score_window(
@@ -173,6 +197,8 @@ def score_window(
     *,
     current_bridging: ArrayLike | None = None,
     baseline_bridging: ArrayLike | None = None,
+    ties: TieEvidence | None = None,
+    structured: ArrayLike | None = None,
 ) -> WindowScores:
     """Score every account's role shift in one window and pick the alerts.
 
@@ -187,11 +213,18 @@ def score_window(
     F : ndarray, shape (k, f)
         Role profiles (needed for the ``role_aware`` measure).
     policy : ShiftPolicy
-    current_bridging, baseline_bridging : ndarray, shape (n,), optional
-        Bridging z-scores (:func:`rolewatch.engine.bridging.bridging_zscore`) of the
-        current window and of the account's baseline window (NaN where unknown). When
-        both are given and ``calibration="stratified"``, the score of a scored account is
-        ``max(calibrated shift score, current - baseline)``.
+    current_bridging : ndarray, shape (n,), optional
+        Bridging z-scores of the current window
+        (:func:`rolewatch.engine.bridging.bridging_zscore`).
+    baseline_bridging : ndarray, shape (n,), optional
+        ``"stratified"`` only: the baseline window's bridging z-scores; the rise over them
+        is what counts there.
+    ties : TieEvidence, optional
+        Tie-level counts for the ``"evidence"`` components.
+    structured : ndarray of bool, shape (n,), optional
+        False where the account's current window holds no structure to fit a role to
+        (all features zero, or an empty membership fit): status ``"too_little"``, never
+        scored.
 
     Returns
     -------
@@ -199,14 +232,11 @@ def score_window(
 
     Notes
     -----
-    raw = composition + magnitude_weight * magnitude + error_weight * error; with
-    ``calibration="stratified"`` the score is :func:`stratified_zscore` of the raw scores
-    of the scored accounts, stratified by ``max(current, baseline)`` activity, and
-    clipped at 0 below (a shift smaller than its stratum's median is no shift at all).
-    The bridging rise is already a z-score (a Poisson tail within the window), so it is
-    compared with the calibrated shift score as it is, not calibrated again.
-    Budget mode keeps at most ``floor(budget * n_scored)`` accounts (at least one when
-    any account is scored and clears the floor), highest scores first, ties by row.
+    ``"evidence"``: the score of a scored account is the Sidak-corrected largest component
+    z-score (:func:`rolewatch.engine.calibration.combine_zscores`), clipped at 0 below.
+    ``"stratified"`` / ``"none"``: see :func:`stratified_zscore`. Budget mode keeps at most
+    ``floor(budget * n_scored)`` accounts (at least one when any account is scored and
+    clears the floor), highest scores first, ties by row.
     """
     cur, base, a, b, err = _as_window_arrays(
         current_mixture, baseline_mixture, current_activity, baseline_activity, current_error
@@ -215,8 +245,29 @@ def score_window(
     has_base = np.isfinite(base).all(axis=1)
     comp = _composition(cur, base, F, policy.measure)
     mag = activity_change(a, b)
-    status = _statuses(has_cur, has_base, a, b, policy.min_events)
+    shaped = np.ones(cur.shape[0], dtype=bool) if structured is None else np.asarray(structured)
+    if shaped.shape != (cur.shape[0],):
+        raise ValueError("structured needs one value per account row")
+    # with tie counts, a baseline window counts even where its mixture is unknown (an
+    # account with too little structure there still has counts to compare)
+    has_prior = has_base if ties is None else np.isfinite(ties.baseline_events).all(axis=1)
+    status = _statuses(has_cur, has_prior, shaped.astype(bool), a, b, policy.min_events)
     scored = status == "scored"
+    if policy.calibration == "evidence":
+        return _evidence_scores(
+            cur,
+            base,
+            comp,
+            mag,
+            err,
+            a,
+            b,
+            status,
+            policy,
+            ties=ties,
+            bridging=current_bridging,
+            n_roles=np.asarray(F).shape[0],
+        )
     score = _shift_score(comp, mag, err, a, b, scored, policy)
     bridging = np.full(cur.shape[0], np.nan)
     if current_bridging is not None and baseline_bridging is not None:
@@ -229,8 +280,61 @@ def score_window(
         magnitude=mag,
         error=err,
         status=status.astype(str),
-        alert=_alerts(score, policy),
+        alert=alert_mask(score, policy),
         bridging=bridging,
+    )
+
+
+def _evidence_scores(
+    cur: np.ndarray,
+    base: np.ndarray,
+    comp: np.ndarray,
+    mag: np.ndarray,
+    err: np.ndarray,
+    a: np.ndarray,
+    b: np.ndarray,
+    status: np.ndarray,
+    policy: ShiftPolicy,
+    *,
+    ties: TieEvidence | None,
+    bridging: ArrayLike | None,
+    n_roles: int,
+) -> WindowScores:
+    """The ``"evidence"`` score: combined component z-scores of the scored accounts."""
+    n = cur.shape[0]
+    scored = status == "scored"
+    both = np.isfinite(cur).all(axis=1) & np.isfinite(base).all(axis=1)
+    if bridging is not None and np.asarray(bridging).shape != (n,):
+        raise ValueError("bridging arrays need one value per account row")
+    z = component_zscores(
+        scored,
+        ties=ties,
+        bridging=None if bridging is None else np.asarray(bridging, dtype=np.float64),
+        distance=np.where(both, comp, np.nan),
+        current_events=a,
+        baseline_events=b,
+        strata=activity_strata(np.fmax(a, b), scored & both, stratum_size=policy.stratum_size),
+        n_roles=n_roles,
+        smoothing=policy.tie_smoothing,
+        wanted=tuple(policy.components),
+    )
+    names = list(z)
+    if names:
+        combined, strongest = combine_zscores(np.stack([z[name] for name in names]))
+    else:
+        combined, strongest = np.full(n, np.nan), np.full(n, -1)
+    score = np.where(scored & np.isfinite(combined), np.maximum(combined, 0.0), np.nan)
+    label = np.array(names + [""], dtype=object)[np.where(strongest >= 0, strongest, len(names))]
+    return WindowScores(
+        score=score,
+        composition=np.where(both, comp, np.nan),
+        magnitude=mag,
+        error=err,
+        status=status.astype(str),
+        alert=alert_mask(score, policy),
+        bridging=z.get("bridging", np.full(n, np.nan)),
+        components=z,
+        strongest=np.where(np.isfinite(score), label, "").astype(str),
     )
 
 
@@ -266,13 +370,19 @@ def _composition(cur: np.ndarray, base: np.ndarray, F: ArrayLike, measure: str) 
 
 
 def _statuses(
-    has_cur: np.ndarray, has_base: np.ndarray, a: np.ndarray, b: np.ndarray, min_events: float
+    has_cur: np.ndarray,
+    has_base: np.ndarray,
+    structured: np.ndarray,
+    a: np.ndarray,
+    b: np.ndarray,
+    min_events: float,
 ) -> np.ndarray:
     """One of :data:`STATUSES` per account; later rules override earlier ones."""
     status = np.full(has_cur.size, "scored", dtype=object)
     low = ~(a >= min_events) | ~(b >= min_events)
     status[low] = "low_activity"
     status[~has_base] = "new"
+    status[~structured] = "too_little"
     status[~has_cur] = "inactive"
     return status
 
@@ -314,7 +424,7 @@ def _bridging_rise(
     return np.where(scored & np.isfinite(rise), rise, np.nan)
 
 
-def _alerts(score: np.ndarray, policy: ShiftPolicy) -> np.ndarray:
+def alert_mask(score: np.ndarray, policy: ShiftPolicy) -> np.ndarray:
     """Accounts that alert: over the threshold, or the top of the budget over the floor."""
     alert = np.zeros(score.size, dtype=bool)
     finite = np.isfinite(score)

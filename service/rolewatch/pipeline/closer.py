@@ -18,12 +18,15 @@ from __future__ import annotations
 import logging
 import threading
 import time
+from collections.abc import Callable
 from contextlib import AbstractContextManager
 from dataclasses import asdict, dataclass, replace
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from rolewatch.clock import now_micros, to_rfc3339
 from rolewatch.config import Settings
+from rolewatch.engine.pairs import KnownPairs
 from rolewatch.pipeline.compute import (
     PastWindow,
     WindowRef,
@@ -46,10 +49,12 @@ from rolewatch.store.db import (
     write_transaction,
 )
 from rolewatch.store.memberships import MembershipColumns, insert_memberships
+from rolewatch.store.pairs import insert_window_pairs, known_pair_parts
 from rolewatch.store.windows import WindowMeasures, WindowSpan
 
 log = logging.getLogger("rolewatch.pipeline")
 
+EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
 CLOSER_LOCK_ID = 0x7277_636C  # "rwcl": the closer's advisory lock id within this store
 MAX_RECOMPUTES = 5
 # Set when the service shuts down: the closer finishes the window it is writing and stops
@@ -201,7 +206,6 @@ def _close_once(
     with engine.connect() as connection:
         model = load_active_model(connection)
         current = load_window_events(connection, start_us, end_us)
-        previous = load_window_events(connection, start_us - geometry.span_us, start_us)
         training = stored_windows.unmeasured_training_windows(connection) if model is None else []
     if model is None:
         return _close_training(engine, settings, geometry, end_us, now_us, current, training)
@@ -209,10 +213,18 @@ def _close_once(
         past = load_past_windows(
             connection, model, before_end_us=end_us, limit=lookback_windows(settings)
         )
+        known = KnownPairs.from_parts(known_pair_parts(connection, before_end_us=end_us))
     window = WindowRef(id=None, start=to_rfc3339(start_us), end=to_rfc3339(end_us))
     started = time.perf_counter()
     result = compute_window(
-        model, settings, current, previous, past, window=window, raise_alerts=True
+        model,
+        settings,
+        current,
+        past,
+        known,
+        window=window,
+        raise_alerts=True,
+        events_of=_stored_events(engine),
     )
     seconds = time.perf_counter() - started
     with write_transaction(engine) as connection:
@@ -251,6 +263,24 @@ def _close_once(
                 case_urls=filed.case_urls,
             )
     return [_summary(window_id, start_us, end_us, len(current), result, training=False)]
+
+
+def _stored_events(engine: Engine) -> Callable[[WindowRef], WindowEvents | None]:
+    """Reads an earlier window's events back (for the features an alert shows as "before");
+    None once retention purged them."""
+
+    def read(ref: WindowRef) -> WindowEvents | None:
+        with engine.connect() as connection:
+            events = load_window_events(connection, _micros(ref.start), _micros(ref.end))
+        return events if len(events) else None
+
+    return read
+
+
+def _micros(text: str) -> int:
+    """Microseconds since the epoch of an RFC 3339 time written by ``to_rfc3339``."""
+    moment = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    return (moment - EPOCH) // timedelta(microseconds=1)
 
 
 def _claim_window(connection: Connection, start_us: int, end_us: int, loaded: int) -> None:
@@ -298,10 +328,10 @@ def _close_training(
     start_us = geometry.start_of(end_us)
     if len(training) + 1 < settings.training_windows:
         return [_record_training_window(engine, start_us, end_us, now_us, current)]
-    loaded, before_first = _load_training(engine, geometry, training, start_us)
+    loaded = _load_training(engine, training)
     loaded.append(_TrainingWindow(None, start_us, end_us, current))
     model = fit_model(settings, [window.events.snapshot() for window in loaded])
-    measured = _measure_training(model, settings, loaded, before_first)
+    measured = _measure_training(model, settings, loaded)
     with write_transaction(engine) as connection:
         _claim_window(connection, start_us, end_us, len(current))
         store_model(
@@ -340,14 +370,10 @@ def _record_training_window(
     )
 
 
-def _load_training(
-    engine: Engine, geometry: WindowGeometry, training: list[WindowSpan], start_us: int
-) -> tuple[list[_TrainingWindow], WindowEvents]:
-    """The events of the recorded training windows, and of the span before the first
-    training window (the one starting at ``start_us`` when none was recorded)."""
-    first_start = training[0].start_us if training else start_us
+def _load_training(engine: Engine, training: list[WindowSpan]) -> list[_TrainingWindow]:
+    """The events of the recorded training windows."""
     with engine.connect() as connection:
-        loaded = [
+        return [
             _TrainingWindow(
                 span.id,
                 span.start_us,
@@ -356,31 +382,27 @@ def _load_training(
             )
             for span in training
         ]
-        before_first = load_window_events(connection, first_start - geometry.span_us, first_start)
-    return loaded, before_first
 
 
 def _measure_training(
-    model: FrozenModel,
-    settings: Settings,
-    loaded: list[_TrainingWindow],
-    before_first: WindowEvents,
+    model: FrozenModel, settings: Settings, loaded: list[_TrainingWindow]
 ) -> list[_Measured]:
-    """Measure the training windows in order, each against the history of those before it."""
+    """Measure the training windows in order, each against the history of those before it
+    (the known pairs start empty at the first training window)."""
     measured = []
     past: list[PastWindow] = []
-    previous: WindowEvents = before_first
+    known = KnownPairs.empty()
     for window in loaded:
         ref = WindowRef(
             id=window.window_id, start=to_rfc3339(window.start_us), end=to_rfc3339(window.end_us)
         )
         started = time.perf_counter()
         result = compute_window(
-            model, settings, window.events, previous, past, window=ref, raise_alerts=False
+            model, settings, window.events, past, known, window=ref, raise_alerts=False
         )
         measured.append(_Measured(window, result, time.perf_counter() - started))
-        past = (past + [past_from_result(result)])[-lookback_windows(settings) :]
-        previous = window.events
+        past = (past + [past_from_result(result, ref)])[-lookback_windows(settings) :]
+        known = known.with_keys(result.new_pairs if result.new_pairs is not None else [])
     return measured
 
 
@@ -457,8 +479,12 @@ def _store_result(
             counterparts=result.activity.counterparts,
             new_counterparts=result.activity.new_counterparts,
             error=result.error,
+            ties=result.ties,
+            community=result.community,
         ),
     )
+    if result.new_pairs is not None:
+        insert_window_pairs(connection, window_id, result.new_pairs)
     return insert_alerts(
         connection,
         result.alerts,

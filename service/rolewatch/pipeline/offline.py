@@ -15,6 +15,7 @@ import numpy as np
 
 from rolewatch.clock import to_rfc3339
 from rolewatch.config import Settings
+from rolewatch.engine.pairs import KnownPairs
 from rolewatch.pipeline.compute import (
     WindowRef,
     WindowResult,
@@ -109,19 +110,31 @@ def measure_windows(
     loaded: list[tuple[int, int, WindowEvents, WindowEvents]],
     training_count: int,
 ) -> Iterator[OfflineWindow]:
-    """Measure split windows ``(start, end, events, previous span's events)`` in order."""
+    """Measure split windows ``(start, end, events, previous span's events)`` in order,
+    carrying the look-back and the known-pair history forward as the closer does."""
     lookback = lookback_windows(settings)
     past: list[PastWindow] = []
-    for index, (start, end, events, previous) in enumerate(loaded):
+    known = KnownPairs.empty()
+    by_end = {to_rfc3339(end): events for _start, end, events, _previous in loaded}
+
+    def events_of(ref: WindowRef) -> WindowEvents | None:
+        events = by_end.get(ref.end)
+        return events if events is not None and len(events) else None
+
+    for index, (start, end, events, _previous) in enumerate(loaded):
         training = index < training_count
+        ref = WindowRef(id=None, start=to_rfc3339(start), end=to_rfc3339(end))
         result = compute_window(
             model,
             settings,
             events,
-            previous,
             past,
-            window=WindowRef(id=None, start=to_rfc3339(start), end=to_rfc3339(end)),
+            known,
+            window=ref,
             raise_alerts=not training,
+            events_of=events_of,
         )
-        past = (past + [past_from_result(result)])[-lookback:]
+        past = (past + [past_from_result(result, ref)])[-lookback:]
+        if result.new_pairs is not None:
+            known = known.with_keys(result.new_pairs)
         yield OfflineWindow(index, start, end, training, events, result)

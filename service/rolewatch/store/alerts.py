@@ -43,25 +43,43 @@ class RoleShare:
 
 @dataclass(frozen=True)
 class ShiftComponents:
-    """The parts of the shift score (None where a part is not finite or not computed)."""
+    """The parts of the shift score (None where a part is not finite or not computed).
+
+    ``composition`` is the role-mixture distance, ``role`` its evidence-weighted z-score;
+    ``novelty_out`` / ``novelty_in`` / ``ties`` / ``direction`` / ``bridging`` the tie-level
+    z-scores (engine.components); ``strongest`` names the component that set the score.
+    """
 
     composition: float | None
     magnitude: float | None
     error: float | None
     bridging: float | None
+    role: float | None = None
+    novelty_out: float | None = None
+    novelty_in: float | None = None
+    ties: float | None = None
+    direction: float | None = None
+    strongest: str | None = None
 
 
 @dataclass(frozen=True)
 class ActivityEvidence:
-    """The account's activity in this window and in the span before it."""
+    """The account's activity in this window and in its baseline window (``*_before``;
+    None where the baseline window did not record it). Counterparts are distinct accounts;
+    *new* ones never dealt with the account in any earlier window."""
 
     events_out: int
     events_in: int
     counterparts: int
     new_counterparts: int
-    events_out_before: int = 0
-    events_in_before: int = 0
-    counterparts_before: int = 0
+    events_out_before: int | None = 0
+    events_in_before: int | None = 0
+    counterparts_before: int | None = 0
+    new_counterparts_before: int | None = None
+    new_sent_to: int | None = None
+    new_received_from: int | None = None
+    new_sent_to_before: int | None = None
+    new_received_from_before: int | None = None
 
 
 @dataclass(frozen=True)
@@ -92,6 +110,8 @@ class Evidence:
     notice: str
     window: WindowRef
     basis_version: str
+    # the baseline window every "before" value comes from (None: the account had none)
+    baseline: WindowRef | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON document stored with the alert and served under ``evidence``."""

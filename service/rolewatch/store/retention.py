@@ -6,9 +6,12 @@ account's role history and its alerts (with their evidence and sample event ids)
 raw events they came from. ``N = 0`` keeps every event.
 
 What is safe to delete. The closer reads, for the next window ``[s, s + span)``, the events
-of that window and of the span before it (``[s - span, s)``, for new counterparts and
-activity baselines); the training back-fill reads the training windows once, when the basis is
-fitted. So the purge cutoff is the earlier of
+of that window (new counterparts and activity baselines come from the stored memberships and
+the known-pair history); an alert's evidence reads its baseline window's events when they are
+still stored (and shows no feature moves once they are gone); the training back-fill reads
+the training windows once, when the basis is fitted. The cutoff keeps one span more than the
+next close needs (``[s - span, s)``, usually the baseline window of most alerts). So the
+purge cutoff is the earlier of
 
 - the start of the N-th most recent closed window, and
 - the start of the range the next close will read (``last_end + period - 2 * span``),

@@ -16,6 +16,7 @@ from sqlalchemy import (
     ForeignKey,
     Index,
     Integer,
+    LargeBinary,
     MetaData,
     String,
     Table,
@@ -120,15 +121,34 @@ memberships = Table(
     Column("window_id", BigInteger, ForeignKey("windows.id"), primary_key=True),
     Column("basis_version", String(64), nullable=False),
     Column("mixture", Text, nullable=False),  # JSON {role_id: weight}, sums to 1
-    Column("dominant_role", Integer, nullable=False),
+    # null when the account had too little activity to fit a role (status too_little)
+    Column("dominant_role", Integer, nullable=True),
     Column("score", Float, nullable=True),  # null on first appearance / not scored
-    Column("status", String(16), nullable=False),  # new | scored | low_activity
+    # new | scored | low_activity | too_little
+    Column("status", String(16), nullable=False),
     Column("events_out", Integer, nullable=False),
     Column("events_in", Integer, nullable=False),
     Column("counterparts", Integer, nullable=False),
-    Column("new_counterparts", Integer, nullable=False),
+    Column("new_counterparts", Integer, nullable=False),  # new over the known history
     Column("error", Float, nullable=False),  # relative reconstruction error
+    # distinct counterparts sent to / received from, known before or new (null: measured
+    # before these columns existed)
+    Column("ties_out_known", Integer, nullable=True),
+    Column("ties_out_new", Integer, nullable=True),
+    Column("ties_in_known", Integer, nullable=True),
+    Column("ties_in_new", Integer, nullable=True),
+    Column("community", Integer, nullable=True),  # community in this window (bridging)
     Index("ix_memberships_window_id", "window_id"),
+)
+
+# The known-pair history: per window, the 64-bit keys of the account pairs that interacted
+# there for the first time (engine.pairs), sorted, as little-endian uint64 bytes.
+pair_history = Table(
+    "pair_history",
+    metadata,
+    Column("window_id", BigInteger, ForeignKey("windows.id"), primary_key=True),
+    Column("pair_count", Integer, nullable=False),
+    Column("pairs", LargeBinary, nullable=False),
 )
 
 alerts = Table(

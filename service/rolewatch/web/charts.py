@@ -141,6 +141,9 @@ def mixture_chart(
             column.summary = f"{column.title}: not active"
             continue
         mixture = entry["mixture"]
+        if not mixture:
+            column.summary = f"{column.title}: too little activity to fit a role"
+            continue
         shares = sorted(
             ((float(mixture.get(str(band.role_id), 0.0) or 0.0), band.name) for band in bands),
             reverse=True,

@@ -34,12 +34,17 @@ def history_document(
                 "window_end": to_rfc3339(e["window_end_us"]),
                 "basis_version": e["basis_version"],
                 "mixture": e["mixture"],
-                "dominant_role": {
-                    "id": e["dominant_role"],
-                    "name": names.get(
-                        (e["basis_version"], e["dominant_role"]), f"role {e['dominant_role']}"
-                    ),
-                },
+                "dominant_role": (
+                    None
+                    if e["dominant_role"] is None
+                    else {
+                        "id": e["dominant_role"],
+                        "name": names.get(
+                            (e["basis_version"], e["dominant_role"]),
+                            f"role {e['dominant_role']}",
+                        ),
+                    }
+                ),
                 "score": e["score"],
                 "status": e["status"],
                 "activity": {

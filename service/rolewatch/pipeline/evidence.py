@@ -1,0 +1,254 @@
+"""What an alert shows: the evidence a reviewer reads, every "before" from one window.
+
+The *baseline window* of an alerted account (:mod:`rolewatch.pipeline.history`) is the one
+source of everything shown as "before": the mixture and dominant role, the activity and
+tie counts, the features (recomputed from that window's events when they are still
+stored) and, beside them, which of this window's counterparts are new over the account's
+known history.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any
+from urllib.parse import quote
+
+import numpy as np
+
+from rolewatch.engine.activity import Activity, Counterparts
+from rolewatch.engine.features import FeatureTable
+from rolewatch.engine.pairs import KnownPairs
+from rolewatch.engine.scoring import ShiftPolicy, WindowScores
+from rolewatch.engine.shift import feature_moves
+from rolewatch.engine.snapshot import Snapshot
+from rolewatch.pipeline.history import AccountHistory
+from rolewatch.pipeline.loading import PastWindow, WindowEvents
+from rolewatch.pipeline.model import FrozenModel
+from rolewatch.store.alerts import (
+    ActivityEvidence,
+    Evidence,
+    NewAlert,
+    RoleShare,
+    ShiftComponents,
+    WindowRef,
+)
+
+__all__ = ["REVIEW_NOTICE", "AlertContext", "alerts_with_evidence"]
+
+REVIEW_NOTICE = (
+    "A lead for human review, not a verdict: check the evidence before acting on this "
+    "account, and follow your data-protection obligations and your organisation's policy."
+)
+
+
+@dataclass(frozen=True)
+class AlertContext:
+    """What every alert of one window draws its evidence from."""
+
+    model: FrozenModel
+    policy: ShiftPolicy
+    threshold: float
+    base_url: str
+    window: WindowRef
+    snapshot: Snapshot
+    table: FeatureTable
+    mixture: np.ndarray
+    scores: WindowScores
+    activity: Activity
+    ties: np.ndarray  # n x 4 tie cells of this window
+    history: AccountHistory
+    past: list[PastWindow]
+    known: KnownPairs
+    events_of: Callable[[WindowRef], WindowEvents | None] | None
+
+
+def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[NewAlert]:
+    """One alert, with its evidence, per account the scores flagged."""
+    rows = np.flatnonzero(context.scores.alert)
+    samples = _sample_event_ids(context.snapshot, current, rows)
+    before = _baseline_features(context, rows)
+    counterparts = Counterparts(context.snapshot, known=context.known)
+    return [
+        _alert(context, int(row), samples.get(int(row), []), before.get(int(row)), counterparts)
+        for row in rows
+    ]
+
+
+def _baseline_features(context: AlertContext, rows: np.ndarray) -> dict[int, np.ndarray]:
+    """Raw features of each alerted account in its baseline window, where that window's
+    events can still be read (each window transformed once)."""
+    found: dict[int, np.ndarray] = {}
+    if context.events_of is None:
+        return found
+    windows = context.history.window[rows]
+    for step in np.unique(windows[windows >= 0]):
+        ref = context.past[int(step)].ref
+        events = context.events_of(ref) if ref is not None else None
+        if events is None or not len(events):
+            continue
+        snapshot = events.snapshot()
+        table = context.model.recipe.transform(snapshot)
+        wanted = rows[windows == step]
+        at = snapshot.index_of(context.snapshot.nodes[wanted])
+        for row, there in zip(wanted, at, strict=True):
+            if there >= 0:
+                found[int(row)] = table.raw[there]
+    return found
+
+
+def _alert(
+    context: AlertContext,
+    row: int,
+    sample_ids: list[str],
+    before_raw: np.ndarray | None,
+    counterparts: Counterparts,
+) -> NewAlert:
+    role_ids = context.model.basis.role_ids
+    baseline = context.history.window_mixture[row]
+    role_before = (
+        int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
+    )
+    return NewAlert(
+        account=str(context.snapshot.nodes[row]),
+        score=float(context.scores.score[row]),
+        role_before=role_before,
+        role_after=int(role_ids[int(np.argmax(context.mixture[row]))]),
+        evidence=_evidence(context, row, sample_ids, before_raw, counterparts),
+    )
+
+
+def _count(value: float) -> int | None:
+    return int(value) if np.isfinite(value) else None
+
+
+def _activity_evidence(context: AlertContext, row: int) -> ActivityEvidence:
+    activity, history, ties = context.activity, context.history, context.ties
+    return ActivityEvidence(
+        events_out=int(activity.events_out[row]),
+        events_in=int(activity.events_in[row]),
+        counterparts=int(activity.counterparts[row]),
+        new_counterparts=int(activity.new_counterparts[row]),
+        events_out_before=_count(history.events_out[row]),
+        events_in_before=_count(history.events_in[row]),
+        counterparts_before=_count(history.counterparts[row]),
+        new_counterparts_before=_count(history.new_counterparts[row]),
+        new_sent_to=int(ties[row, 1]),
+        new_received_from=int(ties[row, 3]),
+        new_sent_to_before=_count(history.cells[row, 1]),
+        new_received_from_before=_count(history.cells[row, 3]),
+    )
+
+
+def _components(scores: WindowScores, row: int) -> ShiftComponents:
+    parts = {name: _finite(values[row]) for name, values in scores.components.items()}
+    strongest = str(scores.strongest[row]) if scores.strongest is not None else ""
+    return ShiftComponents(
+        composition=_finite(scores.composition[row]),
+        magnitude=_finite(scores.magnitude[row]),
+        error=_finite(scores.error[row]),
+        bridging=_finite(scores.bridging[row]) if scores.bridging is not None else None,
+        role=parts.get("role"),
+        novelty_out=parts.get("novelty_out"),
+        novelty_in=parts.get("novelty_in"),
+        ties=parts.get("ties"),
+        direction=parts.get("direction"),
+        strongest=strongest or None,
+    )
+
+
+def _evidence(
+    context: AlertContext,
+    row: int,
+    sample_ids: list[str],
+    before_raw: np.ndarray | None,
+    counterparts: Counterparts,
+) -> Evidence:
+    model, history = context.model, context.history
+    account = str(context.snapshot.nodes[row])
+    step = int(history.window[row])
+    baseline_ref = context.past[step].ref if step >= 0 else None
+    before_mixture = history.window_mixture[row]
+    moves = (
+        _readable_moves(context.table.names, before_raw, context.table.raw[row])
+        if before_raw is not None
+        else []
+    )
+    quoted = quote(account, safe="")
+    return Evidence(
+        threshold=context.threshold,
+        measure=context.policy.measure,
+        mode=context.policy.alert_mode,
+        components=_components(context.scores, row),
+        mixture_before=(
+            _mixture_list(model, before_mixture) if np.isfinite(before_mixture).all() else ()
+        ),
+        mixture_after=_mixture_list(model, context.mixture[row]),
+        feature_moves=tuple(moves),
+        activity=_activity_evidence(context, row),
+        top_counterparts=tuple(counterparts.top(row, top=10)),
+        sample_event_ids=tuple(sample_ids),
+        history_url=f"{context.base_url}/v1/accounts/{quoted}/roles",
+        page_url=f"{context.base_url}/accounts/{quoted}",
+        notice=REVIEW_NOTICE,
+        window=context.window,
+        basis_version=model.basis.version,
+        baseline=baseline_ref,
+    )
+
+
+def _sample_event_ids(
+    snapshot: Snapshot, current: WindowEvents, rows: np.ndarray, per_account: int = 5
+) -> dict[int, list[str]]:
+    """The first few event ids (in time order) that involve each of ``rows``."""
+    if len(rows) == 0:
+        return {}
+    wanted = np.zeros(snapshot.n_nodes, dtype=bool)
+    wanted[rows] = True
+    actor_rows = snapshot.index_of(current.actor)
+    target_rows = snapshot.index_of(current.target)
+    samples: dict[int, list[str]] = {}
+    for position in np.flatnonzero(wanted[actor_rows] | wanted[target_rows]):
+        for node in (int(actor_rows[position]), int(target_rows[position])):
+            if wanted[node]:
+                found = samples.setdefault(node, [])
+                if len(found) < per_account:
+                    found.append(str(current.event_id[position]))
+    return samples
+
+
+def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> tuple[RoleShare, ...]:
+    """The mixture as role shares, largest first (weights to 4 decimals)."""
+    entries = [
+        RoleShare(
+            role_id=int(role_id), name=model.role_name(int(role_id)), weight=round(float(w), 4)
+        )
+        for role_id, w in zip(model.basis.role_ids, mixture, strict=True)
+    ]
+    return tuple(sorted(entries, key=lambda entry: -entry.weight))
+
+
+def _readable_moves(
+    names: Sequence[str], before: np.ndarray, after: np.ndarray, top: int = 5
+) -> list[dict[str, Any]]:
+    """The features that moved most, base features first: an analyst reads "out_degree 2 →
+    37" at once, while a third-round recursive aggregate needs a manual to decode. Recursive
+    features fill the list only when fewer than ``top`` base features moved."""
+    depth = np.array([name.count("(") for name in names])
+    moves: list[dict[str, Any]] = []
+    for level in range(int(depth.max(initial=0)) + 1):
+        columns = np.flatnonzero(depth == level)
+        if len(columns) == 0:
+            continue
+        picked = feature_moves(
+            [names[int(c)] for c in columns], before[columns], after[columns], top=top
+        )
+        moves.extend(picked[: top - len(moves)])
+        if len(moves) >= top:
+            break
+    return moves
+
+
+def _finite(value: float) -> float | None:
+    number = float(value)
+    return number if np.isfinite(number) else None

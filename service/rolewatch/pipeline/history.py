@@ -1,0 +1,195 @@
+"""Each account's past, as the scores and the evidence of one window need it.
+
+The *baseline window* of an account is the most recent earlier window in which it was
+active (within the look-back). Everything an alert shows as "before" comes from that one
+window: its mixture and dominant role, its activity and tie counts, its features. The
+role score compares with the baseline mixture the policy asks for (by default the same
+window's); the novelty components estimate the account's rate of meeting new
+counterparts from its last few active windows; the bridging component labels
+counterparts by the communities of the latest measured window.
+
+No database access: :class:`rolewatch.pipeline.loading.PastWindow` entries in, arrays
+out, one row per node of the window being measured.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from rolewatch.engine.shift import baseline_mixture
+from rolewatch.pipeline.loading import PastWindow
+
+__all__ = ["AccountHistory", "account_history", "novelty_history"]
+
+
+@dataclass(frozen=True)
+class AccountHistory:
+    """Per node of the window being measured (NaN / -1 where the account has no past).
+
+    Attributes
+    ----------
+    window : int array
+        Index into ``past`` of the account's baseline window (-1: none).
+    row : int array
+        The account's row in that window.
+    window_mixture : (n, k) array
+        The baseline window's mixture (NaN rows: no baseline, or too little activity
+        there to fit a role).
+    mixture : (n, k) array
+        The baseline mixture the role score uses (the policy's baseline mode).
+    events_out, events_in, counterparts, new_counterparts : arrays
+        The baseline window's counts.
+    cells : (n, 4) array
+        The baseline window's tie cells (:data:`rolewatch.engine.ties.TIE_CELLS`).
+    history_new : (n, 2) array
+        New counterparts sent to / received from over the account's last active windows
+        (at most ``novelty_windows``) whose tie counts are known.
+    history_windows : array
+        How many windows ``history_new`` sums.
+    recent_new : (n, L, 2) array
+        New counterparts sent to / received from in each of the account's last ``L``
+        active windows with known tie counts, newest first (NaN-padded), from which
+        ``history_new`` sums the first ``novelty_windows``.
+    reference_community : int array
+        The account's community in the latest measured window (-1: none).
+    """
+
+    window: np.ndarray
+    row: np.ndarray
+    window_mixture: np.ndarray
+    mixture: np.ndarray
+    events_out: np.ndarray
+    events_in: np.ndarray
+    counterparts: np.ndarray
+    new_counterparts: np.ndarray
+    cells: np.ndarray
+    history_new: np.ndarray
+    history_windows: np.ndarray
+    recent_new: np.ndarray
+    reference_community: np.ndarray
+
+
+def _rows_in(window: PastWindow, nodes: np.ndarray) -> np.ndarray:
+    """Row of each node in a past window (-1 where absent)."""
+    accounts = np.asarray(window.accounts).astype(str)
+    rows = np.full(nodes.size, -1, dtype=np.int64)
+    if accounts.size == 0 or nodes.size == 0:
+        return rows
+    order = np.argsort(accounts, kind="stable")
+    position = np.minimum(np.searchsorted(accounts[order], nodes), accounts.size - 1)
+    hit = accounts[order][position] == nodes
+    rows[hit] = order[position[hit]]
+    return rows
+
+
+def _column(window: PastWindow, name: str, rows: np.ndarray, width: int = 0) -> np.ndarray:
+    """``window.<name>`` at ``rows`` (NaN where the window did not record it)."""
+    values = getattr(window, name)
+    shape = (rows.size, width) if width else (rows.size,)
+    if values is None:
+        return np.full(shape, np.nan)
+    return np.asarray(values, dtype=np.float64)[rows]
+
+
+def account_history(
+    nodes: np.ndarray,
+    past: list[PastWindow],
+    *,
+    n_roles: int,
+    mode: str = "previous",
+    last_k: int = 4,
+    half_life: float = 2.0,
+    novelty_windows: int = 8,
+) -> AccountHistory:
+    """Gather every node's baseline window, novelty history and reference community.
+
+    Parameters
+    ----------
+    nodes : array of str
+        The accounts of the window being measured.
+    past : list of PastWindow
+        Earlier measured windows, oldest first (the look-back).
+    n_roles : int
+    mode, last_k, half_life :
+        The role score's baseline (:func:`rolewatch.engine.shift.baseline_mixture`).
+    novelty_windows : int
+        Most earlier active windows summed into ``history_new``.
+    """
+    nodes = np.asarray(nodes).astype(str)
+    n = nodes.size
+    out = _empty(n, n_roles, len(past))
+    counted = np.zeros(n, dtype=np.int64)
+    mixtures = np.full((len(past), n, n_roles), np.nan)
+    for step in range(len(past) - 1, -1, -1):  # newest first: a loop over windows only
+        window = past[step]
+        rows = _rows_in(window, nodes)
+        here = np.flatnonzero(rows >= 0)
+        mixtures[step, here] = np.asarray(window.mixture)[rows[here]]
+        first = here[out.window[here] < 0]
+        _fill_baseline(out, window, step, first, rows[first], n_roles)
+        cells = _column(window, "ties", rows[here], 4)
+        known = np.isfinite(cells).all(axis=1)
+        take = here[known]
+        out.recent_new[take, counted[take]] = cells[known][:, [1, 3]]
+        counted[take] += 1
+    summed, windows = novelty_history(out.recent_new, novelty_windows)
+    out.history_new[:] = summed
+    out.history_windows[:] = windows
+    if past:
+        rows = _rows_in(past[-1], nodes)
+        labels = past[-1].community
+        if labels is not None:
+            hit = rows >= 0
+            out.reference_community[hit] = np.asarray(labels, dtype=np.int64)[rows[hit]]
+    if mode == "previous" or not past:
+        out.mixture[:] = out.window_mixture
+    else:
+        out.mixture[:] = baseline_mixture(mixtures, mode=mode, last_k=last_k, half_life=half_life)
+    return out
+
+
+def novelty_history(recent_new: np.ndarray, windows: int) -> tuple[np.ndarray, np.ndarray]:
+    """New counterparts (sent, received) summed over each account's last ``windows``
+    active windows, and how many windows that is (``recent_new`` newest first)."""
+    recent = np.asarray(recent_new, dtype=np.float64)[:, : max(int(windows), 0)]
+    present = np.isfinite(recent).all(axis=2)
+    return np.nansum(recent, axis=1), present.sum(axis=1).astype(np.float64)
+
+
+def _empty(n: int, k: int, depth: int) -> AccountHistory:
+    def nan(*shape: int) -> np.ndarray:
+        return np.full(shape, np.nan)
+
+    return AccountHistory(
+        window=np.full(n, -1, dtype=np.int64),
+        row=np.full(n, -1, dtype=np.int64),
+        window_mixture=nan(n, k),
+        mixture=nan(n, k),
+        events_out=nan(n),
+        events_in=nan(n),
+        counterparts=nan(n),
+        new_counterparts=nan(n),
+        cells=nan(n, 4),
+        history_new=np.zeros((n, 2)),
+        history_windows=np.zeros(n),
+        recent_new=nan(n, depth, 2),
+        reference_community=np.full(n, -1, dtype=np.int64),
+    )
+
+
+def _fill_baseline(
+    out: AccountHistory, window: PastWindow, step: int, nodes: np.ndarray, rows: np.ndarray, k: int
+) -> None:
+    """Record ``window`` as the baseline window of ``nodes`` (at ``rows`` there)."""
+    out.window[nodes] = step
+    out.row[nodes] = rows
+    out.window_mixture[nodes] = np.asarray(window.mixture, dtype=np.float64)[rows]
+    events = np.asarray(window.events, dtype=np.float64)[rows]
+    sent = _column(window, "events_out", rows)
+    out.events_out[nodes] = sent
+    out.events_in[nodes] = events - sent
+    out.counterparts[nodes] = _column(window, "counterparts", rows)
+    out.new_counterparts[nodes] = _column(window, "new_counterparts", rows)
+    out.cells[nodes] = _column(window, "ties", rows, 4)
