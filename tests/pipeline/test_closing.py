@@ -17,6 +17,7 @@ from rolewatch.pipeline import closer as closer_module
 from rolewatch.pipeline.closer import close_due_windows
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
+from rolewatch.store.review_schema import case_alerts, case_history, cases, suppressed_alerts
 from rolewatch.store.schema import alerts, deliveries, events, memberships, pair_history, windows
 
 from .conftest import sample_events, sample_truth
@@ -195,6 +196,11 @@ def test_a_crash_mid_close_leaves_no_partial_window_and_the_next_tick_redoes_it(
     with engine.begin() as connection:
         last = connection.execute(sa.select(sa.func.max(windows.c.id))).scalar_one()
         connection.execute(deliveries.delete())
+        # review cases point at alerts; drop them so the window's alerts can go
+        connection.execute(case_history.delete())
+        connection.execute(case_alerts.delete())
+        connection.execute(cases.delete())
+        connection.execute(suppressed_alerts.delete().where(suppressed_alerts.c.window_id == last))
         connection.execute(alerts.delete().where(alerts.c.window_id == last))
         connection.execute(memberships.delete().where(memberships.c.window_id == last))
         connection.execute(pair_history.delete().where(pair_history.c.window_id == last))
