@@ -3,8 +3,9 @@
 from .basis import Memberships, RoleBasis
 from .errors import EngineInputError, FeatureMismatch, RecipeMismatch, TooManyRoles
 from .features import FeatureRecipe, FeatureTable
+from .naming import RoleProfile, describe_roles
+from .readable import ReadableMeasures, readable_measures
 from .scoring import ShiftPolicy, WindowScores, score_window
-from .sensemaking import RoleDescription, describe_roles, node_measures
 from .shift import (
     activity_change,
     baseline_mixture,
@@ -28,9 +29,10 @@ __all__ += [
     "ShiftPolicy",
     "WindowScores",
     "score_window",
-    "RoleDescription",
+    "RoleProfile",
     "describe_roles",
-    "node_measures",
+    "ReadableMeasures",
+    "readable_measures",
     "activity_change",
     "baseline_mixture",
     "cosine_distance",

@@ -4,13 +4,16 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
 from rolewatch.config import Settings
-from rolewatch.engine.basis import Memberships, RoleBasis
+from rolewatch.engine.activity import activity_counts
+from rolewatch.engine.basis import RoleBasis
 from rolewatch.engine.features import FeatureRecipe, FeatureTable
-from rolewatch.engine.sensemaking import RoleDescription, describe_roles, node_measures
+from rolewatch.engine.naming import RoleProfile, describe_roles
+from rolewatch.engine.readable import readable_measures
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.store.db import Connection
 from rolewatch.store.models import RoleInfo, StoredModel, active_model, save_model
@@ -61,16 +64,13 @@ def fit_model(
     descriptions = _describe(basis, snapshots, tables)
     kept_names = {info.role_id: info.name for info in previous.roles} if previous else {}
     infos = []
-    for description in descriptions:
+    for description, features in zip(descriptions, basis.F, strict=True):
         infos.append(
             RoleInfo(
                 role_id=int(description.role_id),
                 name=kept_names.get(int(description.role_id), description.name),
                 description=description.description,
-                profile={
-                    "features": description.profile,
-                    "measures": description.measure_affinity,
-                },
+                profile=_profile(description, basis.feature_names, features),
             )
         )
     return FrozenModel(recipe=recipe, basis=basis, roles=tuple(infos))
@@ -78,29 +78,40 @@ def fit_model(
 
 def _describe(
     basis: RoleBasis, snapshots: list[Snapshot], tables: list[FeatureTable]
-) -> list[RoleDescription]:
-    measure_names: tuple[str, ...] = ()
+) -> list[RoleProfile]:
+    """Readable measures and mixtures of every account of the reference windows, stacked;
+    the share of new counterparts counts from the second window on (NaN in the first)."""
     measure_blocks, mixture_blocks = [], []
+    previous: Snapshot | None = None
     for snapshot, table in zip(snapshots, tables, strict=True):
         if snapshot.n_nodes == 0:
             continue
-        names, values = node_measures(snapshot, betweenness_samples=min(256, snapshot.n_nodes))
-        measure_names = names
-        measure_blocks.append(values)
-        mixture_blocks.append(basis.memberships(table))
+        new = activity_counts(snapshot, previous).new_counterparts if previous else None
+        measure_blocks.append(readable_measures(snapshot.counts, new_counterparts=new).values)
+        mixture_blocks.append(basis.memberships(table).mixture)
+        previous = snapshot
     if not measure_blocks:
         raise ValueError("the training windows hold no events: post events before training")
-    stacked_measures = np.vstack(measure_blocks)
-    stacked = _stack_memberships(mixture_blocks)
-    return describe_roles(basis, stacked, measure_names, stacked_measures)
+    return describe_roles(basis.role_ids, np.vstack(mixture_blocks), np.vstack(measure_blocks))
 
 
-def _stack_memberships(blocks: list[Memberships]) -> Memberships:
-    return Memberships(
-        loadings=np.vstack([block.loadings for block in blocks]),
-        mixture=np.vstack([block.mixture for block in blocks]),
-        error=np.concatenate([block.error for block in blocks]),
-    )
+def _profile(
+    description: RoleProfile, feature_names: tuple[str, ...], features: np.ndarray
+) -> dict[str, Any]:
+    """What the catalogue shows of a role: readable measures against the population, then
+    the basis' feature weights."""
+    return {
+        "holders": description.holders,
+        "measures": {
+            name: {
+                "mean": description.mean[name],
+                "population": description.population[name],
+                "level": description.level[name],
+            }
+            for name in description.mean
+        },
+        "features": {f: float(v) for f, v in zip(feature_names, features, strict=True)},
+    }
 
 
 def store_model(

@@ -1,0 +1,117 @@
+"""Readable measures against networkx's definitions, and readable labels of ReFeX features."""
+
+import math
+
+import networkx as nx
+import numpy as np
+import pytest
+
+from rolewatch.engine.errors import EngineInputError
+from rolewatch.engine.readable import MEASURES, feature_label, readable_measures
+from rolewatch.engine.snapshot import Snapshot
+
+
+def _digraph_snapshot(G: nx.DiGraph) -> tuple[Snapshot, list]:
+    """One event per arc, ``count`` events where the arc has that attribute."""
+    actor, target = [], []
+    for u, v, data in G.edges(data=True):
+        for _ in range(int(data.get("count", 1))):
+            actor.append(f"m-{u:03d}")
+            target.append(f"m-{v:03d}")
+    order = sorted(G.nodes())
+    return Snapshot.from_events(actor, target, nodes=[f"m-{u:03d}" for u in order]), order
+
+
+def _random_digraph(seed: int) -> nx.DiGraph:
+    rng = np.random.default_rng(seed)
+    G = nx.gnm_random_graph(90, 420, seed=seed, directed=True)
+    for u, v in G.edges():
+        G.edges[u, v]["count"] = int(rng.integers(1, 4))
+    G.add_node(90)  # an isolated account
+    return G
+
+
+def _karate_both_ways() -> nx.DiGraph:
+    # Zachary's karate club as shipped by networkx, one event each way per tie
+    return nx.karate_club_graph().to_directed()
+
+
+@pytest.mark.parametrize("make", [_karate_both_ways, lambda: _random_digraph(3)])
+def test_measures_equal_networkx(make):
+    G = make()
+    snap, order = _digraph_snapshot(G)
+    R = readable_measures(snap.counts)
+    col = {name: R.column(name) for name in MEASURES}
+    U = nx.Graph(G.to_undirected())
+    # Source: networkx DiGraph.out_degree / in_degree (distinct accounts), and the same
+    # with weight="count" (events sent / received)
+    np.testing.assert_array_equal(col["out_degree"], [G.out_degree(u) for u in order])
+    np.testing.assert_array_equal(col["in_degree"], [G.in_degree(u) for u in order])
+    sent = [G.out_degree(u, weight="count") for u in order]
+    got = [G.in_degree(u, weight="count") for u in order]
+    np.testing.assert_array_equal(col["events_out"], sent)
+    np.testing.assert_array_equal(col["events_in"], got)
+    # Source: networkx.clustering on the undirected view (Watts & Strogatz 1998)
+    np.testing.assert_allclose(col["clustering"], [nx.clustering(U, u) for u in order])
+    # Source: networkx.effective_size (Burt 1992); networkx gives NaN for an isolated node
+    effective = nx.effective_size(U)
+    expected = [0.0 if math.isnan(effective[u]) else effective[u] for u in order]
+    np.testing.assert_allclose(col["brokerage"], expected)
+    # Source: networkx.reciprocity(G, node) = 2 |pred ∩ succ| / (|pred| + |succ|); ours is
+    # |pred ∩ succ| / |pred ∪ succ| = x / (2 - x) for networkx's x
+    for u, value in zip(order, col["reciprocity"], strict=True):
+        if G.degree(u) == 0:
+            assert value == 0.0
+            continue
+        x = nx.reciprocity(G, u)
+        assert value == pytest.approx(x / (2 - x))
+    share = np.divide(
+        sent, np.add(sent, got), out=np.full(len(order), 0.5), where=np.add(sent, got) > 0
+    )
+    np.testing.assert_allclose(col["sent_share"], share)
+    assert np.isnan(col["new_share"]).all()
+
+
+def test_a_few_rows_give_the_same_values_as_all_rows():
+    snap, _ = _digraph_snapshot(_random_digraph(7))
+    new = np.arange(snap.n_nodes) % 3
+    full = readable_measures(snap.counts, new_counterparts=new)
+    rows = np.array([5, 0, 77, 90, 5])
+    some = readable_measures(snap.counts, rows=rows, new_counterparts=new)
+    np.testing.assert_allclose(some.values, full.values[rows])
+    degree = np.asarray(((snap.counts + snap.counts.T) > 0).sum(axis=1)).ravel()[rows]
+    expected = np.divide(new[rows], degree, out=np.zeros(len(rows)), where=degree > 0)
+    np.testing.assert_allclose(some.column("new_share"), expected)
+    assert some.row(1)["out_degree"] == full.values[0, MEASURES.index("out_degree")]
+
+
+def test_rows_outside_the_window_are_refused():
+    snap, _ = _digraph_snapshot(_random_digraph(1))
+    with pytest.raises(EngineInputError, match="node indices"):
+        readable_measures(snap.counts, rows=np.array([snap.n_nodes]))
+
+
+@pytest.mark.parametrize(
+    ("name", "label"),
+    [
+        ("out_degree", "accounts it writes to"),
+        ("mean_out(degree)", "average counterparts of the accounts it writes to"),
+        ("sum_in(out_events)", "total events sent of the accounts writing to it"),
+        (
+            "mean_out(sum_in(degree))",
+            "average, over the accounts it writes to, of the total counterparts of the "
+            "accounts writing to them",
+        ),
+        ("not_a_feature", "not_a_feature"),
+    ],
+)
+def test_feature_labels_are_words_not_formulas(name, label):
+    assert feature_label(name) == label
+
+
+def test_no_label_of_a_deep_feature_holds_a_formula():
+    ops = ["sum_in", "mean_in", "sum_out", "mean_out", "sum_all", "mean_all"]
+    for outer in ops:
+        for inner in ops:
+            text = feature_label(f"{outer}({inner}(in_degree))")
+            assert "(" not in text and "_" not in text, text
