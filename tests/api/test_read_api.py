@@ -322,6 +322,7 @@ def test_alert_by_id_in_contract_form(seeded):
         "basis_version",
         "role_before",
         "role_after",
+        "headline",
         "evidence",
     }
     assert (

@@ -91,6 +91,7 @@ def store_alert(
         "history_url": f"https://rolewatch.example/v1/accounts/{account}/roles",
         "page_url": f"https://rolewatch.example/accounts/{account}",
         "notice": "A lead for human review, not a verdict.",
+        "change": "sends to 2 → 37 accounts",
     }
     evidence.update(evidence_extra or {})
     alert_id = connection.execute(
@@ -117,6 +118,7 @@ def store_alert(
         "basis_version": "b-1a2b3c",
         "role_before": {"id": role_before, "name": "quiet buyer"},
         "role_after": {"id": role_after, "name": "busy payer"},
+        "headline": f"quiet buyer → busy payer: {evidence['change']}",
         "evidence": evidence,
     }
 

@@ -58,8 +58,9 @@ def test_text_delivery_is_accepted_by_a_chat_style_receiver(engine, settings, re
     assert text_request.status == 200
     assert json_request.status == 400  # the receiver really rejects other shapes
     text = json.loads(text_request.body)["text"]
-    assert "m-00042" in text and "quiet buyer → busy payer" in text and "0.73" in text
-    assert "out_degree 2 → 37" in text and "37 new counterparts of 38" in text
+    # the headline of the API form: both roles and what moved
+    assert "m-00042" in text and "quiet buyer → busy payer: sends to 2 → 37 accounts" in text
+    assert "Score 0.73" in text
     assert "https://rolewatch.example/accounts/m-00042" in text
     assert REVIEW_LINE in text
 

@@ -186,6 +186,11 @@ class Alert(BaseModel):
     basis_version: str
     role_before: RoleRef | None
     role_after: RoleRef
+    headline: str = Field(
+        ...,
+        description="What changed in one line: both roles, or 'same role (name)', and the "
+        "readable measure that moved most.",
+    )
     evidence: dict[str, Any]
 
 

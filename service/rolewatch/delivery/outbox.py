@@ -104,12 +104,14 @@ def sample_alert(settings: Settings, now_us: int) -> dict[str, Any]:
         "basis_version": "test",
         "role_before": {"id": 0, "name": "TEST role before"},
         "role_after": {"id": 1, "name": "TEST role after"},
+        "headline": "TEST role before → TEST role after: sends to 2 → 30 accounts",
         "evidence": {
             "test": True,
             "notice": "TEST message: no account changed role. Alerts are leads for human "
             "review, not verdicts.",
             "feature_moves": [{"feature": "out_degree", "before": 2.0, "after": 30.0}],
             "activity": {"counterparts": 30, "new_counterparts": 28},
+            "change": "sends to 2 → 30 accounts",
             "page_url": f"{base}/accounts/test-account",
         },
     }

@@ -69,22 +69,13 @@ def _role(role: Any) -> str:
     return "no earlier role"
 
 
-def strongest_evidence(evidence: dict[str, Any]) -> str | None:
-    """The first feature move and the new-counterpart count, as one short phrase."""
-    parts = []
-    moves = evidence.get("feature_moves") or []
-    if moves and isinstance(moves[0], dict):
-        move = moves[0]
-        parts.append(
-            f"{plain(move.get('feature'), 40)} {_number(move.get('before'))} → "
-            f"{_number(move.get('after'))}"
-        )
-    activity = evidence.get("activity") or {}
-    if isinstance(activity, dict) and activity.get("new_counterparts"):
-        total = activity.get("counterparts")
-        of_total = f" of {_number(total)}" if total is not None else ""
-        parts.append(f"{_number(activity['new_counterparts'])} new counterparts{of_total}")
-    return "; ".join(parts) or None
+def headline(alert: dict[str, Any]) -> str:
+    """The alert's headline (what changed, docs/CONTRACTS.md "Alert"), or the two roles for
+    an alert form without one."""
+    text = alert.get("headline")
+    if isinstance(text, str) and text:
+        return plain(text, 300)
+    return f"{_role(alert.get('role_before'))} → {_role(alert.get('role_after'))}"
 
 
 def text_summary(
@@ -100,13 +91,8 @@ def text_summary(
     window = ""
     if alert.get("window_start") and alert.get("window_end"):
         window = f" (window {plain(alert['window_start'], 40)} to {plain(alert['window_end'], 40)})"
-    lines.append(
-        f"{_role(alert.get('role_before'))} → {_role(alert.get('role_after'))}, "
-        f"score {_number(alert.get('score'))}{window}"
-    )
-    strongest = strongest_evidence(evidence)
-    if strongest:
-        lines.append(f"Strongest evidence: {strongest}")
+    lines.append(headline(alert))
+    lines.append(f"Score {_number(alert.get('score'))}{window}")
     if evidence.get("page_url"):
         lines.append(f"Details: {safe_link(evidence['page_url'])}")
     if case_url:

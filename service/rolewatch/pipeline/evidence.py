@@ -10,7 +10,7 @@ known history.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 from urllib.parse import quote
 
@@ -18,7 +18,9 @@ import numpy as np
 
 from rolewatch.engine.activity import Activity, Counterparts
 from rolewatch.engine.features import FeatureTable
+from rolewatch.engine.headline import LEADS, change_text, measure_moves
 from rolewatch.engine.pairs import KnownPairs
+from rolewatch.engine.readable import MEASURE_LABELS, MEASURES, readable_measures
 from rolewatch.engine.scoring import ShiftPolicy, WindowScores
 from rolewatch.engine.shift import feature_moves
 from rolewatch.engine.snapshot import Snapshot
@@ -28,6 +30,7 @@ from rolewatch.pipeline.model import FrozenModel
 from rolewatch.store.alerts import (
     ActivityEvidence,
     Evidence,
+    MeasureValue,
     NewAlert,
     RoleShare,
     ShiftComponents,
@@ -68,17 +71,58 @@ def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[N
     rows = np.flatnonzero(context.scores.alert)
     samples = _sample_event_ids(context.snapshot, current, rows)
     before = _baseline_features(context, rows)
+    now = readable_measures(
+        context.snapshot.counts, rows=rows, new_counterparts=context.activity.new_counterparts
+    )
     counterparts = Counterparts(context.snapshot, known=context.known)
-    return [
-        _alert(context, int(row), samples.get(int(row), []), before.get(int(row)), counterparts)
-        for row in rows
-    ]
+    alerts = []
+    for position, row in enumerate(rows):
+        raw, measures_before = before.get(int(row), (None, None))
+        alerts.append(
+            _alert(
+                context,
+                int(row),
+                samples.get(int(row), []),
+                raw,
+                counterparts,
+                _measures(context, int(row), measures_before, now.row(position)),
+            )
+        )
+    return alerts
 
 
-def _baseline_features(context: AlertContext, rows: np.ndarray) -> dict[int, np.ndarray]:
-    """Raw features of each alerted account in its baseline window, where that window's
-    events can still be read (each window transformed once)."""
-    found: dict[int, np.ndarray] = {}
+def _measures(
+    context: AlertContext, row: int, before: dict[str, float] | None, after: dict[str, float]
+) -> tuple[MeasureValue, ...]:
+    """The readable measures before and after; without the baseline's events, the event
+    counts and the share of new counterparts come from the stored baseline figures."""
+    history = context.history
+    if before is None:
+        before = {name: float("nan") for name in MEASURES}
+        before["events_out"] = float(history.events_out[row])
+        before["events_in"] = float(history.events_in[row])
+    counterparts = float(history.counterparts[row])
+    if np.isfinite(counterparts):
+        new = float(history.new_counterparts[row])
+        before["new_share"] = new / counterparts if counterparts > 0 else 0.0
+    return tuple(
+        MeasureValue(
+            measure=name,
+            label=MEASURE_LABELS[name],
+            before=round(before[name], 4) if np.isfinite(before[name]) else None,
+            after=round(after[name], 4),
+        )
+        for name in MEASURES
+        if np.isfinite(after[name])
+    )
+
+
+def _baseline_features(
+    context: AlertContext, rows: np.ndarray
+) -> dict[int, tuple[np.ndarray, dict[str, float]]]:
+    """Raw features and readable measures of each alerted account in its baseline window,
+    where that window's events can still be read (each window transformed once)."""
+    found: dict[int, tuple[np.ndarray, dict[str, float]]] = {}
     if context.events_of is None:
         return found
     windows = context.history.window[rows]
@@ -91,9 +135,10 @@ def _baseline_features(context: AlertContext, rows: np.ndarray) -> dict[int, np.
         table = context.model.recipe.transform(snapshot)
         wanted = rows[windows == step]
         at = snapshot.index_of(context.snapshot.nodes[wanted])
-        for row, there in zip(wanted, at, strict=True):
-            if there >= 0:
-                found[int(row)] = table.raw[there]
+        present = at >= 0
+        measured = readable_measures(snapshot.counts, rows=at[present])
+        for position, (row, there) in enumerate(zip(wanted[present], at[present], strict=True)):
+            found[int(row)] = (table.raw[there], measured.row(position))
     return found
 
 
@@ -103,18 +148,30 @@ def _alert(
     sample_ids: list[str],
     before_raw: np.ndarray | None,
     counterparts: Counterparts,
+    measures: tuple[MeasureValue, ...],
 ) -> NewAlert:
     role_ids = context.model.basis.role_ids
     baseline = context.history.window_mixture[row]
     role_before = (
         int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
     )
+    role_after = int(role_ids[int(np.argmax(context.mixture[row]))])
+    evidence = _evidence(context, row, sample_ids, before_raw, counterparts)
+    activity = evidence.activity
+    moves = measure_moves(
+        {m.measure: m.before for m in measures},
+        {m.measure: m.after for m in measures},
+        new_counterparts=activity.new_counterparts,
+        new_counterparts_before=activity.new_counterparts_before,
+        lead=LEADS.get(evidence.components.strongest or ""),
+    )
+    change = change_text(moves, same_role=role_before == role_after)
     return NewAlert(
         account=str(context.snapshot.nodes[row]),
         score=float(context.scores.score[row]),
         role_before=role_before,
-        role_after=int(role_ids[int(np.argmax(context.mixture[row]))]),
-        evidence=_evidence(context, row, sample_ids, before_raw, counterparts),
+        role_after=role_after,
+        evidence=replace(evidence, measures=measures, change=change),
     )
 
 

@@ -19,6 +19,7 @@ from typing import Any
 from sqlalchemy.engine import Connection
 
 from rolewatch.clock import to_rfc3339
+from rolewatch.engine.headline import compose_headline
 from rolewatch.store.db import inserted_id
 from rolewatch.store.schema import alerts
 
@@ -83,6 +84,17 @@ class ActivityEvidence:
 
 
 @dataclass(frozen=True)
+class MeasureValue:
+    """One readable measure of the account (engine.readable) in its baseline window and in
+    this one; ``before`` is None where the baseline window's events were purged."""
+
+    measure: str
+    label: str
+    before: float | None
+    after: float
+
+
+@dataclass(frozen=True)
 class WindowRef:
     """The window an alert belongs to (its id is known once the window is stored)."""
 
@@ -112,6 +124,10 @@ class Evidence:
     basis_version: str
     # the baseline window every "before" value comes from (None: the account had none)
     baseline: WindowRef | None = None
+    measures: tuple[MeasureValue, ...] = ()
+    # what moved, in words (engine.headline.change_text); the API form's headline adds the
+    # role names as they read when the alert is shown
+    change: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON document stored with the alert and served under ``evidence``."""
@@ -166,6 +182,7 @@ class Alert:
     basis_version: str
     role_before: RoleRef | None
     role_after: RoleRef
+    headline: str
     evidence: dict[str, Any]
 
     def to_dict(self) -> dict[str, Any]:
@@ -188,6 +205,18 @@ def _role_name(
     return stored if isinstance(stored, str) else f"role {role_id}"
 
 
+def _headline(row: StoredAlert, before: RoleRef | None, after: RoleRef, evidence: dict) -> str:
+    """The alert's headline with the roles' current names (alerts stored before headlines
+    existed read "role mixture shifted")."""
+    return compose_headline(
+        before.name if before else None,
+        after.name,
+        same_role=row.role_before == row.role_after,
+        change=str(evidence.get("change") or "role mixture shifted"),
+        baseline=evidence.get("baseline") is not None,
+    )
+
+
 def alert_form(row: StoredAlert, names: Mapping[tuple[str, int], str]) -> Alert:
     """A stored alert in the API form; ``names`` maps ``(basis_version, role_id)`` to the
     role's current name."""
@@ -200,6 +229,10 @@ def alert_form(row: StoredAlert, names: Mapping[tuple[str, int], str]) -> Alert:
                 names, row.basis_version, row.role_before, evidence.get("mixture_before")
             ),
         )
+    role_after = RoleRef(
+        id=row.role_after,
+        name=_role_name(names, row.basis_version, row.role_after, evidence.get("mixture_after")),
+    )
     return Alert(
         id=row.id,
         account=row.account,
@@ -210,12 +243,8 @@ def alert_form(row: StoredAlert, names: Mapping[tuple[str, int], str]) -> Alert:
         score=row.score,
         basis_version=row.basis_version,
         role_before=role_before,
-        role_after=RoleRef(
-            id=row.role_after,
-            name=_role_name(
-                names, row.basis_version, row.role_after, evidence.get("mixture_after")
-            ),
-        ),
+        role_after=role_after,
+        headline=_headline(row, role_before, role_after, evidence),
         evidence=evidence,
     )
 
