@@ -13,6 +13,8 @@ from urllib.parse import parse_qs, quote, unquote, urlsplit
 import pytest
 from selenium.webdriver.common.by import By
 
+from rolewatch.engine.naming import format_value
+from rolewatch.engine.readable import MEASURE_LABELS, MEASURES
 from rolewatch.store import queries
 
 from .conftest import HOSTILE_ACCOUNT, api_get, screenshot, sign_in, wait_for
@@ -108,6 +110,12 @@ def test_alert_queue_lists_alerts_newest_first(page, site):
     first = rows[0].text
     assert f"{expected[0]['score']:.2f}" in first
     assert expected[0]["role_after"]["name"] in first
+    # each row's headline is the API's, and none repeats a role without saying what moved
+    headlines = [row.find_element(By.CSS_SELECTOR, "td.headline").text for row in rows]
+    assert headlines == [alert["headline"] for alert in expected]
+    for alert in expected:
+        after = alert["role_after"]["name"]
+        assert not alert["headline"].startswith(f"{after} → {after}"), alert["headline"]
     _footer_says_leads(page)
     screenshot(page, "alerts")
 
@@ -304,7 +312,23 @@ def test_role_catalogue_matches_the_api(page, site):
     ]
     assert sum(counts) == latest["account_count"]
     assert _css(page, "form.rename") == [], "a read key must not see the rename form"
-    assert len(_css(page, "svg.bars rect")) > 0
+    # the profile: every readable measure, the role's average beside the population's
+    for card, role in zip(cards, roles, strict=True):
+        measures = role["profile"]["measures"]
+        rows = card.find_elements(By.CSS_SELECTOR, "table.profile tbody tr")
+        assert len(rows) == len(measures) == len(MEASURES)
+        for row, name in zip(rows, MEASURES, strict=True):
+            cells = [cell.text for cell in row.find_elements(By.CSS_SELECTOR, "td.num")]
+            assert row.find_element(By.TAG_NAME, "th").text == MEASURE_LABELS[name]
+            assert cells == [
+                format_value(name, measures[name]["mean"]),
+                format_value(name, measures[name]["population"]),
+            ]
+    # holders over time: one bar per window measured against the basis
+    measured = [w for w in queries.list_windows(site.engine) if w["account_count"]]
+    bars = cards[0].find_elements(By.CSS_SELECTOR, "svg.holders-chart rect")
+    assert 0 < len(bars) <= len(measured)
+    assert len(_css(page, ".transitions .into")) == len(cards)
     _footer_says_leads(page)
     screenshot(page, "roles")
 

@@ -226,29 +226,3 @@ def activity_chart(
         max_in=max_in,
         bars=bars,
     )
-
-
-def profile_levels(profiles: list[dict[str, float]], *, top: int = 6) -> list[list[dict[str, Any]]]:
-    """Each role's most characteristic features, as horizontal bars.
-
-    ``profiles``: one ``{feature: weight}`` per role (rows of the RolX role matrix F). A bar's
-    length is the role's weight on the feature divided by the largest weight any role has on
-    it (1 = this role has the most of it), so the bars say what sets a role apart. Base
-    features come first because they read plainly (recursive aggregates such as
-    ``sum_in(out_degree)`` follow only when fewer than ``top`` base features apply).
-    """
-    largest: dict[str, float] = {}
-    for profile in profiles:
-        for name, value in (profile or {}).items():
-            if value is not None and float(value) > largest.get(name, 0.0):
-                largest[name] = float(value)
-    result = []
-    for profile in profiles:
-        items = [
-            (str(name), float(value) / largest[name], float(value))
-            for name, value in (profile or {}).items()
-            if value is not None and float(value) > 0 and largest.get(name, 0) > 0
-        ]
-        items.sort(key=lambda item: ("(" in item[0], -item[1], -item[2]))
-        result.append([{"feature": name, "level": level} for name, level, _ in items[:top]])
-    return result

@@ -23,8 +23,9 @@ from fastapi.templating import Jinja2Templates
 from sqlalchemy.engine import Engine
 
 from rolewatch.api.deps import PageKey, SettingsDep, SignInRequired, StoreDep, redirect_to_signin
-from rolewatch.api.integers import INT32_MAX, stored_integer
+from rolewatch.api.integers import stored_integer
 from rolewatch.config import Settings
+from rolewatch.engine.naming import format_value
 from rolewatch.identifiers import visible
 from rolewatch.store import queries, summaries
 from rolewatch.store.keys import ApiKey, verify_key
@@ -54,6 +55,7 @@ _environment.filters.update(
     account_url=lambda account: "/accounts/" + quote(str(account), safe=""),
     visible=lambda text: visible(str(text)),
     shown_id=present.shown_id,
+    measure=lambda value, name: "–" if value is None else format_value(name, float(value)),
 )
 templates = Jinja2Templates(env=_environment)
 router = APIRouter(include_in_schema=False)
@@ -179,7 +181,6 @@ def _queue_rows(found: list[dict[str, Any]]) -> list[dict[str, Any]]:
             "alert": alert,
             "window_start": alert["window_start"][:10],
             "window_end": alert["window_end"][:10],
-            "evidence": present.strongest_evidence(alert),
         }
         for alert in found
     ]
@@ -417,103 +418,11 @@ def account_page(
     return _page(request, "account.html", key, context)
 
 
-# --- role catalogue --------------------------------------------------------------------------
-
-
-def _profile_parts(role: dict[str, Any]) -> tuple[dict[str, float], dict[str, float]]:
-    """A role's stored profile → (feature weights, sense-making measure affinities)."""
-    profile = role.get("profile") or {}
-    if not isinstance(profile, dict):
-        return {}, {}
-    features = profile.get("features", profile)
-    measures = profile.get("measures") or {}
-    return (features if isinstance(features, dict) else {}), (
-        measures if isinstance(measures, dict) else {}
-    )
-
-
-def _strongest_measures(measures: dict[str, float]) -> list[tuple[str, float]]:
-    """The four measures with the largest affinity (either sign), strongest first."""
-    given = ((name, value) for name, value in measures.items() if value is not None)
-    return sorted(given, key=lambda item: -abs(float(item[1])))[:4]
-
-
-def _roles_context(engine: Engine) -> dict[str, Any]:
-    """The role catalogue: each role with its profile bars, measures and dominant count."""
-    found = queries.list_roles(engine)
-    latest = summaries.latest_window_with_members(engine)
-    counts = summaries.dominant_counts(engine, latest["id"]) if latest else {}
-    total = sum(counts.values())
-    profiles = [_profile_parts(role) for role in found["roles"]]
-    levels = charts.profile_levels([features for features, _ in profiles])
-    rows = [
-        {
-            "role": role,
-            "style": charts.role_style(index),
-            "bars": levels[index],
-            "measures": _strongest_measures(profiles[index][1]),
-            "dominant": counts.get(role["id"], 0),
-            "dominant_share": counts.get(role["id"], 0) / total if total else None,
-        }
-        for index, role in enumerate(found["roles"])
-    ]
-    return {
-        "section": "roles",
-        "basis": found["basis"],
-        "rows": rows,
-        "latest": latest,
-        "total": total,
-    }
-
-
-@router.get("/roles", response_class=HTMLResponse)
-def role_catalogue(
-    request: Request, key: PageKey, store: StoreDep, renamed: str = ""
-) -> HTMLResponse:
-    context = _roles_context(store)
-    renamed_id = stored_integer(renamed, high=INT32_MAX)
-    context.update(renamed=renamed_id, error=None, is_admin=key.allows("admin"))
-    return _page(request, "roles.html", key, context)
-
-
-def _rename_refusal(
-    key: ApiKey, request: Request, settings: Settings, token: str, name: str
-) -> tuple[str, int] | None:
-    """Why a rename form is refused (message and status), or None when it may go ahead."""
-    if not key.allows("admin"):
-        return "Renaming a role needs a key with the admin scope; sign in with one.", 403
-    if not session.same_site(request, settings) or not session.form_token_ok(request, token):
-        return "The form expired; reload the page and try again.", 403
-    if not name or len(name) > 100 or _CONTROL.search(name):
-        return "A role name needs 1 to 100 printable characters.", 422
-    return None
-
-
-@router.post("/roles", response_class=HTMLResponse)
-def rename_role(
-    request: Request,
-    key: PageKey,
-    store: StoreDep,
-    settings: SettingsDep,
-    role_id: str = Form(""),
-    name: str = Form(""),
-    token: str = Form(""),
-) -> Response:
-    context = _roles_context(store)
-    context.update(renamed=None, is_admin=key.allows("admin"))
-    name = name.strip()
-    refusal = _rename_refusal(key, request, settings, token, name)
-    number = stored_integer(role_id, high=INT32_MAX)
-    if refusal is None and (number is None or queries.rename_role(store, number, name) is None):
-        refusal = f"There is no role “{role_id[:40]}” in the active basis.", 404
-    if refusal is not None:
-        context["error"], status_code = refusal
-        return _page(request, "roles.html", key, context, status_code)
-    return RedirectResponse(f"/roles?renamed={number}#role-{number}", status_code=303)
-
-
 def include_pages(app: FastAPI) -> None:
     """Add the pages, their sign-in redirect and the ``/static`` mount to ``app``."""
+    from rolewatch.web.catalogue import router as catalogue_router
+
     app.include_router(router)
+    app.include_router(catalogue_router)
     app.add_exception_handler(SignInRequired, redirect_to_signin)
     app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
