@@ -26,7 +26,8 @@ def _opt_time(value: int | None) -> str | None:
     responses={401: {"model": Problem}, 403: {"model": Problem}},
 )
 async def get_roles(store: StoreDep, _key: ReadKey) -> dict[str, Any]:
-    """Each role's id, name, sense-making description and feature profile."""
+    """Each role's id, name, description and profile: per readable measure the role's
+    average account, the population's average and the role's level; feature weights."""
     found = await run_in_threadpool(queries.list_roles, store)
     basis = found["basis"]
     if basis is None:
