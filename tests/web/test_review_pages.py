@@ -90,6 +90,11 @@ def test_a_review_cycle_on_the_account_page(page, site, reviewers):
     page.get(account_url)
     panel = page.find_element(By.ID, "case")
     assert f"Case {case['id']}" in panel.text and "open" in panel.text
+    # the case's alerts read as their headlines, the API's text
+    timeline = api_get(site, f"/v1/cases/{case['id']}")["alerts"]
+    shown = [cell.text for cell in panel.find_elements(By.CSS_SELECTOR, "td.headline")]
+    assert shown == [alert["headline"] for alert in timeline]
+    assert all(alert["headline"] for alert in timeline)
 
     page.find_element(By.CSS_SELECTOR, "#case button[data-move='in_review']").click()
     wait_for(lambda: "done=in_review" in page.current_url, "starting the review did not redirect")

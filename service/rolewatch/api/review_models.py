@@ -63,6 +63,7 @@ class TimelineAlert(BaseModel):
     score: float
     role_before: RoleRef | None
     role_after: RoleRef | None
+    headline: str = Field(..., description="What changed (the alert's headline).")
     decision: Literal["confirmed", "dismissed"] | None
     reason: Reason | None
 

@@ -7,11 +7,13 @@ reviewer names come from ``names`` (``{key_id: name}``, see ``store.keys.key_nam
 
 from __future__ import annotations
 
+import json
 from collections.abc import Mapping
 from typing import Any
 from urllib.parse import quote
 
 from rolewatch.clock import to_rfc3339
+from rolewatch.engine.headline import compose_headline
 from rolewatch.review.states import DISMISS_REASONS
 from rolewatch.store.review import CaseAlertRow, CaseRecord, HistoryEntry, RoleMove
 
@@ -95,7 +97,17 @@ def case_form(
 
 
 def timeline_form(row: CaseAlertRow, role_names: RoleNames) -> dict[str, Any]:
-    """One alert on a case's timeline."""
+    """One alert on a case's timeline, with its headline (what changed)."""
+    before = role_ref(role_names, row.basis_version, row.role_before)
+    after = role_ref(role_names, row.basis_version, row.role_after)
+    evidence = json.loads(row.evidence or "{}")
+    headline = compose_headline(
+        before["name"] if before else None,
+        after["name"] if after else f"role {row.role_after}",
+        same_role=row.role_before == row.role_after,
+        change=str(evidence.get("change") or "role mixture shifted"),
+        baseline=evidence.get("baseline") is not None,
+    )
     return {
         "alert_id": row.alert_id,
         "window_id": row.window_id,
@@ -104,8 +116,9 @@ def timeline_form(row: CaseAlertRow, role_names: RoleNames) -> dict[str, Any]:
         "raised": to_rfc3339(row.created_us),
         "joined": to_rfc3339(row.joined_us),
         "score": row.score,
-        "role_before": role_ref(role_names, row.basis_version, row.role_before),
-        "role_after": role_ref(role_names, row.basis_version, row.role_after),
+        "role_before": before,
+        "role_after": after,
+        "headline": headline,
         "decision": row.decision,
         "reason": row.reason,
     }

@@ -105,6 +105,7 @@ class CaseAlertRow:
     joined_us: int
     decision: str | None
     reason: str | None
+    evidence: str = "{}"  # the alert's evidence (JSON text)
 
 
 @dataclass(frozen=True)
@@ -360,6 +361,7 @@ def case_alert_rows(connection: Connection, case_id: int) -> list[CaseAlertRow]:
             case_alerts.c.joined_us,
             case_alerts.c.decision,
             case_alerts.c.reason,
+            alerts.c.evidence,
         )
         .join(alerts, alerts.c.id == case_alerts.c.alert_id)
         .join(windows, windows.c.id == alerts.c.window_id)
