@@ -343,6 +343,7 @@ BENCH_MODULES = (
     "close",
     "engine_features",
     "engine_roles",
+    "engine_naming",
     "load",
     "detection",
 )
