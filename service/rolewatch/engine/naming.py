@@ -56,6 +56,7 @@ class RoleProfile:
     level: dict[str, float]
 
 
+_CLUSTERING, _BROKERAGE = MEASURES.index("clustering"), MEASURES.index("brokerage")
 #: Level (mean percentile minus one half) from which a measure reads as high or low.
 NOTABLE = 0.1
 
@@ -64,12 +65,12 @@ _ACTIVITY = ((0.25, "very busy"), (0.1, "busy"), (-0.1, "steady"), (-0.25, "occa
 _QUIET = "quiet"
 # measure -> (phrase when high, phrase when low), our own words; the volume of events is in
 # the activity word already
-_TRAITS = {
+_TRAITS: dict[str, tuple[str, str | None]] = {
     "out_degree": ("many recipients", "few recipients"),
     "in_degree": ("many sources", "few sources"),
     "reciprocity": ("two-way ties", "one-way ties"),
     "clustering": ("close-knit contacts", "unconnected contacts"),
-    "brokerage": ("links separate groups", "stays within one group"),
+    "brokerage": ("links separate groups", None),  # low brokerage mostly means few contacts
     "new_share": ("mostly new counterparts", "repeat counterparts"),
 }
 #: Trait phrases a name carries at most before roles still alike are compared directly.
@@ -166,7 +167,11 @@ def describe_roles(
             f"column per readable measure), got {X.shape}"
         )
     ok = np.isfinite(mix).all(axis=1)
-    mix, X = mix[ok], X[ok]
+    mix, X = mix[ok], X[ok].copy()
+    # clustering needs two counterparts; with one or none (exactly the rows with clustering
+    # 0 and brokerage d - 2t/d at most 1) it is left out rather than read as "unconnected"
+    few = (X[:, _CLUSTERING] == 0) & (X[:, _BROKERAGE] <= 1)
+    X[few, _CLUSTERING] = np.nan
     if not len(mix):
         raise EngineInputError("no account with a role mixture: describe roles on active windows")
     activity = X[:, [0]] + X[:, [1]]
@@ -210,7 +215,9 @@ def _name_parts(level_row: np.ndarray, mean_row: np.ndarray) -> list[str]:
         measure = MEASURES[int(j)]
         value = float(level_row[int(j)])
         if measure in _TRAITS and np.isfinite(value) and abs(value) >= NOTABLE / 2:
-            traits.append(_TRAITS[measure][0 if value > 0 else 1])
+            phrase = _TRAITS[measure][0 if value > 0 else 1]
+            if phrase:
+                traits.append(phrase)
     return [f"{word} {noun}", *traits[:NAME_TRAITS]]
 
 
@@ -237,7 +244,11 @@ def _compare(names: list[str], group: list[int], level: np.ndarray) -> None:
     spread = np.nan_to_num(np.ptp(level[np.ix_(group, range(len(MEASURES)))], axis=0))
     j = int(np.argmax(spread))
     order = sorted(group, key=lambda r: level[r, j])
-    words = ["less", "more"] if len(order) == 2 else ["least", "most"]
+    plural = _SHORT[MEASURES[j]].endswith("s")
+    if len(order) == 2:
+        words = ["fewer" if plural else "less", "more"]
+    else:
+        words = ["fewest" if plural else "least", "most"]
     for rank, r in enumerate(order):
         word = words[0] if rank == 0 else words[1] if rank == len(order) - 1 else "middling"
         names[r] = f"{names[r]}, {word} {_SHORT[MEASURES[j]]}"
