@@ -20,7 +20,7 @@ from rolewatch.engine.activity import Activity, Counterparts
 from rolewatch.engine.features import FeatureTable
 from rolewatch.engine.headline import LEADS, change_text, measure_moves
 from rolewatch.engine.pairs import KnownPairs
-from rolewatch.engine.readable import MEASURE_LABELS, MEASURES, readable_measures
+from rolewatch.engine.readable import MEASURE_LABELS, MEASURES, feature_label, readable_measures
 from rolewatch.engine.scoring import ShiftPolicy, WindowScores
 from rolewatch.engine.shift import feature_moves
 from rolewatch.engine.snapshot import Snapshot
@@ -288,9 +288,10 @@ def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> tuple[RoleShare, .
 def _readable_moves(
     names: Sequence[str], before: np.ndarray, after: np.ndarray, top: int = 5
 ) -> list[dict[str, Any]]:
-    """The features that moved most, base features first: an analyst reads "out_degree 2 →
-    37" at once, while a third-round recursive aggregate needs a manual to decode. Recursive
-    features fill the list only when fewer than ``top`` base features moved."""
+    """The features that moved most (each with its label in words), base features first: an
+    analyst reads "out_degree 2 → 37" at once, while a third-round recursive aggregate needs
+    its label to be read. Recursive features fill the list only when fewer than ``top`` base
+    features moved."""
     depth = np.array([name.count("(") for name in names])
     moves: list[dict[str, Any]] = []
     for level in range(int(depth.max(initial=0)) + 1):
@@ -300,7 +301,9 @@ def _readable_moves(
         picked = feature_moves(
             [names[int(c)] for c in columns], before[columns], after[columns], top=top
         )
-        moves.extend(picked[: top - len(moves)])
+        moves.extend(
+            {**move, "label": feature_label(move["feature"])} for move in picked[: top - len(moves)]
+        )
         if len(moves) >= top:
             break
     return moves
