@@ -28,13 +28,14 @@ WEAKEST = 0.25
 
 
 #: The readable measure that says what each score component measured
-#: (:mod:`rolewatch.engine.components`).
+#: (:mod:`rolewatch.engine.components`). The bridging component (ties into communities the
+#: account rarely deals with) has none: brokerage counts contacts who do not know each
+#: other, which is not the same thing.
 LEADS = {
     "novelty_out": "new_counterparts",
     "novelty_in": "new_counterparts",
     "ties": "new_counterparts",
     "direction": "sent_share",
-    "bridging": "brokerage",
 }
 
 
