@@ -104,3 +104,11 @@ def test_the_measure_behind_the_score_comes_first_however_weak():
 def test_one_event_is_singular():
     (move,) = measure_moves({"events_out": 0.0}, {"events_out": 1.0})
     assert move_text(move) == "sends 1 event, none before"
+
+
+def test_events_and_accounts_in_one_direction_are_not_both_said():
+    moves = measure_moves(
+        {"events_out": 4.0, "out_degree": 4.0, "reciprocity": 0.5},
+        {"events_out": 0.0, "out_degree": 0.0, "reciprocity": 0.0},
+    )
+    assert change_text(moves, same_role=True) == "sends no events (4 before), two-way ties 50% → 0%"

@@ -148,10 +148,25 @@ def move_text(move: Move) -> str:
     return f"{_SHARE_WORDS[move.measure]} {b:.0%} → {a:.0%}"
 
 
+# a second move that says the same as the first ("sends no events", "sends to 4 → 0 accounts")
+_TWINS = {
+    "events_out": "out_degree",
+    "out_degree": "events_out",
+    "events_in": "in_degree",
+    "in_degree": "events_in",
+}
+
+
 def change_text(moves: list[Move], *, same_role: bool) -> str:
-    """What moved, for the headline: the two strongest moves when the role stayed, the
-    strongest one when it changed; "role mixture shifted" when no readable measure moved."""
-    picked = moves[: 2 if same_role else 1]
+    """What moved, for the headline: the two strongest moves when the role stayed (not both
+    of events and accounts in one direction), the strongest one when it changed; "role
+    mixture shifted" when no readable measure moved."""
+    picked: list[Move] = []
+    for move in moves:
+        if len(picked) == (2 if same_role else 1):
+            break
+        if not any(_TWINS.get(move.measure) == earlier.measure for earlier in picked):
+            picked.append(move)
     if not picked:
         return "role mixture shifted"
     return ", ".join(move_text(move) for move in picked)
