@@ -218,7 +218,7 @@ class Settings(BaseSettings):
         "roles to count as reproducible.",
     )
     roles_mdl_tolerance: float = Field(
-        0.01,
+        0.05,
         ge=0,
         lt=1,
         description="Among reproducible numbers of roles, the smallest whose description "

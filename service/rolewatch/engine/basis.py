@@ -274,7 +274,7 @@ class RoleBasis:
         seed: int = 0,
         sample_rows: int | None = 4_000,
         stability_min: float = 0.85,
-        tolerance: float = 0.01,
+        tolerance: float = 0.05,
         resamples: int = 3,
         measure_all: bool = False,
     ) -> RoleBasis:

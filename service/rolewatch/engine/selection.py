@@ -16,9 +16,12 @@ Walk k upwards from the smallest candidate; the walk ends at the third k in a ro
 not reproducible (below the planted number a k can be unreproducible because roles must
 merge arbitrarily, and above it reproducibility comes and goes by chance).  Among the
 reproducible k met on the walk, the smallest whose description length is within
-``tolerance`` (1 %) of the least wins: description length says how many roles the data
+``tolerance`` (5 %) of the least wins: description length says how many roles the data
 pays for, stability caps it at what comes out the same on other accounts (on hundreds of
-correlated ReFeX features the description length alone keeps rewarding more roles).  If
+correlated ReFeX features the description length alone keeps rewarding more roles).  The
+tolerance is the run-to-run spread of the description length itself: early-stopped NMF
+fits of the same scenario with 2 % of its events copied differ by up to 4 % at k >= 6
+(docs/roles.md), so closer lengths are a tie and the smaller k wins.  If
 no k is reproducible, the smallest is used.  The chosen k is then fitted on
 all rows, warm-started from its sample fit.
 """
@@ -120,7 +123,7 @@ def choose_roles(
     seed: int,
     sample_rows: int | None,
     stability_min: float,
-    tolerance: float = 0.01,
+    tolerance: float = 0.05,
     resamples: int = 3,
     measure_all: bool = False,
 ) -> RoleChoice:
