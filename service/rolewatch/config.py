@@ -196,10 +196,37 @@ class Settings(BaseSettings):
         "binned by its own quantiles.",
     )
     roles: int | None = Field(
-        None, ge=1, description="Number of roles; empty chooses it by minimum description length."
+        None,
+        ge=1,
+        description="Number of roles; empty chooses it by description length among the "
+        "reproducible numbers of roles (docs/roles.md).",
     )
-    roles_min: int = Field(2, ge=1, description="Smallest number of roles MDL considers.")
-    roles_max: int = Field(12, ge=1, description="Largest number of roles MDL considers.")
+    roles_min: int = Field(2, ge=1, description="Smallest number of roles the selection considers.")
+    roles_max: int = Field(12, ge=1, description="Largest number of roles the selection considers.")
+    roles_sample_rows: int | None = Field(
+        4000,
+        ge=100,
+        description="Training accounts (a seeded sample) the candidate numbers of roles are "
+        "compared on; the chosen number is then fitted on all. Empty uses all accounts.",
+    )
+    roles_stability_min: float = Field(
+        0.85,
+        gt=0,
+        le=1,
+        description="Smallest agreement of role profiles (1 - Hellinger distance of the "
+        "worst-matched role) across fits on 90% resamples of the accounts for a number of "
+        "roles to count as reproducible.",
+    )
+    roles_mdl_tolerance: float = Field(
+        0.05,
+        ge=0,
+        lt=1,
+        description="Among reproducible numbers of roles, the smallest whose description "
+        "length is within this share of the least is chosen.",
+    )
+    roles_resamples: int = Field(
+        3, ge=2, description="Resampled fits per candidate number of roles (stability)."
+    )
     seed: int = Field(0, description="Seed for the factorisation, so fits are repeatable.")
 
     # --- scoring and alerts ------------------------------------------------------------

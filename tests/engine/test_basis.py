@@ -13,14 +13,14 @@ from .roles_data import Table, planted_roles
 
 
 @pytest.mark.parametrize("k", [2, 3, 5])
-def test_mdl_recovers_planted_number_of_roles(k):
+def test_selection_recovers_planted_number_of_roles(k):
     V, _, _ = planted_roles(k, seed=k)
-    basis = RoleBasis.fit(V, k_range=(1, 9), seed=0)
+    basis = RoleBasis.fit(V, k_range=(1, 9), seed=0, measure_all=True)
     assert basis.n_roles == k
     table = basis.summary["mdl"]
     assert [row["k"] for row in table] == list(range(1, 10))
-    best = min(table, key=lambda r: r["total_bits"])
-    assert best["k"] == k
+    assert basis.summary["selection"] == "mdl+stability"
+    assert basis.summary["bits_per_value"] == table[k - 1]["bits_per_value"]
 
 
 def test_description_length_parts_follow_the_rolx_definition():
@@ -136,7 +136,7 @@ def test_more_roles_than_features_is_a_clear_error():
     with pytest.raises(TooManyRoles):
         RoleBasis(F=np.ones((5, 4)), role_ids=range(5), feature_names="abcd", recipe_version=None)
     # MDL range is clipped instead of failing
-    assert RoleBasis.fit(V, k_range=(2, 12)).summary["mdl"][-1]["k"] == 4
+    assert RoleBasis.fit(V, k_range=(2, 12), measure_all=True).summary["mdl"][-1]["k"] == 4
 
 
 def test_table_of_another_recipe_is_rejected():
@@ -252,8 +252,8 @@ def test_bad_k_range_is_a_clear_error():
         RoleBasis.fit(V, k_range=(5, 2))
 
 
-def test_mdl_on_a_row_sample_still_recovers_k():
+def test_selection_on_a_row_sample_still_recovers_k():
     V, _, _ = planted_roles(3, n=1500, seed=12)
-    basis = RoleBasis.fit(V, k_range=(1, 6), mdl_max_rows=600)
+    basis = RoleBasis.fit(V, k_range=(1, 6), sample_rows=600)
     assert basis.summary["mdl_rows"] == 600 and basis.summary["rows"] == 1500
     assert basis.n_roles == 3

@@ -21,20 +21,16 @@ import numpy as np
 from scipy.optimize import linear_sum_assignment
 
 from .errors import EngineInputError, FeatureMismatch, RecipeMismatch, TooManyRoles
-from .mdl import (
-    EPS,
-    candidate_role_counts,
-    choose_roles,
-    default_bits_per_value,
-    description_length,
-)
+from .mdl import EPS, candidate_role_counts, description_length
 from .nnls import nnls_normal
+from .rowkeys import row_keys
+from .selection import choose_roles
+from .stability import role_profile_distances
 
 __all__ = [
     "Memberships",
     "RoleBasis",
     "description_length",
-    "default_bits_per_value",
 ]
 
 _FORMAT = "rolewatch.role_basis"
@@ -136,8 +132,11 @@ def _stack(tables: Any) -> tuple[np.ndarray, tuple[str, ...] | None, str | None]
     return np.vstack([p[0] for p in parts], dtype=np.float64), names, version
 
 
-def _reference_rows(tables: Any) -> tuple[np.ndarray, tuple[str, ...], str | None, int]:
-    """Stacked usable reference rows, feature names, recipe version and rows dropped.
+def _reference_rows(
+    tables: Any,
+) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], str | None, int]:
+    """Stacked usable reference rows, their keys (:func:`rolewatch.engine.rowkeys.row_keys`),
+    feature names, recipe version and rows dropped.
 
     Rows with NaN, inf or negative values are left out; plain arrays get names
     ``f0, f1, ...``.
@@ -149,7 +148,8 @@ def _reference_rows(tables: Any) -> tuple[np.ndarray, tuple[str, ...], str | Non
     """
     V, names, recipe_version = _stack(tables)
     n_all, f = V.shape
-    V = V[_valid_rows(V)]
+    valid = _valid_rows(V)
+    V, keys = V[valid], row_keys(tables)[valid]
     if names is None:
         names = tuple(f"f{j}" for j in range(f))
     if V.shape[0] == 0 or f == 0:
@@ -161,7 +161,7 @@ def _reference_rows(tables: Any) -> tuple[np.ndarray, tuple[str, ...], str | Non
         raise EngineInputError(
             "every feature value is zero; roles need a reference period with activity"
         )
-    return V, names, recipe_version, int(n_all - V.shape[0])
+    return V, keys, names, recipe_version, int(n_all - V.shape[0])
 
 
 def _normalise_profiles(G: np.ndarray, F: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -215,8 +215,9 @@ class RoleBasis:
     version : str
         Short sha256 of F, role ids, feature names and recipe version.
     summary : dict
-        Training summary: rows, features, chosen k, how k was chosen, the MDL table
-        (one entry per candidate k), bits per value, relative reconstruction error.
+        Training summary: rows, features, chosen k, how k was chosen, the table of
+        candidates (description length and stability per k), the chosen k's bits per
+        value, relative reconstruction error.
 
     Notes
     -----
@@ -271,8 +272,11 @@ class RoleBasis:
         n_roles: int | None = None,
         k_range: tuple[int, int] = (2, 12),
         seed: int = 0,
-        bits_per_value: int | None = None,
-        mdl_max_rows: int | None = 20_000,
+        sample_rows: int | None = 4_000,
+        stability_min: float = 0.85,
+        tolerance: float = 0.05,
+        resamples: int = 3,
+        measure_all: bool = False,
     ) -> RoleBasis:
         """Fit a role basis on one or more reference feature tables (RolX).
 
@@ -283,19 +287,29 @@ class RoleBasis:
             come from the same recipe.  Rows with NaN, inf or negative values are left
             out (counted in ``summary["rows_dropped"]``).
         n_roles : int, optional
-            Fixed number of roles.  None chooses k by minimum description length over
-            ``k_range`` (inclusive), as RolX does.
+            Fixed number of roles.  None chooses k within ``k_range`` (inclusive) by
+            description length among reproducible k
+            (:func:`rolewatch.engine.selection.choose_roles`).
         k_range : (int, int)
-            Smallest and largest k tried by MDL; clipped to the number of features and
-            rows.
+            Smallest and largest k tried; clipped to the number of features and rows.
         seed : int
-            Random state for scikit-learn's NMF; the fit is deterministic given it.
-        bits_per_value : int, optional
-            b in the model cost; default :func:`default_bits_per_value`.
-        mdl_max_rows : int, optional
-            When choosing k by MDL on more rows than this, the candidates are compared on
-            a seeded uniform sample of this many rows (every candidate on the same
-            sample); the chosen k is then fitted on all rows.  None uses all rows.
+            Random state for scikit-learn's NMF, the row sample and the resamples; the
+            fit is deterministic given it.
+        sample_rows : int, optional
+            Candidates are compared on a sample of this many rows chosen by a seeded hash
+            of the account id (every candidate on the same sample); the chosen k is then
+            fitted on all rows, warm-started from its sample fit.  None uses all rows.
+        stability_min : float
+            Smallest agreement of role profiles across fits on 90 % resamples for a k to
+            count as reproducible (:mod:`rolewatch.engine.stability`).
+        tolerance : float
+            The smallest reproducible k whose description length is within this share
+            of the least is chosen.
+        resamples : int
+            Resampled fits per candidate k.
+        measure_all : bool
+            Measure every candidate k for the summary table (reports), not only up to
+            where the selection's walk ends; the choice is the same.
 
         Returns
         -------
@@ -313,13 +327,23 @@ class RoleBasis:
         Notes
         -----
         V ~ G F by scikit-learn ``NMF`` (Henderson et al., KDD 2012, Section 3); the
-        model selection follows :func:`description_length`.
+        number of roles follows :func:`rolewatch.engine.selection.choose_roles`.
         """
-        V, names, recipe_version, dropped = _reference_rows(tables)
+        V, keys, names, recipe_version, dropped = _reference_rows(tables)
         n, f = V.shape
-        b = int(bits_per_value) if bits_per_value is not None else default_bits_per_value(V)
         candidates = candidate_role_counts(n_roles, k_range, f, n)
-        choice = choose_roles(V, candidates, seed=seed, bits_per_value=b, mdl_max_rows=mdl_max_rows)
+        choice = choose_roles(
+            V,
+            candidates,
+            keys=keys,
+            seed=seed,
+            sample_rows=sample_rows,
+            stability_min=stability_min,
+            tolerance=tolerance,
+            resamples=resamples,
+            measure_all=measure_all,
+        )
+        chosen = [row for row in choice.table if row["k"] == choice.chosen]
         G, F = _normalise_profiles(choice.G, choice.F)
         rel_err = float(np.linalg.norm(V - G @ F) / max(float(np.linalg.norm(V)), EPS))
         summary = {
@@ -327,8 +351,10 @@ class RoleBasis:
             "rows_dropped": dropped,
             "features": int(f),
             "n_roles": int(F.shape[0]),
-            "selection": "fixed" if n_roles is not None else "mdl",
-            "bits_per_value": b,
+            "selection": "fixed" if n_roles is not None else "mdl+stability",
+            "bits_per_value": int(chosen[0]["bits_per_value"]) if chosen else None,
+            "stability_min": float(stability_min),
+            "mdl_tolerance": float(tolerance),
             "seed": int(seed),
             "mdl": choice.table,
             "mdl_rows": choice.sample_rows,
@@ -539,31 +565,3 @@ class RoleBasis:
                 f"to {basis.version!r}; the document was changed or corrupted"
             )
         return basis
-
-
-def role_profile_distances(A: np.ndarray, B: np.ndarray) -> np.ndarray:
-    """Hellinger distances between every row of A and every row of B (each row L1-normalised).
-
-    Used to match roles across bases (:meth:`RoleBasis.aligned_to`).  Hellinger
-    distance H(p, q) = (1/sqrt 2) ||sqrt p - sqrt q||_2 (Hellinger 1909; standard
-    statistics texts; recalled from memory).  All-zero rows count as uniform.
-
-    Parameters
-    ----------
-    A : ndarray, shape (k_a, f)
-    B : ndarray, shape (k_b, f)
-        Non-negative role profiles.
-
-    Returns
-    -------
-    ndarray, shape (k_a, k_b)
-    """
-
-    def norm(X: np.ndarray) -> np.ndarray:
-        X = np.asarray(X, dtype=np.float64)
-        s = X.sum(axis=1, keepdims=True)
-        return np.divide(X, s, out=np.full_like(X, 1.0 / max(X.shape[1], 1)), where=s > 0)
-
-    SA, SB = np.sqrt(norm(A)), np.sqrt(norm(B))
-    sq = (SA**2).sum(1)[:, None] + (SB**2).sum(1)[None, :] - 2 * SA @ SB.T
-    return np.sqrt(np.clip(sq, 0.0, None) / 2.0)

@@ -1,11 +1,13 @@
-"""RolX model selection: the number of roles by minimum description length.
+"""RolX description length: Lloyd-Max quantised factors, model bits and error bits.
 
 RolX (Henderson et al., "RolX: structural role extraction & mining in large graphs",
 KDD 2012) factorises the binned ReFeX feature matrix V (n x f) as V ~ G F with
-non-negative G (n x k) and F (k x f), and chooses k as the one whose factorisation
-describes V in the fewest bits: model bits for the quantised G and F plus error bits for V
-given G F. :func:`choose_roles` runs that search; :class:`rolewatch.engine.basis.RoleBasis`
-keeps the winner.
+non-negative G (n x k) and F (k x f), and scores a number of roles k by how many bits
+the factorisation needs to describe V: the model bits of G and F quantised to b bits per
+value, plus the error bits of V given the quantised reconstruction; b and k are both
+chosen to make the total smallest.  This module holds that score and the NMF fits it is
+computed on; :mod:`rolewatch.engine.selection` combines it with the stability of the
+roles to choose k.
 """
 
 from __future__ import annotations
@@ -21,37 +23,58 @@ from sklearn.exceptions import ConvergenceWarning
 from .errors import EngineInputError, TooManyRoles
 
 __all__ = [
-    "RoleChoice",
+    "BITS_TRIED",
+    "Encoding",
     "candidate_role_counts",
-    "choose_roles",
-    "default_bits_per_value",
     "description_length",
     "fit_nmf",
+    "lloyd_max",
+    "quantised_description_length",
 ]
 
 EPS = 1e-12
+BITS_TRIED = tuple(range(1, 9))  # b = 1 .. 8 bits per value of G and F
 
 
-def default_bits_per_value(V: np.ndarray) -> int:
-    """Bits b used to encode one value of G or F in the RolX model cost.
+def lloyd_max(values: np.ndarray, bits: int, *, rounds: int = 30) -> np.ndarray:
+    """Quantise ``values`` to ``2**bits`` levels by the Lloyd-Max algorithm.
 
-    RolX quantises the entries of G and F before counting their cost (Henderson et al.,
-    KDD 2012, Section 3, recalled from memory).  We take b as the number of bits needed
-    to tell apart the distinct non-zero values of V, ``ceil(log2(#distinct + 1))``,
-    clipped to [1, 32]: a factorisation is never encoded more finely than the data it
-    explains.  For binned ReFeX features (small integers) this is a few bits.
+    Lloyd-Max quantisation (Lloyd, "Least squares quantization in PCM", IEEE Trans.
+    Inf. Theory 28(2), 1982; Max, IRE Trans. Inf. Theory 6(1), 1960) alternates two
+    steps on one-dimensional data: each value goes to its nearest level (thresholds at
+    the midpoints), and each level moves to the mean of its values.  Levels start at the
+    quantiles of the values, so the result is deterministic.  RolX quantises G and F
+    this way before counting their bits (Henderson et al., KDD 2012, Section 3).
 
     Parameters
     ----------
-    V : ndarray, shape (n, f)
+    values : ndarray
+        Any shape; quantised as one flat sample.
+    bits : int
+        b >= 1; at most ``2**b`` distinct levels.
+    rounds : int
+        Most Lloyd rounds (it stops earlier once the levels no longer move).
 
     Returns
     -------
-    int
+    ndarray
+        Same shape as ``values``, every entry replaced by its level.
     """
-    nz = V[V > 0]
-    distinct = np.unique(nz).size if nz.size else 0
-    return int(min(32, max(1, math.ceil(math.log2(distinct + 1)))))
+    x = np.asarray(values, dtype=np.float64).ravel()
+    if x.size == 0:
+        return np.asarray(values, dtype=np.float64).copy()
+    count = 2 ** int(bits)
+    levels = np.unique(np.quantile(x, (np.arange(count) + 0.5) / count))
+    for _ in range(rounds):
+        index = np.searchsorted((levels[1:] + levels[:-1]) / 2, x)
+        members = np.bincount(index, minlength=levels.size)
+        sums = np.bincount(index, weights=x, minlength=levels.size)
+        moved = np.where(members > 0, sums / np.maximum(members, 1), levels)
+        if np.allclose(moved, levels, rtol=1e-9, atol=0.0):
+            break
+        levels = np.unique(moved)
+    index = np.searchsorted((levels[1:] + levels[:-1]) / 2, x)
+    return levels[index].reshape(np.shape(values))
 
 
 def description_length(
@@ -76,11 +99,12 @@ def description_length(
 
     Notes
     -----
-    Henderson et al., KDD 2012, Section 3 ("model selection"), recalled from memory:
-    the total description length is L = M + E with M = b k (n + f) for the quantised
-    factors and E the KL-divergence cost of encoding V given G F; RolX picks the k with
-    the smallest L.  Entries where V = 0 contribute R_ij; entries where R_ij = 0 but
-    V_ij > 0 are floored at a tiny R to keep E finite.
+    Henderson et al., KDD 2012, Section 3 ("model selection"): the total description
+    length is L = M + E with M = b k (n + f) for the quantised factors and E the
+    KL-divergence cost of encoding V given G F.  Entries where V = 0 contribute R_ij;
+    entries where R_ij = 0 but V_ij > 0 are floored at a tiny R to keep E finite (such
+    an entry costs about 28 nats per unit of V, which is what makes too coarse a
+    quantisation expensive).
     """
     n, f = V.shape
     k = F.shape[0]
@@ -90,12 +114,74 @@ def description_length(
     return float(bits_per_value * k * (n + f)), max(err, 0.0) / math.log(2)
 
 
-def fit_nmf(V: np.ndarray, k: int, seed: int) -> tuple[np.ndarray, np.ndarray, float]:
-    """One scikit-learn NMF fit of V ~ G F (coordinate descent, Frobenius loss, NNDSVDa start).
+@dataclass(frozen=True)
+class Encoding:
+    """The cheapest quantised encoding of a factorisation (quantised_description_length)."""
 
-    The factorisation RolX uses (Henderson et al., KDD 2012), with scikit-learn's default
-    stopping rule (tol 1e-4, 500 iterations); the memberships are refitted exactly
-    afterwards, so F only needs to be a good basis.
+    bits_per_value: int
+    model_bits: float
+    error_bits: float
+
+    @property
+    def total_bits(self) -> float:
+        return self.model_bits + self.error_bits
+
+
+def quantised_description_length(
+    V: np.ndarray, G: np.ndarray, F: np.ndarray, bits: tuple[int, ...] = BITS_TRIED
+) -> Encoding:
+    """Description length of V by its factorisation, with G and F quantised (RolX).
+
+    For each b in ``bits`` the entries of G and of F are quantised to b bits each by
+    :func:`lloyd_max` (one codebook for G, one for F), and the total is
+    ``M + E`` of :func:`description_length` computed on the quantised factors, so a
+    coarse quantisation pays in error bits what it saves in model bits.  The b with the
+    smallest total is kept, as RolX chooses b and k together (Henderson et al.,
+    KDD 2012, Section 3).  b is tried upwards and the search stops at the first b that
+    does not shorten the total: model bits grow linearly in b while the error saved by
+    finer levels shrinks, so the total falls and then rises.
+
+    Parameters
+    ----------
+    V : ndarray, shape (n, f)
+    G : ndarray, shape (n, k)
+    F : ndarray, shape (k, f)
+    bits : tuple of int
+        Values of b to try (default 1 .. 8), ascending; ties go to the smaller b.
+
+    Returns
+    -------
+    Encoding
+    """
+    best: Encoding | None = None
+    for b in sorted(bits):
+        model, error = description_length(V, lloyd_max(G, b), lloyd_max(F, b), b)
+        encoding = Encoding(int(b), model, error)
+        if best is not None and encoding.total_bits >= best.total_bits:
+            break
+        best = encoding
+    if best is None:
+        raise EngineInputError("no bits per value to try; pass at least one b")
+    return best
+
+
+def fit_nmf(
+    V: np.ndarray,
+    k: int,
+    seed: int,
+    *,
+    tol: float = 1e-4,
+    max_iter: int = 500,
+    start: tuple[np.ndarray, np.ndarray] | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """One scikit-learn NMF fit of V ~ G F (coordinate descent, Frobenius loss).
+
+    The factorisation RolX uses (Henderson et al., KDD 2012).  It starts from NNDSVDa
+    (Boutsidis & Gallopoulos, Pattern Recognition 41(4), 2008), or from ``start``
+    (a warm start, e.g. a basis fitted on a sample of the rows); coordinate descent stops
+    when the relative change falls below ``tol`` or after ``max_iter`` rounds
+    (scikit-learn's stopping rule).  Memberships are refitted exactly afterwards, so F
+    only needs to be a good basis.
 
     Parameters
     ----------
@@ -104,26 +190,32 @@ def fit_nmf(V: np.ndarray, k: int, seed: int) -> tuple[np.ndarray, np.ndarray, f
         Number of roles.
     seed : int
         ``random_state`` of the NMF.
+    tol, max_iter : float, int
+        Stopping rule.
+    start : (G0, F0), optional
+        Initial factors, shapes (n, k) and (k, f), non-negative.
 
     Returns
     -------
     G : ndarray, shape (n, k)
     F : ndarray, shape (k, f)
-    reconstruction_error : float
     """
     model = NMF(
         n_components=k,
-        init="nndsvda",
+        init="custom" if start is not None else "nndsvda",
         solver="cd",
         beta_loss="frobenius",
-        max_iter=500,
-        tol=1e-4,
+        max_iter=max_iter,
+        tol=tol,
         random_state=seed,
     )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        G = model.fit_transform(V)
-    return G, model.components_, float(model.reconstruction_err_)
+        if start is None:
+            G = model.fit_transform(V)
+        else:
+            G = model.fit_transform(V, W=np.array(start[0]), H=np.array(start[1]))
+    return G, model.components_
 
 
 def candidate_role_counts(
@@ -134,7 +226,7 @@ def candidate_role_counts(
     Parameters
     ----------
     n_roles : int or None
-        A fixed number of roles, or None to let MDL choose within ``k_range``.
+        A fixed number of roles, or None to let the selection choose within ``k_range``.
     k_range : (int, int)
         Smallest and largest k, inclusive.
     n_features, n_rows : int
@@ -168,82 +260,3 @@ def candidate_role_counts(
     hi = min(hi, n_features, n_rows)
     lo = min(lo, hi)
     return list(range(lo, hi + 1))
-
-
-@dataclass(frozen=True)
-class RoleChoice:
-    """Outcome of :func:`choose_roles`.
-
-    Attributes
-    ----------
-    G, F : ndarray
-        The chosen factorisation of all rows (not yet normalised).
-    table : list of dict
-        One entry per candidate k: ``k``, ``model_bits``, ``error_bits``, ``total_bits``.
-    sample_rows : int
-        Rows the candidates were compared on.
-    """
-
-    G: np.ndarray
-    F: np.ndarray
-    table: list[dict[str, float]]
-    sample_rows: int
-
-
-def choose_roles(
-    V: np.ndarray,
-    candidates: list[int],
-    *,
-    seed: int,
-    bits_per_value: int,
-    mdl_max_rows: int | None,
-) -> RoleChoice:
-    """Fit every candidate k and keep the one of least description length (RolX).
-
-    Parameters
-    ----------
-    V : ndarray, shape (n, f)
-        Usable reference rows.
-    candidates : list of int
-        Numbers of roles to try (:func:`candidate_role_counts`).
-    seed : int
-        Random state of the NMF fits and of the row sample.
-    bits_per_value : int
-        b of :func:`description_length`.
-    mdl_max_rows : int or None
-        With more than one candidate and more rows than this, candidates are compared
-        on a seeded uniform sample of this many rows, and the chosen k is then fitted on
-        all rows.
-
-    Returns
-    -------
-    RoleChoice
-
-    Notes
-    -----
-    Henderson et al., KDD 2012, Section 3: the smallest ``M + E`` wins, ties to the
-    smaller k.
-    """
-    n = V.shape[0]
-    sample = V
-    if len(candidates) > 1 and mdl_max_rows is not None and n > mdl_max_rows:
-        pick = np.random.default_rng(seed).choice(n, size=int(mdl_max_rows), replace=False)
-        sample = V[np.sort(pick)]
-    table: list[dict[str, float]] = []
-    fits: dict[int, tuple[np.ndarray, np.ndarray]] = {}
-    for k in candidates:
-        G, F, _ = fit_nmf(sample, k, seed)
-        model_bits, error_bits = description_length(sample, G, F, bits_per_value)
-        table.append(
-            {
-                "k": k,
-                "model_bits": model_bits,
-                "error_bits": error_bits,
-                "total_bits": model_bits + error_bits,
-            }
-        )
-        fits[k] = (G, F)
-    best = int(min(table, key=lambda row: (row["total_bits"], row["k"]))["k"])
-    if sample is not V:
-        fits[best] = fit_nmf(V, best, seed)[:2]
-    return RoleChoice(*fits[best], table=table, sample_rows=int(sample.shape[0]))

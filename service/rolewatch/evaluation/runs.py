@@ -37,7 +37,7 @@ __all__ = [
     "capture_scenario",
 ]
 
-CACHE_VERSION = 1  # bump when what a run keeps, or how it is computed, changes
+CACHE_VERSION = 2  # bump when what a run keeps, or how it is computed, changes
 # settings that change what the pipeline measures (not only how it is scored)
 PIPELINE_SETTINGS = (
     "window_period",
@@ -51,6 +51,10 @@ PIPELINE_SETTINGS = (
     "roles",
     "roles_min",
     "roles_max",
+    "roles_sample_rows",
+    "roles_stability_min",
+    "roles_mdl_tolerance",
+    "roles_resamples",
     "seed",
     "shift_measure",
     "shift_baseline",

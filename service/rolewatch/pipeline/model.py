@@ -58,6 +58,10 @@ def fit_model(
         n_roles=settings.roles,
         k_range=(settings.roles_min, settings.roles_max),
         seed=settings.seed,
+        sample_rows=settings.roles_sample_rows,
+        stability_min=settings.roles_stability_min,
+        tolerance=settings.roles_mdl_tolerance,
+        resamples=settings.roles_resamples,
     )
     if previous is not None:
         basis = basis.aligned_to(previous.basis)
