@@ -28,6 +28,7 @@ from rolewatch.pipeline.evidence import REVIEW_NOTICE, AlertContext, alerts_with
 from rolewatch.pipeline.history import AccountHistory, account_history, novelty_history
 from rolewatch.pipeline.loading import PastWindow, WindowEvents
 from rolewatch.pipeline.model import FrozenModel
+from rolewatch.pipeline.stages import StageClock
 from rolewatch.store.alerts import NewAlert, WindowRef
 from rolewatch.store.memberships import MIXTURE_DECIMALS
 
@@ -180,6 +181,7 @@ def compute_window(
     window: WindowRef,
     raise_alerts: bool,
     events_of: EventsOf | None = None,
+    clock: StageClock | None = None,
 ) -> WindowResult:
     """Measure every active account of one window against its own history.
 
@@ -196,27 +198,39 @@ def compute_window(
     events_of
         Reads a baseline window's events for the features an alert shows as "before"
         (None: no feature moves are shown).
+    clock
+        Collects the seconds of each stage (features, ties, memberships, history, bridging,
+        scoring, evidence).
     """
-    snapshot = current.snapshot()
-    counts = tie_counts(snapshot, known)
-    activity = _activity(snapshot, counts)
+    clock = clock if clock is not None else StageClock()
+    with clock.stage("features"):
+        snapshot = current.snapshot()
+    with clock.stage("ties"):
+        counts = tie_counts(snapshot, known)
+        activity = _activity(snapshot, counts)
     if snapshot.n_nodes == 0:
         return _empty_result(snapshot, activity, len(model.basis.role_ids), past, counts)
-    table = model.recipe.transform(snapshot)
-    members = model.basis.memberships(table)
+    with clock.stage("features"):
+        table = model.recipe.transform(snapshot)
+    with clock.stage("memberships"):
+        members = model.basis.memberships(table)
     policy = policy_from_settings(settings)
-    history = account_history(
-        snapshot.nodes,
-        past,
-        n_roles=len(model.basis.role_ids),
-        mode=policy.baseline,
-        last_k=policy.last_k,
-        half_life=policy.half_life,
-        novelty_windows=policy.novelty_windows,
-    )
-    community = window_communities(snapshot, policy.bridge_resolution)
-    inputs = _score_inputs(model, snapshot, members, activity, counts, history, policy)
-    scores = inputs.score(policy)
+    with clock.stage("history"):
+        history = account_history(
+            snapshot.nodes,
+            past,
+            n_roles=len(model.basis.role_ids),
+            mode=policy.baseline,
+            last_k=policy.last_k,
+            half_life=policy.half_life,
+            novelty_windows=policy.novelty_windows,
+        )
+    with clock.stage("bridging"):
+        community = window_communities(snapshot, policy.bridge_resolution)
+        bridging = _bridging(snapshot, history, policy)
+    with clock.stage("scoring"):
+        inputs = _score_inputs(model, members, activity, counts, history, policy, bridging)
+        scores = inputs.score(policy)
     alerts: list[NewAlert] = []
     if raise_alerts and np.any(scores.alert):
         context = AlertContext(
@@ -240,7 +254,8 @@ def compute_window(
             known=known,
             events_of=events_of,
         )
-        alerts = alerts_with_evidence(context, current)
+        with clock.stage("evidence"):
+            alerts = alerts_with_evidence(context, current)
     return _measured_result(
         model, snapshot, members, scores, activity, alerts, past, counts, community, inputs
     )
@@ -260,20 +275,27 @@ def _structured(members: Memberships) -> np.ndarray:
     return np.isfinite(loadings).all(axis=1) & (np.nan_to_num(loadings).sum(axis=1) > 0)
 
 
+def _bridging(
+    snapshot: Snapshot, history: AccountHistory, policy: ShiftPolicy
+) -> np.ndarray | None:
+    """Each account's bridging z-score against the reference window's communities (None
+    when bridging is off or no account has a reference community)."""
+    if policy.bridge_resolution > 0 and (history.reference_community >= 0).any():
+        return bridging_zscore(undirected_ties(snapshot.counts), history.reference_community)
+    return None
+
+
 def _score_inputs(
     model: FrozenModel,
-    snapshot: Snapshot,
     members: Memberships,
     activity: Activity,
     counts: TieCounts,
     history: AccountHistory,
     policy: ShiftPolicy,
+    bridging: np.ndarray | None,
 ) -> ScoreInputs:
     """Assemble what :func:`score_window` takes for this window."""
     structured = _structured(members)
-    bridging = None
-    if policy.bridge_resolution > 0 and (history.reference_community >= 0).any():
-        bridging = bridging_zscore(undirected_ties(snapshot.counts), history.reference_community)
     events = np.column_stack([activity.events_out, activity.events_in]).astype(np.float64)
     baseline_events = np.column_stack([history.events_out, history.events_in])
     return ScoreInputs(
