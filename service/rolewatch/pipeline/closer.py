@@ -382,7 +382,7 @@ def _record_training_window(
         start=to_rfc3339(start_us),
         end=to_rfc3339(end_us),
         events=len(current),
-        accounts=int(len(set(current.actor) | set(current.target))),
+        accounts=current.account_count(),
         alert_count=0,
         training=True,
         stage_seconds=stages,

@@ -13,7 +13,7 @@ from dataclasses import asdict, dataclass
 from typing import Any
 
 import sqlalchemy as sa
-from sqlalchemy.engine import Connection, Row
+from sqlalchemy.engine import Connection
 
 from rolewatch.store.db import inserted_id
 from rolewatch.store.schema import events, service_state, windows
@@ -111,18 +111,6 @@ def count_events_between(connection: Connection, start_us: int, end_us: int) -> 
         .select_from(events)
         .where(events.c.time_us >= start_us, events.c.time_us < end_us)
     ).scalar_one()
-
-
-def events_between(connection: Connection, start_us: int, end_us: int) -> list[Row]:
-    """``(event_id, actor, target, weight)`` of the stored events with ``start_us <= time <
-    end_us``, late ones included, ordered by (time, event id) so sums are reproducible."""
-    return list(
-        connection.execute(
-            sa.select(events.c.event_id, events.c.actor, events.c.target, events.c.weight)
-            .where(events.c.time_us >= start_us, events.c.time_us < end_us)
-            .order_by(events.c.time_us, events.c.event_id)
-        ).all()
-    )
 
 
 def insert_window(
