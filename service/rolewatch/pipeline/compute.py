@@ -12,9 +12,11 @@ counts and community labels, and the keys of its first-seen pairs.
 from __future__ import annotations
 
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, replace
 
 import numpy as np
+import scipy.sparse as sp
 
 from rolewatch.config import Settings
 from rolewatch.engine.activity import Activity
@@ -164,11 +166,13 @@ def policy_from_settings(settings: Settings) -> ShiftPolicy:
     )
 
 
-def window_communities(snapshot: Snapshot, resolution: float) -> np.ndarray:
-    """Community label of every node (-1 for all when bridging is off)."""
-    if resolution <= 0 or snapshot.n_nodes == 0:
-        return np.full(snapshot.n_nodes, -1, dtype=np.int64)
-    return leiden_communities(undirected_ties(snapshot.counts), resolution=resolution)
+def window_communities(graph: sp.csr_matrix, resolution: float) -> np.ndarray:
+    """Community label of every node of the window's undirected tie graph
+    (:func:`undirected_ties`); -1 for all when bridging is off."""
+    n = graph.shape[0]
+    if resolution <= 0 or n == 0:
+        return np.full(n, -1, dtype=np.int64)
+    return leiden_communities(graph, resolution=resolution)
 
 
 def compute_window(
@@ -210,11 +214,48 @@ def compute_window(
         activity = _activity(snapshot, counts)
     if snapshot.n_nodes == 0:
         return _empty_result(snapshot, activity, len(model.basis.role_ids), past, counts)
+    policy = policy_from_settings(settings)
+    with clock.stage("bridging"):
+        graph = undirected_ties(snapshot.counts)
+    # igraph's Leiden runs in C without holding the GIL: on a second thread it overlaps the
+    # features, memberships and scores instead of adding its seconds to the close (the same
+    # seed and input, so the same communities). The bridging stage counts only the wait.
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="rolewatch-communities") as pool:
+        communities = pool.submit(window_communities, graph, policy.bridge_resolution)
+        step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock)
+        return _measure(step, current, past, known, communities, window, raise_alerts, events_of)
+
+
+@dataclass(frozen=True)
+class _Step:
+    """What the measuring steps of one window share."""
+
+    model: FrozenModel
+    settings: Settings
+    policy: ShiftPolicy
+    snapshot: Snapshot
+    counts: TieCounts
+    activity: Activity
+    graph: sp.csr_matrix
+    clock: StageClock
+
+
+def _measure(
+    step: _Step,
+    current: WindowEvents,
+    past: list[PastWindow],
+    known: KnownPairs,
+    communities: Future,
+    window: WindowRef,
+    raise_alerts: bool,
+    events_of: EventsOf | None,
+) -> WindowResult:
+    """Features to alerts, once the snapshot and tie cells are there."""
+    model, policy, snapshot, clock = step.model, step.policy, step.snapshot, step.clock
     with clock.stage("features"):
         table = model.recipe.transform(snapshot)
     with clock.stage("memberships"):
         members = model.basis.memberships(table)
-    policy = policy_from_settings(settings)
     with clock.stage("history"):
         history = account_history(
             snapshot.nodes,
@@ -226,13 +267,15 @@ def compute_window(
             novelty_windows=policy.novelty_windows,
         )
     with clock.stage("bridging"):
-        community = window_communities(snapshot, policy.bridge_resolution)
-        bridging = _bridging(snapshot, history, policy)
+        bridging = _bridging(step.graph, history, policy)
     with clock.stage("scoring"):
-        inputs = _score_inputs(model, members, activity, counts, history, policy, bridging)
+        inputs = _score_inputs(
+            model, members, step.activity, step.counts, history, policy, bridging
+        )
         scores = inputs.score(policy)
     alerts: list[NewAlert] = []
     if raise_alerts and np.any(scores.alert):
+        settings = step.settings
         context = AlertContext(
             model=model,
             policy=policy,
@@ -247,8 +290,8 @@ def compute_window(
             table=table,
             mixture=members.mixture,
             scores=scores,
-            activity=activity,
-            ties=counts.cells,
+            activity=step.activity,
+            ties=step.counts.cells,
             history=history,
             past=past,
             known=known,
@@ -256,8 +299,19 @@ def compute_window(
         )
         with clock.stage("evidence"):
             alerts = alerts_with_evidence(context, current)
+    with clock.stage("bridging"):
+        community = communities.result()
     return _measured_result(
-        model, snapshot, members, scores, activity, alerts, past, counts, community, inputs
+        model,
+        snapshot,
+        members,
+        scores,
+        step.activity,
+        alerts,
+        past,
+        step.counts,
+        community,
+        inputs,
     )
 
 
@@ -276,12 +330,12 @@ def _structured(members: Memberships) -> np.ndarray:
 
 
 def _bridging(
-    snapshot: Snapshot, history: AccountHistory, policy: ShiftPolicy
+    graph: sp.csr_matrix, history: AccountHistory, policy: ShiftPolicy
 ) -> np.ndarray | None:
     """Each account's bridging z-score against the reference window's communities (None
     when bridging is off or no account has a reference community)."""
     if policy.bridge_resolution > 0 and (history.reference_community >= 0).any():
-        return bridging_zscore(undirected_ties(snapshot.counts), history.reference_community)
+        return bridging_zscore(graph, history.reference_community)
     return None
 
 
