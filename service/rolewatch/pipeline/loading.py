@@ -148,4 +148,5 @@ def _mixture_matrix(mixtures: list[dict], role_ids: list[str]) -> np.ndarray:
     frame = pd.DataFrame.from_records(mixtures, columns=role_ids) if mixtures else None
     if frame is None:
         return np.zeros((0, len(role_ids)))
-    return frame.to_numpy(dtype=np.float64, na_value=0.0)
+    # row-major, as the sums over each row's roles expect (they round differently otherwise)
+    return np.ascontiguousarray(frame.to_numpy(dtype=np.float64, na_value=0.0))
