@@ -17,6 +17,8 @@ from prometheus_client import (
     generate_latest,
 )
 
+from rolewatch.pipeline.stages import STAGES
+
 REGISTRY = CollectorRegistry(auto_describe=True)
 
 EVENTS_ACCEPTED = Counter(
@@ -47,6 +49,14 @@ WINDOW_CLOSE_SECONDS = Histogram(
     buckets=(0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60, 120, 300, 600),
     registry=REGISTRY,
 )
+WINDOW_STAGE_SECONDS = Histogram(
+    "rolewatch_window_stage_seconds",
+    "Time one window close spent in each stage (load, features, ties, memberships, history, "
+    "bridging, scoring, evidence, store).",
+    ["stage"],
+    buckets=(0.01, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60, 120, 300),
+    registry=REGISTRY,
+)
 ALERTS_RAISED = Counter(
     "rolewatch_alerts_raised_total", "Alerts raised by window closing.", registry=REGISTRY
 )
@@ -74,6 +84,8 @@ LAST_INGEST = Gauge(
     registry=REGISTRY,
 )
 
+for _stage in STAGES:
+    WINDOW_STAGE_SECONDS.labels(stage=_stage)
 for _outcome in ("delivered", "retry", "failed"):
     DELIVERIES.labels(outcome=_outcome)
 for _job in ("close_windows", "deliver"):
@@ -86,9 +98,14 @@ def exposition() -> tuple[bytes, str]:
     return generate_latest(REGISTRY), CONTENT_TYPE_LATEST
 
 
-def record_window_closed(*, seconds: float, alerts: int = 0) -> None:
-    """Count one closed window: its close duration and the alerts it raised."""
+def record_window_closed(
+    *, seconds: float, alerts: int = 0, stages: dict[str, float] | None = None
+) -> None:
+    """Count one closed window: its close duration, the seconds of each of its stages and
+    the alerts it raised."""
     WINDOWS_CLOSED.inc()
     WINDOW_CLOSE_SECONDS.observe(seconds)
+    for stage, stage_seconds in (stages or {}).items():
+        WINDOW_STAGE_SECONDS.labels(stage=stage).observe(stage_seconds)
     if alerts:
         ALERTS_RAISED.inc(alerts)

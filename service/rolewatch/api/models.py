@@ -135,6 +135,22 @@ class RenameRole(BaseModel):
     name: str = Field(..., min_length=1, max_length=100, pattern=r"^[^\x00-\x1f\x7f-\x9f]+$")
 
 
+class StageSeconds(BaseModel):
+    """Seconds one window close spent in each stage, in the order they run."""
+
+    load: float = Field(..., description="Reading the window's events and its history.")
+    features: float = Field(..., description="The snapshot and its ReFeX features.")
+    ties: float = Field(..., description="Tie cells against the known pairs, activity counts.")
+    memberships: float = Field(..., description="Role memberships against the frozen basis.")
+    history: float = Field(..., description="Each account's baseline and novelty history.")
+    bridging: float = Field(..., description="Communities (Leiden) and the bridging z-score.")
+    scoring: float = Field(..., description="The shift scores and the alert decision.")
+    evidence: float = Field(..., description="The alerts' evidence.")
+    store: float = Field(
+        ..., description="Writing memberships, alerts and the window record (to the commit)."
+    )
+
+
 class ClosedWindow(BaseModel):
     id: int
     start: str
@@ -154,7 +170,12 @@ class ClosedWindow(BaseModel):
     recipe_version: str | None
     basis_version: str | None
     reconstruction_error: float | None
-    close_seconds: float | None
+    close_seconds: float | None = Field(
+        None, description="Seconds computing the window (features to evidence)."
+    )
+    stage_seconds: StageSeconds | None = Field(
+        None, description="Seconds of each stage of the close; null for windows closed before."
+    )
 
 
 class OpenWindow(BaseModel):

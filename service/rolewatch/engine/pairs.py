@@ -30,6 +30,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from rolewatch.engine.sorting import unique_sorted
+
 __all__ = ["FNV_OFFSET", "FNV_PRIME", "KnownPairs", "account_keys", "pair_keys"]
 
 FNV_OFFSET = np.uint64(0xCBF29CE484222325)
@@ -115,7 +117,7 @@ class KnownPairs:
         arrays = [np.asarray(part, dtype=np.uint64).reshape(-1) for part in parts]
         if not arrays:
             return cls.empty()
-        return cls(np.unique(np.concatenate(arrays)))
+        return cls(unique_sorted(np.concatenate(arrays)))
 
     def __len__(self) -> int:
         return int(self.keys.size)
@@ -130,7 +132,7 @@ class KnownPairs:
 
     def new_keys(self, keys) -> np.ndarray:
         """The distinct keys among ``keys`` that are not known yet, sorted."""
-        distinct = np.unique(np.asarray(keys, dtype=np.uint64).reshape(-1))
+        distinct = unique_sorted(np.asarray(keys, dtype=np.uint64))
         return distinct[~self.contains(distinct)]
 
     def with_keys(self, keys) -> KnownPairs:
@@ -138,4 +140,4 @@ class KnownPairs:
         fresh = self.new_keys(keys)
         if fresh.size == 0:
             return self
-        return KnownPairs(np.union1d(self.keys, fresh))
+        return KnownPairs(unique_sorted(np.concatenate([self.keys, fresh])))

@@ -165,6 +165,9 @@ def _role_space(F: np.ndarray) -> np.ndarray:
     return np.divide(F, s, out=np.full_like(F, 1.0 / max(F.shape[1], 1)), where=s > 0)
 
 
+_ROWS_PER_BLOCK = 16_384
+
+
 def role_aware_distance(p, q, F):
     """Distance between mixtures measured through what the roles mean, in [0, 1].
 
@@ -196,7 +199,15 @@ def role_aware_distance(p, q, F):
     R = _role_space(F)
     if R.shape[0] != P.shape[1]:
         raise ValueError(f"F has {R.shape[0]} roles but the mixtures have {P.shape[1]}")
-    return hellinger(P @ R, Q @ R) if np.ndim(p) == 2 else float(hellinger(P @ R, Q @ R)[0])
+    if np.ndim(p) != 2:
+        return float(hellinger(P @ R, Q @ R)[0])
+    # Row blocks: the images are n x features, and the distance's temporaries several times
+    # that; each row's distance depends on its own row only.
+    out = np.empty(P.shape[0])
+    for start in range(0, P.shape[0], _ROWS_PER_BLOCK):
+        rows = slice(start, start + _ROWS_PER_BLOCK)
+        out[rows] = hellinger(P[rows] @ R, Q[rows] @ R)
+    return out
 
 
 def activity_change(current, baseline):

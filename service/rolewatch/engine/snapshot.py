@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -142,6 +143,55 @@ class Snapshot:
             cols = cls._lookup(sorted_nodes, order, t, "target")
         return cls._from_indices(node_arr, rows, cols, w)
 
+    @classmethod
+    def from_interned(cls, nodes, actor_index, target_index, weight=None) -> Snapshot:
+        """Build a snapshot from events whose account ids were interned already.
+
+        Parameters
+        ----------
+        nodes : sequence of str
+            Sorted, distinct account ids (what :meth:`from_events` would find).
+        actor_index, target_index : array of int
+            Equal-length positions in ``nodes``; event ``k`` goes
+            ``nodes[actor_index[k]] -> nodes[target_index[k]]``.
+        weight : sequence of float, optional
+            As in :meth:`from_events`.
+
+        Returns
+        -------
+        Snapshot
+            Equal to ``from_events(nodes[actor_index], nodes[target_index], weight)``.
+
+        Raises
+        ------
+        ValueError
+            On unsorted or repeated ``nodes``, an index outside them, a length mismatch,
+            self-interaction, or a NaN/infinite/negative weight.
+        """
+        node_arr = _as_id_array(nodes, "nodes")
+        if node_arr.size > 1 and not (node_arr[1:] > node_arr[:-1]).all():
+            raise ValueError("nodes must be sorted and distinct; intern the ids with np.unique")
+        rows = np.asarray(actor_index, dtype=np.int64).reshape(-1)
+        cols = np.asarray(target_index, dtype=np.int64).reshape(-1)
+        if rows.shape != cols.shape:
+            raise ValueError(
+                f"actor has {rows.size} ids but target has {cols.size}; every event needs both"
+            )
+        if rows.size and (
+            min(rows.min(), cols.min()) < 0 or max(rows.max(), cols.max()) >= node_arr.size
+        ):
+            raise ValueError("an event index lies outside nodes; index every event's accounts")
+        w = _check_weights(weight, rows.size)
+        self_loop = rows == cols
+        if self_loop.any():
+            i = int(np.flatnonzero(self_loop)[0])
+            raise ValueError(
+                f"{int(self_loop.sum())} event(s) have actor == target (first at index {i}, "
+                f"account {node_arr[rows[i]]!r}); an account cannot interact with itself, "
+                "drop those events"
+            )
+        return cls._from_indices(node_arr, rows, cols, w)
+
     @staticmethod
     def _lookup(
         sorted_nodes: np.ndarray, order: np.ndarray, ids: np.ndarray, what: str
@@ -216,13 +266,15 @@ class Snapshot:
         q = np.asarray(ids)
         if q.ndim == 0:
             q = q.reshape(1)
-        out = np.full(q.shape[0], -1, dtype=np.int64)
         if q.size == 0 or self.n_nodes == 0:
-            return out
-        order = np.argsort(self.nodes, kind="stable")
-        sorted_nodes = self.nodes[order]
-        q = q.astype(str)
-        pos = np.minimum(np.searchsorted(sorted_nodes, q), sorted_nodes.size - 1)
-        hit = sorted_nodes[pos] == q
-        out[hit] = order[pos[hit]]
-        return out
+            return np.full(q.shape[0], -1, dtype=np.int64)
+        if q.dtype != object:
+            q = q.astype(str).astype(object)
+        return self._node_index.get_indexer(q).astype(np.int64)
+
+    @cached_property
+    def _node_index(self) -> Any:
+        """A hash index of the node ids (pandas), built once per snapshot."""
+        import pandas as pd
+
+        return pd.Index(self.nodes.astype(object))

@@ -37,6 +37,7 @@ from rolewatch.pipeline.compute import (
 )
 from rolewatch.pipeline.loading import WindowEvents, load_past_windows, load_window_events
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
+from rolewatch.pipeline.stages import StageClock
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
 from rolewatch.review.intake import file_window_alerts, screen_alerts
 from rolewatch.store import windows as stored_windows
@@ -91,6 +92,7 @@ class WindowSummary:
     reconstruction_error: float | None = None
     training: bool
     backfilled: bool = False
+    stage_seconds: dict[str, float] | None = None  # pipeline.stages.STAGES
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -195,7 +197,7 @@ def _record_metrics(summaries: list[WindowSummary], seconds: float) -> None:
         return
     for summary in summaries:
         if not summary.backfilled:  # a back-filled window was counted when it closed
-            recorder(seconds=seconds, alerts=summary.alert_count)
+            recorder(seconds=seconds, alerts=summary.alert_count, stages=summary.stage_seconds)
 
 
 def _close_once(
@@ -203,13 +205,14 @@ def _close_once(
 ) -> list[WindowSummary]:
     geometry = WindowGeometry.from_settings(settings)
     start_us = geometry.start_of(end_us)
-    with engine.connect() as connection:
+    clock = StageClock()
+    with clock.stage("load"), engine.connect() as connection:
         model = load_active_model(connection)
         current = load_window_events(connection, start_us, end_us)
         training = stored_windows.unmeasured_training_windows(connection) if model is None else []
     if model is None:
-        return _close_training(engine, settings, geometry, end_us, now_us, current, training)
-    with engine.connect() as connection:
+        return _close_training(engine, settings, geometry, end_us, now_us, current, training, clock)
+    with clock.stage("load"), engine.connect() as connection:
         past = load_past_windows(
             connection, model, before_end_us=end_us, limit=lookback_windows(settings)
         )
@@ -225,9 +228,10 @@ def _close_once(
         window=window,
         raise_alerts=True,
         events_of=_stored_events(engine),
+        clock=clock,
     )
     seconds = time.perf_counter() - started
-    with write_transaction(engine) as connection:
+    with clock.stage("store"), write_transaction(engine) as connection:
         _claim_window(connection, start_us, end_us, len(current))
         # Review: suppressed accounts raise no alert (their memberships are still stored).
         screened = screen_alerts(connection, result.alerts, now_us=now_us)
@@ -262,7 +266,11 @@ def _close_once(
                 [alert.to_dict() for alert in api_alerts],
                 case_urls=filed.case_urls,
             )
-    return [_summary(window_id, start_us, end_us, len(current), result, training=False)]
+        # The write's time so far: everything but this update and the commit.
+        stages = clock.seconds()
+        stored_windows.set_stage_seconds(connection, window_id, stages)
+    summary = _summary(window_id, start_us, end_us, len(current), result, training=False)
+    return [replace(summary, stage_seconds=stages)]
 
 
 def _stored_events(engine: Engine) -> Callable[[WindowRef], WindowEvents | None]:
@@ -311,6 +319,7 @@ class _Measured:
     window: _TrainingWindow
     result: WindowResult
     seconds: float
+    clock: StageClock
 
 
 def _close_training(
@@ -321,17 +330,19 @@ def _close_training(
     now_us: int,
     current: WindowEvents,
     training: list[WindowSpan],
+    clock: StageClock,
 ) -> list[WindowSummary]:
     """Close a window before any model exists: record it, or, when it completes the
     training period, fit the model on all training windows and measure (back-fill) every
     one of them, so account histories start at the beginning."""
     start_us = geometry.start_of(end_us)
     if len(training) + 1 < settings.training_windows:
-        return [_record_training_window(engine, start_us, end_us, now_us, current)]
-    loaded = _load_training(engine, training)
+        return [_record_training_window(engine, start_us, end_us, now_us, current, clock)]
+    with clock.stage("load"):
+        loaded = _load_training(engine, training)
     loaded.append(_TrainingWindow(None, start_us, end_us, current))
     model = fit_model(settings, [window.events.snapshot() for window in loaded])
-    measured = _measure_training(model, settings, loaded)
+    measured = _measure_training(model, settings, loaded, clock)
     with write_transaction(engine) as connection:
         _claim_window(connection, start_us, end_us, len(current))
         store_model(
@@ -345,10 +356,15 @@ def _close_training(
 
 
 def _record_training_window(
-    engine: Engine, start_us: int, end_us: int, now_us: int, current: WindowEvents
+    engine: Engine,
+    start_us: int,
+    end_us: int,
+    now_us: int,
+    current: WindowEvents,
+    clock: StageClock,
 ) -> WindowSummary:
     """Record a training window closed; it is measured once training ends."""
-    with write_transaction(engine) as connection:
+    with clock.stage("store"), write_transaction(engine) as connection:
         _claim_window(connection, start_us, end_us, len(current))
         window_id = stored_windows.insert_window(
             connection,
@@ -359,14 +375,17 @@ def _record_training_window(
             training=True,
             measures=None,
         )
+        stages = clock.seconds()
+        stored_windows.set_stage_seconds(connection, window_id, stages)
     return WindowSummary(
         id=window_id,
         start=to_rfc3339(start_us),
         end=to_rfc3339(end_us),
         events=len(current),
-        accounts=int(len(set(current.actor) | set(current.target))),
+        accounts=current.account_count(),
         alert_count=0,
         training=True,
+        stage_seconds=stages,
     )
 
 
@@ -385,10 +404,11 @@ def _load_training(engine: Engine, training: list[WindowSpan]) -> list[_Training
 
 
 def _measure_training(
-    model: FrozenModel, settings: Settings, loaded: list[_TrainingWindow]
+    model: FrozenModel, settings: Settings, loaded: list[_TrainingWindow], clock: StageClock
 ) -> list[_Measured]:
     """Measure the training windows in order, each against the history of those before it
-    (the known pairs start empty at the first training window)."""
+    (the known pairs start empty at the first training window). ``clock`` holds the load
+    of the window closing now (the last one); the others start their own."""
     measured = []
     past: list[PastWindow] = []
     known = KnownPairs.empty()
@@ -396,11 +416,12 @@ def _measure_training(
         ref = WindowRef(
             id=window.window_id, start=to_rfc3339(window.start_us), end=to_rfc3339(window.end_us)
         )
+        own = clock if window.window_id is None else StageClock()
         started = time.perf_counter()
         result = compute_window(
-            model, settings, window.events, past, known, window=ref, raise_alerts=False
+            model, settings, window.events, past, known, window=ref, raise_alerts=False, clock=own
         )
-        measured.append(_Measured(window, result, time.perf_counter() - started))
+        measured.append(_Measured(window, result, time.perf_counter() - started, own))
         past = (past + [past_from_result(result, ref)])[-lookback_windows(settings) :]
         known = known.with_keys(result.new_pairs if result.new_pairs is not None else [])
     return measured
@@ -412,20 +433,23 @@ def _store_training_window(
     window, result = item.window, item.result
     measures = _measures(model, result, item.seconds)
     window_id = window.window_id
-    if window_id is None:
-        window_id = stored_windows.insert_window(
-            connection,
-            start_us=window.start_us,
-            end_us=window.end_us,
-            closed_us=now_us,
-            event_count=len(window.events),
-            training=True,
-            measures=measures,
-        )
-    else:
-        stored_windows.set_measures(connection, window_id, measures)
-    _store_result(connection, model, window_id, window.start_us, window.end_us, now_us, result)
-    return _summary(
+    with item.clock.stage("store"):
+        if window_id is None:
+            window_id = stored_windows.insert_window(
+                connection,
+                start_us=window.start_us,
+                end_us=window.end_us,
+                closed_us=now_us,
+                event_count=len(window.events),
+                training=True,
+                measures=measures,
+            )
+        else:
+            stored_windows.set_measures(connection, window_id, measures)
+        _store_result(connection, model, window_id, window.start_us, window.end_us, now_us, result)
+        stages = item.clock.seconds()
+        stored_windows.set_stage_seconds(connection, window_id, stages)
+    summary = _summary(
         window_id,
         window.start_us,
         window.end_us,
@@ -434,6 +458,7 @@ def _store_training_window(
         training=True,
         backfilled=window.window_id is not None,
     )
+    return replace(summary, stage_seconds=stages)
 
 
 # --- what a close writes ---------------------------------------------------------------------

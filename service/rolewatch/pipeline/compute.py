@@ -12,9 +12,11 @@ counts and community labels, and the keys of its first-seen pairs.
 from __future__ import annotations
 
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, replace
 
 import numpy as np
+import scipy.sparse as sp
 
 from rolewatch.config import Settings
 from rolewatch.engine.activity import Activity
@@ -28,6 +30,7 @@ from rolewatch.pipeline.evidence import REVIEW_NOTICE, AlertContext, alerts_with
 from rolewatch.pipeline.history import AccountHistory, account_history, novelty_history
 from rolewatch.pipeline.loading import PastWindow, WindowEvents
 from rolewatch.pipeline.model import FrozenModel
+from rolewatch.pipeline.stages import StageClock
 from rolewatch.store.alerts import NewAlert, WindowRef
 from rolewatch.store.memberships import MIXTURE_DECIMALS
 
@@ -163,11 +166,13 @@ def policy_from_settings(settings: Settings) -> ShiftPolicy:
     )
 
 
-def window_communities(snapshot: Snapshot, resolution: float) -> np.ndarray:
-    """Community label of every node (-1 for all when bridging is off)."""
-    if resolution <= 0 or snapshot.n_nodes == 0:
-        return np.full(snapshot.n_nodes, -1, dtype=np.int64)
-    return leiden_communities(undirected_ties(snapshot.counts), resolution=resolution)
+def window_communities(graph: sp.csr_matrix, resolution: float) -> np.ndarray:
+    """Community label of every node of the window's undirected tie graph
+    (:func:`undirected_ties`); -1 for all when bridging is off."""
+    n = graph.shape[0]
+    if resolution <= 0 or n == 0:
+        return np.full(n, -1, dtype=np.int64)
+    return leiden_communities(graph, resolution=resolution)
 
 
 def compute_window(
@@ -180,6 +185,7 @@ def compute_window(
     window: WindowRef,
     raise_alerts: bool,
     events_of: EventsOf | None = None,
+    clock: StageClock | None = None,
 ) -> WindowResult:
     """Measure every active account of one window against its own history.
 
@@ -196,29 +202,80 @@ def compute_window(
     events_of
         Reads a baseline window's events for the features an alert shows as "before"
         (None: no feature moves are shown).
+    clock
+        Collects the seconds of each stage (features, ties, memberships, history, bridging,
+        scoring, evidence).
     """
-    snapshot = current.snapshot()
-    counts = tie_counts(snapshot, known)
-    activity = _activity(snapshot, counts)
+    clock = clock if clock is not None else StageClock()
+    with clock.stage("features"):
+        snapshot = current.snapshot()
+    with clock.stage("ties"):
+        counts = tie_counts(snapshot, known)
+        activity = _activity(snapshot, counts)
     if snapshot.n_nodes == 0:
         return _empty_result(snapshot, activity, len(model.basis.role_ids), past, counts)
-    table = model.recipe.transform(snapshot)
-    members = model.basis.memberships(table)
     policy = policy_from_settings(settings)
-    history = account_history(
-        snapshot.nodes,
-        past,
-        n_roles=len(model.basis.role_ids),
-        mode=policy.baseline,
-        last_k=policy.last_k,
-        half_life=policy.half_life,
-        novelty_windows=policy.novelty_windows,
-    )
-    community = window_communities(snapshot, policy.bridge_resolution)
-    inputs = _score_inputs(model, snapshot, members, activity, counts, history, policy)
-    scores = inputs.score(policy)
+    with clock.stage("bridging"):
+        graph = undirected_ties(snapshot.counts)
+    # igraph's Leiden runs in C without holding the GIL: on a second thread it overlaps the
+    # features, memberships and scores instead of adding its seconds to the close (the same
+    # seed and input, so the same communities). The bridging stage counts only the wait.
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="rolewatch-communities") as pool:
+        communities = pool.submit(window_communities, graph, policy.bridge_resolution)
+        step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock)
+        return _measure(step, current, past, known, communities, window, raise_alerts, events_of)
+
+
+@dataclass(frozen=True)
+class _Step:
+    """What the measuring steps of one window share."""
+
+    model: FrozenModel
+    settings: Settings
+    policy: ShiftPolicy
+    snapshot: Snapshot
+    counts: TieCounts
+    activity: Activity
+    graph: sp.csr_matrix
+    clock: StageClock
+
+
+def _measure(
+    step: _Step,
+    current: WindowEvents,
+    past: list[PastWindow],
+    known: KnownPairs,
+    communities: Future,
+    window: WindowRef,
+    raise_alerts: bool,
+    events_of: EventsOf | None,
+) -> WindowResult:
+    """Features to alerts, once the snapshot and tie cells are there."""
+    model, policy, snapshot, clock = step.model, step.policy, step.snapshot, step.clock
+    with clock.stage("features"):
+        table = model.recipe.transform(snapshot)
+    with clock.stage("memberships"):
+        members = model.basis.memberships(table)
+    with clock.stage("history"):
+        history = account_history(
+            snapshot.nodes,
+            past,
+            n_roles=len(model.basis.role_ids),
+            mode=policy.baseline,
+            last_k=policy.last_k,
+            half_life=policy.half_life,
+            novelty_windows=policy.novelty_windows,
+        )
+    with clock.stage("bridging"):
+        bridging = _bridging(step.graph, history, policy)
+    with clock.stage("scoring"):
+        inputs = _score_inputs(
+            model, members, step.activity, step.counts, history, policy, bridging
+        )
+        scores = inputs.score(policy)
     alerts: list[NewAlert] = []
     if raise_alerts and np.any(scores.alert):
+        settings = step.settings
         context = AlertContext(
             model=model,
             policy=policy,
@@ -233,16 +290,28 @@ def compute_window(
             table=table,
             mixture=members.mixture,
             scores=scores,
-            activity=activity,
-            ties=counts.cells,
+            activity=step.activity,
+            ties=step.counts.cells,
             history=history,
             past=past,
             known=known,
             events_of=events_of,
         )
-        alerts = alerts_with_evidence(context, current)
+        with clock.stage("evidence"):
+            alerts = alerts_with_evidence(context, current)
+    with clock.stage("bridging"):
+        community = communities.result()
     return _measured_result(
-        model, snapshot, members, scores, activity, alerts, past, counts, community, inputs
+        model,
+        snapshot,
+        members,
+        scores,
+        step.activity,
+        alerts,
+        past,
+        step.counts,
+        community,
+        inputs,
     )
 
 
@@ -260,20 +329,27 @@ def _structured(members: Memberships) -> np.ndarray:
     return np.isfinite(loadings).all(axis=1) & (np.nan_to_num(loadings).sum(axis=1) > 0)
 
 
+def _bridging(
+    graph: sp.csr_matrix, history: AccountHistory, policy: ShiftPolicy
+) -> np.ndarray | None:
+    """Each account's bridging z-score against the reference window's communities (None
+    when bridging is off or no account has a reference community)."""
+    if policy.bridge_resolution > 0 and (history.reference_community >= 0).any():
+        return bridging_zscore(graph, history.reference_community)
+    return None
+
+
 def _score_inputs(
     model: FrozenModel,
-    snapshot: Snapshot,
     members: Memberships,
     activity: Activity,
     counts: TieCounts,
     history: AccountHistory,
     policy: ShiftPolicy,
+    bridging: np.ndarray | None,
 ) -> ScoreInputs:
     """Assemble what :func:`score_window` takes for this window."""
     structured = _structured(members)
-    bridging = None
-    if policy.bridge_resolution > 0 and (history.reference_community >= 0).any():
-        bridging = bridging_zscore(undirected_ties(snapshot.counts), history.reference_community)
     events = np.column_stack([activity.events_out, activity.events_in]).astype(np.float64)
     baseline_events = np.column_stack([history.events_out, history.events_in])
     return ScoreInputs(

@@ -13,23 +13,68 @@ from rolewatch.pipeline.model import FrozenModel
 from rolewatch.store import memberships as stored_memberships
 from rolewatch.store.alerts import WindowRef
 from rolewatch.store.db import Connection
-from rolewatch.store.windows import events_between
+from rolewatch.store.event_columns import event_columns
 
 
 @dataclass(frozen=True)
 class WindowEvents:
-    """The events of one window, sorted by (time, event id) so sums are reproducible."""
+    """The events of one window, sorted by (time, event id) so sums are reproducible.
+
+    ``accounts`` (sorted, distinct) with ``actor_index`` and ``target_index`` are the
+    account ids interned once for the window (:func:`interned`); the snapshot is then built
+    from the integer positions without looking the ids up again.
+    """
 
     event_id: np.ndarray
     actor: np.ndarray
     target: np.ndarray
     weight: np.ndarray
+    accounts: np.ndarray | None = None
+    actor_index: np.ndarray | None = None
+    target_index: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.event_id)
 
+    def account_count(self) -> int:
+        """How many distinct accounts the events involve."""
+        if self.accounts is not None:
+            return len(self.accounts)
+        return len(set(self.actor) | set(self.target))
+
     def snapshot(self) -> Snapshot:
+        if self.accounts is not None:
+            return Snapshot.from_interned(
+                self.accounts, self.actor_index, self.target_index, self.weight
+            )
         return Snapshot.from_events(self.actor, self.target, self.weight)
+
+
+def interned(event_id, actor, target, weight) -> WindowEvents:
+    """Window events whose account ids are interned once: each distinct id is one string
+    object, and every event holds its accounts' positions among the sorted distinct ids
+    (pandas' hash-based ``factorize`` on both columns at once, then the few distinct ids
+    sorted)."""
+    import pandas as pd
+
+    both = np.concatenate([np.asarray(actor, dtype=object), np.asarray(target, dtype=object)])
+    codes, uniques = pd.factorize(both)
+    distinct = np.asarray(uniques, dtype=object)
+    order = np.argsort(distinct.astype(str), kind="stable")
+    rank = np.empty(order.size, dtype=np.int64)
+    rank[order] = np.arange(order.size)
+    positions = rank[codes]
+    accounts = distinct[order]
+    n = len(positions) // 2
+    return WindowEvents(
+        event_id=np.asarray(event_id, dtype=object),
+        actor=accounts[positions[:n]],
+        target=accounts[positions[n:]],
+        weight=np.asarray(weight, dtype=np.float64),
+        accounts=accounts.astype(str),
+        actor_index=positions[:n],
+        target_index=positions[n:],
+    )
 
 
 @dataclass(frozen=True)
@@ -59,17 +104,8 @@ def load_window_events(connection: Connection, start_us: int, end_us: int) -> Wi
     Late events are included: a window that is still open takes every event in its range,
     whenever it arrived (a closed window is never reloaded).
     """
-    rows = events_between(connection, start_us, end_us)
-    if not rows:
-        empty = np.array([], dtype=object)
-        return WindowEvents(empty, empty, empty, np.array([], dtype=np.float64))
-    event_id, actor, target, weight = zip(*rows, strict=True)
-    return WindowEvents(
-        event_id=np.array(event_id, dtype=object),
-        actor=np.array(actor, dtype=object),
-        target=np.array(target, dtype=object),
-        weight=np.array(weight, dtype=np.float64),
-    )
+    columns = event_columns(connection, start_us, end_us)
+    return interned(columns.event_id, columns.actor, columns.target, columns.weight)
 
 
 def load_past_windows(
@@ -79,18 +115,12 @@ def load_past_windows(
     oldest first, with mixtures laid out in the model's role order (missing roles are 0;
     accounts with too little activity get NaN rows)."""
     column_of = {str(role_id): column for column, role_id in enumerate(model.basis.role_ids)}
-    k = len(column_of)
     past = []
     for window_id, start_us, end_us in stored_memberships.measured_windows(
         connection, before_end_us=before_end_us, limit=limit
     ):
         stored = stored_memberships.window_columns(connection, window_id)
-        mixture = np.zeros((len(stored.accounts), k))
-        for index, shares in enumerate(stored.mixtures):
-            for role_id, weight in shares.items():
-                column = column_of.get(role_id)
-                if column is not None:
-                    mixture[index, column] = weight
+        mixture = _mixture_matrix(stored.mixtures, list(column_of))
         totals = mixture.sum(axis=1, keepdims=True)
         np.divide(mixture, totals, out=mixture, where=totals > 0)
         mixture[stored.status == "too_little"] = np.nan
@@ -108,3 +138,15 @@ def load_past_windows(
             )
         )
     return past
+
+
+def _mixture_matrix(mixtures: list[dict], role_ids: list[str]) -> np.ndarray:
+    """Stored ``{role_id: weight}`` mixtures as a matrix with one column per role id, in
+    that order (0 where a mixture lacks the role; roles not in the list are dropped)."""
+    import pandas as pd
+
+    frame = pd.DataFrame.from_records(mixtures, columns=role_ids) if mixtures else None
+    if frame is None:
+        return np.zeros((0, len(role_ids)))
+    # row-major, as the sums over each row's roles expect (they round differently otherwise)
+    return np.ascontiguousarray(frame.to_numpy(dtype=np.float64, na_value=0.0))

@@ -82,6 +82,8 @@ windows = Table(
     # frozen basis no longer explains behaviour well (stale basis).
     Column("reconstruction_error", Float, nullable=True),
     Column("close_seconds", Float, nullable=True),
+    # JSON {stage: seconds} of the close (pipeline.stages.STAGES); null before it was kept
+    Column("stage_seconds", Text, nullable=True),
 )
 
 recipes = Table(

@@ -8,10 +8,12 @@ that ends training fills them in (the back-fill). A window covers the events wit
 
 from __future__ import annotations
 
+import json
 from dataclasses import asdict, dataclass
+from typing import Any
 
 import sqlalchemy as sa
-from sqlalchemy.engine import Connection, Row
+from sqlalchemy.engine import Connection
 
 from rolewatch.store.db import inserted_id
 from rolewatch.store.schema import events, service_state, windows
@@ -40,6 +42,14 @@ class WindowMeasures:
     inactive_count: int
     scored_count: int
     close_seconds: float
+    stage_seconds: dict[str, float] | None = None  # {stage: seconds} of the close
+
+    def values(self) -> dict[str, Any]:
+        """The window row's columns for these measures."""
+        values = asdict(self)
+        if self.stage_seconds is not None:
+            values["stage_seconds"] = json.dumps(self.stage_seconds)
+        return values
 
 
 @dataclass(frozen=True)
@@ -103,18 +113,6 @@ def count_events_between(connection: Connection, start_us: int, end_us: int) -> 
     ).scalar_one()
 
 
-def events_between(connection: Connection, start_us: int, end_us: int) -> list[Row]:
-    """``(event_id, actor, target, weight)`` of the stored events with ``start_us <= time <
-    end_us``, late ones included, ordered by (time, event id) so sums are reproducible."""
-    return list(
-        connection.execute(
-            sa.select(events.c.event_id, events.c.actor, events.c.target, events.c.weight)
-            .where(events.c.time_us >= start_us, events.c.time_us < end_us)
-            .order_by(events.c.time_us, events.c.event_id)
-        ).all()
-    )
-
-
 def insert_window(
     connection: Connection,
     *,
@@ -137,13 +135,23 @@ def insert_window(
         "late_count": 0,
     }
     if measures is not None:
-        values.update(asdict(measures))
+        values.update(measures.values())
     return inserted_id(connection.execute(windows.insert().values(**values)))
 
 
 def set_measures(connection: Connection, window_id: int, measures: WindowMeasures) -> None:
     """Fill in the measures of a training window recorded before the model existed."""
-    connection.execute(windows.update().where(windows.c.id == window_id).values(**asdict(measures)))
+    connection.execute(
+        windows.update().where(windows.c.id == window_id).values(**measures.values())
+    )
+
+
+def set_stage_seconds(connection: Connection, window_id: int, seconds: dict[str, float]) -> None:
+    """Record the stage times of a window's close (the write is timed last, so it is filled
+    in once the rest of the window is written)."""
+    connection.execute(
+        windows.update().where(windows.c.id == window_id).values(stage_seconds=json.dumps(seconds))
+    )
 
 
 def first_event_time_from(connection: Connection, start_us: int) -> int | None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from typing import Any
 
 from fastapi import APIRouter, Query
@@ -19,6 +20,10 @@ router = APIRouter(tags=["windows"])
 
 def _opt(value: int | None) -> str | None:
     return None if value is None else to_rfc3339(value)
+
+
+def _stages(stored: str | None) -> dict[str, float] | None:
+    return None if stored is None else json.loads(stored)
 
 
 def windows_document(engine: Engine, settings: Settings, now_us: int, limit: int) -> dict[str, Any]:
@@ -56,6 +61,7 @@ def windows_document(engine: Engine, settings: Settings, now_us: int, limit: int
                 "basis_version": w["basis_version"],
                 "reconstruction_error": w["reconstruction_error"],
                 "close_seconds": w["close_seconds"],
+                "stage_seconds": _stages(w.get("stage_seconds")),
             }
             for w in closed
         ],

@@ -1,0 +1,76 @@
+"""Interned account ids and the one-sort distinct values give what the plain numpy paths
+give: numpy's own ``unique`` and ``Snapshot.from_events`` are the references."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from rolewatch.engine.snapshot import Snapshot
+from rolewatch.engine.sorting import unique_sorted
+from rolewatch.pipeline.loading import interned
+
+
+@pytest.mark.parametrize("dtype", [np.int64, np.uint64, np.int32, np.float64])
+def test_unique_sorted_is_numpys_unique(dtype):
+    rng = np.random.default_rng(7)
+    for size in (0, 1, 2, 17, 5000):
+        values = rng.integers(0, 40, size).astype(dtype)
+        # reference: numpy.unique (sorted distinct values)
+        expected = np.unique(values)
+        found = unique_sorted(values)
+        assert found.dtype == expected.dtype
+        np.testing.assert_array_equal(found, expected)
+
+
+def test_interned_events_build_the_snapshot_from_events_builds():
+    rng = np.random.default_rng(3)
+    ids = np.array([f"acct-{i}" for i in rng.permutation(300)] + ["é-ü", "Z", "a"], dtype=object)
+    actor = ids[rng.integers(0, len(ids), 4000)]
+    target = ids[rng.integers(0, len(ids), 4000)]
+    keep = actor != target
+    actor, target = actor[keep], target[keep]
+    weight = rng.lognormal(1.0, 1.0, actor.size)
+    events = interned(np.arange(actor.size).astype(str), actor, target, weight)
+    np.testing.assert_array_equal(events.actor, actor)
+    np.testing.assert_array_equal(events.target, target)
+    assert events.account_count() == len(set(actor) | set(target))
+    built = events.snapshot()
+    reference = Snapshot.from_events(actor.astype(str), target.astype(str), weight)
+    np.testing.assert_array_equal(built.nodes, reference.nodes)
+    assert (built.counts != reference.counts).nnz == 0
+    assert (built.weights != reference.weights).nnz == 0
+    # index_of agrees with a plain dictionary of the node order
+    position = {node: i for i, node in enumerate(reference.nodes.tolist())}
+    asked = np.concatenate([actor[:50], np.array(["nobody", "acct-x"], dtype=object)])
+    np.testing.assert_array_equal(
+        built.index_of(asked), [position.get(str(a), -1) for a in asked.tolist()]
+    )
+
+
+def test_from_interned_refuses_what_from_events_refuses():
+    nodes = np.array(["a", "b", "c"])
+    with pytest.raises(ValueError, match="actor == target"):
+        Snapshot.from_interned(nodes, [0, 1], [1, 1])
+    with pytest.raises(ValueError, match="sorted and distinct"):
+        Snapshot.from_interned(np.array(["b", "a"]), [0], [1])
+    with pytest.raises(ValueError, match="outside nodes"):
+        Snapshot.from_interned(nodes, [0], [3])
+    with pytest.raises(ValueError, match="finite"):
+        Snapshot.from_interned(nodes, [0], [1], [np.nan])
+
+
+def test_stored_mixtures_become_the_row_major_matrix_a_row_by_row_fill_gives():
+    from rolewatch.pipeline.loading import _mixture_matrix
+
+    mixtures = [{"2": 0.25, "0": 0.75}, {}, {"1": 1.0, "9": 0.5}, {"0": 0.1, "1": 0.2, "2": 0.7}]
+    role_ids = ["0", "1", "2"]
+    expected = np.zeros((len(mixtures), len(role_ids)))  # reference: a plain loop
+    for row, shares in enumerate(mixtures):
+        for role_id, weight in shares.items():
+            if role_id in role_ids:
+                expected[row, role_ids.index(role_id)] = weight
+    found = _mixture_matrix(mixtures, role_ids)
+    np.testing.assert_array_equal(found, expected)
+    # row sums must add in the same order as for any other row-major matrix
+    assert found.flags.c_contiguous
