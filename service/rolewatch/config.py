@@ -311,6 +311,18 @@ class Settings(BaseSettings):
         description="How long a suppression lasts when it is made without an expiry date.",
     )
 
+    # --- scale (optional extra [scale]: pyarrow and Dask; docs/scale.md) ---------------
+    event_source: Literal["store", "archive"] = Field(
+        "store",
+        description="Where a window close reads its events: the SQL store, or the Parquet "
+        "event archive (event_archive) together with any events ingested into the store.",
+    )
+    event_archive: str | None = Field(
+        None,
+        description="Path or URL (anything pyarrow/fsspec opens) of the Parquet event archive, "
+        "partitioned by window; needed when event_source is archive.",
+    )
+
     # --- retention and logging ---------------------------------------------------------
     retention_windows: int = Field(
         0,
@@ -345,6 +357,11 @@ class Settings(BaseSettings):
             raise ValueError("window_period must be at least 1s")
         if self.roles_min > self.roles_max:
             raise ValueError("roles_min must not exceed roles_max")
+        if self.event_source == "archive" and not self.event_archive:
+            raise ValueError(
+                "event_source = archive needs event_archive: set ROLEWATCH_EVENT_ARCHIVE to the "
+                "archive's path or URL"
+            )
         return self
 
     @classmethod
