@@ -311,7 +311,7 @@ class Settings(BaseSettings):
         description="How long a suppression lasts when it is made without an expiry date.",
     )
 
-    # --- scale (optional extra [scale]: pyarrow and Dask; docs/scale.md) ---------------
+    # --- scale (optional extra [scale]: Dask and pyarrow; docs/scale.md) ---------------
     event_source: Literal["store", "archive"] = Field(
         "store",
         description="Where a window close reads its events: the SQL store, or the Parquet "
@@ -321,6 +321,19 @@ class Settings(BaseSettings):
         None,
         description="Path or URL (anything pyarrow/fsspec opens) of the Parquet event archive, "
         "partitioned by window; needed when event_source is archive.",
+    )
+    compute: Literal["local", "dask"] = Field(
+        "local",
+        description="Where a window's features and memberships are computed: in this process, "
+        "or on a Dask cluster (dask_scheduler).",
+    )
+    dask_scheduler: str | None = Field(
+        None,
+        description="Address of the Dask scheduler, like tcp://10.0.0.5:8786 (empty with "
+        "compute = dask: a local cluster is started inside this process).",
+    )
+    dask_partitions: int = Field(
+        8, ge=1, description="Partitions the Dask close splits a window's accounts into."
     )
 
     # --- retention and logging ---------------------------------------------------------

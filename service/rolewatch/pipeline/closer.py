@@ -40,6 +40,7 @@ from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, 
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
 from rolewatch.review.intake import file_window_alerts, screen_alerts
 from rolewatch.scale import source as event_source
+from rolewatch.scale.dispatch import measure_for
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.alerts import Alert, insert_alerts
 from rolewatch.store.db import (
@@ -228,6 +229,7 @@ def _close_once(
         window=window,
         raise_alerts=True,
         events_of=_stored_events(engine, settings),
+        measure=measure_for(settings),
     )
     seconds = time.perf_counter() - started
     with write_transaction(engine) as connection:

@@ -20,6 +20,7 @@ from rolewatch.config import Settings
 from rolewatch.engine.activity import Activity
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.bridging import bridging_zscore, leiden_communities, undirected_ties
+from rolewatch.engine.features.recipe import FeatureTable
 from rolewatch.engine.pairs import KnownPairs
 from rolewatch.engine.scoring import ShiftPolicy, TieEvidence, WindowScores, score_window
 from rolewatch.engine.snapshot import Snapshot
@@ -46,6 +47,17 @@ __all__ = [
 
 # Reads the events of an earlier window (its start and end), or None when they are gone.
 EventsOf = Callable[[WindowRef], WindowEvents | None]
+# A window's feature table and memberships against the frozen model, from its snapshot and
+# events: in this process by default; rolewatch.scale.dispatch picks a Dask cluster instead.
+Measure = Callable[[FrozenModel, Snapshot, WindowEvents], tuple[FeatureTable, Memberships]]
+
+
+def measure_locally(
+    model: FrozenModel, snapshot: Snapshot, events: WindowEvents
+) -> tuple[FeatureTable, Memberships]:
+    """The frozen recipe's features of ``snapshot`` and their memberships, in this process."""
+    table = model.recipe.transform(snapshot)
+    return table, model.basis.memberships(table)
 
 
 @dataclass(frozen=True, eq=False)
@@ -180,6 +192,7 @@ def compute_window(
     window: WindowRef,
     raise_alerts: bool,
     events_of: EventsOf | None = None,
+    measure: Measure = measure_locally,
 ) -> WindowResult:
     """Measure every active account of one window against its own history.
 
@@ -196,14 +209,15 @@ def compute_window(
     events_of
         Reads a baseline window's events for the features an alert shows as "before"
         (None: no feature moves are shown).
+    measure
+        Computes the feature table and memberships (:func:`measure_locally` by default).
     """
     snapshot = current.snapshot()
     counts = tie_counts(snapshot, known)
     activity = _activity(snapshot, counts)
     if snapshot.n_nodes == 0:
         return _empty_result(snapshot, activity, len(model.basis.role_ids), past, counts)
-    table = model.recipe.transform(snapshot)
-    members = model.basis.memberships(table)
+    table, members = measure(model, snapshot, current)
     policy = policy_from_settings(settings)
     history = account_history(
         snapshot.nodes,
