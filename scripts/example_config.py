@@ -25,6 +25,7 @@ EXAMPLES = {
     "delivery_ca_bundle": "/etc/ssl/internal-ca.pem",
     "event_archive": "/var/lib/rolewatch/archive",
     "dask_scheduler": "tcp://127.0.0.1:8786",
+    "output_archive": "/var/lib/rolewatch/outputs",
 }
 
 HEAD = """\

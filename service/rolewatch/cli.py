@@ -376,6 +376,7 @@ BENCH_MODULES = (
     "engine_roles",
     "load",
     "detection",
+    "scale",
 )
 
 

@@ -332,6 +332,11 @@ class Settings(BaseSettings):
         description="Address of the Dask scheduler, like tcp://10.0.0.5:8786 (empty with "
         "compute = dask: a local cluster is started inside this process).",
     )
+    output_archive: str | None = Field(
+        None,
+        description="Path or URL of a Parquet dataset, partitioned by window, that every "
+        "closed window's memberships and scores are also written to (empty: none).",
+    )
     dask_partitions: int = Field(
         8, ge=1, description="Partitions the Dask close splits a window's accounts into."
     )

@@ -92,5 +92,8 @@ def dask_cluster():
     )
     client = Client(cluster)
     yield client
+    from rolewatch.scale.dispatch import close_clients
+
+    close_clients()  # the closer's own clients of this cluster
     client.close()
     cluster.close()

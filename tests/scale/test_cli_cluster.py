@@ -16,6 +16,7 @@ from pathlib import Path
 import pytest
 
 from rolewatch.pipeline.closer import close_due_windows
+from rolewatch.scale.dispatch import close_clients
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
 
@@ -104,6 +105,7 @@ def test_a_command_line_cluster_closes_windows_like_the_local_engine(tmp_path):
         # the dask close really ran on the cluster
         assert scheduler_transitions(address) > before
     finally:
+        close_clients()
         for process in reversed(processes):
             process.terminate()
         for process in processes:

@@ -40,7 +40,7 @@ from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, 
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
 from rolewatch.review.intake import file_window_alerts, screen_alerts
 from rolewatch.scale import source as event_source
-from rolewatch.scale.dispatch import measure_for
+from rolewatch.scale.dispatch import measure_for, record_outputs
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.alerts import Alert, insert_alerts
 from rolewatch.store.db import (
@@ -267,6 +267,7 @@ def _close_once(
                 [alert.to_dict() for alert in api_alerts],
                 case_urls=filed.case_urls,
             )
+    record_outputs(settings, end_us, model, result)
     return [_summary(window_id, start_us, end_us, len(current), result, training=False)]
 
 

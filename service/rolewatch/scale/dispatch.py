@@ -15,11 +15,18 @@ from rolewatch.config import Settings
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.features.recipe import FeatureTable
 from rolewatch.engine.snapshot import Snapshot
-from rolewatch.pipeline.compute import Measure, measure_locally
+from rolewatch.pipeline.compute import Measure, WindowResult, measure_locally
 from rolewatch.pipeline.loading import WindowEvents
 from rolewatch.pipeline.model import FrozenModel
 
-__all__ = ["DaskMeasure", "ScaleExtraMissing", "dask_client", "measure_for"]
+__all__ = [
+    "DaskMeasure",
+    "ScaleExtraMissing",
+    "close_clients",
+    "dask_client",
+    "measure_for",
+    "record_outputs",
+]
 
 _CLIENTS: dict[str | None, Any] = {}
 _LOCK = threading.Lock()
@@ -60,6 +67,17 @@ def dask_client(scheduler: str | None) -> Any:
         return client
 
 
+def close_clients() -> None:
+    """Close every client this process made (and the local cluster it started, if any)."""
+    with _LOCK:
+        for client in _CLIENTS.values():
+            cluster = client.cluster
+            client.close()
+            if cluster is not None:
+                cluster.close()
+        _CLIENTS.clear()
+
+
 class DaskMeasure:
     """Computes a window's feature table and memberships on a Dask cluster
     (:func:`rolewatch.pipeline.compute.measure_locally` is the in-process equivalent)."""
@@ -89,3 +107,28 @@ def measure_for(settings: Settings) -> Measure:
     if settings.compute == "local":
         return measure_locally
     return DaskMeasure(dask_client(settings.dask_scheduler), settings.dask_partitions)
+
+
+def record_outputs(
+    settings: Settings, end_us: int, model: FrozenModel, result: WindowResult
+) -> None:
+    """Write the closed window's memberships and scores to ``output_archive`` (if set)."""
+    if not settings.output_archive:
+        return
+    from rolewatch.scale.outputs import WindowOutputs, write_window_outputs
+
+    write_window_outputs(
+        settings.output_archive,
+        end_us,
+        WindowOutputs(
+            accounts=result.nodes,
+            role_ids=tuple(int(role_id) for role_id in model.basis.role_ids),
+            mixture=result.mixture,
+            dominant=result.dominant,
+            score=result.score,
+            status=result.status,
+            events_out=result.activity.events_out,
+            events_in=result.activity.events_in,
+            basis_version=model.basis.version,
+        ),
+    )
