@@ -135,3 +135,20 @@ def test_closing_on_dask_writes_what_closing_locally_writes(dask_cluster, tmp_pa
     assert_same_closes(results["dask"], results["local"])
     # the dask close really ran on the cluster
     assert scheduler_transitions(dask_cluster.scheduler.address) > before
+
+
+def test_a_window_smaller_than_the_partition_count_measures_like_the_local_engine(
+    dask_cluster, sample_windows
+):
+    model, windows = sample_windows
+    events = WindowEvents(
+        event_id=np.array(["e1", "e2", "e3", "e4"], dtype=object),
+        actor=np.array(["acct-a", "acct-b", "acct-c", "acct-b"], dtype=object),
+        target=np.array(["acct-b", "acct-c", "acct-a", "acct-a"], dtype=object),
+        weight=np.array([1.0, 2.0, 3.0, 1.0]),
+    )
+    snapshot = events.snapshot()
+    local_table, local_members = measure_locally(model, snapshot, events)
+    dask_table, dask_members = DaskMeasure(dask_cluster, partitions=8)(model, snapshot, events)
+    np.testing.assert_allclose(dask_table.raw, local_table.raw, rtol=1e-9, atol=0)
+    np.testing.assert_allclose(dask_members.mixture, local_members.mixture, rtol=0, atol=1e-9)
