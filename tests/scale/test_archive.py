@@ -61,14 +61,19 @@ def test_replay_to_archive_reports_bad_lines_and_keeps_the_good_ones(tmp_path, c
     assert len(pd.read_parquet(tmp_path / "archive")) == 1
 
 
-def test_closing_from_the_archive_writes_what_closing_from_the_store_writes(tmp_path):
-    every = sample_events()
-    from_store = sample_settings(tmp_path / "store.db")
-    engine = open_store(from_store)
-    ingest(engine, from_store, every, NOW)
-    close_due_windows(engine, from_store, now_us=NOW, drain=True)
+def _closed_from_store(tmp_path) -> dict:
+    """What closing the sample from the store alone writes (the reference)."""
+    settings = sample_settings(tmp_path / "store.db")
+    engine = open_store(settings)
+    ingest(engine, settings, sample_events(), NOW)
+    close_due_windows(engine, settings, now_us=NOW, drain=True)
     expected = written(engine)
     engine.dispose()
+    return expected
+
+
+def test_closing_from_the_archive_writes_what_closing_from_the_store_writes(tmp_path):
+    expected = _closed_from_store(tmp_path)
 
     archive = tmp_path / "archive"
     assert main(["replay", str(SAMPLE / "events.ndjson"), "--to-archive", str(archive)]) == 0
@@ -83,13 +88,8 @@ def test_closing_from_the_archive_writes_what_closing_from_the_store_writes(tmp_
 
 
 def test_archive_and_store_events_together_close_like_the_store_alone(tmp_path):
+    expected = _closed_from_store(tmp_path)
     every = sample_events()
-    from_store = sample_settings(tmp_path / "store.db")
-    engine = open_store(from_store)
-    ingest(engine, from_store, every, NOW)
-    close_due_windows(engine, from_store, now_us=NOW, drain=True)
-    expected = written(engine)
-    engine.dispose()
 
     # half of the events in the archive, the rest (and a few of the archived ones again)
     # ingested through the store, as a small deployment keeps using the REST ingest

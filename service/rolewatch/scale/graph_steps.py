@@ -15,6 +15,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from rolewatch.engine.features.graph import LOCAL_FEATURES
+
 __all__ = [
     "LOCAL",
     "aggregate_edges",
@@ -32,16 +34,8 @@ __all__ = [
     "with_degree",
 ]
 
-LOCAL = (
-    "in_degree",
-    "out_degree",
-    "degree",
-    "in_strength",
-    "out_strength",
-    "in_events",
-    "out_events",
-    "both",
-)
+# The engine's local features but reciprocity, which follows from "both" (reciprocated pairs).
+LOCAL = (*(name for name in LOCAL_FEATURES if name != "reciprocity"), "both")
 
 
 def oriented(part: pd.DataFrame) -> pd.DataFrame:
