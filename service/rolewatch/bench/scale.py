@@ -48,17 +48,27 @@ class _PeakMemory:
         import psutil
 
         self.me = psutil.Process()
-        self.workers = [psutil.Process(pid) for pid in worker_pids]
+        self.workers: list[Any] = [psutil.Process(pid) for pid in worker_pids]
         self.peak_mb = 0.0
         self.worker_peak_mb = [0.0] * len(worker_pids)
+        self.worker_restarts = 0
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._sample, daemon=True)
 
     def _sample(self) -> None:
+        import psutil
+
         while not self._stop.is_set():
             self.peak_mb = max(self.peak_mb, self.me.memory_info().rss / 2**20)
             for i, worker in enumerate(self.workers):
-                rss = worker.memory_info().rss / 2**20
+                if worker is None:
+                    continue
+                try:
+                    rss = worker.memory_info().rss / 2**20
+                except psutil.NoSuchProcess:  # Dask restarted a worker over its memory limit
+                    self.worker_restarts += 1
+                    self.workers[i] = None
+                    continue
                 self.worker_peak_mb[i] = max(self.worker_peak_mb[i], rss)
             self._stop.wait(0.2)
 
@@ -98,6 +108,7 @@ def _close(path: Path, now_us: int, worker_pids: list[int], **extra: Any) -> dic
         "seconds": round(seconds, 2),
         "peak_rss_mb": round(memory.peak_mb, 1),
         "worker_peak_mb": [round(m, 1) for m in memory.worker_peak_mb],
+        "worker_restarts": memory.worker_restarts,
         "accounts": summaries[-1].accounts,
         "alerts": summaries[-1].alert_count,
     }
@@ -133,6 +144,7 @@ def _one_size(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
         "local_peak_rss_mb": local["peak_rss_mb"],
         "dask_closer_peak_rss_mb": on_dask["peak_rss_mb"],
         "dask_worker_peak_mb": on_dask["worker_peak_mb"],
+        "dask_worker_restarts": on_dask["worker_restarts"],
         "same_alert_count": local["alerts"] == on_dask["alerts"],
     }
 
