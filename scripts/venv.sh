@@ -5,4 +5,4 @@ if [ ! -x .venv/bin/python ]; then
   "$PYTHON" -m venv .venv
 fi
 .venv/bin/python -m pip install --quiet --upgrade pip
-.venv/bin/python -m pip install --quiet -e '.[test]'
+.venv/bin/python -m pip install --quiet -e '.[test,scale]'

@@ -315,6 +315,8 @@ def cmd_replay(args: argparse.Namespace) -> int:
     settings = _settings(args)
     fmt = args.format or ("csv" if path.suffix.lower() == ".csv" else "ndjson")
     batch_size = args.batch_size or min(settings.max_batch_events, 5000)
+    if args.to_archive is not None:
+        return _replay_to_archive(settings, path, fmt, args.to_archive or settings.event_archive)
     engine = _store(settings)
     try:
         totals = _replay_file(
@@ -335,6 +337,35 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return 0
 
 
+def _replay_to_archive(settings: Settings, path: Path, fmt: str, archive: str | None) -> int:
+    """Write the file's events to the Parquet event archive (docs/scale.md)."""
+    if not archive:
+        raise UsageError("--to-archive needs a path: write --to-archive PATH or set event_archive")
+    try:
+        from rolewatch.scale.replay import archive_items
+    except ImportError as error:
+        raise UsageError(
+            f"--to-archive needs pyarrow ({error}); install it with pip install 'rolewatch[scale]'"
+        ) from None
+    from rolewatch.pipeline.windows import WindowGeometry
+
+    with path.open("r", encoding="utf-8", newline="" if fmt == "csv" else None) as handle:
+        items = _with_line_ids(
+            _csv_items(handle) if fmt == "csv" else _ndjson_items(handle), _file_digest(path)
+        )
+        try:
+            totals = archive_items(
+                items, archive, WindowGeometry.from_settings(settings).period_us, 100_000
+            )
+        except UnicodeDecodeError as error:
+            raise UsageError(f"{path} is not UTF-8 text ({error}); convert it to UTF-8") from None
+    for line, message in totals.errors:
+        print(f"line {line}: {message}", file=sys.stderr)
+    summary = {"written": totals.written, "rejected": totals.rejected, "archive": archive}
+    print(json.dumps(dict(summary, file=str(path), format=fmt)))
+    return 0
+
+
 # --- bench -----------------------------------------------------------------------------------
 
 BENCH_MODULES = (
@@ -346,6 +377,7 @@ BENCH_MODULES = (
     "engine_naming",
     "load",
     "detection",
+    "scale",
 )
 
 
@@ -460,6 +492,14 @@ def _add_replay(sub: Any, common: argparse.ArgumentParser) -> None:
         "--batch-size", type=int, help="events per ingest transaction (default 5000)"
     )
     replay.add_argument("--no-close", action="store_true", help="only store the events")
+    replay.add_argument(
+        "--to-archive",
+        nargs="?",
+        const="",
+        metavar="PATH",
+        help="write the events to the Parquet event archive at PATH (default: event_archive) "
+        "instead of the store; needs the [scale] extra",
+    )
     replay.add_argument("--no-progress", action="store_true", help="no progress bar")
     replay.set_defaults(handler=cmd_replay)
 

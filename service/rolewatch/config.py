@@ -338,6 +338,36 @@ class Settings(BaseSettings):
         description="How long a suppression lasts when it is made without an expiry date.",
     )
 
+    # --- scale (optional extra [scale]: Dask and pyarrow; docs/scale.md) ---------------
+    event_source: Literal["store", "archive"] = Field(
+        "store",
+        description="Where a window close reads its events: the SQL store, or the Parquet "
+        "event archive (event_archive) together with any events ingested into the store.",
+    )
+    event_archive: str | None = Field(
+        None,
+        description="Path or URL (anything pyarrow/fsspec opens) of the Parquet event archive, "
+        "partitioned by window; needed when event_source is archive.",
+    )
+    compute: Literal["local", "dask"] = Field(
+        "local",
+        description="Where a window's features and memberships are computed: in this process, "
+        "or on a Dask cluster (dask_scheduler).",
+    )
+    dask_scheduler: str | None = Field(
+        None,
+        description="Address of the Dask scheduler, like tcp://10.0.0.5:8786 (empty with "
+        "compute = dask: a local cluster is started inside this process).",
+    )
+    output_archive: str | None = Field(
+        None,
+        description="Path or URL of a Parquet dataset, partitioned by window, that every "
+        "closed window's memberships and scores are also written to (empty: none).",
+    )
+    dask_partitions: int = Field(
+        8, ge=1, description="Partitions the Dask close splits a window's accounts into."
+    )
+
     # --- retention and logging ---------------------------------------------------------
     retention_windows: int = Field(
         0,
@@ -372,6 +402,11 @@ class Settings(BaseSettings):
             raise ValueError("window_period must be at least 1s")
         if self.roles_min > self.roles_max:
             raise ValueError("roles_min must not exceed roles_max")
+        if self.event_source == "archive" and not self.event_archive:
+            raise ValueError(
+                "event_source = archive needs event_archive: set ROLEWATCH_EVENT_ARCHIVE to the "
+                "archive's path or URL"
+            )
         return self
 
     @classmethod

@@ -35,11 +35,13 @@ from rolewatch.pipeline.compute import (
     lookback_windows,
     past_from_result,
 )
-from rolewatch.pipeline.loading import WindowEvents, load_past_windows, load_window_events
+from rolewatch.pipeline.loading import WindowEvents, load_past_windows
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
 from rolewatch.pipeline.stages import StageClock
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
 from rolewatch.review.intake import file_window_alerts, screen_alerts
+from rolewatch.scale import source as event_source
+from rolewatch.scale.dispatch import measure_for, record_outputs
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.alerts import Alert, insert_alerts
 from rolewatch.store.db import (
@@ -121,11 +123,11 @@ def close_due_windows(
         while not SHUTDOWN.is_set():
             now = now_us if now_us is not None else now_micros()
             with engine.connect() as connection:
-                state = stored_windows.read_stream_state(connection)
+                state = event_source.stream_state(connection, settings)
             end_us = next_window_end(geometry, state)
             if end_us is None or not is_due(geometry, state, end_us, now, drain=drain):
                 break
-            end_us = _first_window_with_events(engine, geometry, end_us)
+            end_us = _first_window_with_events(engine, settings, geometry, end_us)
             if end_us is None or not is_due(geometry, state, end_us, now, drain=drain):
                 break
             for summary in close_window(engine, settings, end_us, now_us=now):
@@ -135,13 +137,15 @@ def close_due_windows(
     return list(closed.values())
 
 
-def _first_window_with_events(engine: Engine, geometry: WindowGeometry, end_us: int) -> int | None:
+def _first_window_with_events(
+    engine: Engine, settings: Settings, geometry: WindowGeometry, end_us: int
+) -> int | None:
     """``end_us``, or the end of the first later window holding an event when the window
     ending at ``end_us`` holds none: a run of empty windows (one stray old event, a pause in
     the stream) is skipped, never recorded, so training never fits on empty windows. None
     when no event lies at or after the window's start."""
     with engine.connect() as connection:
-        first = stored_windows.first_event_time_from(connection, geometry.start_of(end_us))
+        first = event_source.first_event_time_from(connection, settings, geometry.start_of(end_us))
     if first is None:
         return None
     found = max(end_us, geometry.end_after(first))
@@ -208,7 +212,7 @@ def _close_once(
     clock = StageClock()
     with clock.stage("load"), engine.connect() as connection:
         model = load_active_model(connection)
-        current = load_window_events(connection, start_us, end_us)
+        current = event_source.window_events(connection, settings, start_us, end_us)
         training = stored_windows.unmeasured_training_windows(connection) if model is None else []
     if model is None:
         return _close_training(engine, settings, geometry, end_us, now_us, current, training, clock)
@@ -227,12 +231,13 @@ def _close_once(
         known,
         window=window,
         raise_alerts=True,
-        events_of=_stored_events(engine),
+        events_of=_stored_events(engine, settings),
         clock=clock,
+        measure=measure_for(settings),
     )
     seconds = time.perf_counter() - started
     with clock.stage("store"), write_transaction(engine) as connection:
-        _claim_window(connection, start_us, end_us, len(current))
+        _claim_window(connection, start_us, end_us, event_source.stored_part(current))
         # Review: suppressed accounts raise no alert (their memberships are still stored).
         screened = screen_alerts(connection, result.alerts, now_us=now_us)
         result = replace(result, alerts=screened.kept)
@@ -269,17 +274,22 @@ def _close_once(
         # The write's time so far: everything but this update and the commit.
         stages = clock.seconds()
         stored_windows.set_stage_seconds(connection, window_id, stages)
+    record_outputs(settings, end_us, model, result)
     summary = _summary(window_id, start_us, end_us, len(current), result, training=False)
     return [replace(summary, stage_seconds=stages)]
 
 
-def _stored_events(engine: Engine) -> Callable[[WindowRef], WindowEvents | None]:
+def _stored_events(
+    engine: Engine, settings: Settings
+) -> Callable[[WindowRef], WindowEvents | None]:
     """Reads an earlier window's events back (for the features an alert shows as "before");
     None once retention purged them."""
 
     def read(ref: WindowRef) -> WindowEvents | None:
         with engine.connect() as connection:
-            events = load_window_events(connection, _micros(ref.start), _micros(ref.end))
+            events = event_source.window_events(
+                connection, settings, _micros(ref.start), _micros(ref.end)
+            )
         return events if len(events) else None
 
     return read
@@ -339,12 +349,12 @@ def _close_training(
     if len(training) + 1 < settings.training_windows:
         return [_record_training_window(engine, start_us, end_us, now_us, current, clock)]
     with clock.stage("load"):
-        loaded = _load_training(engine, training)
+        loaded = _load_training(engine, settings, training)
     loaded.append(_TrainingWindow(None, start_us, end_us, current))
     model = fit_model(settings, [window.events.snapshot() for window in loaded])
     measured = _measure_training(model, settings, loaded, clock)
     with write_transaction(engine) as connection:
-        _claim_window(connection, start_us, end_us, len(current))
+        _claim_window(connection, start_us, end_us, event_source.stored_part(current))
         store_model(
             connection,
             model,
@@ -365,7 +375,7 @@ def _record_training_window(
 ) -> WindowSummary:
     """Record a training window closed; it is measured once training ends."""
     with clock.stage("store"), write_transaction(engine) as connection:
-        _claim_window(connection, start_us, end_us, len(current))
+        _claim_window(connection, start_us, end_us, event_source.stored_part(current))
         window_id = stored_windows.insert_window(
             connection,
             start_us=start_us,
@@ -389,7 +399,9 @@ def _record_training_window(
     )
 
 
-def _load_training(engine: Engine, training: list[WindowSpan]) -> list[_TrainingWindow]:
+def _load_training(
+    engine: Engine, settings: Settings, training: list[WindowSpan]
+) -> list[_TrainingWindow]:
     """The events of the recorded training windows."""
     with engine.connect() as connection:
         return [
@@ -397,7 +409,7 @@ def _load_training(engine: Engine, training: list[WindowSpan]) -> list[_Training
                 span.id,
                 span.start_us,
                 span.end_us,
-                load_window_events(connection, span.start_us, span.end_us),
+                event_source.window_events(connection, settings, span.start_us, span.end_us),
             )
             for span in training
         ]

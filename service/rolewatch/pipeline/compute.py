@@ -22,6 +22,7 @@ from rolewatch.config import Settings
 from rolewatch.engine.activity import Activity
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.bridging import bridging_zscore, leiden_communities, undirected_ties
+from rolewatch.engine.features.recipe import FeatureTable
 from rolewatch.engine.pairs import KnownPairs
 from rolewatch.engine.scoring import ShiftPolicy, TieEvidence, WindowScores, score_window
 from rolewatch.engine.snapshot import Snapshot
@@ -49,6 +50,17 @@ __all__ = [
 
 # Reads the events of an earlier window (its start and end), or None when they are gone.
 EventsOf = Callable[[WindowRef], WindowEvents | None]
+# A window's feature table and memberships against the frozen model, from its snapshot and
+# events: in this process by default; rolewatch.scale.dispatch picks a Dask cluster instead.
+Measure = Callable[[FrozenModel, Snapshot, WindowEvents], tuple[FeatureTable, Memberships]]
+
+
+def measure_locally(
+    model: FrozenModel, snapshot: Snapshot, events: WindowEvents
+) -> tuple[FeatureTable, Memberships]:
+    """The frozen recipe's features of ``snapshot`` and their memberships, in this process."""
+    table = model.recipe.transform(snapshot)
+    return table, model.basis.memberships(table)
 
 
 @dataclass(frozen=True, eq=False)
@@ -186,6 +198,7 @@ def compute_window(
     raise_alerts: bool,
     events_of: EventsOf | None = None,
     clock: StageClock | None = None,
+    measure: Measure = measure_locally,
 ) -> WindowResult:
     """Measure every active account of one window against its own history.
 
@@ -205,6 +218,8 @@ def compute_window(
     clock
         Collects the seconds of each stage (features, ties, memberships, history, bridging,
         scoring, evidence).
+    measure
+        Computes the feature table and memberships (:func:`measure_locally` by default).
     """
     clock = clock if clock is not None else StageClock()
     with clock.stage("features"):
@@ -222,7 +237,7 @@ def compute_window(
     # seed and input, so the same communities). The bridging stage counts only the wait.
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="rolewatch-communities") as pool:
         communities = pool.submit(window_communities, graph, policy.bridge_resolution)
-        step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock)
+        step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock, measure)
         return _measure(step, current, past, known, communities, window, raise_alerts, events_of)
 
 
@@ -238,6 +253,7 @@ class _Step:
     activity: Activity
     graph: sp.csr_matrix
     clock: StageClock
+    measure: Measure
 
 
 def _measure(
@@ -252,10 +268,14 @@ def _measure(
 ) -> WindowResult:
     """Features to alerts, once the snapshot and tie cells are there."""
     model, policy, snapshot, clock = step.model, step.policy, step.snapshot, step.clock
-    with clock.stage("features"):
-        table = model.recipe.transform(snapshot)
-    with clock.stage("memberships"):
-        members = model.basis.memberships(table)
+    if step.measure is measure_locally:
+        with clock.stage("features"):
+            table = model.recipe.transform(snapshot)
+        with clock.stage("memberships"):
+            members = model.basis.memberships(table)
+    else:  # on a cluster both come back together; their seconds count as features
+        with clock.stage("features"):
+            table, members = step.measure(model, snapshot, current)
     with clock.stage("history"):
         history = account_history(
             snapshot.nodes,

@@ -1,0 +1,229 @@
+"""Closing one power-law window locally and on a local Dask cluster, side by side in one run.
+
+``close-dask-10m``: a window of 10,000,000 events; ``close-dask-scaling``: 1M, 3M, 10M and
+30M events. For each size a SQLite store gets a training window (a fifth of the size) that
+is closed locally first (the fit, not timed here); the store file is then copied, and the big
+window is closed once with ``compute = "local"`` and once with ``compute = "dask"`` on a
+local cluster of two worker processes, one thread and ``memory_limit`` 3 GB each. Reported:
+both close times and their ratio, the peak resident memory of the closing process during
+each close, and the peak of each Dask worker (sampled every 0.2 s with psutil).
+``--quick`` uses 100,000 and 300,000 events.
+
+``archive-history-52``: 52 windows of 200,000 accounts each (10,400,000 rows, 8 roles)
+written as per-window Parquet outputs (:mod:`rolewatch.scale.outputs`), opened once (every
+footer read: ``open_ms``); then 200 reads of one random account's 52-window history; p50
+and p95 in ms (target p95 ≤ 100 ms).
+``--quick`` uses 20,000 accounts per window.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+import threading
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from rolewatch.bench.close import FIRST_END, WEEK_US, _load, _power_law_events
+
+CASES = ("close-dask-10m", "close-dask-scaling", "archive-history-52")
+SIZES = {
+    "close-dask-10m": [10_000_000],
+    "close-dask-scaling": [1_000_000, 3_000_000, 10_000_000, 30_000_000],
+}
+QUICK = {"close-dask-10m": [300_000], "close-dask-scaling": [100_000, 300_000]}
+WORKER_MEMORY = "3GB"
+
+
+class _PeakMemory:
+    """Highest resident memory of this process and of the given worker processes while
+    the block runs."""
+
+    def __init__(self, worker_pids: list[int]) -> None:
+        import psutil
+
+        self.me = psutil.Process()
+        self.workers: list[Any] = [psutil.Process(pid) for pid in worker_pids]
+        self.peak_mb = 0.0
+        self.worker_peak_mb = [0.0] * len(worker_pids)
+        self.worker_restarts = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._sample, daemon=True)
+
+    def _sample(self) -> None:
+        import psutil
+
+        while not self._stop.is_set():
+            self.peak_mb = max(self.peak_mb, self.me.memory_info().rss / 2**20)
+            for i, worker in enumerate(self.workers):
+                if worker is None:
+                    continue
+                try:
+                    rss = worker.memory_info().rss / 2**20
+                except psutil.NoSuchProcess:  # Dask restarted a worker over its memory limit
+                    self.worker_restarts += 1
+                    self.workers[i] = None
+                    continue
+                self.worker_peak_mb[i] = max(self.worker_peak_mb[i], rss)
+            self._stop.wait(0.2)
+
+    def __enter__(self) -> _PeakMemory:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join()
+
+
+def _settings(path: Path, **extra: Any):
+    from rolewatch.config import load_settings
+
+    return load_settings(
+        database_url=f"sqlite:///{path}",
+        training_windows=1,
+        window_period="7d",
+        window_span="7d",
+        **extra,
+    )
+
+
+def _close(path: Path, now_us: int, worker_pids: list[int], **extra: Any) -> dict:
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    settings = _settings(path, **extra)
+    engine = open_store(settings)
+    with _PeakMemory(worker_pids) as memory:
+        started = time.perf_counter()
+        summaries = close_window(engine, settings, FIRST_END + WEEK_US, now_us=now_us)
+        seconds = time.perf_counter() - started
+    engine.dispose()
+    return {
+        "seconds": round(seconds, 2),
+        "peak_rss_mb": round(memory.peak_mb, 1),
+        "worker_peak_mb": [round(m, 1) for m in memory.worker_peak_mb],
+        "worker_restarts": memory.worker_restarts,
+        "accounts": summaries[-1].accounts,
+        "alerts": summaries[-1].alert_count,
+    }
+
+
+def _one_size(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    rng = np.random.default_rng(0)
+    accounts = max(20_000, events // 6)
+    local_db, dask_db = tmp / f"local-{events}.db", tmp / f"dask-{events}.db"
+    settings = _settings(local_db)
+    open_store(settings).dispose()
+    _load(local_db, _power_law_events(rng, events // 5, accounts, FIRST_END - WEEK_US, "t-"))
+    _load(local_db, _power_law_events(rng, events, accounts, FIRST_END, "w-"))
+    now_us = FIRST_END + 4 * WEEK_US
+    engine = open_store(settings)
+    close_window(engine, settings, FIRST_END, now_us=now_us)  # training: the fit
+    engine.dispose()
+    shutil.copyfile(local_db, dask_db)
+    pids = list(client.run(os.getpid).values())
+    on_dask = _close(dask_db, now_us, pids, compute="dask", dask_scheduler=scheduler)
+    local = _close(local_db, now_us, pids)
+    for path in (local_db, dask_db):
+        path.unlink()
+    return {
+        "events": events,
+        "accounts": local["accounts"],
+        "local_seconds": local["seconds"],
+        "dask_seconds": on_dask["seconds"],
+        "ratio": round(on_dask["seconds"] / max(local["seconds"], 1e-9), 2),
+        "local_peak_rss_mb": local["peak_rss_mb"],
+        "dask_closer_peak_rss_mb": on_dask["peak_rss_mb"],
+        "dask_worker_peak_mb": on_dask["worker_peak_mb"],
+        "dask_worker_restarts": on_dask["worker_restarts"],
+        "same_alert_count": local["alerts"] == on_dask["alerts"],
+    }
+
+
+def _history(quick: bool) -> dict:
+    from rolewatch.scale.outputs import (
+        WindowOutputs,
+        account_history,
+        open_outputs,
+        write_window_outputs,
+    )
+
+    rng = np.random.default_rng(0)
+    n, k = (20_000 if quick else 200_000), 8
+    accounts = np.array([f"a-{i:07d}" for i in range(n)])
+    with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
+        for window in range(52):
+            mixture = rng.dirichlet(np.ones(k), size=n)
+            write_window_outputs(
+                tmp,
+                FIRST_END + window * WEEK_US,
+                WindowOutputs(
+                    accounts=accounts,
+                    role_ids=tuple(range(1, k + 1)),
+                    mixture=mixture,
+                    dominant=mixture.argmax(axis=1) + 1,
+                    score=rng.normal(size=n),
+                    status=np.full(n, "scored"),
+                    events_out=rng.integers(0, 50, size=n),
+                    events_in=rng.integers(0, 50, size=n),
+                    basis_version="bench",
+                ),
+            )
+        started = time.perf_counter()
+        dataset = open_outputs(tmp)
+        open_seconds = time.perf_counter() - started
+        seconds = []
+        for account in rng.choice(accounts, size=200):
+            started = time.perf_counter()
+            rows = account_history(dataset, str(account))
+            seconds.append(time.perf_counter() - started)
+            assert len(rows) == 52
+    ms = np.array(seconds) * 1000
+    return {
+        "windows": 52,
+        "rows": 52 * n,
+        "p50_ms": round(float(np.percentile(ms, 50)), 1),
+        "p95_ms": round(float(np.percentile(ms, 95)), 1),
+        "open_ms": round(open_seconds * 1000, 1),
+        "target_p95_ms": 100,
+    }
+
+
+def run(case: str, *, quick: bool = False) -> Iterator[dict]:
+    from distributed import Client, LocalCluster
+
+    if case not in CASES:
+        raise ValueError(f"unknown case {case!r}")
+    if case == "archive-history-52":
+        yield {"case": case, "cores": os.cpu_count(), **_history(quick)}
+        return
+    cluster = LocalCluster(
+        n_workers=2, threads_per_worker=1, memory_limit=WORKER_MEMORY, dashboard_address=None
+    )
+    client = Client(cluster)
+    try:
+        with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
+            for events in (QUICK if quick else SIZES)[case]:
+                measured = _one_size(events, client, cluster.scheduler_address, Path(tmp))
+                yield {
+                    "case": case,
+                    "cores": os.cpu_count(),
+                    "workers": 2,
+                    "worker_memory_limit": WORKER_MEMORY,
+                    **measured,
+                }
+    finally:
+        from rolewatch.scale.dispatch import close_clients
+
+        close_clients()
+        client.close()
+        cluster.close()

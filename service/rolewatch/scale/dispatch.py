@@ -1,0 +1,134 @@
+"""The one place a window close chooses where its features and memberships are computed:
+in this process (``compute = "local"``) or on a Dask cluster (``compute = "dask"``).
+
+With ``dask_scheduler`` set the close connects to that scheduler; without it, the first Dask
+close starts a local cluster inside this process (worker processes on this machine) and
+keeps it for the closes after it.
+"""
+
+from __future__ import annotations
+
+import threading
+from typing import Any
+
+from rolewatch.config import Settings
+from rolewatch.engine.basis import Memberships
+from rolewatch.engine.features.recipe import FeatureTable
+from rolewatch.engine.snapshot import Snapshot
+from rolewatch.pipeline.compute import Measure, WindowResult, measure_locally
+from rolewatch.pipeline.loading import WindowEvents
+from rolewatch.pipeline.model import FrozenModel
+
+__all__ = [
+    "DaskMeasure",
+    "ScaleExtraMissing",
+    "close_clients",
+    "dask_client",
+    "measure_for",
+    "record_outputs",
+]
+
+_CLIENTS: dict[str | None, Any] = {}
+_LOCK = threading.Lock()
+
+
+class ScaleExtraMissing(RuntimeError):
+    """Dask or pyarrow is not installed."""
+
+
+def _require_dask() -> None:
+    try:
+        import dask.dataframe  # noqa: F401
+        import distributed  # noqa: F401
+        import pyarrow  # noqa: F401
+    except ImportError as error:
+        raise ScaleExtraMissing(
+            f"compute = dask needs Dask and pyarrow ({error}); install them with "
+            "pip install 'rolewatch[scale]', or set compute = local"
+        ) from None
+
+
+def dask_client(scheduler: str | None) -> Any:
+    """A connected Dask client for ``scheduler`` (None: an in-process local cluster),
+    made once per process and reused while it stays connected."""
+    _require_dask()
+    from distributed import Client, LocalCluster
+
+    with _LOCK:
+        client = _CLIENTS.get(scheduler)
+        if client is not None and client.status == "running":
+            return client
+        if scheduler:
+            client = Client(scheduler, timeout="30s", set_as_default=False)
+        else:
+            cluster = LocalCluster(threads_per_worker=1, dashboard_address=None)
+            client = Client(cluster, set_as_default=False)
+        _CLIENTS[scheduler] = client
+        return client
+
+
+def close_clients() -> None:
+    """Close every client this process made (and the local cluster it started, if any)."""
+    with _LOCK:
+        for client in _CLIENTS.values():
+            cluster = client.cluster
+            client.close()
+            if cluster is not None:
+                cluster.close()
+        _CLIENTS.clear()
+
+
+class DaskMeasure:
+    """Computes a window's feature table and memberships on a Dask cluster
+    (:func:`rolewatch.pipeline.compute.measure_locally` is the in-process equivalent)."""
+
+    def __init__(self, client: Any, partitions: int) -> None:
+        self.client = client
+        self.partitions = partitions
+
+    def __call__(
+        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
+    ) -> tuple[FeatureTable, Memberships]:
+        from rolewatch.scale.features import feature_table, measured_table, split_measured
+        from rolewatch.scale.graph import build_graph, scatter_events
+
+        if snapshot.n_nodes == 0:
+            return measure_locally(model, snapshot, events)
+        chunks = scatter_events(
+            self.client, events.actor, events.target, events.weight, self.partitions
+        )
+        table = feature_table(build_graph(chunks), model.recipe)
+        measured = measured_table(table, model.recipe, model.basis).gather()
+        return split_measured(measured, snapshot.nodes, model.recipe, model.basis)
+
+
+def measure_for(settings: Settings) -> Measure:
+    """How the close computes features and memberships, from the ``compute`` setting."""
+    if settings.compute == "local":
+        return measure_locally
+    return DaskMeasure(dask_client(settings.dask_scheduler), settings.dask_partitions)
+
+
+def record_outputs(
+    settings: Settings, end_us: int, model: FrozenModel, result: WindowResult
+) -> None:
+    """Write the closed window's memberships and scores to ``output_archive`` (if set)."""
+    if not settings.output_archive:
+        return
+    from rolewatch.scale.outputs import WindowOutputs, write_window_outputs
+
+    write_window_outputs(
+        settings.output_archive,
+        end_us,
+        WindowOutputs(
+            accounts=result.nodes,
+            role_ids=tuple(int(role_id) for role_id in model.basis.role_ids),
+            mixture=result.mixture,
+            dominant=result.dominant,
+            score=result.score,
+            status=result.status,
+            events_out=result.activity.events_out,
+            events_in=result.activity.events_in,
+            basis_version=model.basis.version,
+        ),
+    )

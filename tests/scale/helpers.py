@@ -1,0 +1,38 @@
+"""Comparisons of two stores' closes, with the tolerances of docs/scale.md."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+
+def assert_same_closes(left: dict, right: dict) -> None:
+    """Same windows, accounts, statuses, roles and alerts; mixtures and scores within
+    1e-9 (both stored from float64 computations whose sums may run in another order)."""
+    assert left["windows"] == right["windows"]
+    assert len(left["memberships"]) == len(right["memberships"])
+    for ours, theirs in zip(left["memberships"], right["memberships"], strict=True):
+        end, account, mixture, score, status, dominant = ours
+        assert (end, account, status, dominant) == (theirs[0], theirs[1], theirs[4], theirs[5])
+        a, b = json.loads(mixture or "{}"), json.loads(theirs[2] or "{}")
+        assert a.keys() == b.keys()
+        for role in a:
+            assert a[role] == pytest.approx(b[role], abs=1e-9)
+        if score is None or theirs[3] is None:
+            assert score is None and theirs[3] is None
+        else:
+            assert score == pytest.approx(theirs[3], rel=1e-9, abs=1e-9)
+    assert [row[:2] for row in left["alerts"]] == [row[:2] for row in right["alerts"]]
+    for ours, theirs in zip(left["alerts"], right["alerts"], strict=True):
+        assert ours[2] == pytest.approx(theirs[2], rel=1e-9)
+
+
+def scheduler_transitions(address: str) -> int:
+    """Task state transitions the Dask scheduler at ``address`` has made so far."""
+    from distributed import Client
+
+    with Client(address, timeout="30s") as client:
+        return int(
+            client.run_on_scheduler(lambda dask_scheduler: dask_scheduler.transition_counter)
+        )
