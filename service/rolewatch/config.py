@@ -210,22 +210,22 @@ class Settings(BaseSettings):
         "compared on; the chosen number is then fitted on all. Empty uses all accounts.",
     )
     roles_stability_min: float = Field(
-        0.85,
+        0.90,
         gt=0,
         le=1,
-        description="Smallest agreement of role profiles (1 - Hellinger distance of the "
-        "worst-matched role) across fits on 90% resamples of the accounts for a number of "
+        description="Smallest agreement of role profiles (1 - median Hellinger distance of the "
+        "matched roles) across fits on 90% resamples of the accounts for a number of "
         "roles to count as reproducible.",
     )
     roles_mdl_tolerance: float = Field(
-        0.05,
+        0.10,
         ge=0,
         lt=1,
         description="Among reproducible numbers of roles, the smallest whose description "
-        "length is within this share of the least is chosen.",
+        "length is within this share of the least is chosen (closer lengths are a tie).",
     )
     roles_resamples: int = Field(
-        3, ge=2, description="Resampled fits per candidate number of roles (stability)."
+        5, ge=2, description="Resampled fits per candidate number of roles (stability)."
     )
     seed: int = Field(0, description="Seed for the factorisation, so fits are repeatable.")
 

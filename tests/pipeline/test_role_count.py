@@ -78,22 +78,10 @@ def with_copies(events, share, seed):
     )
 
 
-# measured (docs/roles.md): k still moves under these changes on three scenarios
-UNSTABLE = {
-    name: f"k is not yet stable on {name} (docs/roles.md, 'Is the chosen k stable?')"
-    for name in ("forum", "guilds", "payments")
-}
-
-
 @pytest.mark.slow
 @pytest.mark.parametrize(
     "name",
-    [
-        pytest.param(name, marks=pytest.mark.xfail(reason=UNSTABLE[name], strict=False))
-        if name in UNSTABLE
-        else name
-        for name in sorted(SCENARIOS)
-    ],
+    sorted(SCENARIOS),
 )
 def test_number_of_roles_survives_resampling_and_duplicates(name):
     events = generate_scenario(name, seed=7, members=400, weeks=7, training_weeks=4).events

@@ -273,9 +273,9 @@ class RoleBasis:
         k_range: tuple[int, int] = (2, 12),
         seed: int = 0,
         sample_rows: int | None = 4_000,
-        stability_min: float = 0.85,
-        tolerance: float = 0.05,
-        resamples: int = 3,
+        stability_min: float = 0.90,
+        tolerance: float = 0.10,
+        resamples: int = 5,
         measure_all: bool = False,
     ) -> RoleBasis:
         """Fit a role basis on one or more reference feature tables (RolX).
