@@ -262,16 +262,35 @@ def _sample_event_ids(
         return {}
     wanted = np.zeros(snapshot.n_nodes, dtype=bool)
     wanted[rows] = True
-    actor_rows = snapshot.index_of(current.actor)
-    target_rows = snapshot.index_of(current.target)
+    actor_rows, target_rows = _event_rows(snapshot, current)
+    involved = np.flatnonzero(wanted[actor_rows] | wanted[target_rows])
+    nodes = np.concatenate([actor_rows[involved], target_rows[involved]])
+    positions = np.concatenate([involved, involved])
+    keep = wanted[nodes]
+    nodes, positions = nodes[keep], positions[keep]
+    order = np.lexsort((positions, nodes))
+    nodes, positions = nodes[order], positions[order]
+    # each node's events in time order; keep its first per_account
+    starts = np.flatnonzero(np.r_[True, nodes[1:] != nodes[:-1]])
+    rank = np.arange(nodes.size) - np.repeat(starts, np.diff(np.r_[starts, nodes.size]))
+    first = rank < per_account
     samples: dict[int, list[str]] = {}
-    for position in np.flatnonzero(wanted[actor_rows] | wanted[target_rows]):
-        for node in (int(actor_rows[position]), int(target_rows[position])):
-            if wanted[node]:
-                found = samples.setdefault(node, [])
-                if len(found) < per_account:
-                    found.append(str(current.event_id[position]))
+    for node, position in zip(nodes[first].tolist(), positions[first].tolist(), strict=True):
+        samples.setdefault(node, []).append(str(current.event_id[position]))
     return samples
+
+
+def _event_rows(snapshot: Snapshot, current: WindowEvents) -> tuple[np.ndarray, np.ndarray]:
+    """Each event's actor and target as snapshot rows: the interned positions when the
+    snapshot was built from them (no string lookups), else looked up by id."""
+    if (
+        current.accounts is not None
+        and current.actor_index is not None
+        and current.target_index is not None
+        and np.array_equal(current.accounts, snapshot.nodes)
+    ):
+        return current.actor_index, current.target_index
+    return snapshot.index_of(current.actor), snapshot.index_of(current.target)
 
 
 def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> tuple[RoleShare, ...]:
