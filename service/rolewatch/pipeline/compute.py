@@ -12,7 +12,6 @@ counts and community labels, and the keys of its first-seen pairs.
 from __future__ import annotations
 
 from collections.abc import Callable
-from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -21,12 +20,13 @@ import scipy.sparse as sp
 from rolewatch.config import Settings
 from rolewatch.engine.activity import Activity
 from rolewatch.engine.basis import Memberships
-from rolewatch.engine.bridging import bridging_zscore, leiden_communities, undirected_ties
+from rolewatch.engine.bridging import bridging_zscore, undirected_ties
 from rolewatch.engine.features.recipe import FeatureTable
 from rolewatch.engine.pairs import KnownPairs
 from rolewatch.engine.scoring import ShiftPolicy, TieEvidence, WindowScores, score_window
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.engine.ties import TieCounts, tie_counts
+from rolewatch.pipeline.communities import CommunityJob, start_communities
 from rolewatch.pipeline.evidence import REVIEW_NOTICE, AlertContext, alerts_with_evidence
 from rolewatch.pipeline.history import AccountHistory, account_history, novelty_history
 from rolewatch.pipeline.loading import PastWindow, WindowEvents
@@ -178,15 +178,6 @@ def policy_from_settings(settings: Settings) -> ShiftPolicy:
     )
 
 
-def window_communities(graph: sp.csr_matrix, resolution: float) -> np.ndarray:
-    """Community label of every node of the window's undirected tie graph
-    (:func:`undirected_ties`); -1 for all when bridging is off."""
-    n = graph.shape[0]
-    if resolution <= 0 or n == 0:
-        return np.full(n, -1, dtype=np.int64)
-    return leiden_communities(graph, resolution=resolution)
-
-
 def compute_window(
     model: FrozenModel,
     settings: Settings,
@@ -232,13 +223,12 @@ def compute_window(
     policy = policy_from_settings(settings)
     with clock.stage("bridging"):
         graph = undirected_ties(snapshot.counts)
-    # igraph's Leiden runs in C without holding the GIL: on a second thread it overlaps the
-    # features, memberships and scores instead of adding its seconds to the close (the same
-    # seed and input, so the same communities). The bridging stage counts only the wait.
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="rolewatch-communities") as pool:
-        communities = pool.submit(window_communities, graph, policy.bridge_resolution)
-        step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock, measure)
-        return _measure(step, current, past, known, communities, window, raise_alerts, events_of)
+    # Leiden holds the GIL: a large window's communities are computed in a child process
+    # while this one computes the features, memberships and scores (same seed and input,
+    # so the same communities). The bridging stage counts only the wait.
+    communities = start_communities(graph, policy.bridge_resolution)
+    step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock, measure)
+    return _measure(step, current, past, known, communities, window, raise_alerts, events_of)
 
 
 @dataclass(frozen=True)
@@ -261,7 +251,7 @@ def _measure(
     current: WindowEvents,
     past: list[PastWindow],
     known: KnownPairs,
-    communities: Future,
+    communities: CommunityJob,
     window: WindowRef,
     raise_alerts: bool,
     events_of: EventsOf | None,
