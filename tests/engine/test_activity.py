@@ -5,6 +5,7 @@ import networkx as nx
 import numpy as np
 
 from rolewatch.engine.activity import Counterparts, activity_counts
+from rolewatch.engine.pairs import KnownPairs, account_keys, pair_keys
 from rolewatch.engine.snapshot import Snapshot
 
 
@@ -74,3 +75,33 @@ def test_top_counterparts_rank_by_events_then_weight_and_flag_new_ones():
             )
         ranks = [(-entry["events"], -entry["weight"]) for entry in listed]
         assert ranks == sorted(ranks)
+
+
+def test_top_of_many_rows_keeps_each_rows_leaders_and_flags_pairs_unseen_in_the_history():
+    # networkx as the reference: counterparts, events and weights from the multigraph; the
+    # known history is every pair of two earlier random windows.
+    actor, target, weight = _random_events(5)
+    snapshot = Snapshot.from_events(actor, target, weight)
+    graph = _multigraph(actor, target, weight)
+    history = nx.Graph()
+    for seed in (6, 7):
+        history.add_edges_from(nx.Graph(_multigraph(*_random_events(seed))).edges)
+    keys = [pair_keys(account_keys([a]), account_keys([b])) for a, b in history.edges]
+    index = Counterparts(snapshot, known=KnownPairs.from_parts(keys))
+    rows = np.array([7, 0, 31, 12, 3])
+    listed_per_row = index.top_of(rows, top=3)
+    assert len(listed_per_row) == rows.size
+    for row, listed in zip(rows, listed_per_row, strict=True):
+        node = snapshot.nodes[row]
+        expected = {}
+        for a, t, data in graph.edges(data=True):
+            if node in (a, t):
+                other = t if a == node else a
+                events, total = expected.get(other, (0, 0.0))
+                expected[other] = (events + 1, total + data["weight"])
+        ranked = sorted(expected.items(), key=lambda item: (-item[1][0], -item[1][1]))
+        assert [entry["account"] for entry in listed] == [other for other, _ in ranked[:3]]
+        for entry in listed:
+            assert entry["events"] == expected[entry["account"]][0]
+            assert np.isclose(entry["weight"], expected[entry["account"]][1])
+            assert entry["new"] == (not history.has_edge(node, entry["account"]))

@@ -115,3 +115,23 @@ def test_no_label_of_a_deep_feature_holds_a_formula():
         for inner in ops:
             text = feature_label(f"{outer}({inner}(in_degree))")
             assert "(" not in text and "_" not in text, text
+
+
+def test_triangles_counted_by_the_features_give_networkx_clustering():
+    # Source: networkx.triangles / networkx.clustering on the undirected view of Zachary's
+    # karate club (as networkx ships it); the triangles come from a recipe whose egonet
+    # features counted them, as a window close passes them on.
+    from rolewatch.engine.features import FeatureRecipe
+
+    G = _karate_both_ways()
+    snap, order = _digraph_snapshot(G)
+    table = FeatureRecipe.discover(snap).transform(snap)
+    assert table.triangles is not None
+    U = nx.Graph(G.to_undirected())
+    np.testing.assert_array_equal(table.triangles, [nx.triangles(U, u) for u in order])
+    rows = np.array([0, 33, 16])
+    reused = readable_measures(snap.counts, rows=rows, triangles=table.triangles)
+    np.testing.assert_allclose(
+        reused.column("clustering"), [nx.clustering(U, order[r]) for r in rows]
+    )
+    np.testing.assert_array_equal(reused.values, readable_measures(snap.counts, rows=rows).values)

@@ -122,6 +122,7 @@ def readable_measures(
     *,
     rows: np.ndarray | None = None,
     new_counterparts: np.ndarray | None = None,
+    triangles: np.ndarray | None = None,
 ) -> ReadableMeasures:
     """The :data:`MEASURES` of every node (or of ``rows``) of one window.
 
@@ -137,6 +138,9 @@ def readable_measures(
         Counterparts of each node it had no tie with before (e.g.
         :attr:`rolewatch.engine.activity.Activity.new_counterparts`); ``new_share`` is NaN
         without it.
+    triangles : array, shape (n,), optional
+        Triangles through every node of the undirected view, already counted (e.g.
+        :attr:`rolewatch.engine.features.FeatureTable.triangles`); counted here when None.
 
     Returns
     -------
@@ -166,7 +170,10 @@ def readable_measures(
     mutual = np.asarray(D.multiply(D.T).sum(axis=1)).ravel()[picked]
     ev_out = np.asarray(C.sum(axis=1)).ravel()[picked]
     ev_in = np.asarray(C.sum(axis=0)).ravel()[picked]
-    tri = _triangles_of(U, None if rows is None else picked)
+    if triangles is not None:
+        tri = np.asarray(triangles, dtype=np.float64)[picked]
+    else:
+        tri = _triangles_of(U, None if rows is None else picked)
     pairs = deg * (deg - 1)
     events = ev_out + ev_in
     if new_counterparts is None:

@@ -72,9 +72,12 @@ def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[N
     samples = _sample_event_ids(context.snapshot, current, rows)
     before = _baseline_features(context, rows)
     now = readable_measures(
-        context.snapshot.counts, rows=rows, new_counterparts=context.activity.new_counterparts
+        context.snapshot.counts,
+        rows=rows,
+        new_counterparts=context.activity.new_counterparts,
+        triangles=context.table.triangles,
     )
-    counterparts = Counterparts(context.snapshot, known=context.known)
+    tops = Counterparts(context.snapshot, known=context.known).top_of(rows, top=10)
     alerts = []
     for position, row in enumerate(rows):
         raw, measures_before = before.get(int(row), (None, None))
@@ -84,7 +87,7 @@ def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[N
                 int(row),
                 samples.get(int(row), []),
                 raw,
-                counterparts,
+                tops[position],
                 _measures(context, int(row), measures_before, now.row(position)),
             )
         )
@@ -136,7 +139,7 @@ def _baseline_features(
         wanted = rows[windows == step]
         at = snapshot.index_of(context.snapshot.nodes[wanted])
         present = at >= 0
-        measured = readable_measures(snapshot.counts, rows=at[present])
+        measured = readable_measures(snapshot.counts, rows=at[present], triangles=table.triangles)
         for position, (row, there) in enumerate(zip(wanted[present], at[present], strict=True)):
             found[int(row)] = (table.raw[there], measured.row(position))
     return found
@@ -147,7 +150,7 @@ def _alert(
     row: int,
     sample_ids: list[str],
     before_raw: np.ndarray | None,
-    counterparts: Counterparts,
+    top_counterparts: list[dict],
     measures: tuple[MeasureValue, ...],
 ) -> NewAlert:
     role_ids = context.model.basis.role_ids
@@ -156,7 +159,7 @@ def _alert(
         int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
     )
     role_after = int(role_ids[int(np.argmax(context.mixture[row]))])
-    evidence = _evidence(context, row, sample_ids, before_raw, counterparts)
+    evidence = _evidence(context, row, sample_ids, before_raw, top_counterparts)
     activity = evidence.activity
     moves = measure_moves(
         {m.measure: m.before for m in measures},
@@ -219,7 +222,7 @@ def _evidence(
     row: int,
     sample_ids: list[str],
     before_raw: np.ndarray | None,
-    counterparts: Counterparts,
+    top_counterparts: list[dict],
 ) -> Evidence:
     model, history = context.model, context.history
     account = str(context.snapshot.nodes[row])
@@ -243,7 +246,7 @@ def _evidence(
         mixture_after=_mixture_list(model, context.mixture[row]),
         feature_moves=tuple(moves),
         activity=_activity_evidence(context, row),
-        top_counterparts=tuple(counterparts.top(row, top=10)),
+        top_counterparts=tuple(top_counterparts),
         sample_event_ids=tuple(sample_ids),
         history_url=f"{context.base_url}/v1/accounts/{quoted}/roles",
         page_url=f"{context.base_url}/accounts/{quoted}",

@@ -161,6 +161,12 @@ class SnapshotGraph:
         """Triangles per node and those whose opposite edge is reciprocated."""
         return self._get("tri", lambda: triangle_counts(self.S, self.R))
 
+    def counted_triangles(self) -> np.ndarray | None:
+        """Triangles per node if :meth:`triangles` already counted them, else None (no
+        counting is started)."""
+        counted = self._cache.get("tri")
+        return None if counted is None else counted[0]
+
     def base(self, name: str) -> np.ndarray:
         """One base feature column (see the module table).
 

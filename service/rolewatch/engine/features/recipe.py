@@ -48,6 +48,10 @@ class FeatureTable:
         than 256 bins), eight times smaller than float64, so windows of a million events
         stay cheap to transform and to keep.
     recipe_version : str
+    triangles : numpy.ndarray or None
+        Triangles through each node of the undirected view, float64, when the recipe's
+        egonet features counted them (None otherwise): the readable measures reuse them
+        instead of counting again.
     """
 
     nodes: np.ndarray
@@ -55,6 +59,7 @@ class FeatureTable:
     raw: np.ndarray
     binned: np.ndarray
     recipe_version: str
+    triangles: np.ndarray | None = None
 
     def column(self, name: str, *, binned: bool = False) -> np.ndarray:
         """One feature column by name.
@@ -265,7 +270,8 @@ class FeatureRecipe:
             raise TypeError(f"transform expects a Snapshot, got {type(snapshot).__name__}")
         mode = self.binning if binning is None else binning
         check_binning(mode)
-        raw = compute_features(SnapshotGraph(snapshot), self.features)
+        graph = SnapshotGraph(snapshot)
+        raw = compute_features(graph, self.features)
         edges: Sequence[np.ndarray]
         if mode == "frozen":
             edges = self.feature_edges
@@ -281,6 +287,7 @@ class FeatureRecipe:
             raw=raw,
             binned=binned,
             recipe_version=self.version,
+            triangles=graph.counted_triangles(),
         )
 
     # ---------------------------------------------------------------- serialisation
