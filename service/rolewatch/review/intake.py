@@ -99,24 +99,6 @@ def _record_held_back(
     )
 
 
-def _open_case(connection: Connection, alert: Alert, now_us: int, end_us: int) -> int:
-    case_id = case_store.insert_case(
-        connection,
-        account=alert.account,
-        state=OPEN,
-        now_us=now_us,
-        window_end_us=end_us,
-        score=alert.score,
-        alert_id=alert.id,
-    )
-    case_store.link_alert(connection, case_id, alert.id, joined_us=now_us)
-    case_store.append_history(
-        connection,
-        HistoryEntry(case_id, now_us, None, None, "opened", 1, to_state=OPEN, alert_id=alert.id),
-    )
-    return case_id
-
-
 def _join_case(
     connection: Connection,
     case: CaseRecord,
@@ -194,9 +176,9 @@ def file_window_alerts(
         return Filed({}, len(screened.held_back), [])
     rule = grouping_rule(settings)
     latest = case_store.latest_cases(connection, (alert.account for alert in alerts))
-    changed: dict[int, str] = {}  # case id -> the action that changed it
     before: dict[int, str] = {}  # case id -> its state before this window
-    case_of: dict[int, int] = {}
+    joined: dict[int, tuple[int, str]] = {}  # alert id -> (case id, action)
+    firsts: list[Alert] = []  # alerts that open a case, opened together below
     for alert in alerts:
         found = latest.get(alert.account)
         if found is not None:
@@ -208,15 +190,27 @@ def file_window_alerts(
             )
         placement = place_alert(snapshot, window_end_us, alert.score, rule)
         if found is None or placement is Placement.NEW_CASE:
-            case_id = _open_case(connection, alert, now_us, window_end_us)
-            changed[case_id] = "opened"
-        else:
-            _join_case(
-                connection, found, alert, placement, now_us, window_end_us, rule.reopen_ratio
-            )
-            case_id = found.id
-            changed[case_id] = "reopened" if placement is Placement.REOPEN else "alert_added"
-            before.setdefault(case_id, found.state)
+            firsts.append(alert)
+            continue
+        _join_case(connection, found, alert, placement, now_us, window_end_us, rule.reopen_ratio)
+        action = "reopened" if placement is Placement.REOPEN else "alert_added"
+        joined[alert.id] = (found.id, action)
+        before.setdefault(found.id, found.state)
+    opened = case_store.open_cases(
+        connection,
+        [(alert.account, alert.id, alert.score) for alert in firsts],
+        state=OPEN,
+        now_us=now_us,
+        window_end_us=window_end_us,
+    )
+    joined.update(
+        {alert.id: (case_id, "opened") for alert, case_id in zip(firsts, opened, strict=True)}
+    )
+    changed: dict[int, str] = {}  # case id -> the action that changed it, in alert order
+    case_of: dict[int, int] = {}
+    for alert in alerts:
+        case_id, action = joined[alert.id]
+        changed[case_id] = action
         case_of[alert.id] = case_id
     updates = case_updates(connection, settings, changed, from_states=before)
     enqueue_case_updates(connection, updates, now_us=now_us)

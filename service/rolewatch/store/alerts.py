@@ -20,7 +20,7 @@ from sqlalchemy.engine import Connection
 
 from rolewatch.clock import to_rfc3339
 from rolewatch.engine.headline import compose_headline
-from rolewatch.store.db import inserted_id
+from rolewatch.store.db import inserted_ids
 from rolewatch.store.schema import alerts
 
 
@@ -260,39 +260,30 @@ def insert_alerts(
     basis_version: str,
     names: Mapping[tuple[str, int], str],
 ) -> list[Alert]:
-    """Store the alerts of one window (their evidence gets the window's id); return them in
-    the API form."""
-    stored = []
-    for alert in raised:
-        evidence = replace(alert.evidence, window=replace(alert.evidence.window, id=window_id))
-        text = json.dumps(evidence.to_dict())
-        alert_id = inserted_id(
-            connection.execute(
-                alerts.insert().values(
-                    window_id=window_id,
-                    account=alert.account,
-                    created_us=created_us,
-                    window_end_us=window_end_us,
-                    score=alert.score,
-                    basis_version=basis_version,
-                    role_before=alert.role_before,
-                    role_after=alert.role_after,
-                    evidence=text,
-                )
-            )
+    """Store the alerts of one window (their evidence gets the window's id, all rows in a
+    few batched statements); return them in the API form, in ``raised`` order."""
+    texts = [
+        json.dumps(
+            replace(alert.evidence, window=replace(alert.evidence.window, id=window_id)).to_dict()
         )
-        row = StoredAlert(
-            id=alert_id,
-            window_id=window_id,
-            account=alert.account,
-            created_us=created_us,
-            window_end_us=window_end_us,
-            window_start_us=window_start_us,
-            score=alert.score,
-            basis_version=basis_version,
-            role_before=alert.role_before,
-            role_after=alert.role_after,
-            evidence=text,
-        )
-        stored.append(alert_form(row, names))
-    return stored
+        for alert in raised
+    ]
+    rows = [
+        {
+            "window_id": window_id,
+            "account": alert.account,
+            "created_us": created_us,
+            "window_end_us": window_end_us,
+            "score": alert.score,
+            "basis_version": basis_version,
+            "role_before": alert.role_before,
+            "role_after": alert.role_after,
+            "evidence": text,
+        }
+        for alert, text in zip(raised, texts, strict=True)
+    ]
+    ids = inserted_ids(connection, alerts.insert(), rows)
+    return [
+        alert_form(StoredAlert(id=alert_id, window_start_us=window_start_us, **row), names)
+        for alert_id, row in zip(ids, rows, strict=True)
+    ]

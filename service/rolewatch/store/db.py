@@ -6,10 +6,10 @@ without depending on SQLAlchemy itself.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from datetime import timedelta
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from alembic.config import Config
 from sqlalchemy import event
@@ -88,6 +88,18 @@ def inserted_id(result: CursorResult) -> int:
     if key is None:
         raise RuntimeError("the INSERT reported no primary key")
     return int(key[0])
+
+
+def inserted_ids(connection: Connection, statement: Any, rows: Sequence[dict]) -> list[int]:
+    """Insert many rows in few statements (SQLAlchemy's "insertmanyvalues": batched
+    ``INSERT ... VALUES (...), (...) RETURNING id``) and return their primary keys in the
+    order of ``rows``."""
+    if not rows:
+        return []
+    table = statement.table
+    key = next(iter(table.primary_key.columns))
+    result = connection.execute(statement.returning(key, sort_by_parameter_order=True), list(rows))
+    return [int(value) for value in result.scalars()]
 
 
 @contextmanager

@@ -15,7 +15,7 @@ from typing import Any
 from sqlalchemy import and_, func, select, update
 from sqlalchemy.engine import Connection
 
-from rolewatch.store.db import inserted_id
+from rolewatch.store.db import inserted_id, inserted_ids
 from rolewatch.store.review_schema import case_alerts, case_history, cases
 from rolewatch.store.schema import alerts, roles, windows
 
@@ -165,6 +165,59 @@ def insert_case(
     )
 
 
+def open_cases(
+    connection: Connection,
+    firsts: Sequence[tuple[str, int, float]],
+    *,
+    state: str,
+    now_us: int,
+    window_end_us: int,
+) -> list[int]:
+    """Open one case per ``(account, alert id, score)`` with that first alert, in a few
+    batched statements: the case rows, their timeline links and an ``opened`` history entry
+    each. Returns the new case ids in ``firsts`` order."""
+    case_ids = inserted_ids(
+        connection,
+        cases.insert(),
+        [
+            {
+                "account": account,
+                "state": state,
+                "version": 1,
+                "assignee": None,
+                "opened_us": now_us,
+                "updated_us": now_us,
+                "first_window_end_us": window_end_us,
+                "last_window_end_us": window_end_us,
+                "alert_count": 1,
+                "peak_score": score,
+                "latest_score": score,
+                "latest_alert_id": alert_id,
+            }
+            for account, alert_id, score in firsts
+        ],
+    )
+    if not case_ids:
+        return []
+    links = [
+        {
+            "alert_id": alert_id,
+            "case_id": case_id,
+            "joined_us": now_us,
+            "decision": None,
+            "reason": None,
+        }
+        for case_id, (_, alert_id, _) in zip(case_ids, firsts, strict=True)
+    ]
+    connection.execute(case_alerts.insert(), links)
+    entries = [
+        HistoryEntry(case_id, now_us, None, None, "opened", 1, to_state=state, alert_id=alert_id)
+        for case_id, (_, alert_id, _) in zip(case_ids, firsts, strict=True)
+    ]
+    connection.execute(case_history.insert(), [_history_values(entry) for entry in entries])
+    return case_ids
+
+
 def link_alert(
     connection: Connection,
     case_id: int,
@@ -218,8 +271,11 @@ def decide_alerts(
 
 def append_history(connection: Connection, entry: HistoryEntry) -> int:
     """Add one entry to the case's audit history (the only write this table gets)."""
-    values = {item.name: getattr(entry, item.name) for item in fields(entry) if item.name != "id"}
-    return inserted_id(connection.execute(case_history.insert().values(**values)))
+    return inserted_id(connection.execute(case_history.insert().values(**_history_values(entry))))
+
+
+def _history_values(entry: HistoryEntry) -> dict[str, Any]:
+    return {item.name: getattr(entry, item.name) for item in fields(entry) if item.name != "id"}
 
 
 # --- reads -----------------------------------------------------------------------------------
