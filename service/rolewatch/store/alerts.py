@@ -268,7 +268,7 @@ def insert_alerts(
         )
         for alert in raised
     ]
-    rows = [
+    rows: list[dict[str, Any]] = [
         {
             "window_id": window_id,
             "account": alert.account,
