@@ -18,6 +18,7 @@ from __future__ import annotations
 import logging
 import threading
 import time
+import weakref
 from collections.abc import Callable
 from contextlib import AbstractContextManager
 from dataclasses import asdict, dataclass, replace
@@ -37,6 +38,7 @@ from rolewatch.pipeline.compute import (
 )
 from rolewatch.pipeline.loading import WindowEvents, load_past_windows
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
+from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.stages import StageClock
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
 from rolewatch.review.intake import file_window_alerts, screen_alerts
@@ -234,6 +236,7 @@ def _close_once(
         events_of=_stored_events(engine, settings),
         clock=clock,
         measure=measure_for(settings),
+        recent=_recent_features(engine),
     )
     seconds = time.perf_counter() - started
     with clock.stage("store"), write_transaction(engine) as connection:
@@ -277,6 +280,18 @@ def _close_once(
     record_outputs(settings, end_us, model, result)
     summary = _summary(window_id, start_us, end_us, len(current), result, training=False)
     return [replace(summary, stage_seconds=stages)]
+
+
+# The last measured window's features, per store (an engine's entry goes with the engine).
+_RECENT: weakref.WeakKeyDictionary[Engine, RecentFeatures] = weakref.WeakKeyDictionary()
+
+
+def _recent_features(engine: Engine) -> RecentFeatures:
+    """The features this process kept of the store's last measured window."""
+    recent = _RECENT.get(engine)
+    if recent is None:
+        recent = _RECENT.setdefault(engine, RecentFeatures())
+    return recent
 
 
 def _stored_events(
@@ -352,7 +367,7 @@ def _close_training(
         loaded = _load_training(engine, settings, training)
     loaded.append(_TrainingWindow(None, start_us, end_us, current))
     model = fit_model(settings, [window.events.snapshot() for window in loaded])
-    measured = _measure_training(model, settings, loaded, clock)
+    measured = _measure_training(model, settings, loaded, clock, _recent_features(engine))
     with write_transaction(engine) as connection:
         _claim_window(connection, start_us, end_us, event_source.stored_part(current))
         store_model(
@@ -416,7 +431,11 @@ def _load_training(
 
 
 def _measure_training(
-    model: FrozenModel, settings: Settings, loaded: list[_TrainingWindow], clock: StageClock
+    model: FrozenModel,
+    settings: Settings,
+    loaded: list[_TrainingWindow],
+    clock: StageClock,
+    recent: RecentFeatures,
 ) -> list[_Measured]:
     """Measure the training windows in order, each against the history of those before it
     (the known pairs start empty at the first training window). ``clock`` holds the load
@@ -431,7 +450,15 @@ def _measure_training(
         own = clock if window.window_id is None else StageClock()
         started = time.perf_counter()
         result = compute_window(
-            model, settings, window.events, past, known, window=ref, raise_alerts=False, clock=own
+            model,
+            settings,
+            window.events,
+            past,
+            known,
+            window=ref,
+            raise_alerts=False,
+            clock=own,
+            recent=recent,
         )
         measured.append(_Measured(window, result, time.perf_counter() - started, own))
         past = (past + [past_from_result(result, ref)])[-lookback_windows(settings) :]

@@ -31,6 +31,7 @@ from rolewatch.pipeline.evidence import REVIEW_NOTICE, AlertContext, alerts_with
 from rolewatch.pipeline.history import AccountHistory, account_history, novelty_history
 from rolewatch.pipeline.loading import PastWindow, WindowEvents
 from rolewatch.pipeline.model import FrozenModel
+from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.stages import StageClock
 from rolewatch.store.alerts import NewAlert, WindowRef
 from rolewatch.store.memberships import MIXTURE_DECIMALS
@@ -190,6 +191,7 @@ def compute_window(
     events_of: EventsOf | None = None,
     clock: StageClock | None = None,
     measure: Measure = measure_locally,
+    recent: RecentFeatures | None = None,
 ) -> WindowResult:
     """Measure every active account of one window against its own history.
 
@@ -211,6 +213,9 @@ def compute_window(
         scoring, evidence).
     measure
         Computes the feature table and memberships (:func:`measure_locally` by default).
+    recent
+        Keeps this window's features for the next window's alerts, and gives an earlier
+        window's when it holds them (instead of ``events_of`` and a recomputation).
     """
     clock = clock if clock is not None else StageClock()
     with clock.stage("features"):
@@ -227,7 +232,7 @@ def compute_window(
     # while this one computes the features, memberships and scores (same seed and input,
     # so the same communities). The bridging stage counts only the wait.
     communities = start_communities(graph, policy.bridge_resolution)
-    step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock, measure)
+    step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock, measure, recent)
     return _measure(step, current, past, known, communities, window, raise_alerts, events_of)
 
 
@@ -244,6 +249,7 @@ class _Step:
     graph: sp.csr_matrix
     clock: StageClock
     measure: Measure
+    recent: RecentFeatures | None
 
 
 def _measure(
@@ -306,9 +312,12 @@ def _measure(
             past=past,
             known=known,
             events_of=events_of,
+            recent=step.recent,
         )
         with clock.stage("evidence"):
             alerts = alerts_with_evidence(context, current)
+    if step.recent is not None:  # after the evidence, which may use the window before
+        step.recent.remember(window, snapshot, table)
     with clock.stage("bridging"):
         community = communities.result()
     return _measured_result(

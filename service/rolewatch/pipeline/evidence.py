@@ -27,6 +27,7 @@ from rolewatch.engine.snapshot import Snapshot
 from rolewatch.pipeline.history import AccountHistory
 from rolewatch.pipeline.loading import PastWindow, WindowEvents
 from rolewatch.pipeline.model import FrozenModel
+from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.store.alerts import (
     ActivityEvidence,
     Evidence,
@@ -64,6 +65,7 @@ class AlertContext:
     past: list[PastWindow]
     known: KnownPairs
     events_of: Callable[[WindowRef], WindowEvents | None] | None
+    recent: RecentFeatures | None = None
 
 
 def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[NewAlert]:
@@ -123,26 +125,40 @@ def _measures(
 def _baseline_features(
     context: AlertContext, rows: np.ndarray
 ) -> dict[int, tuple[np.ndarray, dict[str, float]]]:
-    """Raw features and readable measures of each alerted account in its baseline window,
-    where that window's events can still be read (each window transformed once)."""
+    """Raw features and readable measures of each alerted account in its baseline window:
+    kept from that window's close when it was the last one measured here, else recomputed
+    from its events while they are still stored (each window once)."""
     found: dict[int, tuple[np.ndarray, dict[str, float]]] = {}
-    if context.events_of is None:
-        return found
     windows = context.history.window[rows]
     for step in np.unique(windows[windows >= 0]):
-        ref = context.past[int(step)].ref
-        events = context.events_of(ref) if ref is not None else None
-        if events is None or not len(events):
+        measured = _window_features(context, context.past[int(step)])
+        if measured is None:
             continue
-        snapshot = events.snapshot()
-        table = context.model.recipe.transform(snapshot)
+        snapshot, table = measured
         wanted = rows[windows == step]
         at = snapshot.index_of(context.snapshot.nodes[wanted])
         present = at >= 0
-        measured = readable_measures(snapshot.counts, rows=at[present], triangles=table.triangles)
+        readable = readable_measures(snapshot.counts, rows=at[present], triangles=table.triangles)
         for position, (row, there) in enumerate(zip(wanted[present], at[present], strict=True)):
-            found[int(row)] = (table.raw[there], measured.row(position))
+            found[int(row)] = (table.raw[there], readable.row(position))
     return found
+
+
+def _window_features(
+    context: AlertContext, past: PastWindow
+) -> tuple[Snapshot, FeatureTable] | None:
+    """An earlier window's snapshot and feature table, or None when its events are gone."""
+    if context.recent is not None:
+        kept = context.recent.find(past, context.model.recipe.version)
+        if kept is not None:
+            return kept
+    if context.events_of is None or past.ref is None:
+        return None
+    events = context.events_of(past.ref)
+    if events is None or not len(events):
+        return None
+    snapshot = events.snapshot()
+    return snapshot, context.model.recipe.transform(snapshot)
 
 
 def _alert(

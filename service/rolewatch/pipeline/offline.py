@@ -25,6 +25,7 @@ from rolewatch.pipeline.compute import (
 )
 from rolewatch.pipeline.loading import PastWindow, WindowEvents
 from rolewatch.pipeline.model import FrozenModel, fit_model
+from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.windows import WindowGeometry
 
 
@@ -115,6 +116,7 @@ def measure_windows(
     lookback = lookback_windows(settings)
     past: list[PastWindow] = []
     known = KnownPairs.empty()
+    recent = RecentFeatures()
     by_end = {to_rfc3339(end): events for _start, end, events, _previous in loaded}
 
     def events_of(ref: WindowRef) -> WindowEvents | None:
@@ -133,6 +135,7 @@ def measure_windows(
             window=ref,
             raise_alerts=not training,
             events_of=events_of,
+            recent=recent,
         )
         past = (past + [past_from_result(result, ref)])[-lookback:]
         if result.new_pairs is not None:
