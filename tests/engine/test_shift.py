@@ -55,6 +55,21 @@ def test_role_aware_distance_costs_little_between_similar_roles():
     assert (role_aware_distance(P, Q, F) <= hellinger(P, Q) + 1e-12).all()
 
 
+def test_role_aware_distance_of_a_row_without_a_valid_mixture_is_nan():
+    # Definition (recalled from memory): the image of a mixture is p F with F's rows scaled
+    # to sum 1, and the distance is the Hellinger distance of the images.
+    F = np.array([[1.0, 2.0, 0.0], [0.0, 1.0, 3.0]])
+    p = np.array([[0.5, 0.5], [np.nan, np.nan], [1.0, 0.0], [0.0, 0.0]])
+    q = np.array([[1.0, 0.0], [0.5, 0.5], [np.nan, 1.0], [0.2, 0.8]])
+    d = role_aware_distance(p, q, F)
+    assert np.isnan(d[1:]).all()
+    R = F / F.max(axis=0)
+    R = R / R.sum(axis=1, keepdims=True)
+    a, b = np.array([0.5, 0.5]) @ R, np.array([1.0, 0.0]) @ R
+    expected = np.sqrt(0.5 * np.sum((np.sqrt(a / a.sum()) - np.sqrt(b / b.sum())) ** 2))
+    assert d[0] == pytest.approx(expected)
+
+
 def test_activity_change_is_symmetric_log_ratio():
     assert activity_change(3, 3) == 0
     assert activity_change(7, 3) == pytest.approx(np.log(8 / 4))

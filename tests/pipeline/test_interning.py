@@ -74,3 +74,21 @@ def test_stored_mixtures_become_the_row_major_matrix_a_row_by_row_fill_gives():
     np.testing.assert_array_equal(found, expected)
     # row sums must add in the same order as for any other row-major matrix
     assert found.flags.c_contiguous
+
+
+def test_interning_in_storage_order_then_sorting_gives_the_sorted_events():
+    # reference: the events permuted first, as plain numpy indexing gives them
+    rng = np.random.default_rng(11)
+    names = np.array([f"m-{i:03d}" for i in range(80)], dtype=object)
+    actor = names[rng.integers(0, 80, 2000)]
+    target = names[(rng.integers(1, 80, 2000) + rng.integers(0, 80, 2000)) % 80]
+    keep = actor != target
+    actor, target = actor[keep], target[keep]
+    ids = np.array([f"e{i}" for i in range(actor.size)], dtype=object)
+    weight = rng.uniform(0.1, 5.0, actor.size)
+    order = rng.permutation(actor.size)
+    late = interned(ids, actor, target, weight, order=order)
+    early = interned(ids[order], actor[order], target[order], weight[order])
+    for name in ("event_id", "actor", "target", "weight", "accounts", "actor_index"):
+        np.testing.assert_array_equal(getattr(late, name), getattr(early, name))
+    np.testing.assert_array_equal(late.actor, actor[order])

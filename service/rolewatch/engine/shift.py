@@ -201,11 +201,13 @@ def role_aware_distance(p, q, F):
         raise ValueError(f"F has {R.shape[0]} roles but the mixtures have {P.shape[1]}")
     if np.ndim(p) != 2:
         return float(hellinger(P @ R, Q @ R)[0])
-    # Row blocks: the images are n x features, and the distance's temporaries several times
-    # that; each row's distance depends on its own row only.
-    out = np.empty(P.shape[0])
-    for start in range(0, P.shape[0], _ROWS_PER_BLOCK):
-        rows = slice(start, start + _ROWS_PER_BLOCK)
+    # Only rows where both mixtures are valid have a distance (the others are NaN, as
+    # hellinger gives them); row blocks, because the images are n x features and the
+    # distance's temporaries several times that. Each row depends on its own row only.
+    out = np.full(P.shape[0], np.nan)
+    valid = np.flatnonzero(np.isfinite(P).all(axis=1) & np.isfinite(Q).all(axis=1))
+    for start in range(0, valid.size, _ROWS_PER_BLOCK):
+        rows = valid[start : start + _ROWS_PER_BLOCK]
         out[rows] = hellinger(P[rows] @ R, Q[rows] @ R)
     return out
 

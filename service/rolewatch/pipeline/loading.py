@@ -50,30 +50,41 @@ class WindowEvents:
         return Snapshot.from_events(self.actor, self.target, self.weight)
 
 
-def interned(event_id, actor, target, weight) -> WindowEvents:
+def interned(event_id, actor, target, weight, *, order=None) -> WindowEvents:
     """Window events whose account ids are interned once: each distinct id is one string
     object, and every event holds its accounts' positions among the sorted distinct ids
     (pandas' hash-based ``factorize`` on both columns at once, then the few distinct ids
-    sorted)."""
+    sorted).
+
+    ``order``, when given, is the permutation that puts the events in (time, event id)
+    order: the ids are interned as they come and only integer positions, event ids and
+    weights are permuted (no reordering of two million account strings).
+    """
     import pandas as pd
 
     both = np.concatenate([np.asarray(actor, dtype=object), np.asarray(target, dtype=object)])
     codes, uniques = pd.factorize(both)
     distinct = np.asarray(uniques, dtype=object)
-    order = np.argsort(distinct.astype(str), kind="stable")
-    rank = np.empty(order.size, dtype=np.int64)
-    rank[order] = np.arange(order.size)
+    by_text = np.argsort(distinct.astype(str), kind="stable")
+    rank = np.empty(by_text.size, dtype=np.int64)
+    rank[by_text] = np.arange(by_text.size)
     positions = rank[codes]
-    accounts = distinct[order]
+    accounts = distinct[by_text]
     n = len(positions) // 2
+    actor_index, target_index = positions[:n], positions[n:]
+    event_id = np.asarray(event_id, dtype=object)
+    weight = np.asarray(weight, dtype=np.float64)
+    if order is not None:
+        actor_index, target_index = actor_index[order], target_index[order]
+        event_id, weight = event_id[order], weight[order]
     return WindowEvents(
-        event_id=np.asarray(event_id, dtype=object),
-        actor=accounts[positions[:n]],
-        target=accounts[positions[n:]],
-        weight=np.asarray(weight, dtype=np.float64),
+        event_id=event_id,
+        actor=accounts[actor_index],
+        target=accounts[target_index],
+        weight=weight,
         accounts=accounts.astype(str),
-        actor_index=positions[:n],
-        target_index=positions[n:],
+        actor_index=actor_index,
+        target_index=target_index,
     )
 
 
@@ -105,7 +116,9 @@ def load_window_events(connection: Connection, start_us: int, end_us: int) -> Wi
     whenever it arrived (a closed window is never reloaded).
     """
     columns = event_columns(connection, start_us, end_us)
-    return interned(columns.event_id, columns.actor, columns.target, columns.weight)
+    return interned(
+        columns.event_id, columns.actor, columns.target, columns.weight, order=columns.order
+    )
 
 
 def load_past_windows(
