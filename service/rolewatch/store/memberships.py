@@ -129,14 +129,17 @@ def _or_none(values: np.ndarray, keep: np.ndarray) -> list:
 def _mixture_json(role_ids: tuple[int, ...], mixture: np.ndarray, fitted: np.ndarray) -> np.ndarray:
     """Each row's mixture as the JSON text ``json.dumps({role_id: weight})`` writes, the
     weights rounded to :data:`MIXTURE_DECIMALS`; ``{}`` where the account was not fitted.
-    (numpy prints a float64 as the shortest text that reads back to it, as ``json`` does.)"""
+    (``json`` writes a float as ``float.__repr__`` does, so the weights are written by it.)"""
     rounded = np.round(np.asarray(mixture, dtype=np.float64), MIXTURE_DECIMALS)
-    text = np.full(len(fitted), "{", dtype=object)
-    for column, role_id in enumerate(role_ids):
-        lead = "" if column == 0 else ", "
-        text = text + f'{lead}"{role_id}": ' + rounded[:, column].astype(str).astype(object)
-    text = text + "}"
-    text[~fitted] = "{}"
+    template = "{" + ", ".join(f'"{role_id}": %s' for role_id in role_ids) + "}"
+    weights = [
+        list(map(float.__repr__, rounded[:, column].tolist())) for column in range(len(role_ids))
+    ]
+    text = np.array(
+        [template % row for row in zip(*weights)] if role_ids else ["{}"] * len(fitted),
+        dtype=object,
+    )
+    text[~np.asarray(fitted, dtype=bool)] = "{}"
     return text
 
 
