@@ -136,7 +136,9 @@ def _mixture_json(role_ids: tuple[int, ...], mixture: np.ndarray, fitted: np.nda
         list(map(float.__repr__, rounded[:, column].tolist())) for column in range(len(role_ids))
     ]
     text = np.array(
-        [template % row for row in zip(*weights)] if role_ids else ["{}"] * len(fitted),
+        [template % row for row in zip(*weights, strict=True)]
+        if role_ids
+        else ["{}"] * len(fitted),
         dtype=object,
     )
     text[~np.asarray(fitted, dtype=bool)] = "{}"
