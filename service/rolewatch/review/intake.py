@@ -235,8 +235,9 @@ def case_updates(
     names = key_names(connection)
     moves = case_store.role_moves(connection, changed)
     updates = []
+    found = case_store.find_cases(connection, changed)
     for case_id, action in changed.items():
-        case = case_store.find_case(connection, case_id)
+        case = found.get(case_id)
         if case is None:
             continue
         form = case_form(case, move=moves.get(case_id), names=names, base_url=settings.public_url)

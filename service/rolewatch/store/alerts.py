@@ -23,14 +23,31 @@ from rolewatch.engine.headline import compose_headline
 from rolewatch.store.db import inserted_ids
 from rolewatch.store.schema import alerts
 
+_PLAIN = (str, int, float, bool, type(None))
+
 
 def _json_ready(value: Any) -> Any:
     """Dataclasses as dicts (fields in declaration order), tuples as lists, the rest as is."""
-    if is_dataclass(value) and not isinstance(value, type):
-        return {item.name: _json_ready(getattr(value, item.name)) for item in fields(value)}
+    if isinstance(value, _PLAIN):
+        return value
     if isinstance(value, (list, tuple)):
         return [_json_ready(item) for item in value]
-    return value
+    names = _field_names(type(value))
+    if names is None:
+        return value
+    return {name: _json_ready(getattr(value, name)) for name in names}
+
+
+_FIELD_NAMES: dict[type, tuple[str, ...] | None] = {}
+
+
+def _field_names(kind: type) -> tuple[str, ...] | None:
+    """A dataclass's field names in declaration order (None for any other type), looked up
+    once per class: a window's thousand alerts hold about a hundred thousand values."""
+    if kind not in _FIELD_NAMES:
+        names = tuple(item.name for item in fields(kind)) if is_dataclass(kind) else None
+        _FIELD_NAMES[kind] = names
+    return _FIELD_NAMES[kind]
 
 
 @dataclass(frozen=True)

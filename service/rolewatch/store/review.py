@@ -290,6 +290,16 @@ def find_case(connection: Connection, case_id: int, *, lock: bool = False) -> Ca
     return None if row is None else _case(row)
 
 
+def find_cases(connection: Connection, case_ids: Iterable[int]) -> dict[int, CaseRecord]:
+    """The cases with these ids that exist, by id (a few statements for any number)."""
+    wanted = sorted(set(case_ids))
+    found: dict[int, CaseRecord] = {}
+    for chunk in _chunks(wanted):
+        for row in connection.execute(select(cases).where(cases.c.id.in_(chunk))):
+            found[int(row.id)] = _case(row)
+    return found
+
+
 def latest_cases(connection: Connection, accounts: Iterable[str]) -> dict[str, CaseRecord]:
     """Each account's newest case (highest id), for the accounts that have one."""
     wanted = sorted(set(accounts))
