@@ -24,6 +24,7 @@ __all__ = [
     "ScaleExtraMissing",
     "close_clients",
     "dask_client",
+    "keeps_memberships",
     "measure_for",
     "record_outputs",
 ]
@@ -109,10 +110,17 @@ def measure_for(settings: Settings) -> Measure:
     return DaskMeasure(dask_client(settings.dask_scheduler), settings.dask_partitions)
 
 
+def keeps_memberships(settings: Settings, accounts: int) -> bool:
+    """Whether a window of ``accounts`` accounts keeps its memberships in the SQL store
+    (otherwise only ``output_archive`` holds them)."""
+    limit = settings.store_memberships_max_accounts
+    return not limit or accounts <= limit
+
+
 def record_outputs(
     settings: Settings, end_us: int, model: FrozenModel, result: WindowResult
 ) -> None:
-    """Write the closed window's memberships and scores to ``output_archive`` (if set)."""
+    """Write a measured window's memberships and scores to ``output_archive`` (if set)."""
     if not settings.output_archive:
         return
     from rolewatch.scale.outputs import WindowOutputs, write_window_outputs
@@ -130,5 +138,10 @@ def record_outputs(
             events_out=result.activity.events_out,
             events_in=result.activity.events_in,
             basis_version=model.basis.version,
+            counterparts=result.activity.counterparts,
+            new_counterparts=result.activity.new_counterparts,
+            error=result.error,
+            ties=result.ties,
+            community=result.community,
         ),
     )
