@@ -51,10 +51,11 @@ def _could_be_stored(account: str) -> bool:
 def account_exists(engine: Engine, account: str) -> bool:
     """True when ``account`` was active in a closed window or has an event not yet closed.
 
-    Every account of a closed window has a membership row (primary key lookup); events after
-    the latest closed window are searched through the time index, so an unknown account
-    never costs a scan of the whole event table. (An account seen only in late events is
-    not found.)
+    Every account of a closed window has a membership row (primary key lookup), except in
+    windows kept only in the Parquet outputs (``rolewatch.scale.history.account_known``
+    looks there); events after the latest closed window are searched through the time
+    index, so an unknown account never costs a scan of the whole event table. (An account
+    seen only in late events is not found.)
     """
     if not _could_be_stored(account):
         return False
