@@ -193,7 +193,8 @@ def _mixture_dicts(column: pa.ChunkedArray) -> list[dict]:
     """Each row's ``{role id (str): share}``, shares rounded to the store's decimals."""
     flat = pa.concat_arrays(column.chunks) if column.num_chunks else pa.array([], column.type)
     offsets = flat.offsets.to_numpy()
-    keys = flat.keys.to_numpy().astype(str).tolist()
+    roles, at = np.unique(flat.keys.to_numpy(), return_inverse=True)
+    keys = roles.astype(str)[at].tolist()  # a few role ids: one conversion each
     shares = np.round(flat.items.to_numpy(), MIXTURE_DECIMALS).tolist()
     return [
         dict(zip(keys[lo:hi], shares[lo:hi], strict=True))
