@@ -364,6 +364,13 @@ class Settings(BaseSettings):
         description="Path or URL of a Parquet dataset, partitioned by window, that every "
         "closed window's memberships and scores are also written to (empty: none).",
     )
+    store_memberships_max_accounts: int = Field(
+        0,
+        ge=0,
+        description="A window with more accounts than this keeps its memberships and scores "
+        "only in output_archive, not in the SQL store (which still gets the window, its alerts "
+        "and their evidence); 0 stores every window's memberships.",
+    )
     dask_partitions: int = Field(
         8, ge=1, description="Partitions the Dask close splits a window's accounts into."
     )
@@ -406,6 +413,12 @@ class Settings(BaseSettings):
             raise ValueError(
                 "event_source = archive needs event_archive: set ROLEWATCH_EVENT_ARCHIVE to the "
                 "archive's path or URL"
+            )
+        if self.store_memberships_max_accounts and not self.output_archive:
+            raise ValueError(
+                "store_memberships_max_accounts keeps large windows' memberships only in the "
+                "Parquet outputs: set ROLEWATCH_OUTPUT_ARCHIVE to their path or URL, or set "
+                "store_memberships_max_accounts to 0"
             )
         return self
 

@@ -1,5 +1,6 @@
 """deploy/: the example configuration matches its generator and loads; the compose file and
-the systemd unit say what the image needs; deploy/install.sh installs and starts the service
+the systemd unit say what the image needs; the image's EXTRAS build argument installs an
+extra; deploy/install.sh installs and starts the service
 in a fresh virtual environment (the image's own steps, without a container engine)."""
 
 from __future__ import annotations
@@ -97,6 +98,30 @@ def test_containerfile_is_multi_stage_non_root_with_python_healthcheck():
     unit.read(DEPLOY / "rolewatch.service")
     assert unit["Service"]["ExecStart"].endswith("rolewatch serve")
     assert unit["Service"]["User"] == "rolewatch" and unit["Service"]["KillSignal"] == "SIGTERM"
+
+
+def test_containerfile_extras_build_arg_names_the_scale_extra():
+    import tomllib
+
+    text = (DEPLOY / "Containerfile").read_text(encoding="utf-8")
+    assert len(re.findall(r'^ARG EXTRAS=""$', text, flags=re.M)) == 2  # one per stage
+    sources = re.findall(r'"(\.?[a-z]*\$\{EXTRAS:\+\[\$EXTRAS\]\})"', text)
+    assert len(sources) == 2
+    extras = tomllib.loads((ROOT / "pyproject.toml").read_text())["project"][
+        "optional-dependencies"
+    ]
+    assert "scale" in extras
+    # The RUN lines expand the argument in /bin/sh (POSIX parameter expansion ${x:+word}).
+    for value, suffix in (("", ""), ("scale", "[scale]")):
+        for source in sources:
+            done = subprocess.run(
+                ["sh", "-c", f'printf %s "{source}"'],
+                env={"EXTRAS": value, "PATH": os.environ["PATH"]},
+                capture_output=True,
+                text=True,
+                check=True,
+            )
+            assert done.stdout == source.split("$")[0] + suffix
 
 
 @pytest.mark.slow

@@ -1,8 +1,14 @@
-"""Comparisons of two stores' closes, with the tolerances of docs/scale.md."""
+"""Comparisons of two stores' closes, with the tolerances of docs/scale.md, and the app
+served on loopback for tests over real HTTP."""
 
 from __future__ import annotations
 
 import json
+import socket
+import threading
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 
 import pytest
 
@@ -36,3 +42,26 @@ def scheduler_transitions(address: str) -> int:
         return int(
             client.run_on_scheduler(lambda dask_scheduler: dask_scheduler.transition_counter)
         )
+
+
+@contextmanager
+def served(app) -> Iterator[str]:
+    """Serve ``app`` with uvicorn on a free loopback port in a thread; yields its base URL."""
+    import uvicorn
+
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock.bind(("127.0.0.1", 0))
+    server = uvicorn.Server(uvicorn.Config(app, log_level="warning", lifespan="on"))
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    deadline = time.monotonic() + 30
+    while not server.started:
+        if time.monotonic() > deadline or not thread.is_alive():
+            raise RuntimeError("the app did not start within 30 s")
+        time.sleep(0.05)
+    try:
+        yield f"http://127.0.0.1:{sock.getsockname()[1]}"
+    finally:
+        server.should_exit = True
+        thread.join(timeout=15)
+        sock.close()

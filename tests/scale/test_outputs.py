@@ -1,6 +1,6 @@
-"""Per-window outputs as Parquet: every window measured after training lands in its own
-partition, sorted by account with row-group statistics, and one account's history read
-from it equals what the store holds.
+"""Per-window outputs as Parquet: every measured window (the training windows' back-fill
+included) lands in its own partition, sorted by account with row-group statistics, and one
+account's history read from it equals what the store holds.
 
 The events are the fictional marketplace sample in fixtures/sample (invented data).
 """
@@ -15,7 +15,7 @@ import pytest
 import sqlalchemy as sa
 
 from rolewatch.pipeline.closer import close_due_windows
-from rolewatch.scale.outputs import account_history
+from rolewatch.scale.output_reads import account_history
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
 from rolewatch.store.schema import memberships, windows
@@ -43,7 +43,7 @@ def test_closed_windows_are_written_sorted_and_read_back_per_account(tmp_path):
             ).all()
         )
     engine.dispose()
-    measured = stored[~stored["training"].astype(bool)]
+    measured = stored
     files = sorted(outputs.glob("window_end_us=*/memberships.parquet"))
     assert [int(f.parent.name.split("=")[1]) for f in files] == sorted(set(measured["end_us"]))
     for file in files:

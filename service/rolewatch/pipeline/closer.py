@@ -43,7 +43,7 @@ from rolewatch.pipeline.stages import StageClock
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
 from rolewatch.review.intake import file_window_alerts, screen_alerts
 from rolewatch.scale import source as event_source
-from rolewatch.scale.dispatch import measure_for, record_outputs
+from rolewatch.scale.dispatch import keeps_memberships, measure_for, record_outputs
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.alerts import Alert, insert_alerts
 from rolewatch.store.db import (
@@ -220,7 +220,11 @@ def _close_once(
         return _close_training(engine, settings, geometry, end_us, now_us, current, training, clock)
     with clock.stage("load"), engine.connect() as connection:
         past = load_past_windows(
-            connection, model, before_end_us=end_us, limit=lookback_windows(settings)
+            connection,
+            model,
+            before_end_us=end_us,
+            limit=lookback_windows(settings),
+            outputs=settings.output_archive,
         )
         known = KnownPairs.from_parts(known_pair_parts(connection, before_end_us=end_us))
     window = WindowRef(id=None, start=to_rfc3339(start_us), end=to_rfc3339(end_us))
@@ -253,7 +257,9 @@ def _close_once(
             training=False,
             measures=_measures(model, result, seconds),
         )
-        api_alerts = _store_result(connection, model, window_id, start_us, end_us, now_us, result)
+        api_alerts = _store_result(
+            connection, settings, model, window_id, (start_us, end_us), now_us, result
+        )
         # Review: file the alerts into cases and count what the suppressions held back.
         filed = file_window_alerts(
             connection,
@@ -277,7 +283,6 @@ def _close_once(
         # The write's time so far: everything but this update and the commit.
         stages = clock.seconds()
         stored_windows.set_stage_seconds(connection, window_id, stages)
-    record_outputs(settings, end_us, model, result)
     summary = _summary(window_id, start_us, end_us, len(current), result, training=False)
     return [replace(summary, stage_seconds=stages)]
 
@@ -377,7 +382,9 @@ def _close_training(
             trained_to_us=end_us,
             now_us=now_us,
         )
-        return [_store_training_window(connection, model, item, now_us) for item in measured]
+        return [
+            _store_training_window(connection, settings, model, item, now_us) for item in measured
+        ]
 
 
 def _record_training_window(
@@ -467,7 +474,7 @@ def _measure_training(
 
 
 def _store_training_window(
-    connection: Connection, model: FrozenModel, item: _Measured, now_us: int
+    connection: Connection, settings: Settings, model: FrozenModel, item: _Measured, now_us: int
 ) -> WindowSummary:
     window, result = item.window, item.result
     measures = _measures(model, result, item.seconds)
@@ -485,7 +492,8 @@ def _store_training_window(
             )
         else:
             stored_windows.set_measures(connection, window_id, measures)
-        _store_result(connection, model, window_id, window.start_us, window.end_us, now_us, result)
+        span = (window.start_us, window.end_us)
+        _store_result(connection, settings, model, window_id, span, now_us, result)
         stages = item.clock.seconds()
         stored_windows.set_stage_seconds(connection, window_id, stages)
     summary = _summary(
@@ -519,14 +527,41 @@ def _measures(model: FrozenModel, result: WindowResult, seconds: float) -> Windo
 
 def _store_result(
     connection: Connection,
+    settings: Settings,
     model: FrozenModel,
     window_id: int,
-    start_us: int,
-    end_us: int,
+    span: tuple[int, int],
     now_us: int,
     result: WindowResult,
 ) -> list[Alert]:
-    """Insert memberships and alerts; return the alerts in their API form."""
+    """Write the memberships (to the Parquet outputs when set, and to the store unless the
+    window is larger than ``store_memberships_max_accounts``), the window's new pairs and its
+    alerts; return the alerts in their API form.
+
+    The Parquet file is written inside the window's write transaction: if the transaction
+    does not commit, the window stays open and the retried close rewrites the file, so a
+    closed window always has its memberships somewhere."""
+    start_us, end_us = span
+    record_outputs(settings, end_us, model, result)
+    if keeps_memberships(settings, len(result.nodes)):
+        _insert_memberships(connection, model, window_id, result)
+    if result.new_pairs is not None:
+        insert_window_pairs(connection, window_id, result.new_pairs)
+    return insert_alerts(
+        connection,
+        result.alerts,
+        window_id=window_id,
+        window_start_us=start_us,
+        window_end_us=end_us,
+        created_us=now_us,
+        basis_version=model.basis.version,
+        names={(model.basis.version, info.role_id): info.name for info in model.roles},
+    )
+
+
+def _insert_memberships(
+    connection: Connection, model: FrozenModel, window_id: int, result: WindowResult
+) -> None:
     insert_memberships(
         connection,
         window_id,
@@ -546,18 +581,6 @@ def _store_result(
             ties=result.ties,
             community=result.community,
         ),
-    )
-    if result.new_pairs is not None:
-        insert_window_pairs(connection, window_id, result.new_pairs)
-    return insert_alerts(
-        connection,
-        result.alerts,
-        window_id=window_id,
-        window_start_us=start_us,
-        window_end_us=end_us,
-        created_us=now_us,
-        basis_version=model.basis.version,
-        names={(model.basis.version, info.role_id): info.name for info in model.roles},
     )
 
 

@@ -122,17 +122,27 @@ def load_window_events(connection: Connection, start_us: int, end_us: int) -> Wi
 
 
 def load_past_windows(
-    connection: Connection, model: FrozenModel, *, before_end_us: int, limit: int
+    connection: Connection,
+    model: FrozenModel,
+    *,
+    before_end_us: int,
+    limit: int,
+    outputs: str | None = None,
 ) -> list[PastWindow]:
     """Stored memberships of the last ``limit`` measured windows before ``before_end_us``,
     oldest first, with mixtures laid out in the model's role order (missing roles are 0;
-    accounts with too little activity get NaN rows)."""
+    accounts with too little activity get NaN rows). A window whose memberships the store
+    does not hold (``store_memberships_max_accounts``) is read from the Parquet ``outputs``."""
     column_of = {str(role_id): column for column, role_id in enumerate(model.basis.role_ids)}
     past = []
     for window_id, start_us, end_us in stored_memberships.measured_windows(
         connection, before_end_us=before_end_us, limit=limit
     ):
         stored = stored_memberships.window_columns(connection, window_id)
+        if not len(stored.accounts) and outputs:
+            from rolewatch.scale.output_reads import stored_window
+
+            stored = stored_window(outputs, end_us)
         mixture = _mixture_matrix(stored.mixtures, list(column_of))
         totals = mixture.sum(axis=1, keepdims=True)
         np.divide(mixture, totals, out=mixture, where=totals > 0)

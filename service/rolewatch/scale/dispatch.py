@@ -8,6 +8,7 @@ keeps it for the closes after it.
 
 from __future__ import annotations
 
+import logging
 import threading
 from typing import Any
 
@@ -20,16 +21,23 @@ from rolewatch.pipeline.loading import WindowEvents
 from rolewatch.pipeline.model import FrozenModel
 
 __all__ = [
+    "DASK_ATTEMPTS",
+    "DaskDataLost",
     "DaskMeasure",
     "ScaleExtraMissing",
     "close_clients",
     "dask_client",
+    "keeps_memberships",
     "measure_for",
     "record_outputs",
 ]
 
 _CLIENTS: dict[str | None, Any] = {}
 _LOCK = threading.Lock()
+# Attempts of one window's Dask computation when the cluster loses its data (a worker died
+# holding the window's scattered event chunks, or a task killed its workers repeatedly).
+DASK_ATTEMPTS = 3
+log = logging.getLogger("rolewatch.scale")
 
 
 class ScaleExtraMissing(RuntimeError):
@@ -78,27 +86,69 @@ def close_clients() -> None:
         _CLIENTS.clear()
 
 
+class DaskDataLost(RuntimeError):
+    """The cluster lost a window's data on every attempt; the close raises before writing
+    anything and the next scheduler tick closes the window again."""
+
+
+def _lost_data_errors() -> tuple[type[BaseException], ...]:
+    from distributed.client import FutureCancelledError
+    from distributed.scheduler import KilledWorker
+
+    return (FutureCancelledError, KilledWorker)
+
+
 class DaskMeasure:
     """Computes a window's feature table and memberships on a Dask cluster
-    (:func:`rolewatch.pipeline.compute.measure_locally` is the in-process equivalent)."""
+    (:func:`rolewatch.pipeline.compute.measure_locally` is the in-process equivalent).
 
-    def __init__(self, client: Any, partitions: int) -> None:
+    A worker that dies mid-computation loses its intermediate tables (Dask recomputes them
+    on the other workers) and the window's event chunks this process scattered to it (which
+    Dask cannot recompute: the computation's futures are cancelled). The computation is then
+    started again from the events, up to ``attempts`` times in all.
+    """
+
+    def __init__(self, client: Any, partitions: int, attempts: int = DASK_ATTEMPTS) -> None:
         self.client = client
         self.partitions = partitions
+        self.attempts = attempts
 
     def __call__(
+        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
+    ) -> tuple[FeatureTable, Memberships]:
+        if snapshot.n_nodes == 0:
+            return measure_locally(model, snapshot, events)
+        lost = _lost_data_errors()
+        for attempt in range(1, self.attempts + 1):
+            try:
+                return self._measure_once(model, snapshot, events)
+            except lost as error:
+                log.warning(
+                    "the Dask cluster lost the window's data; computing it again",
+                    extra={"fields": {"attempt": attempt, "error": repr(error)[:300]}},
+                )
+        raise DaskDataLost(
+            f"the Dask cluster lost the window's data in {self.attempts} attempts (workers "
+            "dying or restarted over their memory limit); nothing was written, and the next "
+            "tick closes the window again"
+        )
+
+    def _measure_once(
         self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
     ) -> tuple[FeatureTable, Memberships]:
         from rolewatch.scale.features import feature_table, measured_table, split_measured
         from rolewatch.scale.graph import build_graph, scatter_events
 
-        if snapshot.n_nodes == 0:
-            return measure_locally(model, snapshot, events)
         chunks = scatter_events(
             self.client, events.actor, events.target, events.weight, self.partitions
         )
-        table = feature_table(build_graph(chunks), model.recipe)
-        measured = measured_table(table, model.recipe, model.basis).gather()
+        try:
+            table = feature_table(build_graph(chunks), model.recipe)
+            measured = measured_table(table, model.recipe, model.basis).gather()
+        finally:
+            # Free the chunks on the workers now: after a failure, the error's traceback
+            # would keep their futures (and the workers' copies) alive until collected.
+            self.client.cancel(list(chunks.futures))
         return split_measured(measured, snapshot.nodes, model.recipe, model.basis)
 
 
@@ -106,13 +156,22 @@ def measure_for(settings: Settings) -> Measure:
     """How the close computes features and memberships, from the ``compute`` setting."""
     if settings.compute == "local":
         return measure_locally
-    return DaskMeasure(dask_client(settings.dask_scheduler), settings.dask_partitions)
+    return DaskMeasure(
+        dask_client(settings.dask_scheduler), settings.dask_partitions, attempts=DASK_ATTEMPTS
+    )
+
+
+def keeps_memberships(settings: Settings, accounts: int) -> bool:
+    """Whether a window of ``accounts`` accounts keeps its memberships in the SQL store
+    (otherwise only ``output_archive`` holds them)."""
+    limit = settings.store_memberships_max_accounts
+    return not limit or accounts <= limit
 
 
 def record_outputs(
     settings: Settings, end_us: int, model: FrozenModel, result: WindowResult
 ) -> None:
-    """Write the closed window's memberships and scores to ``output_archive`` (if set)."""
+    """Write a measured window's memberships and scores to ``output_archive`` (if set)."""
     if not settings.output_archive:
         return
     from rolewatch.scale.outputs import WindowOutputs, write_window_outputs
@@ -130,5 +189,10 @@ def record_outputs(
             events_out=result.activity.events_out,
             events_in=result.activity.events_in,
             basis_version=model.basis.version,
+            counterparts=result.activity.counterparts,
+            new_counterparts=result.activity.new_counterparts,
+            error=result.error,
+            ties=result.ties,
+            community=result.community,
         ),
     )

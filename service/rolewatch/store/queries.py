@@ -51,10 +51,11 @@ def _could_be_stored(account: str) -> bool:
 def account_exists(engine: Engine, account: str) -> bool:
     """True when ``account`` was active in a closed window or has an event not yet closed.
 
-    Every account of a closed window has a membership row (primary key lookup); events after
-    the latest closed window are searched through the time index, so an unknown account
-    never costs a scan of the whole event table. (An account seen only in late events is
-    not found.)
+    Every account of a closed window has a membership row (primary key lookup), except in
+    windows kept only in the Parquet outputs (``rolewatch.scale.history.account_known``
+    looks there); events after the latest closed window are searched through the time
+    index, so an unknown account never costs a scan of the whole event table. (An account
+    seen only in late events is not found.)
     """
     if not _could_be_stored(account):
         return False
@@ -129,6 +130,26 @@ def account_history(
         }
         for row in rows
     ]
+
+
+def windows_without_memberships(
+    engine: Engine, from_us: int | None = None, to_us: int | None = None
+) -> list[dict[str, Any]]:
+    """Measured windows (oldest first) whose memberships the store does not hold: they went
+    only to the Parquet outputs (``store_memberships_max_accounts``). Each: id, start_us,
+    end_us; ``from_us``/``to_us`` as in :func:`account_history`."""
+    held = select(memberships.c.window_id).where(memberships.c.window_id == windows.c.id)
+    query = (
+        select(windows.c.id, windows.c.start_us, windows.c.end_us)
+        .where(windows.c.basis_version.is_not(None), ~held.exists())
+        .order_by(windows.c.end_us)
+    )
+    if from_us is not None:
+        query = query.where(windows.c.end_us > from_us)
+    if to_us is not None:
+        query = query.where(windows.c.start_us < to_us)
+    with engine.connect() as connection:
+        return [dict(row._mapping) for row in connection.execute(query)]
 
 
 # --- windows ---------------------------------------------------------------------------------
@@ -385,4 +406,5 @@ __all__ = [
     "open_windows",
     "rename_role",
     "role_names",
+    "windows_without_memberships",
 ]

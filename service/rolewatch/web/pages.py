@@ -27,6 +27,7 @@ from rolewatch.api.integers import stored_integer
 from rolewatch.config import Settings
 from rolewatch.engine.naming import format_value
 from rolewatch.identifiers import visible
+from rolewatch.scale import history as archived_history
 from rolewatch.store import queries, summaries
 from rolewatch.store.keys import ApiKey, verify_key
 from rolewatch.web import charts, present, session
@@ -359,9 +360,11 @@ def _table_rows(
     ]
 
 
-def _account_context(engine: Engine, account: str, window: str | None) -> dict[str, Any]:
+def _account_context(
+    engine: Engine, settings: Settings, account: str, window: str | None
+) -> dict[str, Any]:
     """Everything the account page shows for a known ``account``."""
-    history_list = queries.account_history(engine, account)
+    history_list = archived_history.account_history(engine, settings, account)
     history = {entry["window_id"]: entry for entry in history_list}
     windows = summaries.windows_oldest_first(engine)
     alerts = summaries.alerts_by_window(engine, account)
@@ -406,11 +409,11 @@ def account_page(
     case: str | None = None,
     done: str = "",
 ) -> HTMLResponse:
-    if not queries.account_exists(store, account):
+    if not archived_history.account_known(store, settings, account):
         return _page(
             request, "missing.html", key, {"title": "Account not found", "account": account}, 404
         )
-    context = _account_context(store, account, window)
+    context = _account_context(store, settings, account, window)
     # Review: the account's case with its notes and review forms (web/review_pages.py).
     from rolewatch.web.review_pages import account_case_context
 

@@ -8,21 +8,24 @@ from fastapi import APIRouter, HTTPException, Query, status
 from sqlalchemy.engine import Engine
 from starlette.concurrency import run_in_threadpool
 
-from rolewatch.api.deps import ReadKey, StoreDep
+from rolewatch.api.deps import ReadKey, SettingsDep, StoreDep
 from rolewatch.api.models import AccountHistory, Problem
 from rolewatch.api.timeparams import time_range
 from rolewatch.clock import to_rfc3339
+from rolewatch.config import Settings
+from rolewatch.scale import history as archived_history
 from rolewatch.store import queries
 
 router = APIRouter(tags=["accounts"])
 
 
 def history_document(
-    engine: Engine, account: str, from_us: int | None, to_us: int | None
+    engine: Engine, settings: Settings, account: str, from_us: int | None, to_us: int | None
 ) -> dict[str, Any] | None:
-    """The API form of an account's history, or None when the account is unknown."""
-    entries = queries.account_history(engine, account, from_us, to_us)
-    if not entries and not queries.account_exists(engine, account):
+    """The API form of an account's history (windows whose memberships are kept only in the
+    Parquet outputs included), or None when the account is unknown."""
+    entries = archived_history.account_history(engine, settings, account, from_us, to_us)
+    if not entries and not archived_history.account_known(engine, settings, account):
         return None
     names = queries.role_names(engine, (e["basis_version"] for e in entries))
     return {
@@ -73,6 +76,7 @@ def history_document(
 )
 async def account_roles(
     store: StoreDep,
+    settings: SettingsDep,
     _key: ReadKey,
     account: str,
     from_: str | None = Query(None, alias="from", description="RFC 3339; windows ending after it."),
@@ -80,7 +84,7 @@ async def account_roles(
 ) -> dict[str, Any]:
     """One entry per closed window in which the account was active, oldest first."""
     start, end = time_range(from_, to)
-    document = await run_in_threadpool(history_document, store, account, start, end)
+    document = await run_in_threadpool(history_document, store, settings, account, start, end)
     if document is None:
         raise HTTPException(
             status.HTTP_404_NOT_FOUND,

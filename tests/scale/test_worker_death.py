@@ -1,0 +1,143 @@
+"""A Dask worker killed while a window closes with ``compute = "dask"``: the lost event
+chunks make Dask cancel the computation, the close computes the window again on the
+remaining and restarted workers, and the window is closed exactly once with what the local
+engine writes. When every attempt loses its data, the close fails before writing anything
+and the next close of the window succeeds.
+
+The events are the fictional marketplace sample in fixtures/sample (invented data), cut
+after its fifth week so that one window is measured after the four training windows.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import signal
+import threading
+import time
+
+import pytest
+
+from rolewatch.pipeline.closer import close_due_windows
+from rolewatch.pipeline.windows import WindowGeometry
+from rolewatch.scale import dispatch
+from rolewatch.store.db import open_store
+from rolewatch.store.events import ingest, parse_time_us
+
+from .conftest import NOW, sample_events, sample_settings, written
+from .helpers import assert_same_closes
+
+
+def _first_five_weeks(settings) -> list[dict]:
+    events = sample_events()
+    geometry = WindowGeometry.from_settings(settings)
+    first = min(parse_time_us(event["time"]) for event in events)
+    last_end = geometry.end_after(first) + 4 * geometry.period_us
+    return [event for event in events if parse_time_us(event["time"]) < last_end]
+
+
+def _holder_of_scattered_data(dask_scheduler) -> str | None:
+    """A worker holding data scattered by a client (keys ``DataFrame-<token>``, Dask's
+    naming for scattered pandas frames), or None while there is none."""
+    for task in dask_scheduler.tasks.values():
+        if str(task.key).startswith("DataFrame-") and task.who_has:
+            return next(iter(task.who_has)).address
+    return None
+
+
+class _KillOnScatter(threading.Thread):
+    """Kills (SIGKILL) the first worker seen holding a window's scattered events."""
+
+    def __init__(self, client) -> None:
+        super().__init__(daemon=True)
+        self.client = client
+        self.killed: list[int] = []
+        self.stop = threading.Event()
+
+    def run(self) -> None:
+        while not self.stop.is_set():
+            address = self.client.run_on_scheduler(_holder_of_scattered_data)
+            if address is not None:
+                pid = self.client.run(os.getpid)[address]
+                os.kill(pid, signal.SIGKILL)
+                self.killed.append(pid)
+                return
+            time.sleep(0.02)
+
+
+@pytest.fixture
+def cluster():
+    """A local cluster of two worker processes (each under a nanny that restarts it)."""
+    from distributed import Client, LocalCluster
+
+    cluster = LocalCluster(
+        n_workers=2,
+        threads_per_worker=1,
+        processes=True,
+        dashboard_address=None,
+        memory_limit="1GiB",
+    )
+    client = Client(cluster)
+    yield client
+    from rolewatch.scale.dispatch import close_clients
+
+    close_clients()
+    client.close()
+    cluster.close()
+
+
+def _close_killing_a_worker(engine, settings, client):
+    """Close the due windows while a worker holding the window's events is killed."""
+    client.wait_for_workers(2, timeout=60)
+    deadline = time.monotonic() + 30
+    # The chunks of an earlier failed attempt are released asynchronously: wait, so the
+    # worker killed is one holding this close's events.
+    while client.run_on_scheduler(_holder_of_scattered_data) is not None:
+        assert time.monotonic() < deadline, "an earlier close's events stayed on the cluster"
+        time.sleep(0.05)
+    killer = _KillOnScatter(client)
+    killer.start()
+    try:
+        return close_due_windows(engine, settings, now_us=NOW, drain=True)
+    finally:
+        killer.stop.set()
+        killer.join()
+        assert killer.killed, "a worker holding the window's events was killed"
+
+
+def test_a_worker_killed_mid_close_leaves_the_window_closed_once(
+    cluster, tmp_path, caplog, monkeypatch
+):
+    results = {}
+    for compute in ("local", "dask"):
+        settings = sample_settings(
+            tmp_path / f"{compute}.db",
+            compute=compute,
+            dask_scheduler=cluster.scheduler.address,
+            dask_partitions=4,
+        )
+        engine = open_store(settings)
+        ingest(engine, settings, _first_five_weeks(settings), NOW)
+        if compute == "local":
+            close_due_windows(engine, settings, now_us=NOW, drain=True)
+        else:
+            # One attempt only: the lost chunks fail the close, before anything is written.
+            monkeypatch.setattr(dispatch, "DASK_ATTEMPTS", 1)
+            with pytest.raises(dispatch.DaskDataLost, match="next tick"):
+                _close_killing_a_worker(engine, settings, cluster)
+            assert len(written(engine)["windows"]) == 4  # the training windows only
+            monkeypatch.setattr(dispatch, "DASK_ATTEMPTS", 3)
+            caplog.clear()
+            with caplog.at_level(logging.WARNING, logger="rolewatch.scale"):
+                closed = _close_killing_a_worker(engine, settings, cluster)
+            assert [summary.training for summary in closed] == [False]
+        results[compute] = written(engine)
+        engine.dispose()
+    retried = [r for r in caplog.records if "lost the window's data" in r.getMessage()]
+    assert retried, "the close computed the window again"
+    # exactly once: one window record per window, one membership per account and window
+    ends = [row[0] for row in results["dask"]["windows"]]
+    assert len(ends) == len(set(ends)) == 5
+    keys = [(row[0], row[1]) for row in results["dask"]["memberships"]]
+    assert len(keys) == len(set(keys))
+    assert_same_closes(results["dask"], results["local"])
