@@ -11,6 +11,8 @@ from __future__ import annotations
 import threading
 from typing import Any
 
+import numpy as np
+
 from rolewatch.config import Settings
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.features.recipe import FeatureTable
@@ -94,12 +96,24 @@ class DaskMeasure:
 
         if snapshot.n_nodes == 0:
             return measure_locally(model, snapshot, events)
+        actor, target = account_codes(snapshot, events)
         chunks = scatter_events(
-            self.client, events.actor, events.target, events.weight, self.partitions
+            self.client, actor, target, events.weight, snapshot.n_nodes, self.partitions
         )
-        table = feature_table(build_graph(chunks), model.recipe)
-        measured = measured_table(table, model.recipe, model.basis).gather()
-        return split_measured(measured, snapshot.nodes, model.recipe, model.basis)
+        measured = measured_table(
+            feature_table(build_graph(chunks), model.recipe), model.recipe, model.basis
+        )
+        return split_measured(measured.gather(), snapshot.nodes, model.recipe)
+
+
+def account_codes(snapshot: Snapshot, events: WindowEvents) -> tuple[np.ndarray, np.ndarray]:
+    """Each event's actor and target as rows of ``snapshot`` (the ids interned once by
+    the load when it did, else looked up)."""
+    accounts, actor, target = events.accounts, events.actor_index, events.target_index
+    if accounts is not None and actor is not None and target is not None:
+        if accounts is snapshot.nodes or np.array_equal(accounts, snapshot.nodes):
+            return np.asarray(actor), np.asarray(target)
+    return snapshot.index_of(events.actor), snapshot.index_of(events.target)
 
 
 def measure_for(settings: Settings) -> Measure:
