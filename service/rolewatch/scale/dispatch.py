@@ -91,7 +91,7 @@ class DaskMeasure:
     def __call__(
         self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
     ) -> tuple[FeatureTable, Memberships]:
-        from rolewatch.scale.features import feature_table, measured_table, split_measured
+        from rolewatch.scale.features import measure_window
         from rolewatch.scale.graph import build_graph, scatter_events
 
         if snapshot.n_nodes == 0:
@@ -100,10 +100,15 @@ class DaskMeasure:
         chunks = scatter_events(
             self.client, actor, target, events.weight, snapshot.n_nodes, self.partitions
         )
-        measured = measured_table(
-            feature_table(build_graph(chunks), model.recipe), model.recipe, model.basis
+        measured = measure_window(build_graph(chunks), model.recipe, model.basis)
+        table = FeatureTable(
+            nodes=snapshot.nodes,
+            names=model.recipe.names,
+            raw=measured.raw,
+            binned=measured.binned,
+            recipe_version=model.recipe.version,
         )
-        return split_measured(measured.gather(), snapshot.nodes, model.recipe)
+        return table, measured.members
 
 
 def account_codes(snapshot: Snapshot, events: WindowEvents) -> tuple[np.ndarray, np.ndarray]:

@@ -6,15 +6,21 @@ ReFeX (Henderson et al., KDD 2011) are, per round, one fetch of the round's pare
 from the partitions owning each block's neighbours and one sparse product per (direction,
 parent) on the block's adjacency rows (the distributed form of
 :meth:`rolewatch.engine.features.graph.SnapshotGraph.aggregate`: a sum over the neighbours,
-the mean that sum times ``1 / degree``). Binning with the frozen edges and the memberships
-against the frozen basis run per partition with the engine's own functions
-(:func:`rolewatch.engine.features.binning.apply_bins`,
-:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results come back.
+the mean that sum times ``1 / degree``), the parents fetched a few columns at a time.
+
+Worker memory stays bounded by what later rounds need: when a round ends, each of its
+recipe features is binned with the frozen edges on the worker
+(:func:`rolewatch.engine.features.binning.apply_bins`, one byte a value), its float64 values
+are sent to the closing process (which fills the window's raw table, the evidence's
+values), and the worker keeps float64 values only for the parents of later rounds and the
+degrees. The memberships against the frozen basis run per partition from the bins
+(:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results come back.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -27,14 +33,26 @@ from rolewatch.scale.graph import WindowGraph, fetch_columns, with_egonet
 from rolewatch.scale.graph_steps import Block, add_columns
 from rolewatch.scale.partitions import Partitioned
 
-__all__ = ["feature_table", "measured_table", "split_measured"]
+__all__ = ["MeasuredWindow", "measure_window"]
 
 _DEGREE = {"in": "in_degree", "out": "out_degree", "all": "degree"}
+PARENT_GROUP = 16  # parent columns fetched at once (bounds the fetched rows' memory)
 Layer = Sequence[tuple[str, str, str, str]]  # name, kind (sum / mean), direction, parent
 
 
-def _add_round(block: Block, layer: Layer, parents: Sequence[str], *pieces: np.ndarray) -> Block:
-    """One round's aggregates from the parents' values at the block's neighbours."""
+@dataclass(frozen=True)
+class MeasuredWindow:
+    """A window measured on the cluster, in the order of its accounts."""
+
+    raw: np.ndarray
+    binned: np.ndarray
+    members: Memberships
+
+
+def _add_aggregates(
+    block: Block, layer: Layer, parents: Sequence[str], *pieces: np.ndarray
+) -> Block:
+    """Aggregates of ``parents`` from their values at the block's neighbours (fetched)."""
     fetched = np.asfortranarray(np.concatenate(pieces, axis=0))
     position = {name: k for k, name in enumerate(parents)}
     sums: dict[tuple[str, str], np.ndarray] = {}
@@ -52,72 +70,119 @@ def _add_round(block: Block, layer: Layer, parents: Sequence[str], *pieces: np.n
     return add_columns(block, columns)
 
 
-def feature_table(graph: WindowGraph, recipe: FeatureRecipe) -> Partitioned:
-    """The blocks with the raw values of every recipe feature (and the local counts)."""
-    uses_egonet = any(d.parent is None and d.op in EGONET_FEATURES for d in recipe.features)
-    blocks = with_egonet(graph) if uses_egonet else graph.blocks
-    for rnd in sorted({d.round for d in recipe.features if d.parent is not None}):
+def _settle(
+    block: Block,
+    finished: Sequence[str],
+    keep: frozenset[str],
+    edges: dict[str, np.ndarray],
+    dtype: Any,
+) -> tuple[Block, dict[str, np.ndarray]]:
+    """Bin the finished recipe features, hand their float64 values back, and keep float64
+    values only for the columns in ``keep``."""
+    bins = dict(block.bins)
+    raw = {}
+    for name in finished:
+        binned = np.empty(block.rows, dtype=dtype)
+        apply_bins(block.columns[name], edges[name], out=binned)
+        bins[name] = binned
+        raw[name] = block.columns[name]
+    columns = {name: values for name, values in block.columns.items() if name in keep}
+    return replace(block, columns=columns, bins=bins), raw
+
+
+class _Rounds:
+    """The recipe's rounds on the cluster, and the raw table they fill in this process."""
+
+    def __init__(self, graph: WindowGraph, recipe: FeatureRecipe) -> None:
+        self.graph, self.recipe = graph, recipe
+        self.client = graph.blocks.client
+        self.rounds = sorted({d.round for d in recipe.features})
+        self.column = {name: j for j, name in enumerate(recipe.names)}
+        self.raw = np.zeros((graph.n, len(recipe.names)), order="F")
+        self.edges = dict(zip(recipe.names, recipe.feature_edges, strict=True))
+        n_bins = 1 + max((e.size for e in recipe.feature_edges), default=0)
+        self.dtype = bin_dtype(n_bins)
+        self.pending: list[Any] = []
+
+    def keep_after(self, rnd: int) -> frozenset[str]:
+        later = {str(d.parent) for d in self.recipe.features if d.round > rnd}
+        return frozenset(later | set(_DEGREE.values()))
+
+    def settle(self, blocks: Partitioned, rnd: int) -> Partitioned:
+        finished = [d.name for d in self.recipe.features if d.round == rnd]
+        keep = self.keep_after(rnd)
+        settled = blocks.map(_settle, finished, keep, self.edges, self.dtype).pieces(2)
+        self.collect()
+        self.pending = [piece[1] for piece in settled]
+        return Partitioned(self.client, tuple(piece[0] for piece in settled), blocks.bounds)
+
+    def collect(self) -> None:
+        """Copy the finished values the workers sent into the raw table."""
+        bounds = self.graph.blocks.bounds
+        for j, values in enumerate(self.client.gather(self.pending)):
+            for name, column in values.items():
+                self.raw[bounds[j] : bounds[j + 1], self.column[name]] = column
+        self.pending = []
+
+    def aggregate(self, blocks: Partitioned, rnd: int) -> Partitioned:
         layer = [
-            (d.name, *d.op.split("_"), str(d.parent)) for d in recipe.features if d.round == rnd
+            (d.name, *d.op.split("_"), str(d.parent))
+            for d in self.recipe.features
+            if d.round == rnd
         ]
         parents = sorted({parent for *_, parent in layer})
-        pieces = fetch_columns(graph, blocks, parents)
-        client = blocks.client
-        blocks = Partitioned(
-            client,
-            tuple(
-                client.submit(_add_round, block, layer, parents, *pieces[i], pure=False)
-                for i, block in enumerate(blocks.futures)
-            ),
-            blocks.bounds,
-        )
-    return blocks
+        for g in range(0, len(parents), PARENT_GROUP):
+            group = parents[g : g + PARENT_GROUP]
+            part = [entry for entry in layer if entry[3] in group]
+            pieces = fetch_columns(self.graph, blocks, group)
+            blocks = Partitioned(
+                self.client,
+                tuple(
+                    self.client.submit(_add_aggregates, block, part, group, *pieces[i], pure=False)
+                    for i, block in enumerate(blocks.futures)
+                ),
+                blocks.bounds,
+            )
+        return blocks
 
 
-def _measure_block(block: Block, recipe: FeatureRecipe, basis: RoleBasis) -> tuple:
-    """Raw features, frozen bins and memberships of one block, by the engine's own
-    functions: ``(raw, binned, mixture, loadings, error)``."""
-    raw = np.empty((block.rows, len(recipe.names)), order="F")
-    for j, name in enumerate(recipe.names):
-        raw[:, j] = block.columns[name]
-    n_bins = 1 + max((e.size for e in recipe.feature_edges), default=0)
-    binned = np.empty(raw.shape, dtype=bin_dtype(n_bins), order="F")
-    for j, edges in enumerate(recipe.feature_edges):
-        apply_bins(raw[:, j], edges, out=binned[:, j])
+def _measure_block(block: Block, names: Sequence[str], version: str, basis: RoleBasis) -> tuple:
+    """Frozen bins and memberships of one block, by the engine's own function:
+    ``(binned, mixture, loadings, error)``."""
+    first = block.bins[names[0]] if names else np.zeros(block.rows, dtype=np.uint8)
+    binned = np.empty((block.rows, len(names)), dtype=first.dtype, order="F")
+    for j, name in enumerate(names):
+        binned[:, j] = block.bins[name]
     table = FeatureTable(
         nodes=np.arange(block.lo, block.lo + block.rows),  # codes: the basis reads no id
-        names=recipe.names,
-        raw=raw,
+        names=tuple(names),
+        raw=np.empty((block.rows, 0)),
         binned=binned,
-        recipe_version=recipe.version,
+        recipe_version=version,
     )
     members = basis.memberships(table)
-    return raw, binned, members.mixture, members.loadings, members.error
+    return binned, members.mixture, members.loadings, members.error
 
 
-def measured_table(features: Partitioned, recipe: FeatureRecipe, basis: RoleBasis) -> Partitioned:
-    """Per partition: raw features, frozen bins, mixtures, loadings and fit error."""
-    return features.map(_measure_block, recipe, basis)
-
-
-def split_measured(
-    parts: Sequence[tuple[Any, ...]], nodes: np.ndarray, recipe: FeatureRecipe
-) -> tuple[FeatureTable, Memberships]:
-    """Gathered :func:`measured_table` parts (in partition order, so in the order of
-    ``nodes``) as the engine's types."""
-    raw, binned, mixture, loadings, error = (
-        np.concatenate([part[k] for part in parts], axis=0) for k in range(5)
+def measure_window(graph: WindowGraph, recipe: FeatureRecipe, basis: RoleBasis) -> MeasuredWindow:
+    """The frozen recipe's raw values and bins, and the memberships, of every account."""
+    rounds = _Rounds(graph, recipe)
+    uses_egonet = any(d.parent is None and d.op in EGONET_FEATURES for d in recipe.features)
+    blocks = with_egonet(graph) if uses_egonet else graph.blocks
+    for rnd in rounds.rounds:
+        if rnd > 0:
+            blocks = rounds.aggregate(blocks, rnd)
+        blocks = rounds.settle(blocks, rnd)
+    parts = blocks.map(_measure_block, list(recipe.names), recipe.version, basis)
+    rounds.collect()
+    del blocks
+    binned, mixture, loadings, error = (
+        np.concatenate([part[k] for part in parts.gather()], axis=0) for k in range(4)
     )
-    if raw.shape[0] != len(nodes):
+    if binned.shape[0] != graph.n:
         raise RuntimeError(
-            f"the Dask close returned {raw.shape[0]} rows for {len(nodes)} accounts; the "
+            f"the Dask close returned {binned.shape[0]} rows for {graph.n} accounts; the "
             "close is retried on the next tick"
         )
-    table = FeatureTable(
-        nodes=nodes,
-        names=recipe.names,
-        raw=np.asfortranarray(raw),
-        binned=np.asfortranarray(binned),
-        recipe_version=recipe.version,
-    )
-    return table, Memberships(loadings=loadings, mixture=mixture, error=error)
+    members = Memberships(loadings=loadings, mixture=mixture, error=error)
+    return MeasuredWindow(raw=rounds.raw, binned=np.asfortranarray(binned), members=members)

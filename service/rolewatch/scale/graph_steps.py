@@ -19,7 +19,7 @@ read from the rows ``b``'s and ``c``'s owners send.
 from __future__ import annotations
 
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import scipy.sparse as sp
@@ -53,7 +53,8 @@ class Block:
     ``need`` are the sorted codes of their neighbours; ``out``, ``inn`` and ``all`` are
     0/1 float64 CSR rows (``rows x len(need)``) listing out-, in- and all neighbours by
     position in ``need``; ``mutual`` marks the entries of ``all`` that run both ways;
-    ``columns`` the feature values of the block's rows by name.
+    ``columns`` the float64 values of the block's rows still needed by name, ``bins`` the
+    frozen bins of the recipe features already finished.
     """
 
     lo: int
@@ -64,6 +65,7 @@ class Block:
     all: sp.csr_matrix
     mutual: np.ndarray
     columns: dict[str, np.ndarray]
+    bins: dict[str, np.ndarray] = field(default_factory=dict)
 
     def adjacency_of(self, direction: str) -> sp.csr_matrix:
         return {"in": self.inn, "out": self.out, "all": self.all}[direction]
