@@ -2,11 +2,12 @@
 a Dask cluster in partitions by account code range.
 
 Base and egonet features come from :mod:`rolewatch.scale.graph`; the recursive aggregates of
-ReFeX (Henderson et al., KDD 2011) are, per round, one fetch of the round's parent columns
-from the partitions owning each block's neighbours and one sparse product per (direction,
-parent) on the block's adjacency rows (the distributed form of
+ReFeX (Henderson et al., KDD 2011) are, per round, fetches of the round's parent columns
+from the partitions owning each block's neighbours (in groups of columns small enough for
+:data:`FETCH_BYTES`) and one sparse product per (direction, parent) on the block's adjacency
+rows (the distributed form of
 :meth:`rolewatch.engine.features.graph.SnapshotGraph.aggregate`: a sum over the neighbours,
-the mean that sum times ``1 / degree``), the parents fetched a few columns at a time.
+the mean that sum times ``1 / degree``).
 
 Worker memory stays bounded by what later rounds need: when a round ends, each of its
 recipe features is binned with the frozen edges on the worker
@@ -36,7 +37,7 @@ from rolewatch.scale.partitions import Partitioned
 __all__ = ["MeasuredWindow", "measure_window"]
 
 _DEGREE = {"in": "in_degree", "out": "out_degree", "all": "degree"}
-PARENT_GROUP = 16  # parent columns fetched at once (bounds the fetched rows' memory)
+FETCH_BYTES = 128 * 2**20  # parent values one partition fetches at once, at most
 Layer = Sequence[tuple[str, str, str, str]]  # name, kind (sum / mean), direction, parent
 
 
@@ -90,6 +91,12 @@ def _settle(
     return replace(block, columns=columns, bins=bins), raw
 
 
+def parent_group(n: int) -> int:
+    """Parent columns fetched at once: a partition's neighbours are at most the window's
+    ``n`` accounts, so a group of float64 columns stays within :data:`FETCH_BYTES`."""
+    return max(4, FETCH_BYTES // (8 * max(n, 1)))
+
+
 class _Rounds:
     """The recipe's rounds on the cluster, and the raw table they fill in this process."""
 
@@ -131,8 +138,9 @@ class _Rounds:
             if d.round == rnd
         ]
         parents = sorted({parent for *_, parent in layer})
-        for g in range(0, len(parents), PARENT_GROUP):
-            group = parents[g : g + PARENT_GROUP]
+        size = parent_group(self.graph.n)
+        for g in range(0, len(parents), size):
+            group = parents[g : g + size]
             part = [entry for entry in layer if entry[3] in group]
             pieces = fetch_columns(self.graph, blocks, group)
             blocks = Partitioned(
