@@ -1,171 +1,196 @@
 """The frozen recipe's features and the frozen basis's memberships of a window, computed on
-a Dask cluster in partitions by account.
+a Dask cluster in partitions by account code range.
 
 Base and egonet features come from :mod:`rolewatch.scale.graph`; the recursive aggregates of
-ReFeX (Henderson et al., KDD 2011) are, per round, one local join of the neighbour lists
-(partitioned by neighbour) with the previous round's columns, one shuffle of the
-contributions to their account and one sum (the distributed form of
+ReFeX (Henderson et al., KDD 2011) are, per round, fetches of the round's parent columns
+from the partitions owning each block's neighbours (in groups of columns small enough for
+:data:`FETCH_BYTES`) and one sparse product per (direction, parent) on the block's adjacency
+rows (the distributed form of
 :meth:`rolewatch.engine.features.graph.SnapshotGraph.aggregate`: a sum over the neighbours,
-the mean that sum times ``1 / degree``). Binning with the frozen edges and the memberships
-against the frozen basis run per partition with the engine's own functions
-(:func:`rolewatch.engine.features.binning.apply_bins`,
-:meth:`rolewatch.engine.basis.RoleBasis.memberships`).
+the mean that sum times ``1 / degree``).
+
+Worker memory stays bounded by what later rounds need: when a round ends, each of its
+recipe features is binned with the frozen edges on the worker
+(:func:`rolewatch.engine.features.binning.apply_bins`, one byte a value), its float64 values
+are sent to the closing process (which fills the window's raw table, the evidence's
+values), and the worker keeps float64 values only for the parents of later rounds and the
+degrees. The memberships against the frozen basis run per partition from the bins
+(:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results come back.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
-import pandas as pd
 
 from rolewatch.engine.basis import Memberships, RoleBasis
 from rolewatch.engine.features.binning import apply_bins, bin_dtype
 from rolewatch.engine.features.graph import EGONET_FEATURES
 from rolewatch.engine.features.recipe import FeatureRecipe, FeatureTable
-from rolewatch.scale.graph import WindowGraph, triangle_table
-from rolewatch.scale.graph_steps import egonet_columns, local_columns, sum_by_account
-from rolewatch.scale.partitions import Partitioned, shuffle
+from rolewatch.scale.graph import WindowGraph, fetch_columns, with_egonet
+from rolewatch.scale.graph_steps import Block, add_columns
+from rolewatch.scale.partitions import Partitioned
 
-__all__ = ["feature_table", "measured_table", "split_measured"]
+__all__ = ["MeasuredWindow", "measure_window"]
 
 _DEGREE = {"in": "in_degree", "out": "out_degree", "all": "degree"}
-_EGONET_SUMS = [("all", "degree"), ("all", "out_degree"), ("all", "in_degree")]
-Wanted = Sequence[tuple[str, str]]
+FETCH_BYTES = 128 * 2**20  # parent values one partition fetches at once, at most
+Layer = Sequence[tuple[str, str, str, str]]  # name, kind (sum / mean), direction, parent
 
 
-def _sum_name(direction: str, parent: str) -> str:
-    """Column of a neighbour sum while it is joined (no feature name looks like it)."""
-    return f"nbr_{direction}:{parent}"
+@dataclass(frozen=True)
+class MeasuredWindow:
+    """A window measured on the cluster, in the order of its accounts."""
+
+    raw: np.ndarray
+    binned: np.ndarray
+    members: Memberships
 
 
-def _neighbour_values(part: pd.DataFrame, table: pd.DataFrame, wanted: Wanted) -> pd.DataFrame:
-    """Each neighbour row's contribution to the wanted (direction, parent) sums, from the
-    parent columns of the neighbours this partition owns."""
-    parents = sorted({parent for _, parent in wanted})
-    joined = part.join(table[parents], on="other", how="inner")
-    columns = {"account": joined["account"].to_numpy()}
-    for direction, parent in wanted:
-        values = joined[parent].to_numpy(dtype=np.float64)
-        if direction != "all":
-            values = values * joined[direction].to_numpy()
-        columns[_sum_name(direction, parent)] = values
-    return pd.DataFrame(columns)
-
-
-def neighbour_sums(graph: WindowGraph, table: Partitioned, wanted: Wanted) -> Partitioned:
-    """``nbr_<direction>:<parent>``: every account's sum of ``parent`` over its in-, out- or
-    all neighbours, indexed by account."""
-    values = graph.by_other.map(_neighbour_values, table, list(wanted))
-    return shuffle(values, "account").map(sum_by_account)
-
-
-def _join_filled(part: pd.DataFrame, other: pd.DataFrame) -> pd.DataFrame:
-    """``part`` with ``other``'s columns (0 for an account ``other`` has no row for)."""
-    return part.join(other, how="left").fillna({name: 0.0 for name in other.columns})
-
-
-def _with_egonet(part: pd.DataFrame, triangles: pd.DataFrame, sums: pd.DataFrame) -> pd.DataFrame:
-    joined = _join_filled(_join_filled(part, triangles), sums)
-    if "triangles" not in joined:  # a partition whose accounts close no triangle
-        joined = joined.assign(triangles=0.0, opposite_mutual=0.0)
-    return pd.concat([part, egonet_columns(joined)], axis=1)
-
-
-def _base_table(graph: WindowGraph, recipe: FeatureRecipe) -> Partitioned:
-    """Local base features of every account, with the egonet ones when the recipe uses them."""
-    table = graph.local.map(local_columns)
-    if not any(d.parent is None and d.op in EGONET_FEATURES for d in recipe.features):
-        return table
-    triangles = triangle_table(graph)
-    sums = neighbour_sums(graph, table, _EGONET_SUMS)
-    return table.map(_with_egonet, triangles, sums)
-
-
-def _add_round(
-    part: pd.DataFrame, sums: pd.DataFrame, layer: Sequence[tuple[str, str, str, str]]
-) -> pd.DataFrame:
-    """One round's aggregates (name, kind, direction, parent) from the neighbour sums."""
-    joined = _join_filled(part[[]], sums)
+def _add_aggregates(
+    block: Block, layer: Layer, parents: Sequence[str], *pieces: np.ndarray
+) -> Block:
+    """Aggregates of ``parents`` from their values at the block's neighbours (fetched)."""
+    fetched = np.asfortranarray(np.concatenate(pieces, axis=0))
+    position = {name: k for k, name in enumerate(parents)}
+    sums: dict[tuple[str, str], np.ndarray] = {}
     columns = {}
     for name, kind, direction, parent in layer:
-        summed = joined[_sum_name(direction, parent)].to_numpy()
+        key = (direction, parent)
+        if key not in sums:
+            sums[key] = block.adjacency_of(direction) @ fetched[:, position[parent]]
+        summed = sums[key]
         if kind == "mean":
-            degree = part[_DEGREE[direction]].to_numpy()
+            degree = block.columns[_DEGREE[direction]]
             inverse = np.divide(1.0, degree, out=np.zeros_like(degree), where=degree > 0)
             summed = summed * inverse
         columns[name] = summed
-    return pd.concat([part, pd.DataFrame(columns, index=part.index)], axis=1)
+    return add_columns(block, columns)
 
 
-def feature_table(graph: WindowGraph, recipe: FeatureRecipe) -> Partitioned:
-    """Raw values of every recipe feature (and the local counts), one row per account."""
-    table = _base_table(graph, recipe)
-    for rnd in sorted({d.round for d in recipe.features if d.parent is not None}):
-        layer = [d for d in recipe.features if d.round == rnd]
-        parsed = [(d.name, *d.op.split("_"), str(d.parent)) for d in layer]
-        wanted = sorted({(direction, parent) for _, _, direction, parent in parsed})
-        table = table.map(_add_round, neighbour_sums(graph, table, wanted), parsed)
-    return table
+def _settle(
+    block: Block,
+    finished: Sequence[str],
+    keep: frozenset[str],
+    edges: dict[str, np.ndarray],
+    dtype: Any,
+) -> tuple[Block, dict[str, np.ndarray]]:
+    """Bin the finished recipe features, hand their float64 values back, and keep float64
+    values only for the columns in ``keep``."""
+    bins = dict(block.bins)
+    raw = {}
+    for name in finished:
+        binned = np.empty(block.rows, dtype=dtype)
+        apply_bins(block.columns[name], edges[name], out=binned)
+        bins[name] = binned
+        raw[name] = block.columns[name]
+    columns = {name: values for name, values in block.columns.items() if name in keep}
+    return replace(block, columns=columns, bins=bins), raw
 
 
-def _measure_part(part: pd.DataFrame, recipe: FeatureRecipe, basis: RoleBasis) -> pd.DataFrame:
-    """Frozen bins and memberships of one partition, by the engine's own functions."""
-    raw = np.asfortranarray(part[list(recipe.names)].to_numpy(dtype=np.float64))
-    n_bins = 1 + max((e.size for e in recipe.feature_edges), default=0)
-    binned = np.empty(raw.shape, dtype=bin_dtype(n_bins), order="F")
-    for j, edges in enumerate(recipe.feature_edges):
-        apply_bins(raw[:, j], edges, out=binned[:, j])
+def parent_group(n: int) -> int:
+    """Parent columns fetched at once: a partition's neighbours are at most the window's
+    ``n`` accounts, so a group of float64 columns stays within :data:`FETCH_BYTES`."""
+    return max(4, FETCH_BYTES // (8 * max(n, 1)))
+
+
+class _Rounds:
+    """The recipe's rounds on the cluster, and the raw table they fill in this process."""
+
+    def __init__(self, graph: WindowGraph, recipe: FeatureRecipe) -> None:
+        self.graph, self.recipe = graph, recipe
+        self.client = graph.blocks.client
+        self.rounds = sorted({d.round for d in recipe.features})
+        self.column = {name: j for j, name in enumerate(recipe.names)}
+        self.raw = np.zeros((graph.n, len(recipe.names)), order="F")
+        self.edges = dict(zip(recipe.names, recipe.feature_edges, strict=True))
+        n_bins = 1 + max((e.size for e in recipe.feature_edges), default=0)
+        self.dtype = bin_dtype(n_bins)
+        self.pending: list[Any] = []
+
+    def keep_after(self, rnd: int) -> frozenset[str]:
+        later = {str(d.parent) for d in self.recipe.features if d.round > rnd}
+        return frozenset(later | set(_DEGREE.values()))
+
+    def settle(self, blocks: Partitioned, rnd: int) -> Partitioned:
+        finished = [d.name for d in self.recipe.features if d.round == rnd]
+        keep = self.keep_after(rnd)
+        settled = blocks.map(_settle, finished, keep, self.edges, self.dtype).pieces(2)
+        self.collect()
+        self.pending = [piece[1] for piece in settled]
+        return Partitioned(self.client, tuple(piece[0] for piece in settled), blocks.bounds)
+
+    def collect(self) -> None:
+        """Copy the finished values the workers sent into the raw table."""
+        bounds = self.graph.blocks.bounds
+        for j, values in enumerate(self.client.gather(self.pending)):
+            for name, column in values.items():
+                self.raw[bounds[j] : bounds[j + 1], self.column[name]] = column
+        self.pending = []
+
+    def aggregate(self, blocks: Partitioned, rnd: int) -> Partitioned:
+        layer = [
+            (d.name, *d.op.split("_"), str(d.parent))
+            for d in self.recipe.features
+            if d.round == rnd
+        ]
+        parents = sorted({parent for *_, parent in layer})
+        size = parent_group(self.graph.n)
+        for g in range(0, len(parents), size):
+            group = parents[g : g + size]
+            part = [entry for entry in layer if entry[3] in group]
+            pieces = fetch_columns(self.graph, blocks, group)
+            blocks = Partitioned(
+                self.client,
+                tuple(
+                    self.client.submit(_add_aggregates, block, part, group, *pieces[i], pure=False)
+                    for i, block in enumerate(blocks.futures)
+                ),
+                blocks.bounds,
+            )
+        return blocks
+
+
+def _measure_block(block: Block, names: Sequence[str], version: str, basis: RoleBasis) -> tuple:
+    """Frozen bins and memberships of one block, by the engine's own function:
+    ``(binned, mixture, loadings, error)``."""
+    first = block.bins[names[0]] if names else np.zeros(block.rows, dtype=np.uint8)
+    binned = np.empty((block.rows, len(names)), dtype=first.dtype, order="F")
+    for j, name in enumerate(names):
+        binned[:, j] = block.bins[name]
     table = FeatureTable(
-        nodes=part.index.to_numpy(),
-        names=recipe.names,
-        raw=raw,
+        nodes=np.arange(block.lo, block.lo + block.rows),  # codes: the basis reads no id
+        names=tuple(names),
+        raw=np.empty((block.rows, 0)),
         binned=binned,
-        recipe_version=recipe.version,
+        recipe_version=version,
     )
     members = basis.memberships(table)
-    columns: dict[str, np.ndarray] = {}
-    for j, name in enumerate(recipe.names):
-        columns[name] = raw[:, j]
-        columns[f"bin:{name}"] = binned[:, j].astype(np.int64)
-    for r in range(basis.n_roles):
-        columns[f"mixture:{r}"] = members.mixture[:, r]
-        columns[f"loading:{r}"] = members.loadings[:, r]
-    columns["error"] = members.error
-    return pd.DataFrame(columns, index=part.index)
+    return binned, members.mixture, members.loadings, members.error
 
 
-def measured_table(features: Partitioned, recipe: FeatureRecipe, basis: RoleBasis) -> Partitioned:
-    """Raw features, frozen bins, mixtures, loadings and fit error per account."""
-    return features.map(_measure_part, recipe, basis)
-
-
-def split_measured(
-    frame: pd.DataFrame, nodes: np.ndarray, recipe: FeatureRecipe, basis: RoleBasis
-) -> tuple[FeatureTable, Memberships]:
-    """A gathered :func:`measured_table` in the order of ``nodes``, as the engine's types."""
-    lost = ~pd.Index(nodes).isin(frame.index)
-    if lost.any():
+def measure_window(graph: WindowGraph, recipe: FeatureRecipe, basis: RoleBasis) -> MeasuredWindow:
+    """The frozen recipe's raw values and bins, and the memberships, of every account."""
+    rounds = _Rounds(graph, recipe)
+    uses_egonet = any(d.parent is None and d.op in EGONET_FEATURES for d in recipe.features)
+    blocks = with_egonet(graph) if uses_egonet else graph.blocks
+    for rnd in rounds.rounds:
+        if rnd > 0:
+            blocks = rounds.aggregate(blocks, rnd)
+        blocks = rounds.settle(blocks, rnd)
+    parts = blocks.map(_measure_block, list(recipe.names), recipe.version, basis)
+    rounds.collect()
+    del blocks
+    binned, mixture, loadings, error = (
+        np.concatenate([part[k] for part in parts.gather()], axis=0) for k in range(4)
+    )
+    if binned.shape[0] != graph.n:
         raise RuntimeError(
-            f"the Dask close returned no row for account {nodes[lost][0]!r}; the close is "
-            "retried on the next tick"
+            f"the Dask close returned {binned.shape[0]} rows for {graph.n} accounts; the "
+            "close is retried on the next tick"
         )
-    frame = frame.reindex(pd.Index(nodes))
-    names = list(recipe.names)
-    n_bins = 1 + max((e.size for e in recipe.feature_edges), default=0)
-    k = basis.n_roles
-    table = FeatureTable(
-        nodes=nodes,
-        names=recipe.names,
-        raw=np.asfortranarray(frame[names].to_numpy(dtype=np.float64)),
-        binned=np.asfortranarray(
-            frame[[f"bin:{name}" for name in names]].to_numpy().astype(bin_dtype(n_bins))
-        ),
-        recipe_version=recipe.version,
-    )
-    members = Memberships(
-        loadings=frame[[f"loading:{r}" for r in range(k)]].to_numpy(dtype=np.float64),
-        mixture=frame[[f"mixture:{r}" for r in range(k)]].to_numpy(dtype=np.float64),
-        error=frame["error"].to_numpy(dtype=np.float64),
-    )
-    return table, members
+    members = Memberships(loadings=loadings, mixture=mixture, error=error)
+    return MeasuredWindow(raw=rounds.raw, binned=np.asfortranarray(binned), members=members)

@@ -1,74 +1,171 @@
-"""A window's graph on a Dask cluster, partitioned by account: edges, undirected pairs,
-neighbour lists, local counts and triangles (the steps are in
-:mod:`rolewatch.scale.graph_steps`; the shuffles in :mod:`rolewatch.scale.partitions`).
+"""A window's graph on a Dask cluster, partitioned by account code ranges: each partition's
+adjacency rows, local counts, neighbour sums and triangles (the steps are in
+:mod:`rolewatch.scale.graph_steps`; the row exchange in :mod:`rolewatch.scale.partitions`).
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import pandas as pd
 
 from rolewatch.scale import graph_steps as steps
-from rolewatch.scale.partitions import Partitioned, shuffle
+from rolewatch.scale.partitions import Partitioned, fetch, range_bounds
 
-__all__ = ["WindowGraph", "build_graph", "scatter_events", "triangle_table"]
+__all__ = [
+    "WindowGraph",
+    "build_graph",
+    "fetch_columns",
+    "scatter_events",
+    "triangle_table",
+    "with_egonet",
+]
+
+_DEGREES = ("degree", "out_degree", "in_degree")
 
 
 @dataclass(frozen=True)
 class WindowGraph:
-    """The window's graph, every table partitioned by the account it belongs to.
+    """The window's blocks (:class:`~rolewatch.scale.graph_steps.Block`, one per
+    partition), ``n`` accounts in all, and ``wanted[i][j]``: the rows partition ``i``
+    needs from partition ``j`` (futures)."""
 
-    ``edges`` (``actor, target, events, weight``) by actor; ``pairs`` (``u, v, code``,
-    ``u < v``, code 1: ``u -> v`` only, 2: ``v -> u`` only, 3: both) by ``u``;
-    ``neighbours`` (``account, other, out, in``) by account and ``by_other`` the same rows
-    by ``other`` (for joining a neighbour's columns); ``local`` the
-    :data:`~rolewatch.scale.graph_steps.LOCAL` counts indexed by account.
-    """
-
-    edges: Partitioned
-    pairs: Partitioned
-    neighbours: Partitioned
-    by_other: Partitioned
-    local: Partitioned
+    blocks: Partitioned
+    n: int
+    wanted: list[list[Any]]
 
 
 def scatter_events(
-    client: Any, actor: np.ndarray, target: np.ndarray, weight: np.ndarray, partitions: int
-) -> Partitioned:
-    """A window's events sent to the workers in ``partitions`` chunks of rows."""
-    bounds = np.linspace(0, len(actor), partitions + 1).astype(np.int64)
+    client: Any,
+    actor: np.ndarray,
+    target: np.ndarray,
+    weight: np.ndarray,
+    n: int,
+    partitions: int,
+) -> tuple[Partitioned, int]:
+    """A window's events (account codes ``0 <= code < n``) sent to the workers in
+    ``partitions`` chunks, with the code bounds of the partitions."""
+    p = max(1, min(partitions, n))
+    cuts = np.linspace(0, len(actor), p + 1).astype(np.int64)
     chunks = [
-        pd.DataFrame(
-            {
-                "actor": np.asarray(actor[lo:hi], dtype=object),
-                "target": np.asarray(target[lo:hi], dtype=object),
-                "weight": np.asarray(weight[lo:hi], dtype=np.float64),
-            }
+        (
+            np.asarray(actor[lo:hi], dtype=steps.EVENT_DTYPE),
+            np.asarray(target[lo:hi], dtype=steps.EVENT_DTYPE),
+            np.asarray(weight[lo:hi], dtype=np.float64),
         )
-        for lo, hi in zip(bounds[:-1], bounds[1:], strict=True)
+        for lo, hi in zip(cuts[:-1], cuts[1:], strict=True)
     ]
-    return Partitioned(client, tuple(client.scatter(chunks)))
+    return Partitioned(client, tuple(client.scatter(chunks)), range_bounds(n, p)), n
 
 
-def build_graph(events: Partitioned) -> WindowGraph:
-    """Aggregate the window's events into :class:`WindowGraph`."""
-    edges = shuffle(events, "actor").map(steps.aggregate_edges)
-    pairs = shuffle(edges.map(steps.oriented), "u").map(steps.aggregate_pairs)
-    neighbours = shuffle(pairs.map(steps.both_ends), "account")
-    received = shuffle(edges, "target")
-    local = neighbours.map(steps.local_table, edges, received)
-    return WindowGraph(edges, pairs, neighbours, shuffle(neighbours, "other"), local)
+def build_graph(events: tuple[Partitioned, int]) -> WindowGraph:
+    """Route the scattered events to their accounts' partitions and build the blocks."""
+    chunks, n = events
+    client, bounds, p = chunks.client, chunks.bounds, chunks.partitions
+    routed = chunks.map(steps.route_events, bounds).pieces(p)
+    blocks = Partitioned(
+        client,
+        tuple(
+            client.submit(
+                steps.build_block,
+                int(bounds[j]),
+                int(bounds[j + 1]),
+                n,
+                *[routed[i][j] for i in range(p)],
+                pure=False,
+            )
+            for j in range(p)
+        ),
+        bounds,
+    )
+    wanted = blocks.map(steps.need_parts, bounds).pieces(p)
+    return WindowGraph(blocks, n, wanted)
+
+
+def fetch_columns(graph: WindowGraph, blocks: Partitioned, names: Sequence[str]) -> list:
+    """``[i][j]``: the values of ``names`` partition ``i``'s neighbours hold in
+    partition ``j``."""
+    return fetch(blocks, graph.wanted, steps.take_columns, list(names))
+
+
+def _counted(graph: WindowGraph) -> list[list[Any]]:
+    """``[i]``: partition ``i``'s triangle counts for every partition, then its neighbour
+    sums of the degrees."""
+    client, blocks, p = graph.blocks.client, graph.blocks, graph.blocks.partitions
+    degrees = fetch_columns(graph, blocks, _DEGREES)
+    oriented = Partitioned(
+        client,
+        tuple(
+            client.submit(steps.orient, blocks.futures[i], *degrees[i], pure=False)
+            for i in range(p)
+        ),
+        blocks.bounds,
+    )
+    arcs = fetch(oriented, graph.wanted, steps.take_upper)
+    counted = Partitioned(
+        client,
+        tuple(
+            client.submit(
+                steps.count_triangles,
+                oriented.futures[i],
+                graph.n,
+                blocks.bounds,
+                *arcs[i],
+                pure=False,
+            )
+            for i in range(p)
+        ),
+        blocks.bounds,
+    )
+    return counted.pieces(p + 1)
+
+
+def _triangles_of(block: steps.Block, *pieces: tuple) -> tuple[np.ndarray, np.ndarray]:
+    return steps.triangle_sums(block.rows, pieces)
 
 
 def triangle_table(graph: WindowGraph) -> Partitioned:
-    """Triangles through each account and those whose opposite edge is reciprocated,
-    indexed by account (an account in no triangle has no row)."""
-    with_u = graph.pairs.map(steps.with_degree, graph.local, "u")
-    with_both = shuffle(with_u, "v").map(steps.with_degree, graph.local, "v")
-    ranked = shuffle(with_both.map(steps.ranked), "lo")
-    wedges = shuffle(ranked.map(steps.wedges), "a")
-    triangles = wedges.map(steps.close_wedges, ranked)
-    return shuffle(triangles.map(steps.corners), "account").map(steps.sum_by_account)
+    """Per partition: triangles through each of its accounts and those whose opposite
+    edge is reciprocated (two arrays in code order)."""
+    counted, p = _counted(graph), graph.blocks.partitions
+    client = graph.blocks.client
+    return Partitioned(
+        client,
+        tuple(
+            client.submit(
+                _triangles_of,
+                graph.blocks.futures[j],
+                *[counted[i][j] for i in range(p)],
+                pure=False,
+            )
+            for j in range(p)
+        ),
+        graph.blocks.bounds,
+    )
+
+
+def _add_egonet(block: steps.Block, sums: tuple, *pieces: tuple) -> steps.Block:
+    tri, opposite = steps.triangle_sums(block.rows, pieces)
+    return steps.add_columns(block, steps.egonet_columns(block.columns, sums, tri, opposite))
+
+
+def with_egonet(graph: WindowGraph) -> Partitioned:
+    """The blocks with the ReFeX egonet features added."""
+    counted, p = _counted(graph), graph.blocks.partitions
+    client = graph.blocks.client
+    return Partitioned(
+        client,
+        tuple(
+            client.submit(
+                _add_egonet,
+                graph.blocks.futures[j],
+                counted[j][p],
+                *[counted[i][j] for i in range(p)],
+                pure=False,
+            )
+            for j in range(p)
+        ),
+        graph.blocks.bounds,
+    )

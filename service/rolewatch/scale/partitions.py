@@ -1,82 +1,90 @@
-"""Tables split into partitions by account on a Dask cluster, and the hash shuffle that
-moves rows to the partition owning their key.
+"""A window's accounts split into contiguous ranges of their integer codes, one range per
+partition, and the one exchange between partitions: rows fetched from the partitions that
+own them.
 
-A :class:`Partitioned` table is a list of Dask futures, one pandas DataFrame per partition;
-partition ``j`` holds the rows whose key account hashes to ``j``
-(:func:`pandas.util.hash_array`, the same in every process). Each step is a Dask task on
-one partition, so no process ever holds a whole table; a shuffle is one split task per
-input partition and one concatenation per output partition (``P²`` pieces moved between
-workers, each only once).
+Accounts are interned once by the closing process (their positions among the window's
+sorted ids, :meth:`rolewatch.engine.snapshot.Snapshot.nodes`), so workers never hold
+account ids as strings. Partition ``j`` owns the codes ``bounds[j] <= code < bounds[j+1]``;
+a :class:`Partitioned` value is one Dask future per partition. A partition that needs rows
+owned by others (its accounts' neighbours' values) asks each owner for exactly the rows it
+needs (:func:`fetch`): ``P²`` small pieces, each a block of rows, instead of a hash shuffle
+of one row per neighbour pair.
 """
 
 from __future__ import annotations
 
 import operator
-from collections.abc import Callable, Sequence
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import pandas as pd
 
-__all__ = ["Partitioned", "owner", "shuffle", "split_by_owner"]
-
-
-def owner(keys: np.ndarray | pd.Index | pd.Series, partitions: int) -> np.ndarray:
-    """The partition owning each account id."""
-    values = np.asarray(keys, dtype=object)
-    if values.size == 0:
-        return np.zeros(0, dtype=np.int64)
-    hashed = pd.util.hash_array(values, categorize=False)
-    return (hashed % np.uint64(partitions)).astype(np.int64)
+__all__ = ["Partitioned", "fetch", "range_bounds", "split_by_range"]
 
 
-def split_by_owner(frame: pd.DataFrame, column: str | None, partitions: int) -> tuple:
-    """``frame``'s rows split by the owner of ``column`` (None: of the index)."""
-    keys = frame.index if column is None else frame[column]
-    parts = owner(keys, partitions)
-    order = np.argsort(parts, kind="stable")
-    bounds = np.searchsorted(parts[order], np.arange(partitions + 1))
-    return tuple(frame.iloc[order[bounds[j] : bounds[j + 1]]] for j in range(partitions))
+def range_bounds(n: int, partitions: int) -> np.ndarray:
+    """``partitions + 1`` increasing code bounds splitting ``n`` codes into equal ranges."""
+    return np.linspace(0, n, partitions + 1).astype(np.int64)
 
 
-def _concat(pieces: Sequence[pd.DataFrame]) -> pd.DataFrame:
-    return pd.concat(list(pieces))
+def split_by_range(codes: np.ndarray, bounds: np.ndarray) -> list[np.ndarray]:
+    """Positions of ``codes`` owned by each partition (codes need not be sorted)."""
+    owner = np.searchsorted(bounds, codes, side="right") - 1
+    order = np.argsort(owner, kind="stable")
+    cuts = np.searchsorted(owner[order], np.arange(len(bounds)))
+    return [order[cuts[j] : cuts[j + 1]] for j in range(len(bounds) - 1)]
 
 
 @dataclass(frozen=True)
 class Partitioned:
-    """One future per partition on ``client``; see the module description."""
+    """One future per partition on ``client``; partition ``j`` owns the codes
+    ``bounds[j]`` to ``bounds[j + 1]``."""
 
     client: Any
     futures: tuple[Any, ...]
+    bounds: np.ndarray
 
     @property
     def partitions(self) -> int:
         return len(self.futures)
 
-    def map(self, function: Callable[..., pd.DataFrame], *args: Any, **kwargs: Any) -> Partitioned:
-        """``function(partition, *args)`` on every partition; futures among ``args`` that are
+    def map(self, function: Callable[..., Any], *args: Any) -> Partitioned:
+        """``function(partition, *args)`` on every partition; arguments that are
         :class:`Partitioned` are replaced by their partition of the same number."""
         futures = []
         for j, future in enumerate(self.futures):
             extra = [a.futures[j] if isinstance(a, Partitioned) else a for a in args]
-            futures.append(self.client.submit(function, future, *extra, pure=False, **kwargs))
-        return Partitioned(self.client, tuple(futures))
+            futures.append(self.client.submit(function, future, *extra, pure=False))
+        return Partitioned(self.client, tuple(futures), self.bounds)
 
-    def gather(self) -> pd.DataFrame:
-        """All partitions in this process (only for per-account results)."""
-        return pd.concat(self.client.gather(list(self.futures)))
+    def pieces(self, count: int) -> list[list[Any]]:
+        """Each partition's result, a sequence of ``count`` items, as one future per item
+        (``[j][i]``: item ``i`` of partition ``j``)."""
+        submit = self.client.submit
+        return [
+            [submit(operator.getitem, future, i, pure=False) for i in range(count)]
+            for future in self.futures
+        ]
+
+    def gather(self) -> list[Any]:
+        """Every partition's value in this process, in partition order."""
+        return list(self.client.gather(list(self.futures)))
 
 
-def shuffle(table: Partitioned, column: str | None) -> Partitioned:
-    """``table``'s rows moved to the partition owning ``column`` (None: the index)."""
-    client, p = table.client, table.partitions
-    splits = [
-        client.submit(split_by_owner, future, column, p, pure=False) for future in table.futures
+def fetch(
+    owners: Partitioned,
+    wanted: list[list[Any]],
+    take: Callable[..., Any],
+    *args: Any,
+) -> list[list[Any]]:
+    """Rows each partition needs from each owner: ``[i][j]`` is ``take(owners[j],
+    wanted[i][j], *args)``, computed where partition ``j`` lives and moved to ``i``."""
+    submit = owners.client.submit
+    return [
+        [
+            submit(take, owner, rows, *args, pure=False)
+            for owner, rows in zip(owners.futures, wanted_by_i, strict=True)
+        ]
+        for wanted_by_i in wanted
     ]
-    pieces = [
-        [client.submit(operator.getitem, split, j, pure=False) for split in splits]
-        for j in range(p)
-    ]
-    return Partitioned(client, tuple(client.submit(_concat, row, pure=False) for row in pieces))
