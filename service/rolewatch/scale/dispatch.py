@@ -188,6 +188,16 @@ class DaskMeasure:
         return table, measured.members
 
 
+def account_codes(snapshot: Snapshot, events: WindowEvents) -> tuple[np.ndarray, np.ndarray]:
+    """Each event's actor and target as rows of ``snapshot`` (the ids interned once by
+    the load when it did, else looked up)."""
+    accounts, actor, target = events.accounts, events.actor_index, events.target_index
+    if accounts is not None and actor is not None and target is not None:
+        if accounts is snapshot.nodes or np.array_equal(accounts, snapshot.nodes):
+            return np.asarray(actor), np.asarray(target)
+    return snapshot.index_of(events.actor), snapshot.index_of(events.target)
+
+
 def measure_for(settings: Settings) -> Measure:
     """How the close computes features and memberships, from the ``compute`` setting."""
     if settings.compute == "local":
