@@ -37,10 +37,11 @@ def _first_five_weeks(settings) -> list[dict]:
 
 
 def _holder_of_scattered_data(dask_scheduler) -> str | None:
-    """A worker holding data scattered by a client (keys ``DataFrame-<token>``, Dask's
-    naming for scattered pandas frames), or None while there is none."""
+    """A worker holding data scattered by a client (keys ``tuple-<token>``, Dask's naming
+    for a scattered tuple: the close scatters each chunk of events as a tuple of arrays),
+    or None while there is none."""
     for task in dask_scheduler.tasks.values():
-        if str(task.key).startswith("DataFrame-") and task.who_has:
+        if str(task.key).startswith("tuple-") and task.who_has:
             return next(iter(task.who_has)).address
     return None
 
