@@ -98,7 +98,15 @@ def inserted_ids(connection: Connection, statement: Any, rows: Sequence[dict]) -
         return []
     table = statement.table
     key = next(iter(table.primary_key.columns))
-    result = connection.execute(statement.returning(key, sort_by_parameter_order=True), list(rows))
+    # Pages of 100 rows: every full page is the same statement text, which the PostgreSQL
+    # driver converts once (a page of 1,000 rows with 9,000 parameters cost about a second
+    # to convert, every time).
+    result = connection.execute(
+        statement.returning(key, sort_by_parameter_order=True).execution_options(
+            insertmanyvalues_page_size=100
+        ),
+        list(rows),
+    )
     return [int(value) for value in result.scalars()]
 
 
