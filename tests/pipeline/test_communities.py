@@ -30,8 +30,14 @@ def test_the_child_process_finds_the_communities_this_process_finds():
     assert nx.community.modularity(nx.karate_club_graph(), groups, weight="weight") > 0.3
 
 
+def _no_child() -> None:
+    if communities._child is not None:
+        communities._drop_child(communities._child)
+
+
 def test_a_child_that_cannot_start_leaves_the_work_to_this_process(monkeypatch):
     ties = _karate_ties()
+    _no_child()
     monkeypatch.setattr(communities.sys, "executable", "/nonexistent/python")
     job = start_communities(ties, 1.0, min_ties=0)
     np.testing.assert_array_equal(job.result(), window_communities(ties, 1.0))
@@ -43,3 +49,21 @@ def test_small_graphs_and_bridging_off_stay_in_process():
     off = start_communities(ties, 0.0, min_ties=0)
     assert off._future is None
     assert (off.result() == -1).all()
+
+
+def test_the_child_serves_one_window_after_another_and_a_dead_one_is_replaced():
+    ties = _karate_ties()
+    _no_child()
+    first = start_communities(ties, 1.0, min_ties=0).result()
+    child = communities._child
+    assert child is not None
+    second = start_communities(ties, 0.5, min_ties=0).result()
+    assert communities._child is child  # the same process answered both
+    np.testing.assert_array_equal(first, window_communities(ties, 1.0))
+    np.testing.assert_array_equal(second, window_communities(ties, 0.5))
+    child.process.kill()
+    child.process.wait()
+    again = start_communities(ties, 1.0, min_ties=0).result()
+    np.testing.assert_array_equal(again, first)
+    assert communities._child is not child
+    _no_child()
