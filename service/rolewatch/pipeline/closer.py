@@ -34,6 +34,7 @@ from rolewatch.pipeline.compute import (
     WindowResult,
     compute_window,
     lookback_windows,
+    membership_columns,
     past_from_result,
 )
 from rolewatch.pipeline.loading import WindowEvents, load_past_windows
@@ -53,7 +54,7 @@ from rolewatch.store.db import (
     lock_windows,
     write_transaction,
 )
-from rolewatch.store.memberships import MembershipColumns, insert_memberships
+from rolewatch.store.memberships import insert_memberships
 from rolewatch.store.pairs import insert_window_pairs, known_pair_parts
 from rolewatch.store.windows import WindowMeasures, WindowSpan
 
@@ -563,24 +564,7 @@ def _insert_memberships(
     connection: Connection, model: FrozenModel, window_id: int, result: WindowResult
 ) -> None:
     insert_memberships(
-        connection,
-        window_id,
-        model.basis.version,
-        MembershipColumns(
-            accounts=result.nodes,
-            role_ids=tuple(int(role_id) for role_id in model.basis.role_ids),
-            mixture=result.mixture,
-            dominant=result.dominant,
-            score=result.score,
-            status=result.status,
-            events_out=result.activity.events_out,
-            events_in=result.activity.events_in,
-            counterparts=result.activity.counterparts,
-            new_counterparts=result.activity.new_counterparts,
-            error=result.error,
-            ties=result.ties,
-            community=result.community,
-        ),
+        connection, window_id, model.basis.version, membership_columns(model, result)
     )
 
 

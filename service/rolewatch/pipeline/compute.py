@@ -34,7 +34,7 @@ from rolewatch.pipeline.model import FrozenModel
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.stages import StageClock
 from rolewatch.store.alerts import NewAlert, WindowRef
-from rolewatch.store.memberships import MIXTURE_DECIMALS
+from rolewatch.store.memberships import MIXTURE_DECIMALS, MembershipColumns
 
 __all__ = [
     "REVIEW_NOTICE",
@@ -45,6 +45,7 @@ __all__ = [
     "as_stored",
     "compute_window",
     "lookback_windows",
+    "membership_columns",
     "past_from_result",
     "policy_from_settings",
 ]
@@ -149,6 +150,25 @@ def past_from_result(result: WindowResult, ref: WindowRef | None = None) -> Past
         ties=None if result.ties is None else result.ties.astype(np.float64),
         community=result.community,
         ref=ref,
+    )
+
+
+def membership_columns(model: FrozenModel, result: WindowResult) -> MembershipColumns:
+    """The window's per-account measures as the store and the Parquet outputs keep them."""
+    return MembershipColumns(
+        accounts=result.nodes,
+        role_ids=tuple(int(role_id) for role_id in model.basis.role_ids),
+        mixture=result.mixture,
+        dominant=result.dominant,
+        score=result.score,
+        status=result.status,
+        events_out=result.activity.events_out,
+        events_in=result.activity.events_in,
+        counterparts=result.activity.counterparts,
+        new_counterparts=result.activity.new_counterparts,
+        error=result.error,
+        ties=result.ties,
+        community=result.community,
     )
 
 

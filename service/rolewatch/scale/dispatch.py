@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import logging
 import threading
+from dataclasses import fields
 from typing import Any
 
 import numpy as np
@@ -18,7 +19,12 @@ from rolewatch.config import Settings
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.features.recipe import FeatureTable
 from rolewatch.engine.snapshot import Snapshot
-from rolewatch.pipeline.compute import Measure, WindowResult, measure_locally
+from rolewatch.pipeline.compute import (
+    Measure,
+    WindowResult,
+    measure_locally,
+    membership_columns,
+)
 from rolewatch.pipeline.loading import WindowEvents
 from rolewatch.pipeline.model import FrozenModel
 
@@ -225,23 +231,12 @@ def record_outputs(
         return
     from rolewatch.scale.outputs import WindowOutputs, write_window_outputs
 
+    columns = membership_columns(model, result)
     write_window_outputs(
         settings.output_archive,
         end_us,
         WindowOutputs(
-            accounts=result.nodes,
-            role_ids=tuple(int(role_id) for role_id in model.basis.role_ids),
-            mixture=result.mixture,
-            dominant=result.dominant,
-            score=result.score,
-            status=result.status,
-            events_out=result.activity.events_out,
-            events_in=result.activity.events_in,
+            **{item.name: getattr(columns, item.name) for item in fields(columns)},
             basis_version=model.basis.version,
-            counterparts=result.activity.counterparts,
-            new_counterparts=result.activity.new_counterparts,
-            error=result.error,
-            ties=result.ties,
-            community=result.community,
         ),
     )
