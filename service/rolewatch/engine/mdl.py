@@ -17,22 +17,27 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 from sklearn.decomposition import NMF
 from sklearn.exceptions import ConvergenceWarning
+from threadpoolctl import threadpool_limits
 
 from .errors import EngineInputError, TooManyRoles
+from .nnls import nnls_rows
 
 __all__ = [
     "BITS_TRIED",
     "Encoding",
     "candidate_role_counts",
     "description_length",
+    "distinct_rows",
     "fit_nmf",
     "lloyd_max",
     "quantised_description_length",
 ]
 
 EPS = 1e-12
+WARM_FIT_THREADS = 2
 BITS_TRIED = tuple(range(1, 9))  # b = 1 .. 8 bits per value of G and F
 
 
@@ -172,16 +177,29 @@ def fit_nmf(
     *,
     tol: float = 1e-4,
     max_iter: int = 500,
-    start: tuple[np.ndarray, np.ndarray] | None = None,
+    start_basis: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """One scikit-learn NMF fit of V ~ G F (coordinate descent, Frobenius loss).
 
     The factorisation RolX uses (Henderson et al., KDD 2012).  It starts from NNDSVDa
-    (Boutsidis & Gallopoulos, Pattern Recognition 41(4), 2008), or from ``start``
-    (a warm start, e.g. a basis fitted on a sample of the rows); coordinate descent stops
-    when the relative change falls below ``tol`` or after ``max_iter`` rounds
-    (scikit-learn's stopping rule).  Memberships are refitted exactly afterwards, so F
-    only needs to be a good basis.
+    (Boutsidis & Gallopoulos, Pattern Recognition 41(4), 2008), or from ``start_basis``
+    (a warm start, e.g. a basis fitted on a sample of the rows, with each row's
+    non-negative least-squares memberships in it); coordinate descent stops when the
+    relative change falls below ``tol`` or after ``max_iter`` rounds (scikit-learn's
+    stopping rule).  Memberships are refitted exactly afterwards, so F only needs to be a
+    good basis.
+
+    A warm-started fit runs on the distinct rows of V, each scaled by the square root of
+    how often it occurs.  Binned feature rows repeat (many quiet accounts look alike: on
+    the ``close-1m`` training window 92,843 rows hold 64,355 distinct ones).  For a row
+    occurring c times, c * ||v - g F||^2 = ||sqrt(c) v - sqrt(c) g F||^2, and coordinate
+    descent is equivariant under that scaling (each row of G is updated from its own row
+    of V; F's update sees the same sums G'G and V'G), so the fit follows the path of the
+    fit on all rows up to rounding.  Only scikit-learn's stopping test differs: it weighs a
+    repeated row's projected gradient by sqrt(c) instead of c.  This fit's products use
+    ``WARM_FIT_THREADS`` BLAS threads whatever the caller set (7.2 s against 5.2 s on the
+    ``close-1m`` training rows with one and two); the thread count is fixed so that the
+    fitted numbers do not depend on the caller's setting.
 
     Parameters
     ----------
@@ -192,8 +210,8 @@ def fit_nmf(
         ``random_state`` of the NMF.
     tol, max_iter : float, int
         Stopping rule.
-    start : (G0, F0), optional
-        Initial factors, shapes (n, k) and (k, f), non-negative.
+    start_basis : ndarray, shape (k, f), optional
+        Initial F, non-negative.
 
     Returns
     -------
@@ -202,7 +220,7 @@ def fit_nmf(
     """
     model = NMF(
         n_components=k,
-        init="custom" if start is not None else "nndsvda",
+        init="custom" if start_basis is not None else "nndsvda",
         solver="cd",
         beta_loss="frobenius",
         max_iter=max_iter,
@@ -211,11 +229,48 @@ def fit_nmf(
     )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        if start is None:
-            G = model.fit_transform(V)
-        else:
-            G = model.fit_transform(V, W=np.array(start[0]), H=np.array(start[1]))
-    return G, model.components_
+        if start_basis is None:
+            return model.fit_transform(V), model.components_
+        F0 = np.array(start_basis, dtype=float)
+        first, inverse, counts = distinct_rows(V)
+        scale = np.sqrt(counts)[:, None]
+        rows = V[first]
+        with threadpool_limits(limits=WARM_FIT_THREADS, user_api="blas"):
+            G = model.fit_transform(rows * scale, W=nnls_rows(F0, rows) * scale, H=F0)
+    return (G / scale)[inverse], model.components_
+
+
+def distinct_rows(X: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The distinct rows of ``X``: the position of each one's first occurrence, the
+    distinct row of every row of ``X`` and how often each occurs (``X`` finite).
+
+    Rows are grouped by their product with a fixed random vector; a row that differs from
+    its group's first row (two rows whose products round to the same value) is regrouped
+    exactly with :func:`numpy.unique` among such rows.  Equal rows may end up in two
+    groups (products that differ in the last bit), which costs speed, never exactness:
+    the rows of one group are always equal.
+
+    Returns
+    -------
+    first : ndarray of int, shape (d,)
+    inverse : ndarray of int, shape (n,)
+    counts : ndarray of int, shape (d,)
+    """
+    X = np.ascontiguousarray(X, dtype=float)
+    if X.shape[0] == 0:
+        empty = np.zeros(0, dtype=np.int64)
+        return empty, empty, empty
+    projection = X @ np.random.default_rng(0).standard_normal(X.shape[1])
+    inverse, _ = pd.factorize(projection, use_na_sentinel=False)
+    _, first = np.unique(inverse, return_index=True)
+    stray = np.flatnonzero((X != X[first[inverse]]).any(axis=1))
+    if stray.size:
+        _, regrouped = np.unique(X[stray], axis=0, return_inverse=True)
+        inverse[stray] = len(first) + regrouped.reshape(-1)
+        inverse, _ = pd.factorize(inverse)
+        _, first = np.unique(inverse, return_index=True)
+    counts = np.bincount(inverse, minlength=len(first))
+    return first.astype(np.int64), inverse.astype(np.int64), counts
 
 
 def candidate_role_counts(

@@ -32,15 +32,15 @@ warm-started from its sample fit.
 
 from __future__ import annotations
 
+from concurrent.futures import Executor, ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import partial
 
 import numpy as np
 
-from .mdl import fit_nmf, quantised_description_length
-from .nnls import nnls_rows
+from .mdl import Encoding, fit_nmf, quantised_description_length
 from .rowkeys import mixed
-from .stability import resampled_stability
+from .stability import FIT_THREADS, resampled_stability
 
 __all__ = [
     "CANDIDATE_MAX_ITER",
@@ -97,15 +97,34 @@ def _candidate_basis(rows: np.ndarray, k: int, *, seed: int) -> np.ndarray:
     return fit_nmf(rows, k, seed, tol=CANDIDATE_TOL, max_iter=CANDIDATE_MAX_ITER)[1]
 
 
-def _measure(
-    S: np.ndarray, keys: np.ndarray, k: int, *, seed: int, stability_min: float, resamples: int
-) -> tuple[dict[str, float], np.ndarray]:
-    """One candidate's row of the table, and its F fitted on the whole sample."""
+def _fit_and_encode(S: np.ndarray, k: int, seed: int) -> tuple[np.ndarray, Encoding]:
     G, F = fit_nmf(S, k, seed, tol=CANDIDATE_TOL, max_iter=CANDIDATE_MAX_ITER)
-    encoding = quantised_description_length(S, G, F)
+    return F, quantised_description_length(S, G, F)
+
+
+def _measure(
+    S: np.ndarray,
+    keys: np.ndarray,
+    k: int,
+    *,
+    seed: int,
+    stability_min: float,
+    resamples: int,
+    pool: Executor,
+) -> tuple[dict[str, float], np.ndarray]:
+    """One candidate's row of the table, and its F fitted on the whole sample (the sample
+    fit and the resampled fits share ``pool``'s threads; each is the same on any thread)."""
+    sample_fit = pool.submit(_fit_and_encode, S, k, seed)
     stability = resampled_stability(
-        S, k, partial(_candidate_basis, seed=seed), keys=keys, seed=seed, resamples=resamples
+        S,
+        k,
+        partial(_candidate_basis, seed=seed),
+        keys=keys,
+        seed=seed,
+        resamples=resamples,
+        pool=pool,
     )
+    F, encoding = sample_fit.result()
     row = {
         "k": k,
         "bits_per_value": encoding.bits_per_value,
@@ -180,22 +199,27 @@ def choose_roles(
     bases: dict[int, np.ndarray] = {}
     admissible: list[dict[str, float]] = []
     misses = 0
-    for k in candidates:
-        row, F = _measure(
-            S, sample_keys, k, seed=seed, stability_min=stability_min, resamples=resamples
-        )
-        table.append(row)
-        bases[k] = F
-        if misses < WALK_PATIENCE:
-            misses = 0 if row["stable"] else misses + 1
-            if row["stable"]:
-                admissible.append(row)
-        if misses >= WALK_PATIENCE and not measure_all:
-            break
+    with ThreadPoolExecutor(max_workers=FIT_THREADS) as fits:
+        for k in candidates:
+            row, F = _measure(
+                S,
+                sample_keys,
+                k,
+                seed=seed,
+                stability_min=stability_min,
+                resamples=resamples,
+                pool=fits,
+            )
+            table.append(row)
+            bases[k] = F
+            if misses < WALK_PATIENCE:
+                misses = 0 if row["stable"] else misses + 1
+                if row["stable"]:
+                    admissible.append(row)
+            if misses >= WALK_PATIENCE and not measure_all:
+                break
     pool = admissible or table[:1]
     least = min(row["total_bits"] for row in pool)
     best = int(min(row["k"] for row in pool if row["total_bits"] <= least * (1 + tolerance)))
-    F0 = bases[best]
-    G0 = nnls_rows(F0, V)
-    G, F = fit_nmf(V, best, seed, max_iter=FINAL_MAX_ITER, start=(G0, F0))
+    G, F = fit_nmf(V, best, seed, max_iter=FINAL_MAX_ITER, start_basis=bases[best])
     return RoleChoice(G, F, table=table, sample_rows=int(S.shape[0]))

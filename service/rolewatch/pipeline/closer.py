@@ -28,6 +28,7 @@ from typing import Any
 from rolewatch.clock import now_micros, to_rfc3339
 from rolewatch.config import Settings
 from rolewatch.engine.pairs import KnownPairs
+from rolewatch.pipeline.communities import CommunityJob
 from rolewatch.pipeline.compute import (
     PastWindow,
     WindowRef,
@@ -36,6 +37,7 @@ from rolewatch.pipeline.compute import (
     lookback_windows,
     membership_columns,
     past_from_result,
+    start_window_communities,
 )
 from rolewatch.pipeline.loading import WindowEvents, load_past_windows
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
@@ -372,8 +374,13 @@ def _close_training(
     with clock.stage("load"):
         loaded = _load_training(engine, settings, training)
     loaded.append(_TrainingWindow(None, start_us, end_us, current))
-    model = fit_model(settings, [window.events.snapshot() for window in loaded])
-    measured = _measure_training(model, settings, loaded, clock, _recent_features(engine))
+    snapshots = [window.events.snapshot() for window in loaded]
+    # The communities need only the events: they are computed while the model is fitted.
+    communities = [start_window_communities(settings, snapshot) for snapshot in snapshots]
+    model = fit_model(settings, snapshots)
+    measured = _measure_training(
+        model, settings, loaded, communities, clock, _recent_features(engine)
+    )
     with write_transaction(engine) as connection:
         _claim_window(connection, start_us, end_us, event_source.stored_part(current))
         store_model(
@@ -442,6 +449,7 @@ def _measure_training(
     model: FrozenModel,
     settings: Settings,
     loaded: list[_TrainingWindow],
+    communities: list[CommunityJob],
     clock: StageClock,
     recent: RecentFeatures,
 ) -> list[_Measured]:
@@ -451,7 +459,7 @@ def _measure_training(
     measured = []
     past: list[PastWindow] = []
     known = KnownPairs.empty()
-    for window in loaded:
+    for window, window_communities in zip(loaded, communities, strict=True):
         ref = WindowRef(
             id=window.window_id, start=to_rfc3339(window.start_us), end=to_rfc3339(window.end_us)
         )
@@ -467,6 +475,7 @@ def _measure_training(
             raise_alerts=False,
             clock=own,
             recent=recent,
+            communities=window_communities,
         )
         measured.append(_Measured(window, result, time.perf_counter() - started, own))
         past = (past + [past_from_result(result, ref)])[-lookback_windows(settings) :]

@@ -35,7 +35,12 @@ import scipy.sparse as sp
 
 from rolewatch.engine.bridging import leiden_communities
 
-__all__ = ["PROCESS_MIN_TIES", "CommunityJob", "start_communities", "window_communities"]
+__all__ = [
+    "PROCESS_MIN_TIES",
+    "CommunityJob",
+    "start_communities",
+    "window_communities",
+]
 
 log = logging.getLogger(__name__)
 
@@ -188,6 +193,8 @@ def _decode(stream: io.BufferedReader | io.BytesIO) -> tuple[sp.csr_matrix, floa
 
 def _serve() -> None:
     """The child: answer graphs on stdin with their labels on stdout until stdin ends."""
+    import igraph  # noqa: F401  (imported before the first graph arrives, not during it)
+
     requests, answers = sys.stdin.buffer, sys.stdout.buffer
     while True:
         try:

@@ -48,6 +48,7 @@ __all__ = [
     "membership_columns",
     "past_from_result",
     "policy_from_settings",
+    "start_window_communities",
 ]
 
 # Reads the events of an earlier window (its start and end), or None when they are gone.
@@ -212,6 +213,7 @@ def compute_window(
     clock: StageClock | None = None,
     measure: Measure = measure_locally,
     recent: RecentFeatures | None = None,
+    communities: CommunityJob | None = None,
 ) -> WindowResult:
     """Measure every active account of one window against its own history.
 
@@ -236,6 +238,10 @@ def compute_window(
     recent
         Keeps this window's features for the next window's alerts, and gives an earlier
         window's when it holds them (instead of ``events_of`` and a recomputation).
+    communities
+        The window's communities, started earlier by the caller
+        (:func:`start_window_communities`: the training close starts them before it fits
+        the model, so they are ready when it measures); None starts them here.
     """
     clock = clock if clock is not None else StageClock()
     with clock.stage("features"):
@@ -251,9 +257,15 @@ def compute_window(
     # Leiden holds the GIL: a large window's communities are computed in a child process
     # while this one computes the features, memberships and scores (same seed and input,
     # so the same communities). The bridging stage counts only the wait.
-    communities = start_communities(graph, policy.bridge_resolution)
+    if communities is None:
+        communities = start_communities(graph, policy.bridge_resolution)
     step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock, measure, recent)
     return _measure(step, current, past, known, communities, window, raise_alerts, events_of)
+
+
+def start_window_communities(settings: Settings, snapshot: Snapshot) -> CommunityJob:
+    """Start computing a window's communities ahead of :func:`compute_window`."""
+    return start_communities(undirected_ties(snapshot.counts), settings.bridge_resolution)
 
 
 @dataclass(frozen=True)
