@@ -89,6 +89,9 @@ def test_features_and_memberships_match_the_local_engine(dask_cluster, sample_wi
         np.testing.assert_array_equal(dask_table.binned, local_table.binned)
         np.testing.assert_allclose(dask_members.mixture, local_members.mixture, rtol=0, atol=1e-9)
         np.testing.assert_allclose(dask_members.error, local_members.error, rtol=0, atol=1e-9)
+        # the triangles the evidence's clustering reads, counted on the partitions
+        assert local_table.triangles is not None
+        np.testing.assert_array_equal(dask_table.triangles, local_table.triangles)
 
 
 def test_triangles_on_partitions_match_networkx(dask_cluster, sample_windows):

@@ -284,6 +284,15 @@ class _Step:
     recent: RecentFeatures | None
 
 
+def _features_by(step: _Step) -> Callable[[Snapshot, WindowEvents], FeatureTable]:
+    """The feature table of another window by the close's own ``measure``."""
+
+    def features(snapshot: Snapshot, events: WindowEvents) -> FeatureTable:
+        return step.measure(step.model, snapshot, events)[0]
+
+    return features
+
+
 def _measure(
     step: _Step,
     current: WindowEvents,
@@ -345,6 +354,7 @@ def _measure(
             known=known,
             events_of=events_of,
             recent=step.recent,
+            features_of=None if step.measure is measure_locally else _features_by(step),
         )
         with clock.stage("evidence"):
             alerts = alerts_with_evidence(context, current)

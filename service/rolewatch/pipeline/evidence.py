@@ -66,6 +66,9 @@ class AlertContext:
     known: KnownPairs
     events_of: Callable[[WindowRef], WindowEvents | None] | None
     recent: RecentFeatures | None = None
+    # Features of a baseline window recomputed from its events: None transforms it here;
+    # a cluster close passes its own measure, so that window is computed on the workers too.
+    features_of: Callable[[Snapshot, WindowEvents], FeatureTable] | None = None
 
 
 def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[NewAlert]:
@@ -158,6 +161,8 @@ def _window_features(
     if events is None or not len(events):
         return None
     snapshot = events.snapshot()
+    if context.features_of is not None:
+        return snapshot, context.features_of(snapshot, events)
     return snapshot, context.model.recipe.transform(snapshot)
 
 

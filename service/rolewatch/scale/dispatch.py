@@ -190,6 +190,7 @@ class DaskMeasure:
             raw=measured.raw,
             binned=measured.binned,
             recipe_version=model.recipe.version,
+            triangles=measured.triangles,
         )
         return table, measured.members
 

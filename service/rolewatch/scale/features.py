@@ -30,7 +30,7 @@ from rolewatch.engine.basis import Memberships, RoleBasis
 from rolewatch.engine.features.binning import apply_bins, bin_dtype
 from rolewatch.engine.features.graph import EGONET_FEATURES
 from rolewatch.engine.features.recipe import FeatureRecipe, FeatureTable
-from rolewatch.scale.graph import WindowGraph, fetch_columns, with_egonet
+from rolewatch.scale.graph import TRIANGLES, WindowGraph, fetch_columns, with_egonet
 from rolewatch.scale.graph_steps import Block, add_columns
 from rolewatch.scale.partitions import Partitioned
 
@@ -48,6 +48,7 @@ class MeasuredWindow:
     raw: np.ndarray
     binned: np.ndarray
     members: Memberships
+    triangles: np.ndarray | None = None  # per account, when the recipe counted them
 
 
 def _add_aggregates(
@@ -113,7 +114,7 @@ class _Rounds:
 
     def keep_after(self, rnd: int) -> frozenset[str]:
         later = {str(d.parent) for d in self.recipe.features if d.round > rnd}
-        return frozenset(later | set(_DEGREE.values()))
+        return frozenset(later | set(_DEGREE.values()) | {TRIANGLES})
 
     def settle(self, blocks: Partitioned, rnd: int) -> Partitioned:
         finished = [d.name for d in self.recipe.features if d.round == rnd]
@@ -155,8 +156,9 @@ class _Rounds:
 
 
 def _measure_block(block: Block, names: Sequence[str], version: str, basis: RoleBasis) -> tuple:
-    """Frozen bins and memberships of one block, by the engine's own function:
-    ``(binned, mixture, loadings, error)``."""
+    """Frozen bins and memberships of one block, by the engine's own function, and its
+    triangles: ``(binned, mixture, loadings, error, triangles)`` (triangles empty when the
+    recipe has no egonet feature)."""
     first = block.bins[names[0]] if names else np.zeros(block.rows, dtype=np.uint8)
     binned = np.empty((block.rows, len(names)), dtype=first.dtype, order="F")
     for j, name in enumerate(names):
@@ -169,7 +171,8 @@ def _measure_block(block: Block, names: Sequence[str], version: str, basis: Role
         recipe_version=version,
     )
     members = basis.memberships(table)
-    return binned, members.mixture, members.loadings, members.error
+    triangles = block.columns.get(TRIANGLES, np.zeros(0))
+    return binned, members.mixture, members.loadings, members.error, triangles
 
 
 def measure_window(graph: WindowGraph, recipe: FeatureRecipe, basis: RoleBasis) -> MeasuredWindow:
@@ -184,8 +187,9 @@ def measure_window(graph: WindowGraph, recipe: FeatureRecipe, basis: RoleBasis) 
     parts = blocks.map(_measure_block, list(recipe.names), recipe.version, basis)
     rounds.collect()
     del blocks
-    binned, mixture, loadings, error = (
-        np.concatenate([part[k] for part in parts.gather()], axis=0) for k in range(4)
+    gathered = parts.gather()
+    binned, mixture, loadings, error, triangles = (
+        np.concatenate([part[k] for part in gathered], axis=0) for k in range(5)
     )
     if binned.shape[0] != graph.n:
         raise RuntimeError(
@@ -193,4 +197,9 @@ def measure_window(graph: WindowGraph, recipe: FeatureRecipe, basis: RoleBasis) 
             "close is retried on the next tick"
         )
     members = Memberships(loadings=loadings, mixture=mixture, error=error)
-    return MeasuredWindow(raw=rounds.raw, binned=np.asfortranarray(binned), members=members)
+    return MeasuredWindow(
+        raw=rounds.raw,
+        binned=np.asfortranarray(binned),
+        members=members,
+        triangles=triangles if uses_egonet else None,
+    )

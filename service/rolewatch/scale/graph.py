@@ -15,6 +15,7 @@ from rolewatch.scale import graph_steps as steps
 from rolewatch.scale.partitions import Partitioned, fetch, range_bounds
 
 __all__ = [
+    "TRIANGLES",
     "WindowGraph",
     "build_graph",
     "fetch_columns",
@@ -24,6 +25,7 @@ __all__ = [
 ]
 
 _DEGREES = ("degree", "out_degree", "in_degree")
+TRIANGLES = "triangles"  # a block column beside the features, not one of them
 
 
 @dataclass(frozen=True)
@@ -148,11 +150,13 @@ def triangle_table(graph: WindowGraph) -> Partitioned:
 
 def _add_egonet(block: steps.Block, sums: tuple, *pieces: tuple) -> steps.Block:
     tri, opposite = steps.triangle_sums(block.rows, pieces)
-    return steps.add_columns(block, steps.egonet_columns(block.columns, sums, tri, opposite))
+    columns = steps.egonet_columns(block.columns, sums, tri, opposite)
+    return steps.add_columns(block, {**columns, TRIANGLES: tri})
 
 
 def with_egonet(graph: WindowGraph) -> Partitioned:
-    """The blocks with the ReFeX egonet features added."""
+    """The blocks with the ReFeX egonet features added, and each account's triangles as
+    the column :data:`TRIANGLES` (the evidence's clustering reads them)."""
     counted, p = _counted(graph), graph.blocks.partitions
     client = graph.blocks.client
     return Partitioned(
