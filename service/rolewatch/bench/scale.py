@@ -42,6 +42,7 @@ SIZES = {
 }
 QUICK = {"close-dask-10m": [300_000], "close-dask-scaling": [100_000, 300_000]}
 WORKER_MEMORY = "3GB"
+LOAD_CHUNK = 2_000_000  # events generated and stored at once (smaller windows: one draw)
 
 
 class _PeakMemory:
@@ -119,6 +120,17 @@ def _close(path: Path, now_us: int, worker_pids: list[int], **extra: Any) -> dic
     }
 
 
+def _load_in_chunks(
+    path: Path, rng: np.random.Generator, events: int, accounts: int, start_us: int, prefix: str
+) -> None:
+    """The window's events in chunks of :data:`LOAD_CHUNK` (one Python row per event would
+    otherwise hold several GB of this process at 10,000,000 events, and keep it)."""
+    for first in range(0, events, LOAD_CHUNK):
+        size = min(LOAD_CHUNK, events - first)
+        chunk_prefix = prefix if first == 0 else f"{prefix}{first}-"
+        _load(path, _power_law_events(rng, size, accounts, start_us, chunk_prefix))
+
+
 def _one_size(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
     from rolewatch.pipeline.closer import close_window
     from rolewatch.store.db import open_store
@@ -128,8 +140,8 @@ def _one_size(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
     local_db, dask_db = tmp / f"local-{events}.db", tmp / f"dask-{events}.db"
     settings = _settings(local_db)
     open_store(settings).dispose()
-    _load(local_db, _power_law_events(rng, events // 5, accounts, FIRST_END - WEEK_US, "t-"))
-    _load(local_db, _power_law_events(rng, events, accounts, FIRST_END, "w-"))
+    _load_in_chunks(local_db, rng, events // 5, accounts, FIRST_END - WEEK_US, "t-")
+    _load_in_chunks(local_db, rng, events, accounts, FIRST_END, "w-")
     now_us = FIRST_END + 4 * WEEK_US
     engine = open_store(settings)
     close_window(engine, settings, FIRST_END, now_us=now_us)  # training: the fit
