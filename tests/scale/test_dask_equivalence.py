@@ -8,20 +8,26 @@ The events are the fictional marketplace sample in fixtures/sample (invented dat
 
 from __future__ import annotations
 
+import json
+
 import networkx as nx
 import numpy as np
 import pytest
+import sqlalchemy as sa
 
+from rolewatch.pipeline import closer
 from rolewatch.pipeline.closer import close_due_windows
 from rolewatch.pipeline.compute import measure_locally
 from rolewatch.pipeline.loading import WindowEvents
 from rolewatch.pipeline.model import fit_model
 from rolewatch.pipeline.offline import split_windows
+from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.windows import WindowGeometry
 from rolewatch.scale.dispatch import DaskMeasure, account_codes
 from rolewatch.scale.graph import build_graph, scatter_events, triangle_table
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest, parse_time_us
+from rolewatch.store.schema import alerts
 
 from .conftest import NOW, sample_events, sample_settings, written
 from .helpers import assert_same_closes, scheduler_transitions
@@ -162,3 +168,73 @@ def test_a_window_smaller_than_the_partition_count_measures_like_the_local_engin
     dask_table, dask_members = DaskMeasure(dask_cluster, partitions=8)(model, snapshot, events)
     np.testing.assert_allclose(dask_table.raw, local_table.raw, rtol=1e-9, atol=0)
     np.testing.assert_allclose(dask_members.mixture, local_members.mixture, rtol=0, atol=1e-9)
+
+
+def _alert_evidence(engine) -> list[tuple]:
+    with engine.connect() as connection:
+        rows = connection.execute(
+            sa.select(alerts.c.account, alerts.c.window_end_us, alerts.c.evidence).order_by(
+                alerts.c.window_end_us, alerts.c.account
+            )
+        ).all()
+    found = []
+    for account, end, evidence in rows:
+        document = json.loads(evidence)
+        document["window"].pop("id")
+        found.append((account, end, document))
+    return found
+
+
+@pytest.mark.slow
+def test_baseline_windows_measured_on_the_cluster_give_the_local_evidence(
+    dask_cluster, tmp_path, monkeypatch
+):
+    # Nothing is kept between closes, so every alert's "before" features are recomputed
+    # from the baseline window's events: on the workers for compute = "dask".
+    measured: list[int] = []
+    cluster_measure = DaskMeasure.__call__
+
+    def counting(self, model, snapshot, events):
+        measured.append(snapshot.n_nodes)
+        return cluster_measure(self, model, snapshot, events)
+
+    monkeypatch.setattr(DaskMeasure, "__call__", counting)
+    monkeypatch.setattr(closer, "_recent_features", lambda _engine: RecentFeatures(max_bytes=0))
+    evidence, closed = {}, {}
+    for compute in ("local", "dask"):
+        settings = sample_settings(
+            tmp_path / f"{compute}.db",
+            compute=compute,
+            dask_scheduler=dask_cluster.scheduler.address,
+            dask_partitions=4,
+        )
+        engine = open_store(settings)
+        ingest(engine, settings, sample_events(), NOW)
+        summaries = closer.close_due_windows(engine, settings, now_us=NOW, drain=True)
+        closed[compute] = [s for s in summaries if not s.training]
+        evidence[compute] = _alert_evidence(engine)
+        engine.dispose()
+    assert evidence["local"], "the sample raises alerts after training"
+    # more cluster measurements than measured windows: the baselines went there too
+    assert len(measured) > len(closed["dask"])
+    assert [row[:2] for row in evidence["dask"]] == [row[:2] for row in evidence["local"]]
+    for (_, _, on_dask), (_, _, local) in zip(evidence["dask"], evidence["local"], strict=True):
+        assert on_dask["feature_moves"], "alerts show their feature moves"
+        _assert_close_documents(on_dask, local)
+
+
+def _assert_close_documents(ours, theirs) -> None:
+    """Equal documents, numbers within 1e-9 relative (the cluster's means and sums may add
+    in another order, docs/scale.md)."""
+    if isinstance(ours, dict):
+        assert ours.keys() == theirs.keys()
+        for key in ours:
+            _assert_close_documents(ours[key], theirs[key])
+    elif isinstance(ours, list):
+        assert len(ours) == len(theirs)
+        for a, b in zip(ours, theirs, strict=True):
+            _assert_close_documents(a, b)
+    elif isinstance(ours, float) and not isinstance(theirs, bool):
+        assert ours == pytest.approx(theirs, rel=1e-9, abs=1e-12)
+    else:
+        assert ours == theirs
