@@ -130,21 +130,27 @@ def test_triangles_on_partitions_match_networkx(dask_cluster, sample_windows):
         assert counted[node][1] == mutual
 
 
+def _closed_sample(dask_cluster, tmp_path, compute: str, events: list[dict]):
+    """A store of its own with the sample's events, every due window closed with
+    ``compute``; the open engine and the closes' summaries."""
+    settings = sample_settings(
+        tmp_path / f"{compute}.db",
+        compute=compute,
+        dask_scheduler=dask_cluster.scheduler.address,
+        dask_partitions=4,
+    )
+    engine = open_store(settings)
+    ingest(engine, settings, events, NOW)
+    return engine, close_due_windows(engine, settings, now_us=NOW, drain=True)
+
+
 @pytest.mark.slow
 def test_closing_on_dask_writes_what_closing_locally_writes(dask_cluster, tmp_path):
     every = sample_events()
     results = {}
     before = scheduler_transitions(dask_cluster.scheduler.address)
     for compute in ("local", "dask"):
-        settings = sample_settings(
-            tmp_path / f"{compute}.db",
-            compute=compute,
-            dask_scheduler=dask_cluster.scheduler.address,
-            dask_partitions=4,
-        )
-        engine = open_store(settings)
-        ingest(engine, settings, every, NOW)
-        close_due_windows(engine, settings, now_us=NOW, drain=True)
+        engine, _ = _closed_sample(dask_cluster, tmp_path, compute, every)
         results[compute] = written(engine)
         engine.dispose()
     assert results["local"]["alerts"], "the sample raises alerts after training"
@@ -202,15 +208,7 @@ def test_baseline_windows_measured_on_the_cluster_give_the_local_evidence(
     monkeypatch.setattr(closer, "_recent_features", lambda _engine: RecentFeatures(max_bytes=0))
     evidence, closed = {}, {}
     for compute in ("local", "dask"):
-        settings = sample_settings(
-            tmp_path / f"{compute}.db",
-            compute=compute,
-            dask_scheduler=dask_cluster.scheduler.address,
-            dask_partitions=4,
-        )
-        engine = open_store(settings)
-        ingest(engine, settings, sample_events(), NOW)
-        summaries = closer.close_due_windows(engine, settings, now_us=NOW, drain=True)
+        engine, summaries = _closed_sample(dask_cluster, tmp_path, compute, sample_events())
         closed[compute] = [s for s in summaries if not s.training]
         evidence[compute] = _alert_evidence(engine)
         engine.dispose()

@@ -128,17 +128,19 @@ def _triangles_of(block: steps.Block, *pieces: tuple) -> tuple[np.ndarray, np.nd
     return steps.triangle_sums(block.rows, pieces)
 
 
-def triangle_table(graph: WindowGraph) -> Partitioned:
-    """Per partition: triangles through each of its accounts and those whose opposite
-    edge is reciprocated (two arrays in code order)."""
+def _on_triangle_counts(graph: WindowGraph, step: Any, *, with_sums: bool) -> Partitioned:
+    """``step(block, [neighbour sums,] *counts)`` on every partition, fed the triangle
+    counts every partition sent it (and, ``with_sums``, its neighbour sums of the
+    degrees)."""
     counted, p = _counted(graph), graph.blocks.partitions
     client = graph.blocks.client
     return Partitioned(
         client,
         tuple(
             client.submit(
-                _triangles_of,
+                step,
                 graph.blocks.futures[j],
+                *([counted[j][p]] if with_sums else []),
                 *[counted[i][j] for i in range(p)],
                 pure=False,
             )
@@ -146,6 +148,12 @@ def triangle_table(graph: WindowGraph) -> Partitioned:
         ),
         graph.blocks.bounds,
     )
+
+
+def triangle_table(graph: WindowGraph) -> Partitioned:
+    """Per partition: triangles through each of its accounts and those whose opposite
+    edge is reciprocated (two arrays in code order)."""
+    return _on_triangle_counts(graph, _triangles_of, with_sums=False)
 
 
 def _add_egonet(block: steps.Block, sums: tuple, *pieces: tuple) -> steps.Block:
@@ -157,19 +165,4 @@ def _add_egonet(block: steps.Block, sums: tuple, *pieces: tuple) -> steps.Block:
 def with_egonet(graph: WindowGraph) -> Partitioned:
     """The blocks with the ReFeX egonet features added, and each account's triangles as
     the column :data:`TRIANGLES` (the evidence's clustering reads them)."""
-    counted, p = _counted(graph), graph.blocks.partitions
-    client = graph.blocks.client
-    return Partitioned(
-        client,
-        tuple(
-            client.submit(
-                _add_egonet,
-                graph.blocks.futures[j],
-                counted[j][p],
-                *[counted[i][j] for i in range(p)],
-                pure=False,
-            )
-            for j in range(p)
-        ),
-        graph.blocks.bounds,
-    )
+    return _on_triangle_counts(graph, _add_egonet, with_sums=True)
