@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import logging
 import threading
+import time
 from dataclasses import fields
 from typing import Any
 
@@ -50,6 +51,10 @@ _LOCK = threading.Lock()
 # Attempts of one window's Dask computation when the cluster loses its data (a worker died
 # holding the window's scattered event chunks, or a task killed its workers repeatedly).
 DASK_ATTEMPTS = 3
+# Seconds to wait before the next attempt, times the attempts made: the scheduler may still
+# list a worker that has just died (until it sees the connection drop), and a nanny needs a
+# moment to start its replacement (common practice, no source).
+RETRY_PAUSE_S = 1.0
 log = logging.getLogger("rolewatch.scale")
 
 
@@ -105,10 +110,14 @@ class DaskDataLost(RuntimeError):
 
 
 def _lost_data_errors() -> tuple[type[BaseException], ...]:
+    """What a dying worker makes a close raise: its results' futures cancelled, a task
+    that killed its workers, or a connection closed under a transfer (the scheduler sending
+    the events to a worker that has just died drops the client's request with it)."""
     from distributed.client import FutureCancelledError
+    from distributed.comm.core import CommClosedError
     from distributed.scheduler import KilledWorker
 
-    return (FutureCancelledError, KilledWorker)
+    return (FutureCancelledError, KilledWorker, CommClosedError)
 
 
 class DaskMeasure:
@@ -157,6 +166,8 @@ class DaskMeasure:
                     "the Dask cluster lost the window's data; computing it again",
                     extra={"fields": {"attempt": attempt, "error": repr(error)[:300]}},
                 )
+                if attempt < self.attempts:
+                    time.sleep(RETRY_PAUSE_S * attempt)
         raise DaskDataLost(
             f"the Dask cluster lost the window's data in {self.attempts} attempts (workers "
             "dying or restarted over their memory limit); nothing was written, and the next "
