@@ -53,8 +53,7 @@ class WindowEvents:
 def interned(event_id, actor, target, weight, *, order=None) -> WindowEvents:
     """Window events whose account ids are interned once: each distinct id is one string
     object, and every event holds its accounts' positions among the sorted distinct ids
-    (pandas' hash-based ``factorize`` on both columns at once, then the few distinct ids
-    sorted).
+    (pandas' hash-based ``factorize`` on both columns at once, then :func:`from_codes`).
 
     ``order``, when given, is the permutation that puts the events in (time, event id)
     order: the ids are interned as they come and only integer positions, event ids and
@@ -63,15 +62,20 @@ def interned(event_id, actor, target, weight, *, order=None) -> WindowEvents:
     import pandas as pd
 
     both = np.concatenate([np.asarray(actor, dtype=object), np.asarray(target, dtype=object)])
-    codes, uniques = pd.factorize(both)
-    distinct = np.asarray(uniques, dtype=object)
+    codes, names = pd.factorize(both)
+    n = len(codes) // 2
+    return from_codes(event_id, names, codes[:n], codes[n:], weight, order=order)
+
+
+def from_codes(event_id, names, actor_code, target_code, weight, *, order=None) -> WindowEvents:
+    """Window events from account codes into ``names`` (distinct ids in any order): the few
+    distinct ids are sorted and the codes become positions among them."""
+    distinct = np.asarray(names, dtype=object)
     by_text = np.argsort(distinct.astype(str), kind="stable")
     rank = np.empty(by_text.size, dtype=np.int64)
     rank[by_text] = np.arange(by_text.size)
-    positions = rank[codes]
     accounts = distinct[by_text]
-    n = len(positions) // 2
-    actor_index, target_index = positions[:n], positions[n:]
+    actor_index, target_index = rank[actor_code], rank[target_code]
     event_id = np.asarray(event_id, dtype=object)
     weight = np.asarray(weight, dtype=np.float64)
     if order is not None:
@@ -116,8 +120,13 @@ def load_window_events(connection: Connection, start_us: int, end_us: int) -> Wi
     whenever it arrived (a closed window is never reloaded).
     """
     columns = event_columns(connection, start_us, end_us)
-    return interned(
-        columns.event_id, columns.actor, columns.target, columns.weight, order=columns.order
+    return from_codes(
+        columns.event_id,
+        columns.names,
+        columns.actor_code,
+        columns.target_code,
+        columns.weight,
+        order=columns.order,
     )
 
 
