@@ -8,6 +8,7 @@ code-point comparison of strings."""
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from rolewatch.clock import to_rfc3339
 from rolewatch.config import load_settings
@@ -44,7 +45,10 @@ def _events() -> list[dict]:
     return events
 
 
-def test_a_windows_events_come_back_as_python_sorts_them(store_url):
+@pytest.mark.parametrize("chunk_rows", [None, 7])
+def test_a_windows_events_come_back_as_python_sorts_them(store_url, chunk_rows, monkeypatch):
+    if chunk_rows is not None:  # SQLite's rows read in many chunks (PostgreSQL: no chunks)
+        monkeypatch.setattr("rolewatch.store.event_columns.SQLITE_CHUNK_ROWS", chunk_rows)
     settings = load_settings(database_url=store_url)
     engine = open_store(settings)
     events = _events()
