@@ -171,7 +171,8 @@ def read_window(archive: str, start_us: int, end_us: int) -> pa.Table:
     )
     table = table.set_column(1, "time", pa.array(_micros(table.column("time")), pa.int64()))
     table = table.sort_by([("time", "ascending"), ("id", "ascending")])
-    ids = table.column("id").to_numpy(zero_copy_only=False)
+    # each id's first row: ids coded by Arrow, so no Python string per event is made
+    ids = table.column("id").combine_chunks().dictionary_encode().indices.to_numpy()
     _, first = np.unique(ids, return_index=True)
     if len(first) < table.num_rows:
         table = table.take(pa.array(np.sort(first)))

@@ -2,21 +2,27 @@
 together with the events ingested into the store (``event_source``).
 
 The closer calls these instead of the store's reads; with ``event_source = "store"`` they
-are exactly the store's reads. pyarrow is imported only when the archive is used.
+are exactly the store's reads.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from rolewatch.config import Settings
-from rolewatch.pipeline.loading import WindowEvents, load_window_events
+from rolewatch.pipeline.loading import WindowEvents, from_codes, load_window_events
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.db import Connection
+from rolewatch.store.event_columns import coded_accounts
 from rolewatch.store.windows import StreamState
+
+# the archive's columns a close reads (kind is not part of a window's graph)
+_COLUMNS = ["id", "time", "actor", "target", "weight"]
 
 __all__ = [
     "ArchivedWindowEvents",
@@ -84,29 +90,35 @@ def window_events(
     from rolewatch.scale.archive import read_window
     from rolewatch.store.event_times import timed_events_between
 
-    table = read_window(archive, start_us, end_us)
+    table = read_window(archive, start_us, end_us).select(_COLUMNS)
     rows = timed_events_between(connection, start_us, end_us)
-    stored: list[tuple[Any, ...]] = list(zip(*rows, strict=True)) if rows else [()] * 5
-    ids = np.concatenate(
-        [table.column("id").to_numpy(zero_copy_only=False), np.asarray(stored[0])]
-    ).astype(str)
-    times = np.concatenate([table.column("time").to_numpy(), np.asarray(stored[1], dtype=np.int64)])
-    order = np.lexsort((ids, times))
-    _, first = np.unique(ids[order], return_index=True)  # archive rows come first per id
-    keep = order[np.sort(first)]
-
-    def column(name: str, index: int, dtype: type) -> np.ndarray:
-        archived: np.ndarray = np.asarray(
-            table.column(name).to_numpy(zero_copy_only=False), dtype=dtype
-        )
-        return np.concatenate([archived, np.asarray(stored[index], dtype=dtype)])[keep]
-
+    both = pa.concat_tables([table, _stored_table(rows, table.schema)])
+    # (time, id) order, stable: of an id in both, the archive's row (first) comes first
+    order = pc.sort_indices(both, [("time", "ascending"), ("id", "ascending")]).to_numpy()
+    id_code = both.column("id").combine_chunks().dictionary_encode().indices.to_numpy()
+    _, first = np.unique(id_code[order], return_index=True)
+    kept = both.take(pa.array(order[np.sort(first)]))
+    names, actor_code, target_code = coded_accounts(kept.column("actor"), kept.column("target"))
+    events = from_codes(
+        kept.column("id").to_numpy(zero_copy_only=False),
+        names,
+        actor_code,
+        target_code,
+        kept.column("weight").to_numpy(),
+    )
     return ArchivedWindowEvents(
-        event_id=ids.astype(object)[keep],
-        actor=column("actor", 2, object),
-        target=column("target", 3, object),
-        weight=column("weight", 4, np.float64),
+        **{field.name: getattr(events, field.name) for field in fields(events)},
         from_store=len(rows),
+    )
+
+
+def _stored_table(rows: list[Any], schema: pa.Schema) -> pa.Table:
+    """The store's ``(event_id, time_us, actor, target, weight)`` rows as a table of the
+    archive's columns and types."""
+    columns: list[tuple[Any, ...]] = list(zip(*rows, strict=True)) if rows else [()] * 5
+    return pa.table(
+        [pa.array(values, type=field.type) for values, field in zip(columns, schema, strict=True)],
+        schema=schema,
     )
 
 

@@ -31,6 +31,7 @@ million string objects per column.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from sqlalchemy.engine import Connection
@@ -160,29 +161,38 @@ def libpq_uri(connection: Connection) -> str:
     return url.render_as_string(hide_password=False)
 
 
+def coded_accounts(actor: Any, target: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Account ids of Arrow string columns coded once, without a Python object per event:
+    the distinct ids (object array of str, in no particular order) and each event's actor
+    and target code into them (Arrow's ``dictionary_encode`` over both columns at once)."""
+    import pyarrow as pa
+
+    def whole(column: Any) -> Any:
+        joined = column.combine_chunks() if isinstance(column, pa.ChunkedArray) else column
+        return joined.cast(pa.large_string())  # 64-bit offsets: no 2 GB limit on the pair
+
+    both = pa.concat_arrays([whole(actor), whole(target)]).dictionary_encode()
+    codes = both.indices.to_numpy().astype(np.int64)
+    n = len(actor)
+    names = np.asarray(both.dictionary.to_numpy(zero_copy_only=False), dtype=object)
+    return names, codes[:n], codes[n:]
+
+
 def _postgres_columns(connection: Connection, start_us: int, end_us: int) -> EventColumns:
     import adbc_driver_postgresql.dbapi as adbc
-    import pyarrow as pa
 
     with adbc.connect(libpq_uri(connection)) as reader, reader.cursor() as cursor:
         cursor.execute(_POSTGRES_SELECT.format(start=start_us, end=end_us))
         table = cursor.fetch_arrow_table()
     if not table.num_rows:
         return _empty()
-    accounts = pa.concat_arrays(
-        [
-            table.column(name).combine_chunks().cast(pa.large_string())
-            for name in ("actor", "target")
-        ]
-    ).dictionary_encode()
-    codes = accounts.indices.to_numpy().astype(np.int64)
-    n = table.num_rows
+    names, actor_code, target_code = coded_accounts(table.column("actor"), table.column("target"))
     event_id = table.column("event_id").to_numpy(zero_copy_only=False)
     return EventColumns(
         event_id=np.asarray(event_id, dtype=object),
-        names=np.asarray(accounts.dictionary.to_numpy(zero_copy_only=False), dtype=object),
-        actor_code=codes[:n],
-        target_code=codes[n:],
+        names=names,
+        actor_code=actor_code,
+        target_code=target_code,
         weight=table.column("weight").to_numpy().astype(np.float64, copy=False),
         order=_time_then_id(table.column("time_us").to_numpy(), event_id),
     )
