@@ -30,6 +30,7 @@ million string objects per column.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -118,7 +119,7 @@ def _sqlite_columns(connection: Connection, start_us: int, end_us: int) -> Event
     )
 
 
-def _coded_chunk(rows: list, code_of: dict[str, int]) -> tuple[np.ndarray, ...]:
+def _coded_chunk(rows: Sequence[Any], code_of: dict[str, int]) -> tuple[np.ndarray, ...]:
     """One chunk of (event_id, time_us, actor, target, weight) rows as columns, the account
     ids as codes of ``code_of`` (extended with the ids it has not seen; pandas' hash-based
     ``factorize`` finds the chunk's distinct ids, the dictionary only those)."""
