@@ -71,7 +71,8 @@ def from_codes(event_id, names, actor_code, target_code, weight, *, order=None) 
     """Window events from account codes into ``names`` (distinct ids in any order): the few
     distinct ids are sorted and the codes become positions among them."""
     distinct = np.asarray(names, dtype=object)
-    by_text = np.argsort(distinct.astype(str), kind="stable")
+    text = distinct.astype(str)
+    by_text = np.argsort(text, kind="stable")
     rank = np.empty(by_text.size, dtype=np.int64)
     rank[by_text] = np.arange(by_text.size)
     accounts = distinct[by_text]
@@ -86,7 +87,7 @@ def from_codes(event_id, names, actor_code, target_code, weight, *, order=None) 
         actor=accounts[actor_index],
         target=accounts[target_index],
         weight=weight,
-        accounts=accounts.astype(str),
+        accounts=text[by_text],
         actor_index=actor_index,
         target_index=target_index,
     )
