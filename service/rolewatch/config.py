@@ -78,7 +78,8 @@ class Settings(BaseSettings):
     database_url: str = Field(
         "sqlite:///rolewatch.db",
         description="SQLAlchemy URL of the store: sqlite:///path.db (default) or "
-        "postgresql+psycopg://user@host:5432/db.",
+        "postgresql+psycopg://user@host:5432/db (window closes also read events through "
+        "libpq with it, so query parameters must be libpq connection parameters).",
     )
     sqlite_synchronous: Literal["FULL", "NORMAL"] = Field(
         "FULL",
