@@ -9,7 +9,7 @@ read back from here. An account with too little activity to fit a role (status
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 
 import numpy as np
 import sqlalchemy as sa
@@ -61,35 +61,59 @@ _COLUMNS = (
 )
 
 
+# Rows built and written at once: a window's rows as Python objects would hold about a
+# kilobyte per account (1.5 GB at 1,500,000 accounts) if they were built all together.
+INSERT_CHUNK_ROWS = 65_536
+
+
 def insert_memberships(
     connection: Connection, window_id: int, basis_version: str, columns: MembershipColumns
 ) -> None:
     """Store every account's membership of one window, in bulk.
 
     The rows are built column by column (mixtures as JSON text by numpy's string
-    operations) and handed to the driver at once: ``COPY ... FROM STDIN`` on PostgreSQL, one
-    prepared ``INSERT`` run by ``executemany`` on SQLite. Going through SQLAlchemy's
-    per-row parameter processing took 16.8 s for the 166,607 rows of ``close-1m`` (2-core
-    machine, profiled); this takes about a second.
+    operations) and handed to the driver in chunks of :data:`INSERT_CHUNK_ROWS`: one
+    ``COPY ... FROM STDIN`` on PostgreSQL, one prepared ``INSERT`` run by ``executemany``
+    per chunk on SQLite. Going through SQLAlchemy's per-row parameter processing took 16.8 s
+    for the 166,607 rows of ``close-1m`` (2-core machine, profiled); this takes about a
+    second.
     """
     n = len(columns.accounts)
     if not n:
         return
-    rows = list(zip(*_column_lists(window_id, basis_version, columns), strict=True))
+    chunks = (
+        zip(
+            *_column_lists(window_id, basis_version, _rows_of(columns, lo, lo + INSERT_CHUNK_ROWS)),
+            strict=True,
+        )
+        for lo in range(0, n, INSERT_CHUNK_ROWS)
+    )
     cursor = connection.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
     try:
         if connection.dialect.name == "postgresql":
             statement = f"COPY memberships ({', '.join(_COLUMNS)}) FROM STDIN"
             with cursor.copy(statement) as copy:
-                for row in rows:
-                    copy.write_row(row)
+                for rows in chunks:
+                    for row in rows:
+                        copy.write_row(row)
         else:
             marks = ", ".join("?" * len(_COLUMNS))
-            cursor.executemany(
-                f"INSERT INTO memberships ({', '.join(_COLUMNS)}) VALUES ({marks})", rows
-            )
+            statement = f"INSERT INTO memberships ({', '.join(_COLUMNS)}) VALUES ({marks})"
+            for rows in chunks:
+                cursor.executemany(statement, list(rows))
     finally:
         cursor.close()
+
+
+def _rows_of(columns: MembershipColumns, lo: int, hi: int) -> MembershipColumns:
+    """Rows ``lo:hi`` of every column (role ids kept)."""
+    return MembershipColumns(
+        **{
+            field.name: value if field.name == "role_ids" or value is None else value[lo:hi]
+            for field in fields(columns)
+            for value in [getattr(columns, field.name)]
+        }
+    )
 
 
 def _column_lists(window_id: int, basis_version: str, columns: MembershipColumns) -> list[list]:
