@@ -14,7 +14,7 @@ into it, so the caller interns a window's ids without hashing them again:
   each row (3.7 s instead of 10.9 s for the rows of ``close-1m``, whose events were stored
   in random time order). The rows are fetched in chunks, each chunk's account ids coded by
   pandas' hash-based ``factorize`` and only its distinct ids kept, so a chunk's tuples and
-  per-row objects are freed before the next is read (1,000,000 events: about 245 MB at the
+  per-row objects are freed before the next is read (1,000,000 events: about 260 MB at the
   peak instead of 474 MB); the chunks' distinct ids are coded together at the end.
 * PostgreSQL: the ADBC driver (Apache Arrow's database connectivity: the server's binary
   ``COPY`` format straight into Arrow columns, no Python object per row) and Arrow's
