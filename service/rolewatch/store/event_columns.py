@@ -45,8 +45,8 @@ _SQLITE_SELECT = (
     # unary + keeps SQLite from answering the range from the time index row by row
     " WHERE +events.time_us >= ? AND +events.time_us < ?"
 )
-# Bounds written into the text (integers): the driver streams a statement without
-# parameters as binary COPY, one with bound parameters row by row.
+# The bounds are integers formatted into the text (``:d``), so the statement needs no bound
+# parameters; the driver reads results through binary COPY (its documentation).
 _POSTGRES_SELECT = (
     "SELECT event_id, time_us, actor, target, weight FROM events"
     " WHERE time_us >= {start:d} AND time_us < {end:d}"
@@ -107,24 +107,22 @@ def _sqlite_columns(connection: Connection, start_us: int, end_us: int) -> Event
         cursor.close()
     if not chunks:
         return _empty()
-    # every chunk's distinct ids coded once more, together: a chunk's codes map through
-    # its slice of those codes
+    # every chunk's distinct ids coded once more, together; a chunk's own codes then map
+    # through its slice of those codes
     code_of_distinct, names = pd.factorize(np.concatenate([chunk.distinct for chunk in chunks]))
-    ends = np.cumsum([len(chunk.distinct) for chunk in chunks])
-    slices = [
-        code_of_distinct[end - len(chunk.distinct) : end]
-        for chunk, end in zip(chunks, ends, strict=True)
-    ]
+    actor_code, target_code = [], []
+    start = 0
+    for chunk in chunks:
+        mapping = code_of_distinct[start : start + len(chunk.distinct)].astype(np.int64)
+        actor_code.append(mapping[chunk.actor])
+        target_code.append(mapping[chunk.target])
+        start += len(chunk.distinct)
     event_id = np.concatenate([chunk.event_id for chunk in chunks])
     return EventColumns(
         event_id=event_id,
         names=np.asarray(names, dtype=object),
-        actor_code=np.concatenate([s[c.actor] for c, s in zip(chunks, slices, strict=True)]).astype(
-            np.int64
-        ),
-        target_code=np.concatenate(
-            [s[c.target] for c, s in zip(chunks, slices, strict=True)]
-        ).astype(np.int64),
+        actor_code=np.concatenate(actor_code),
+        target_code=np.concatenate(target_code),
         weight=np.concatenate([chunk.weight for chunk in chunks]),
         order=_time_then_id(np.concatenate([chunk.time_us for chunk in chunks]), event_id),
     )
@@ -189,8 +187,9 @@ def coded_accounts(actor: Any, target: Any) -> tuple[np.ndarray, np.ndarray, np.
     import pyarrow as pa
 
     def whole(column: Any) -> Any:
-        joined = column.combine_chunks() if isinstance(column, pa.ChunkedArray) else column
-        return joined.cast(pa.large_string())  # 64-bit offsets: no 2 GB limit on the pair
+        # 64-bit offsets before the chunks are joined: no 2 GB limit on a column or the pair
+        wide = column.cast(pa.large_string())
+        return wide.combine_chunks() if isinstance(wide, pa.ChunkedArray) else wide
 
     both = pa.concat_arrays([whole(actor), whole(target)]).dictionary_encode()
     codes = both.indices.to_numpy().astype(np.int64)
