@@ -8,6 +8,7 @@ import networkx as nx
 import numpy as np
 import scipy.sparse as sp
 
+from rolewatch import helper_process
 from rolewatch.pipeline import communities
 from rolewatch.pipeline.communities import start_communities, window_communities
 
@@ -31,14 +32,13 @@ def test_the_child_process_finds_the_communities_this_process_finds():
 
 
 def _no_child() -> None:
-    if communities._child is not None:
-        communities._drop_child(communities._child)
+    communities.HELPER.stop()
 
 
 def test_a_child_that_cannot_start_leaves_the_work_to_this_process(monkeypatch):
     ties = _karate_ties()
     _no_child()
-    monkeypatch.setattr(communities.sys, "executable", "/nonexistent/python")
+    monkeypatch.setattr(helper_process.sys, "executable", "/nonexistent/python")
     job = start_communities(ties, 1.0, min_ties=0)
     np.testing.assert_array_equal(job.result(), window_communities(ties, 1.0))
 
@@ -55,15 +55,15 @@ def test_the_child_serves_one_window_after_another_and_a_dead_one_is_replaced():
     ties = _karate_ties()
     _no_child()
     first = start_communities(ties, 1.0, min_ties=0).result()
-    child = communities._child
+    child = communities.HELPER.process
     assert child is not None
     second = start_communities(ties, 0.5, min_ties=0).result()
-    assert communities._child is child  # the same process answered both
+    assert communities.HELPER.process is child  # the same process answered both
     np.testing.assert_array_equal(first, window_communities(ties, 1.0))
     np.testing.assert_array_equal(second, window_communities(ties, 0.5))
-    child.process.kill()
-    child.process.wait()
+    child.kill()
+    child.wait()
     again = start_communities(ties, 1.0, min_ties=0).result()
     np.testing.assert_array_equal(again, first)
-    assert communities._child is not child
+    assert communities.HELPER.process is not child
     _no_child()

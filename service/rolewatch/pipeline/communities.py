@@ -7,17 +7,14 @@ can, when the machine has a second core: on ``close-1m`` the communities take ab
 the close on their own. Small graphs are computed in this process, where starting another
 would cost more than it saves.
 
-The child is a fresh interpreter running this module (``python -m
-rolewatch.pipeline.communities``), started by the first large window and kept for the next
-ones (its imports take about 2 s here, which would otherwise count against every close):
-each graph goes to its standard input and the labels come back on its standard output, as
-length-prefixed ``.npy`` arrays; it exits when its standard input closes (with this
-process). Unlike :mod:`multiprocessing`'s "spawn" it never imports the caller's main
-script, so a script that closes windows is not run again in the child. The child runs the
-very same function on the same graph with the same seed, so the labels are the same
-whichever process computed them; if it fails (it cannot start, it dies, its answer does
-not parse) it is stopped, the labels are computed here, and the next large window starts a
-new child.
+The child is a :class:`rolewatch.helper_process.HelperProcess` running this module
+(``python -m rolewatch.pipeline.communities``), started by the first large window and kept
+for the next ones (its imports take about 2 s here, which would otherwise count against
+every close): each graph goes to it as ``.npy`` arrays and the labels come back the same
+way. The child runs the very same function on the same graph with the same seed, so the
+labels are the same whichever process computed them; if it fails (it cannot start, it dies,
+its answer does not parse) the labels are computed here, and the next large window starts
+a new child.
 """
 
 from __future__ import annotations
@@ -26,7 +23,6 @@ import io
 import logging
 import os
 import subprocess
-import sys
 import threading
 from concurrent.futures import Future
 
@@ -34,6 +30,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from rolewatch.engine.bridging import leiden_communities
+from rolewatch.helper_process import HelperProcess, serve
 
 __all__ = [
     "PROCESS_MIN_TIES",
@@ -97,80 +94,17 @@ def start_communities(
     return CommunityJob(graph, resolution, future)
 
 
-class _Child:
-    """The long-lived child process and the one exchange it serves at a time."""
-
-    def __init__(self) -> None:
-        self.process = subprocess.Popen(
-            [sys.executable, "-m", __name__], stdin=subprocess.PIPE, stdout=subprocess.PIPE
-        )
-        self.lock = threading.Lock()
-
-    def labels(self, payload: bytes) -> np.ndarray:
-        with self.lock:
-            stdin, stdout = self.process.stdin, self.process.stdout
-            if stdin is None or stdout is None:
-                raise OSError("the community process has no pipes")
-            _write_frame(stdin, payload)
-            return np.load(io.BytesIO(_read_frame(stdout)), allow_pickle=False)
-
-    def stop(self) -> None:
-        if self.process.poll() is None:
-            self.process.kill()
-        self.process.wait()
-
-
-_child: _Child | None = None
-_child_lock = threading.Lock()
-
-
-def _shared_child() -> _Child:
-    global _child
-    with _child_lock:
-        if _child is None or _child.process.poll() is not None:
-            _child = _Child()
-        return _child
-
-
-def _drop_child(child: _Child) -> None:
-    """Stop a child that failed, so the next large window starts a new one."""
-    global _child
-    with _child_lock:
-        if _child is child:
-            _child = None
-    child.stop()
+HELPER = HelperProcess(__name__)
 
 
 def _run_child(payload: bytes, future: Future) -> None:
     """Have the child compute ``payload``'s labels and settle ``future`` with them (waiting
     on the child's pipes releases the GIL, so this thread costs the close nothing)."""
-    child = None
     try:
-        child = _shared_child()
-        future.set_result(child.labels(payload))
+        answer = HELPER.exchange(payload)
+        future.set_result(np.load(io.BytesIO(answer), allow_pickle=False))
     except BaseException as error:  # handed to the waiting close, which falls back
-        if child is not None:
-            _drop_child(child)
         future.set_exception(error)
-
-
-def _write_frame(stream, payload: bytes) -> None:
-    stream.write(len(payload).to_bytes(8, "little"))
-    stream.write(payload)
-    stream.flush()
-
-
-def _read_frame(stream) -> bytes:
-    """One length-prefixed message; OSError when the stream ends early."""
-    size = int.from_bytes(_read_exactly(stream, 8), "little")
-    return _read_exactly(stream, size)
-
-
-def _read_exactly(stream, size: int) -> bytes:
-    data = stream.read(size)
-    if data is None or len(data) != size:
-        raise OSError("the community process ended its output early")
-    return bytes(data)
 
 
 def _encode(graph: sp.csr_matrix, resolution: float) -> bytes:
@@ -191,21 +125,15 @@ def _decode(stream: io.BufferedReader | io.BytesIO) -> tuple[sp.csr_matrix, floa
     return sp.csr_matrix((data, indices, indptr), shape=shape), float(resolution[0])
 
 
-def _serve() -> None:
-    """The child: answer graphs on stdin with their labels on stdout until stdin ends."""
-    import igraph  # noqa: F401  (imported before the first graph arrives, not during it)
-
-    requests, answers = sys.stdin.buffer, sys.stdout.buffer
-    while True:
-        try:
-            payload = _read_frame(requests)
-        except OSError:  # the parent closed the pipe: nothing more to do
-            return
-        graph, resolution = _decode(io.BytesIO(payload))
-        buffer = io.BytesIO()
-        np.save(buffer, window_communities(graph, resolution), allow_pickle=False)
-        _write_frame(answers, buffer.getvalue())
+def _labels_of(payload: bytes) -> bytes:
+    """The child's answer: the labels of the graph in ``payload`` as an ``.npy`` array."""
+    graph, resolution = _decode(io.BytesIO(payload))
+    buffer = io.BytesIO()
+    np.save(buffer, window_communities(graph, resolution), allow_pickle=False)
+    return buffer.getvalue()
 
 
 if __name__ == "__main__":
-    _serve()
+    import igraph  # noqa: F401  (imported before the first graph arrives, not during it)
+
+    serve(_labels_of)

@@ -1,0 +1,124 @@
+"""Long-lived child interpreters that each serve one kind of request for the closing process.
+
+Some steps of a close run better outside the closing process: igraph's Leiden holds the
+global interpreter lock, so only another process can overlap it with the features; and
+reading a SQLite window through a second SQLite library (the ADBC driver's) is only safe in
+another process, because that library would drop the POSIX file locks of Python's own
+``sqlite3`` when it closes the file. A :class:`HelperProcess` is such a child: a fresh
+interpreter running one module (``python -m MODULE``), started by its first request and kept
+for the next ones (its imports would otherwise count against every close). Unlike
+:mod:`multiprocessing`'s "spawn" it never imports the caller's main script, so a script that
+closes windows is not run again in the child.
+
+Requests and answers are length-prefixed byte strings on the child's standard input and
+output, one exchange at a time. An answer starts with one status byte: the child reports
+an error of its own (a request it cannot serve) and keeps running; a child that dies, or
+whose answer does not parse, is stopped and the next request starts a new one. Either way
+the caller gets an :class:`OSError` and does the work itself.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import threading
+import traceback
+from collections.abc import Callable
+from typing import IO
+
+__all__ = ["HelperError", "HelperProcess", "serve"]
+
+_OK = b"\x00"
+_FAILED = b"\x01"
+
+
+class HelperError(OSError):
+    """The child could not serve a request (its message says why); it keeps running."""
+
+
+class HelperProcess:
+    """The child running ``python -m module``, started on first use and kept."""
+
+    def __init__(self, module: str) -> None:
+        self.module = module
+        self.process: subprocess.Popen | None = None
+        self._lock = threading.Lock()
+
+    def exchange(self, request: bytes) -> bytes:
+        """Send one request and wait for its answer (waiting on the pipe releases the GIL).
+        Raises :class:`HelperError` when the child reports a failure and :class:`OSError`
+        when it cannot be started or stops answering (it is then stopped)."""
+        with self._lock:
+            process = self._running()
+            try:
+                _write_frame(process.stdin, request)
+                answer = _read_frame(process.stdout)
+            except BaseException:
+                self._stop(process)
+                raise
+        if answer[:1] == _OK:
+            return answer[1:]
+        if answer[:1] == _FAILED:
+            raise HelperError(answer[1:].decode("utf-8", "replace"))
+        with self._lock:
+            self._stop(process)
+        raise OSError(f"the {self.module} process answered an unknown status")
+
+    def stop(self) -> None:
+        """Stop the child (the next request starts a new one)."""
+        with self._lock:
+            if self.process is not None:
+                self._stop(self.process)
+
+    def _running(self) -> subprocess.Popen:
+        if self.process is None or self.process.poll() is not None:
+            self.process = subprocess.Popen(
+                [sys.executable, "-m", self.module], stdin=subprocess.PIPE, stdout=subprocess.PIPE
+            )
+        return self.process
+
+    def _stop(self, process: subprocess.Popen) -> None:
+        if process.poll() is None:
+            process.kill()
+        process.wait()
+        if self.process is process:
+            self.process = None
+
+
+def serve(answer: Callable[[bytes], bytes]) -> None:
+    """The child's loop: answer each request on stdin on stdout until stdin ends. An
+    exception raised by ``answer`` goes back to the caller as a failure; the loop goes on."""
+    requests, answers = sys.stdin.buffer, sys.stdout.buffer
+    while True:
+        try:
+            request = _read_frame(requests)
+        except OSError:  # the parent closed the pipe: nothing more to do
+            return
+        try:
+            reply = _OK + answer(request)
+        except Exception:  # reported to the parent, which does the work itself
+            reply = _FAILED + traceback.format_exc(limit=3).encode("utf-8")
+        _write_frame(answers, reply)
+
+
+def _write_frame(stream: IO[bytes] | None, payload: bytes) -> None:
+    if stream is None:
+        raise OSError("the helper process has no pipes")
+    stream.write(len(payload).to_bytes(8, "little"))
+    stream.write(payload)
+    stream.flush()
+
+
+def _read_frame(stream: IO[bytes] | None) -> bytes:
+    """One length-prefixed message; OSError when the stream ends early."""
+    if stream is None:
+        raise OSError("the helper process has no pipes")
+    size = int.from_bytes(_read_exactly(stream, 8), "little")
+    return _read_exactly(stream, size)
+
+
+def _read_exactly(stream: IO[bytes], size: int) -> bytes:
+    data = stream.read(size)
+    if data is None or len(data) != size:
+        raise OSError("the helper process ended its output early")
+    return bytes(data)
