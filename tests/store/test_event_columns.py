@@ -1,5 +1,6 @@
 """A window's events as the close reads them from each database (SQLite through Python's
-sqlite3, PostgreSQL through the ADBC driver's Arrow columns): the same events in the same
+sqlite3 or, for a large window, through the ADBC SQLite driver in a helper process;
+PostgreSQL through the ADBC driver's Arrow columns): the same events in the same
 (time, event id) order, with the exact stored weights, as Python's own ``sorted`` over the
 events that were ingested. Ties at one microsecond and ids outside ASCII are where a
 database's ordering (its collation) could differ from Python's; the reference is Python's
@@ -10,9 +11,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from rolewatch import helper_process
 from rolewatch.clock import to_rfc3339
 from rolewatch.config import load_settings
 from rolewatch.pipeline.loading import interned, load_window_events
+from rolewatch.store import sqlite_window_reader
 from rolewatch.store.db import open_store
 from rolewatch.store.event_columns import event_columns
 from rolewatch.store.events import ingest, parse_time_us
@@ -45,10 +48,22 @@ def _events() -> list[dict]:
     return events
 
 
-@pytest.mark.parametrize("chunk_rows", [None, 7])
-def test_a_windows_events_come_back_as_python_sorts_them(store_url, chunk_rows, monkeypatch):
-    if chunk_rows is not None:  # SQLite's rows read in many chunks (PostgreSQL: no chunks)
-        monkeypatch.setattr("rolewatch.store.event_columns.SQLITE_CHUNK_ROWS", chunk_rows)
+def _read_only_in_helper(monkeypatch) -> None:
+    """Every SQLite window, however small, read by the helper process (and never here)."""
+
+    def not_here(*_args):
+        raise AssertionError("the window was read in this process")
+
+    monkeypatch.setattr("rolewatch.store.event_columns.HELPER_MIN_ROWS", 0)
+    monkeypatch.setattr("rolewatch.store.event_columns._read_here", not_here)
+
+
+@pytest.mark.parametrize("read", ["whole", "chunks", "helper"])
+def test_a_windows_events_come_back_as_python_sorts_them(store_url, read, monkeypatch):
+    if read == "chunks":  # SQLite's rows read in many chunks (PostgreSQL: no chunks)
+        monkeypatch.setattr("rolewatch.store.event_columns.SQLITE_CHUNK_ROWS", 7)
+    if read == "helper":  # SQLite only (PostgreSQL: read the same way as "whole")
+        _read_only_in_helper(monkeypatch)
     settings = load_settings(database_url=store_url)
     engine = open_store(settings)
     events = _events()
@@ -90,3 +105,41 @@ def test_a_windows_events_come_back_as_python_sorts_them(store_url, chunk_rows, 
     )
     for name in ("event_id", "actor", "target", "weight", "accounts", "actor_index"):
         np.testing.assert_array_equal(getattr(loaded, name), getattr(again, name))
+
+
+def _stored_window(tmp_path) -> tuple[object, list[dict]]:
+    settings = load_settings(database_url=f"sqlite:///{tmp_path / 'events.db'}")
+    engine = open_store(settings)
+    events = _events()
+    ingest(engine, settings, events, END + 3_600_000_000)
+    return engine, events
+
+
+def test_a_helper_that_cannot_start_leaves_the_read_to_this_process(tmp_path, monkeypatch):
+    engine, _ = _stored_window(tmp_path)
+    with engine.connect() as connection:
+        expected = event_columns(connection, START, END)  # small: read here
+        sqlite_window_reader.HELPER.stop()
+        monkeypatch.setattr(helper_process.sys, "executable", "/nonexistent/python")
+        monkeypatch.setattr("rolewatch.store.event_columns.HELPER_MIN_ROWS", 0)
+        fallen_back = event_columns(connection, START, END)
+    engine.dispose()
+    for name in ("event_id", "actor_code", "target_code", "weight", "order"):
+        np.testing.assert_array_equal(getattr(fallen_back, name), getattr(expected, name))
+    np.testing.assert_array_equal(fallen_back.names, expected.names)
+
+
+def test_the_helper_reports_a_request_it_cannot_serve_and_keeps_serving(tmp_path, monkeypatch):
+    engine, events = _stored_window(tmp_path)
+    engine.dispose()
+    window = sqlite_window_reader.RowRange(1, 10**6, START, END)
+    with pytest.raises(helper_process.HelperError, match="no such table"):
+        sqlite_window_reader.read_in_helper(
+            str(tmp_path / "no-events-here.db"), window, busy_timeout_ms=100
+        )
+    process = sqlite_window_reader.HELPER.process
+    read = sqlite_window_reader.read_in_helper(
+        str(tmp_path / "events.db"), window, busy_timeout_ms=100
+    )
+    assert sqlite_window_reader.HELPER.process is process  # the same child answered again
+    assert read.events.num_rows == len(events) - 2  # all but the two outside the window

@@ -216,20 +216,23 @@ def _close_once(
     start_us = geometry.start_of(end_us)
     clock = StageClock()
     with clock.stage("load"), engine.connect() as connection:
+        # a large window's events are read by a helper process while this one reads the rest
+        finish_events = event_source.start_window_events(connection, settings, start_us, end_us)
         model = load_active_model(connection)
-        current = event_source.window_events(connection, settings, start_us, end_us)
-        training = stored_windows.unmeasured_training_windows(connection) if model is None else []
+        if model is None:
+            training = stored_windows.unmeasured_training_windows(connection)
+        else:
+            past = load_past_windows(
+                connection,
+                model,
+                before_end_us=end_us,
+                limit=lookback_windows(settings),
+                outputs=settings.output_archive,
+            )
+            known = KnownPairs.from_parts(known_pair_parts(connection, before_end_us=end_us))
+        current = finish_events()
     if model is None:
         return _close_training(engine, settings, geometry, end_us, now_us, current, training, clock)
-    with clock.stage("load"), engine.connect() as connection:
-        past = load_past_windows(
-            connection,
-            model,
-            before_end_us=end_us,
-            limit=lookback_windows(settings),
-            outputs=settings.output_archive,
-        )
-        known = KnownPairs.from_parts(known_pair_parts(connection, before_end_us=end_us))
     window = WindowRef(id=None, start=to_rfc3339(start_us), end=to_rfc3339(end_us))
     started = time.perf_counter()
     result = compute_window(

@@ -3,6 +3,7 @@ events, and the stored memberships of the windows before it."""
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -13,7 +14,7 @@ from rolewatch.pipeline.model import FrozenModel
 from rolewatch.store import memberships as stored_memberships
 from rolewatch.store.alerts import WindowRef
 from rolewatch.store.db import Connection
-from rolewatch.store.event_columns import event_columns
+from rolewatch.store.event_columns import start_event_columns
 
 
 @dataclass(frozen=True)
@@ -120,15 +121,29 @@ def load_window_events(connection: Connection, start_us: int, end_us: int) -> Wi
     Late events are included: a window that is still open takes every event in its range,
     whenever it arrived (a closed window is never reloaded).
     """
-    columns = event_columns(connection, start_us, end_us)
-    return from_codes(
-        columns.event_id,
-        columns.names,
-        columns.actor_code,
-        columns.target_code,
-        columns.weight,
-        order=columns.order,
-    )
+    return start_window_events(connection, start_us, end_us)()
+
+
+def start_window_events(
+    connection: Connection, start_us: int, end_us: int
+) -> Callable[[], WindowEvents]:
+    """:func:`load_window_events`, finished by calling the returned function while
+    ``connection`` is open; a large window is read in the meantime
+    (:func:`rolewatch.store.event_columns.start_event_columns`)."""
+    finish_columns = start_event_columns(connection, start_us, end_us)
+
+    def finish() -> WindowEvents:
+        columns = finish_columns()
+        return from_codes(
+            columns.event_id,
+            columns.names,
+            columns.actor_code,
+            columns.target_code,
+            columns.weight,
+            order=columns.order,
+        )
+
+    return finish
 
 
 def load_past_windows(

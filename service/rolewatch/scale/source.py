@@ -7,6 +7,7 @@ are exactly the store's reads.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, fields
 from typing import Any
 
@@ -15,10 +16,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from rolewatch.config import Settings
-from rolewatch.pipeline.loading import WindowEvents, from_codes, load_window_events
+from rolewatch.pipeline.loading import WindowEvents, from_codes
+from rolewatch.pipeline.loading import start_window_events as start_window_events_in_store
 from rolewatch.store import windows as stored_windows
+from rolewatch.store.account_codes import coded_accounts
 from rolewatch.store.db import Connection
-from rolewatch.store.event_columns import coded_accounts
 from rolewatch.store.windows import StreamState
 
 # the archive's columns a close reads (kind is not part of a window's graph)
@@ -28,6 +30,7 @@ __all__ = [
     "ArchivedWindowEvents",
     "first_event_time_from",
     "stored_part",
+    "start_window_events",
     "stream_state",
     "window_events",
 ]
@@ -84,9 +87,25 @@ def window_events(
 ) -> WindowEvents:
     """The window's events from the archive and the store (an id in both counts once),
     sorted by (time, id) as the store alone sorts them."""
+    return start_window_events(connection, settings, start_us, end_us)()
+
+
+def start_window_events(
+    connection: Connection, settings: Settings, start_us: int, end_us: int
+) -> Callable[[], WindowEvents]:
+    """:func:`window_events`, finished by calling the returned function while
+    ``connection`` is open: the store alone reads a large SQLite window in the meantime
+    (:func:`rolewatch.pipeline.loading.start_window_events`); with the archive everything is
+    read when it is called."""
     archive = _archive(settings)
     if archive is None:
-        return load_window_events(connection, start_us, end_us)
+        return start_window_events_in_store(connection, start_us, end_us)
+    return lambda: _archived_window_events(connection, archive, start_us, end_us)
+
+
+def _archived_window_events(
+    connection: Connection, archive: str, start_us: int, end_us: int
+) -> ArchivedWindowEvents:
     from rolewatch.scale.archive import read_window
     from rolewatch.store.event_times import timed_events_between
 

@@ -6,16 +6,20 @@ by row through SQLAlchemy's result objects cost about 10 s for 1,000,000 events 
 pandas in bulk instead, and give each account id once (``names``) with the events' codes
 into it, so the caller interns a window's ids without hashing them again:
 
-* SQLite: one statement on the DBAPI cursor (Python's own ``sqlite3``: a second SQLite
-  library in the process, such as an ADBC driver's, would break the file locks of the
-  first). The rows are read in rowid order between the first and last rowid of the window
-  (found on the time index, which holds the rowid): a stream is stored roughly in time
-  order, so this reads the table's pages in sequence instead of jumping from the index to
-  each row (3.7 s instead of 10.9 s for the rows of ``close-1m``, whose events were stored
-  in random time order). The rows are fetched in chunks, each chunk's account ids coded by
-  pandas' hash-based ``factorize`` and only its distinct ids kept, so a chunk's tuples and
-  per-row objects are freed before the next is read (1,000,000 events: about 260 MB at the
-  peak instead of 474 MB); the chunks' distinct ids are coded together at the end.
+* SQLite: the window's first and last rowid are found on the time index (which holds the
+  rowid), and the rows are read in rowid order between them: a stream is stored roughly in
+  time order, so this reads the table's pages in sequence instead of jumping from the index
+  to each row (3.7 s instead of 10.9 s for the rows of ``close-1m``, whose events were
+  stored in random time order). A window of at least
+  :data:`~rolewatch.store.sqlite_window_reader.HELPER_MIN_ROWS` rows in a database file is
+  read by a helper process through the ADBC SQLite driver, as Arrow columns with the ids
+  coded by Arrow (:mod:`rolewatch.store.sqlite_window_reader`; 1.2 s for ``close-1m``'s
+  rows, and the closing process meanwhile reads the earlier windows' memberships). Smaller
+  windows, in-memory databases, and any window the helper fails on are read here with
+  Python's own ``sqlite3`` in chunks, each chunk's account ids coded by pandas'
+  hash-based ``factorize`` and only its distinct ids kept, so a chunk's tuples and
+  per-row objects are freed before the next is read (1,000,000 events: about 260 MB at
+  the peak instead of 474 MB); the chunks' distinct ids are coded together at the end.
 * PostgreSQL: the ADBC driver (Apache Arrow's database connectivity: the server's binary
   ``COPY`` format straight into Arrow columns, no Python object per row) and Arrow's
   ``dictionary_encode`` for the ids: 1.3 s for ``close-1m``'s rows where ``COPY`` as CSV
@@ -30,20 +34,32 @@ million string objects per column.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import logging
+import threading
+from collections.abc import Callable, Sequence
+from concurrent.futures import Future
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from sqlalchemy.engine import Connection
 
-_SQLITE_SELECT = (
-    "WITH span AS (SELECT min(seq) AS low, max(seq) AS high FROM events"
-    " WHERE time_us >= ? AND time_us < ?)"
-    " SELECT event_id, time_us, actor, target, weight FROM span JOIN events"
-    " ON events.seq BETWEEN span.low AND span.high"
+from rolewatch.store.account_codes import coded_accounts
+from rolewatch.store.sqlite_window_reader import (
+    HELPER_MIN_ROWS,
+    ArrowWindow,
+    RowRange,
+    read_in_helper,
+)
+
+log = logging.getLogger(__name__)
+
+# the first and last rowid of the window, found on the time index (which holds the rowid)
+_SQLITE_SPAN = "SELECT min(seq), max(seq) FROM events WHERE time_us >= ? AND time_us < ?"
+_SQLITE_ROWS = (
+    "SELECT event_id, time_us, actor, target, weight FROM events WHERE seq BETWEEN ? AND ?"
     # unary + keeps SQLite from answering the range from the time index row by row
-    " WHERE +events.time_us >= ? AND +events.time_us < ?"
+    " AND +time_us >= ? AND +time_us < ?"
 )
 # The bounds are integers formatted into the text (``:d``), so the statement needs no bound
 # parameters; the driver reads results through binary COPY (its documentation).
@@ -80,12 +96,57 @@ def event_columns(connection: Connection, start_us: int, end_us: int) -> EventCo
     """The stored events with ``start_us <= time < end_us`` (late ones included), with the
     (time, event id) order that makes sums over them reproducible.
 
-    On PostgreSQL the rows are read on a connection of their own (the ADBC driver's), after
-    whatever ``connection`` has committed; the closer re-checks the window's event count in
-    its write transaction, so a batch that lands in between is never lost."""
+    On PostgreSQL the rows are read on a connection of their own (the ADBC driver's), and a
+    large SQLite window by a helper process; both see whatever has been committed when they
+    read. The closer re-checks the window's event count in its write transaction, so a batch
+    that lands in between is never lost."""
+    return start_event_columns(connection, start_us, end_us)()
+
+
+def start_event_columns(
+    connection: Connection, start_us: int, end_us: int
+) -> Callable[[], EventColumns]:
+    """:func:`event_columns`, started now and finished by calling the returned function
+    while ``connection`` is still open. The reads that do not use ``connection`` (a large
+    SQLite window's, by the helper process; PostgreSQL's, by the ADBC driver) run on a
+    thread in the meantime, so the caller can read other things on ``connection``; a small
+    SQLite window is read when the function is called."""
+    start_us, end_us = int(start_us), int(end_us)
     if connection.dialect.name == "postgresql":
-        return _postgres_columns(connection, int(start_us), int(end_us))
-    return _sqlite_columns(connection, int(start_us), int(end_us))
+        return _on_thread(_postgres_columns, libpq_uri(connection), start_us, end_us).result
+    dbapi_connection: Any = connection.connection.dbapi_connection
+    low, high = dbapi_connection.execute(_SQLITE_SPAN, (start_us, end_us)).fetchone()
+    if low is None:
+        return _empty
+    rows = RowRange(int(low), int(high), start_us, end_us)
+    path = _database_file(dbapi_connection)
+    if not path or rows.high - rows.low + 1 < HELPER_MIN_ROWS:
+        return lambda: _read_here(dbapi_connection, rows)
+    reading = _on_thread(read_in_helper, path, rows, busy_timeout_ms=_busy_ms(dbapi_connection))
+
+    def finish() -> EventColumns:
+        try:
+            return _from_arrow(reading.result())
+        except OSError as error:
+            log.warning("the window reader failed (%s); reading the window here", error)
+            return _read_here(dbapi_connection, rows)
+
+    return finish
+
+
+def _on_thread(function: Callable[..., Any], *args: Any, **kwargs: Any) -> Future:
+    """``function(*args, **kwargs)`` run on a thread of its own; its result or exception
+    in the future."""
+    future: Future = Future()
+
+    def run() -> None:
+        try:
+            future.set_result(function(*args, **kwargs))
+        except BaseException as error:  # handed to whoever waits for the result
+            future.set_exception(error)
+
+    threading.Thread(target=run, name="rolewatch-window-read", daemon=True).start()
+    return future
 
 
 # Rows fetched and coded at once on SQLite: each chunk's tuples, numbers and per-event id
@@ -93,16 +154,17 @@ def event_columns(connection: Connection, start_us: int, end_us: int) -> EventCo
 SQLITE_CHUNK_ROWS = 262_144
 
 
-def _sqlite_columns(connection: Connection, start_us: int, end_us: int) -> EventColumns:
+def _read_here(dbapi_connection: Any, rows: RowRange) -> EventColumns:
+    """The rows read with Python's ``sqlite3`` in chunks."""
     import pandas as pd
 
-    cursor = connection.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
+    cursor = dbapi_connection.cursor()
     chunks = []
     try:
-        cursor.execute(_SQLITE_SELECT, (start_us, end_us, start_us, end_us))
-        while rows := cursor.fetchmany(SQLITE_CHUNK_ROWS):
-            chunks.append(_Chunk.of(rows))
-            del rows
+        cursor.execute(_SQLITE_ROWS, (rows.low, rows.high, rows.start_us, rows.end_us))
+        while fetched := cursor.fetchmany(SQLITE_CHUNK_ROWS):
+            chunks.append(_Chunk.of(fetched))
+            del fetched
     finally:
         cursor.close()
     if not chunks:
@@ -125,6 +187,33 @@ def _sqlite_columns(connection: Connection, start_us: int, end_us: int) -> Event
         target_code=np.concatenate(target_code),
         weight=np.concatenate([chunk.weight for chunk in chunks]),
         order=_time_then_id(np.concatenate([chunk.time_us for chunk in chunks]), event_id),
+    )
+
+
+def _database_file(dbapi_connection: Any) -> str:
+    """The file of the connection's main database ('' for an in-memory database)."""
+    for _, name, file in dbapi_connection.execute("PRAGMA database_list").fetchall():
+        if name == "main":
+            return str(file or "")
+    return ""
+
+
+def _busy_ms(dbapi_connection: Any) -> int:
+    """The store's busy timeout, so the helper waits for a lock as long as this process."""
+    (busy_ms,) = dbapi_connection.execute("PRAGMA busy_timeout").fetchone()
+    return int(busy_ms)
+
+
+def _from_arrow(window: ArrowWindow) -> EventColumns:
+    events = window.events
+    event_id = np.asarray(events.column("event_id").to_numpy(zero_copy_only=False), dtype=object)
+    return EventColumns(
+        event_id=event_id,
+        names=np.asarray(window.names.to_numpy(zero_copy_only=False), dtype=object),
+        actor_code=events.column("actor_code").to_numpy().astype(np.int64),
+        target_code=events.column("target_code").to_numpy().astype(np.int64),
+        weight=events.column("weight").to_numpy().astype(np.float64, copy=False),
+        order=_time_then_id(events.column("time_us").to_numpy(), event_id),
     )
 
 
@@ -180,28 +269,10 @@ def libpq_uri(connection: Connection) -> str:
     return url.render_as_string(hide_password=False)
 
 
-def coded_accounts(actor: Any, target: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Account ids of Arrow string columns coded once, without a Python object per event:
-    the distinct ids (object array of str, in no particular order) and each event's actor
-    and target code into them (Arrow's ``dictionary_encode`` over both columns at once)."""
-    import pyarrow as pa
-
-    def whole(column: Any) -> Any:
-        # 64-bit offsets before the chunks are joined: no 2 GB limit on a column or the pair
-        wide = column.cast(pa.large_string())
-        return wide.combine_chunks() if isinstance(wide, pa.ChunkedArray) else wide
-
-    both = pa.concat_arrays([whole(actor), whole(target)]).dictionary_encode()
-    codes = both.indices.to_numpy().astype(np.int64)
-    n = len(actor)
-    names = np.asarray(both.dictionary.to_numpy(zero_copy_only=False), dtype=object)
-    return names, codes[:n], codes[n:]
-
-
-def _postgres_columns(connection: Connection, start_us: int, end_us: int) -> EventColumns:
+def _postgres_columns(uri: str, start_us: int, end_us: int) -> EventColumns:
     import adbc_driver_postgresql.dbapi as adbc
 
-    with adbc.connect(libpq_uri(connection)) as reader, reader.cursor() as cursor:
+    with adbc.connect(uri) as reader, reader.cursor() as cursor:
         cursor.execute(_POSTGRES_SELECT.format(start=start_us, end=end_us))
         table = cursor.fetch_arrow_table()
     if not table.num_rows:
