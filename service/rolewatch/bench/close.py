@@ -6,7 +6,9 @@ and one window of 1,000,000 events (about 180,000 accounts), bulk-loaded with pl
 basis (timed separately, as ``training_seconds``); then closing the big window — loading its
 events, ReFeX transform, memberships, baselines, scoring, evidence and writing memberships,
 alerts and the window record in one transaction — is the figure to watch (target ≤ 10 s),
-with the seconds of each stage (``stage_seconds``, as ``GET /v1/windows`` shows them).
+with the seconds of each stage (``stage_seconds``, as ``GET /v1/windows`` shows them),
+the closing process's peak memory and that of each helper process it started (the
+communities, the SQLite window reader).
 ``close-1m-postgres``: the same on PostgreSQL, in a schema of its own that is dropped
 afterwards (bulk-loaded with ``COPY``); it needs ``ROLEWATCH_BENCH_POSTGRES_URL`` (for
 example ``postgresql+psycopg://postgres@127.0.0.1:5432/test``) and says so when it is not
@@ -81,6 +83,31 @@ def _load_postgres(engine: Any, rows: list[tuple]) -> None:
 
 def _peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def _helper_peaks_mb() -> dict[str, float | None]:
+    """Peak resident memory of each helper process the closes used (Linux's ``VmHWM``;
+    None where the helper is not running or the system does not say)."""
+    from rolewatch.pipeline import communities
+    from rolewatch.store import sqlite_window_reader
+
+    peaks: dict[str, float | None] = {}
+    for name, helper in (
+        ("communities", communities.HELPER),
+        ("window_reader", sqlite_window_reader.HELPER),
+    ):
+        process = helper.process
+        peaks[name] = None
+        if process is None or process.poll() is not None:
+            continue
+        try:
+            status = Path(f"/proc/{process.pid}/status").read_text()
+        except OSError:
+            continue
+        for line in status.splitlines():
+            if line.startswith("VmHWM:"):
+                peaks[name] = round(int(line.split()[1]) / 1024, 1)
+    return peaks
 
 
 @contextmanager
@@ -159,5 +186,6 @@ def _close_1m(case: str, url: str, quick: bool) -> dict:
         "stage_seconds": summary.stage_seconds,
         "training_seconds": round(training_seconds, 2),
         "peak_rss_mb": round(_peak_rss_mb(), 1),
+        "helper_peak_rss_mb": _helper_peaks_mb(),
         "target_seconds": 10 if url.startswith("sqlite") else 12,
     }
