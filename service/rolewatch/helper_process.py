@@ -23,8 +23,8 @@ import subprocess
 import sys
 import threading
 import traceback
-from collections.abc import Callable
-from typing import IO
+from collections.abc import Callable, Sequence
+from typing import IO, Any
 
 __all__ = ["HelperError", "HelperProcess", "serve"]
 
@@ -44,22 +44,23 @@ class HelperProcess:
         self.process: subprocess.Popen | None = None
         self._lock = threading.Lock()
 
-    def exchange(self, request: bytes) -> bytes:
-        """Send one request and wait for its answer (waiting on the pipe releases the GIL).
-        Raises :class:`HelperError` when the child reports a failure and :class:`OSError`
-        when it cannot be started or stops answering (it is then stopped)."""
+    def exchange(self, request: bytes) -> memoryview:
+        """Send one request and wait for its answer (waiting on the pipe releases the GIL);
+        the answer is a view of the bytes read, not a copy. Raises :class:`HelperError` when
+        the child reports a failure and :class:`OSError` when it cannot be started or stops
+        answering (it is then stopped)."""
         with self._lock:
             process = self._running()
             try:
-                _write_frame(process.stdin, request)
-                answer = _read_frame(process.stdout)
+                _write_frame(process.stdin, [request])
+                answer = memoryview(_read_frame(process.stdout))
             except BaseException:
                 self._stop(process)
                 raise
         if answer[:1] == _OK:
             return answer[1:]
         if answer[:1] == _FAILED:
-            raise HelperError(answer[1:].decode("utf-8", "replace"))
+            raise HelperError(bytes(answer[1:]).decode("utf-8", "replace"))
         with self._lock:
             self._stop(process)
         raise OSError(f"the {self.module} process answered an unknown status")
@@ -85,9 +86,13 @@ class HelperProcess:
             self.process = None
 
 
-def serve(answer: Callable[[bytes], bytes]) -> None:
-    """The child's loop: answer each request on stdin on stdout until stdin ends. An
-    exception raised by ``answer`` goes back to the caller as a failure; the loop goes on."""
+def serve(
+    answer: Callable[[bytes], Sequence[Any]], *, after_each: Callable[[], Any] | None = None
+) -> None:
+    """The child's loop: answer each request on stdin on stdout until stdin ends. ``answer``
+    gives the parts of its answer (written one after the other, never joined in memory);
+    an exception it raises goes back to the caller as a failure, and the loop goes on.
+    ``after_each`` runs once an answer is written (to hand memory back, for example)."""
     requests, answers = sys.stdin.buffer, sys.stdout.buffer
     while True:
         try:
@@ -95,17 +100,23 @@ def serve(answer: Callable[[bytes], bytes]) -> None:
         except OSError:  # the parent closed the pipe: nothing more to do
             return
         try:
-            reply = _OK + answer(request)
+            parts = [_OK, *answer(request)]
         except Exception:  # reported to the parent, which does the work itself
-            reply = _FAILED + traceback.format_exc(limit=3).encode("utf-8")
-        _write_frame(answers, reply)
+            parts = [_FAILED, traceback.format_exc(limit=3).encode("utf-8")]
+        _write_frame(answers, parts)
+        del parts
+        if after_each is not None:
+            after_each()
 
 
-def _write_frame(stream: IO[bytes] | None, payload: bytes) -> None:
+def _write_frame(stream: IO[bytes] | None, parts: Sequence[Any]) -> None:
+    """One length-prefixed message made of ``parts`` (bytes-like objects)."""
     if stream is None:
         raise OSError("the helper process has no pipes")
-    stream.write(len(payload).to_bytes(8, "little"))
-    stream.write(payload)
+    views = [memoryview(part).cast("B") for part in parts]
+    stream.write(sum(view.nbytes for view in views).to_bytes(8, "little"))
+    for view in views:
+        stream.write(view)
     stream.flush()
 
 

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from rolewatch.engine.pairs import KnownPairs, account_keys, pair_keys
+from rolewatch.engine.pairs import KnownPairs, pair_keys
 from rolewatch.engine.snapshot import Snapshot
 
 
@@ -116,7 +116,7 @@ class Counterparts:
         self.snapshot = snapshot
         self.previous = previous
         self.known = known
-        self._keys = account_keys(snapshot.nodes) if known is not None else None
+        self._keys = snapshot.node_keys if known is not None else None
         self._out_counts = snapshot.counts.tocsr()
         self._in_counts = snapshot.counts.T.tocsr()
         self._out_weights = snapshot.weights.tocsr()

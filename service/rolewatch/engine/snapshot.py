@@ -273,6 +273,15 @@ class Snapshot:
         return self._node_index.get_indexer(q).astype(np.int64)
 
     @cached_property
+    def node_keys(self) -> np.ndarray:
+        """Each node id's 64-bit key (:func:`rolewatch.engine.pairs.account_keys`), computed
+        once per snapshot: the tie counts and the activity counts both look pairs up by it.
+        """
+        from rolewatch.engine.pairs import account_keys
+
+        return account_keys(self.nodes)
+
+    @cached_property
     def _node_index(self) -> Any:
         """A hash index of the node ids (pandas), built once per snapshot."""
         import pandas as pd

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from rolewatch.engine.pairs import KnownPairs, account_keys, pair_keys
+from rolewatch.engine.pairs import KnownPairs, pair_keys
 from rolewatch.engine.snapshot import Snapshot
 
 __all__ = ["TIE_CELLS", "TieCounts", "tie_counts"]
@@ -70,7 +70,7 @@ def tie_counts(snapshot: Snapshot, known: KnownPairs) -> TieCounts:
     """
     n = snapshot.n_nodes
     pattern = snapshot.counts.tocoo()
-    node_keys = account_keys(snapshot.nodes)
+    node_keys = snapshot.node_keys
     keys = pair_keys(node_keys[pattern.row], node_keys[pattern.col])
     is_known = known.contains(keys)
     cells = np.zeros((n, 4), dtype=np.int64)

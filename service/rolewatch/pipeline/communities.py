@@ -125,12 +125,12 @@ def _decode(stream: io.BufferedReader | io.BytesIO) -> tuple[sp.csr_matrix, floa
     return sp.csr_matrix((data, indices, indptr), shape=shape), float(resolution[0])
 
 
-def _labels_of(payload: bytes) -> bytes:
+def _labels_of(payload: bytes) -> list[bytes]:
     """The child's answer: the labels of the graph in ``payload`` as an ``.npy`` array."""
     graph, resolution = _decode(io.BytesIO(payload))
     buffer = io.BytesIO()
     np.save(buffer, window_communities(graph, resolution), allow_pickle=False)
-    return buffer.getvalue()
+    return [buffer.getvalue()]
 
 
 if __name__ == "__main__":

@@ -212,7 +212,8 @@ def _from_arrow(window: ArrowWindow) -> EventColumns:
         names=np.asarray(window.names.to_numpy(zero_copy_only=False), dtype=object),
         actor_code=events.column("actor_code").to_numpy().astype(np.int64),
         target_code=events.column("target_code").to_numpy().astype(np.int64),
-        weight=events.column("weight").to_numpy().astype(np.float64, copy=False),
+        # a copy: a view would keep the helper's whole answer alive with the weights
+        weight=np.array(events.column("weight").to_numpy(), dtype=np.float64),
         order=_time_then_id(events.column("time_us").to_numpy(), event_id),
     )
 

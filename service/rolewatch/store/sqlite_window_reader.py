@@ -23,9 +23,9 @@ process when the helper fails for any reason.
 
 from __future__ import annotations
 
-import io
 import json
 from dataclasses import dataclass
+from typing import Any
 
 import pyarrow as pa
 
@@ -71,17 +71,17 @@ def read_in_helper(path: str, rows: RowRange, *, busy_timeout_ms: int) -> ArrowW
     """The window's rows read by the helper process from the database file at ``path``.
     Raises OSError when the helper cannot answer (the caller then reads them itself)."""
     request = {"path": path, "busy_timeout_ms": int(busy_timeout_ms), **rows.__dict__}
-    answer = HELPER.exchange(json.dumps(request).encode("utf-8"))
+    answer = pa.py_buffer(HELPER.exchange(json.dumps(request).encode("utf-8")))
     try:
-        size = int.from_bytes(answer[:8], "little")
-        events = pa.ipc.open_stream(answer[8 : 8 + size]).read_all()
-        names = pa.ipc.open_stream(answer[8 + size :]).read_all().column("name")
+        size = int.from_bytes(answer[:8].to_pybytes(), "little")
+        events = pa.ipc.open_stream(answer.slice(8, size)).read_all()
+        names = pa.ipc.open_stream(answer.slice(8 + size)).read_all().column("name")
     except (pa.ArrowException, KeyError) as error:
         raise OSError(f"the window reader answered what is not a window: {error}") from error
     return ArrowWindow(events=events, names=names.combine_chunks())
 
 
-def _read_window(request: bytes) -> bytes:
+def _read_window(request: bytes) -> list[Any]:
     """The helper's answer to one request: the events and the distinct ids as two Arrow
     IPC streams, the first one's length in front."""
     import adbc_driver_sqlite.dbapi as adbc
@@ -105,12 +105,15 @@ def _read_window(request: bytes) -> bytes:
             "target_code": target_code,
         }
     )
+    del table
     head = _ipc(events)
-    return len(head).to_bytes(8, "little") + head + _ipc(pa.table({"name": names}))
+    del events
+    return [head.size.to_bytes(8, "little"), head, _ipc(pa.table({"name": names}))]
 
 
-def _ipc(table: pa.Table) -> bytes:
-    sink = io.BytesIO()
+def _ipc(table: pa.Table) -> pa.Buffer:
+    """``table`` as an Arrow IPC stream in one Arrow buffer (no copy into Python bytes)."""
+    sink = pa.BufferOutputStream()
     with pa.ipc.new_stream(sink, table.schema) as writer:
         writer.write_table(table)
     return sink.getvalue()
@@ -119,4 +122,6 @@ def _ipc(table: pa.Table) -> bytes:
 if __name__ == "__main__":
     import adbc_driver_sqlite.dbapi  # noqa: F401  (imported before the first request)
 
-    serve(_read_window)
+    # Arrow's allocator keeps freed memory for reuse; a kept helper that just read a large
+    # window would otherwise hold its peak until the next one
+    serve(_read_window, after_each=pa.default_memory_pool().release_unused)
