@@ -23,7 +23,9 @@ from rolewatch.pipeline.model import fit_model
 from rolewatch.pipeline.offline import split_windows
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.windows import WindowGeometry
+from rolewatch.scale import dispatch
 from rolewatch.scale.dispatch import DaskMeasure, account_codes
+from rolewatch.scale.features import WorkerRawFeatures
 from rolewatch.scale.graph import build_graph, scatter_events, triangle_table
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest, parse_time_us
@@ -77,21 +79,32 @@ def _integer_features(recipe) -> np.ndarray:
     return np.array([integer[name] for name in recipe.names])
 
 
-def test_features_and_memberships_match_the_local_engine(dask_cluster, sample_windows):
+@pytest.mark.parametrize("raw_here_max_bytes", [None, 0], ids=["raw-gathered", "raw-on-workers"])
+def test_features_and_memberships_match_the_local_engine(
+    dask_cluster, sample_windows, raw_here_max_bytes
+):
     model, windows = sample_windows
-    measure = DaskMeasure(dask_cluster, partitions=4)
+    measure = DaskMeasure(dask_cluster, partitions=4, raw_here_max_bytes=raw_here_max_bytes)
     columns = _integer_features(model.recipe)
     assert columns.any() and (~columns).any()
     for events in windows[4:7]:
         snapshot = events.snapshot()
         local_table, local_members = measure_locally(model, snapshot, events)
         dask_table, dask_members = measure(model, snapshot, events)
+        if raw_here_max_bytes == 0:
+            assert isinstance(dask_table.raw, WorkerRawFeatures)
+            assert dask_table.raw.shape == local_table.raw.shape
+        dask_raw = dask_table.raw[np.arange(snapshot.n_nodes)]
         integral = np.broadcast_to(columns, local_table.raw.shape)
         # integer-valued features (degrees, counts, egonet edges, their sums) exactly
-        np.testing.assert_array_equal(dask_table.raw[integral], local_table.raw[integral])
+        np.testing.assert_array_equal(dask_raw[integral], local_table.raw[integral])
         np.testing.assert_allclose(
-            dask_table.raw[~integral], local_table.raw[~integral], rtol=1e-9, atol=0
+            dask_raw[~integral], local_table.raw[~integral], rtol=1e-9, atol=0
         )
+        # a few rows in any order, and one row, read like the in-process table
+        rows = np.random.default_rng(0).permutation(snapshot.n_nodes)[:7]
+        np.testing.assert_array_equal(dask_table.raw[rows], dask_raw[rows])
+        np.testing.assert_array_equal(dask_table.raw[int(rows[0])], dask_raw[rows[0]])
         np.testing.assert_array_equal(dask_table.binned, local_table.binned)
         np.testing.assert_allclose(dask_members.mixture, local_members.mixture, rtol=0, atol=1e-9)
         np.testing.assert_allclose(dask_members.error, local_members.error, rtol=0, atol=1e-9)
@@ -191,18 +204,39 @@ def _alert_evidence(engine) -> list[tuple]:
     return found
 
 
+def test_raw_values_on_the_workers_reject_rows_beyond_the_window(dask_cluster, sample_windows):
+    model, windows = sample_windows
+    events = windows[4]
+    snapshot = events.snapshot()
+    table, _ = DaskMeasure(dask_cluster, partitions=3, raw_here_max_bytes=0)(
+        model, snapshot, events
+    )
+    with pytest.raises(IndexError, match="out of range"):
+        table.raw[np.array([0, snapshot.n_nodes])]
+    np.testing.assert_array_equal(table.raw[-1], table.raw[snapshot.n_nodes - 1])
+    assert table.raw[np.array([], dtype=np.int64)].shape == (0, len(model.recipe.names))
+
+
 @pytest.mark.slow
+@pytest.mark.parametrize("raw_on_workers", [False, True], ids=["raw-gathered", "raw-on-workers"])
 def test_baseline_windows_measured_on_the_cluster_give_the_local_evidence(
-    dask_cluster, tmp_path, monkeypatch
+    dask_cluster, tmp_path, monkeypatch, raw_on_workers
 ):
     # Nothing is kept between closes, so every alert's "before" features are recomputed
-    # from the baseline window's events: on the workers for compute = "dask".
+    # from the baseline window's events: on the workers for compute = "dask". With the raw
+    # values left on the workers, the evidence reads the alerted accounts' rows from there.
     measured: list[int] = []
+    left: list[bool] = []
     cluster_measure = DaskMeasure.__call__
 
     def counting(self, model, snapshot, events):
         measured.append(snapshot.n_nodes)
-        return cluster_measure(self, model, snapshot, events)
+        table, members = cluster_measure(self, model, snapshot, events)
+        left.append(isinstance(table.raw, WorkerRawFeatures))
+        return table, members
+
+    if raw_on_workers:
+        monkeypatch.setattr(dispatch, "RAW_HERE_MAX_BYTES", 0)
 
     monkeypatch.setattr(DaskMeasure, "__call__", counting)
     monkeypatch.setattr(closer, "_recent_features", lambda _engine: RecentFeatures(max_bytes=0))
@@ -215,6 +249,7 @@ def test_baseline_windows_measured_on_the_cluster_give_the_local_evidence(
     assert evidence["local"], "the sample raises alerts after training"
     # more cluster measurements than measured windows: the baselines went there too
     assert len(measured) > len(closed["dask"])
+    assert all(left) if raw_on_workers else not any(left)
     assert [row[:2] for row in evidence["dask"]] == [row[:2] for row in evidence["local"]]
     for (_, _, on_dask), (_, _, local) in zip(evidence["dask"], evidence["local"], strict=True):
         assert on_dask["feature_moves"], "alerts show their feature moves"

@@ -83,6 +83,9 @@ def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[N
         triangles=context.table.triangles,
     )
     tops = Counterparts(context.snapshot, known=context.known).top_of(rows, top=10)
+    # One read of the alerted rows: a cluster close keeps a large window's values on its
+    # workers, where each read is a round trip.
+    raw_after = context.table.raw[rows]
     alerts = []
     for position, row in enumerate(rows):
         raw, measures_before = before.get(int(row), (None, None))
@@ -92,6 +95,7 @@ def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[N
                 int(row),
                 samples.get(int(row), []),
                 raw,
+                raw_after[position],
                 tops[position],
                 _measures(context, int(row), measures_before, now.row(position)),
             )
@@ -142,8 +146,9 @@ def _baseline_features(
         at = snapshot.index_of(context.snapshot.nodes[wanted])
         present = at >= 0
         readable = readable_measures(snapshot.counts, rows=at[present], triangles=table.triangles)
-        for position, (row, there) in enumerate(zip(wanted[present], at[present], strict=True)):
-            found[int(row)] = (table.raw[there], readable.row(position))
+        raw = table.raw[at[present]]
+        for position, row in enumerate(wanted[present]):
+            found[int(row)] = (raw[position], readable.row(position))
     return found
 
 
@@ -171,6 +176,7 @@ def _alert(
     row: int,
     sample_ids: list[str],
     before_raw: np.ndarray | None,
+    after_raw: np.ndarray,
     top_counterparts: list[dict],
     measures: tuple[MeasureValue, ...],
 ) -> NewAlert:
@@ -180,7 +186,7 @@ def _alert(
         int(role_ids[int(np.nanargmax(baseline))]) if np.all(np.isfinite(baseline)) else None
     )
     role_after = int(role_ids[int(np.argmax(context.mixture[row]))])
-    evidence = _evidence(context, row, sample_ids, before_raw, top_counterparts)
+    evidence = _evidence(context, row, sample_ids, before_raw, after_raw, top_counterparts)
     activity = evidence.activity
     moves = measure_moves(
         {m.measure: m.before for m in measures},
@@ -243,6 +249,7 @@ def _evidence(
     row: int,
     sample_ids: list[str],
     before_raw: np.ndarray | None,
+    after_raw: np.ndarray,
     top_counterparts: list[dict],
 ) -> Evidence:
     model, history = context.model, context.history
@@ -251,7 +258,7 @@ def _evidence(
     baseline_ref = context.past[step].ref if step >= 0 else None
     before_mixture = history.window_mixture[row]
     moves = (
-        _readable_moves(context.table.names, before_raw, context.table.raw[row])
+        _readable_moves(context.table.names, before_raw, after_raw)
         if before_raw is not None
         else []
     )

@@ -10,8 +10,9 @@ as before.
 
 A kept window is used only when it matches the stored one it stands for: same start and
 end, same feature recipe, and the same number of accounts and of events as that window's
-stored memberships. Only tables up to :data:`MAX_KEPT_BYTES` are kept, so a very large
-window does not hold its memory until the next close.
+stored memberships. Only tables up to :data:`MAX_KEPT_BYTES` whose raw values are in this
+process are kept, so a very large window does not hold its memory (or its Dask workers')
+until the next close.
 """
 
 from __future__ import annotations
@@ -51,12 +52,12 @@ class RecentFeatures:
 
     def remember(self, window: WindowRef, snapshot: Snapshot, table: FeatureTable) -> None:
         """Keep this window's features (replacing the previous window's), unless they are
-        larger than the limit."""
+        larger than the limit or their raw values were left on a cluster's workers."""
         size = table.raw.nbytes + table.binned.nbytes + snapshot.counts.data.nbytes * 3
         events = int(round(float(snapshot.counts.sum())))
         kept = (
             _Kept(window.start, window.end, table.recipe_version, events, snapshot, table)
-            if size <= self._max_bytes
+            if size <= self._max_bytes and isinstance(table.raw, np.ndarray)
             else None
         )
         with self._lock:

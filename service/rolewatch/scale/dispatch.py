@@ -28,12 +28,14 @@ from rolewatch.pipeline.compute import (
 )
 from rolewatch.pipeline.loading import WindowEvents
 from rolewatch.pipeline.model import FrozenModel
+from rolewatch.pipeline.recent import MAX_KEPT_BYTES
 
 __all__ = [
     "ACCOUNTS_PER_PARTITION",
     "DASK_ATTEMPTS",
     "DaskDataLost",
     "DaskMeasure",
+    "RAW_HERE_MAX_BYTES",
     "ScaleExtraMissing",
     "account_codes",
     "close_clients",
@@ -55,6 +57,10 @@ DASK_ATTEMPTS = 3
 # list a worker that has just died (until it sees the connection drop), and a nanny needs a
 # moment to start its replacement (common practice, no source).
 RETRY_PAUSE_S = 1.0
+# A window's raw feature values come to the closing process up to this size (the size the
+# closer keeps for the next window's evidence); above it they stay on the workers and the
+# evidence reads the alerted accounts' rows from there.
+RAW_HERE_MAX_BYTES = MAX_KEPT_BYTES
 log = logging.getLogger("rolewatch.scale")
 
 
@@ -136,11 +142,13 @@ class DaskMeasure:
         partitions: int,
         accounts_per_partition: int | None = None,
         attempts: int = DASK_ATTEMPTS,
+        raw_here_max_bytes: int | None = RAW_HERE_MAX_BYTES,
     ) -> None:
         self.client = client
         self.partitions = partitions
         self.accounts_per_partition = accounts_per_partition
         self.attempts = attempts
+        self.raw_here_max_bytes = raw_here_max_bytes
 
     def partitions_for(self, accounts: int) -> int:
         """``partitions``, or with ``accounts_per_partition`` set, as few as give each
@@ -190,11 +198,19 @@ class DaskMeasure:
             self.partitions_for(snapshot.n_nodes),
         )
         try:
-            measured = measure_window(build_graph(chunks), model.recipe, model.basis)
-        finally:
-            # Free the chunks on the workers now: after a failure, the error's traceback
-            # would keep their futures (and the workers' copies) alive until collected.
+            measured = measure_window(
+                build_graph(chunks),
+                model.recipe,
+                model.basis,
+                raw_here_max_bytes=self.raw_here_max_bytes,
+            )
+        except BaseException:
+            # Free the chunks on the workers now: the error's traceback would keep their
+            # futures (and the workers' copies) alive until collected. Not after success:
+            # cancelling them would cancel the raw values left on the workers, which
+            # depend on them; they are released when this call returns.
             self.client.cancel(list(chunks[0].futures))
+            raise
         table = FeatureTable(
             nodes=snapshot.nodes,
             names=model.recipe.names,
@@ -225,6 +241,7 @@ def measure_for(settings: Settings) -> Measure:
         settings.dask_partitions,
         ACCOUNTS_PER_PARTITION,
         attempts=DASK_ATTEMPTS,
+        raw_here_max_bytes=RAW_HERE_MAX_BYTES,
     )
 
 

@@ -16,6 +16,11 @@ are sent to the closing process (which fills the window's raw table, the evidenc
 values), and the worker keeps float64 values only for the parents of later rounds and the
 degrees. The memberships against the frozen basis run per partition from the bins
 (:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results come back.
+
+A large window's float64 values (more than ``raw_here_max_bytes``) stay on the workers
+instead, each round's values of a partition one Dask result that the worker may spill to
+its disk: the closing process reads only the rows it shows (the alerted accounts',
+:class:`WorkerRawFeatures`), so its memory does not hold an n x f float64 table.
 """
 
 from __future__ import annotations
@@ -34,18 +39,79 @@ from rolewatch.scale.graph import TRIANGLES, WindowGraph, fetch_columns, with_eg
 from rolewatch.scale.graph_steps import Block, add_columns
 from rolewatch.scale.partitions import Partitioned
 
-__all__ = ["MeasuredWindow", "measure_window"]
+__all__ = ["MeasuredWindow", "WorkerRawFeatures", "measure_window"]
 
 _DEGREE = {"in": "in_degree", "out": "out_degree", "all": "degree"}
 FETCH_BYTES = 128 * 2**20  # parent values one partition fetches at once, at most
 Layer = Sequence[tuple[str, str, str, str]]  # name, kind (sum / mean), direction, parent
 
 
+class WorkerRawFeatures:
+    """A window's raw feature values left on the workers that computed them, read by rows.
+
+    ``values[rows]`` (an integer or an array of account codes) gathers just those rows,
+    n x f float64 in the recipe's column order, like indexing the in-process table; one
+    task per partition holding any of them. The values live as long as this object (Dask
+    frees them when its futures are dropped). A worker lost after the computation takes its
+    partitions' values with it (the window's events, scattered from the closing process,
+    cannot be recomputed): reading them then raises Dask's error and the close fails before
+    anything is written, to be retried on the next tick.
+    """
+
+    def __init__(
+        self, client: Any, bounds: np.ndarray, pieces: list[list[Any]], names: Sequence[str]
+    ) -> None:
+        self.client = client
+        self.bounds = np.asarray(bounds, dtype=np.int64)
+        self.pieces = pieces  # [partition][round]: future of {name: values of its rows}
+        self.names = tuple(names)
+        self.shape = (int(self.bounds[-1]), len(self.names))
+        self.dtype = np.dtype(np.float64)
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes the values take on the workers (as float64)."""
+        return self.shape[0] * self.shape[1] * 8
+
+    def __getitem__(self, rows: Any) -> np.ndarray:
+        single = np.ndim(rows) == 0
+        wanted = np.atleast_1d(np.asarray(rows, dtype=np.int64))
+        n = self.shape[0]
+        if wanted.size and (wanted.min() < -n or wanted.max() >= n):
+            raise IndexError(f"row out of range for a window of {n} accounts")
+        wanted = np.where(wanted < 0, wanted + n, wanted)
+        out = np.empty((wanted.size, self.shape[1]))
+        owner = np.searchsorted(self.bounds, wanted, side="right") - 1
+        masks, futures = [], []
+        for j in np.unique(owner):
+            mask = owner == j
+            local = wanted[mask] - self.bounds[j]
+            masks.append(mask)
+            futures.append(
+                self.client.submit(_take_rows, local, self.names, *self.pieces[j], pure=False)
+            )
+        for mask, values in zip(masks, self.client.gather(futures), strict=True):
+            out[mask] = values
+        return out[0] if single else out
+
+
+def _take_rows(
+    rows: np.ndarray, names: Sequence[str], *rounds: dict[str, np.ndarray]
+) -> np.ndarray:
+    """Rows ``rows`` (local to the partition) of its raw values, columns in ``names``
+    order."""
+    columns = {name: column for piece in rounds for name, column in piece.items()}
+    out = np.empty((len(rows), len(names)))
+    for j, name in enumerate(names):
+        out[:, j] = columns[name][rows]
+    return out
+
+
 @dataclass(frozen=True)
 class MeasuredWindow:
     """A window measured on the cluster, in the order of its accounts."""
 
-    raw: np.ndarray
+    raw: np.ndarray | WorkerRawFeatures
     binned: np.ndarray
     members: Memberships
     triangles: np.ndarray | None = None  # per account, when the recipe counted them
@@ -99,14 +165,16 @@ def parent_group(n: int) -> int:
 
 
 class _Rounds:
-    """The recipe's rounds on the cluster, and the raw table they fill in this process."""
+    """The recipe's rounds on the cluster, and the raw table they fill in this process (or
+    the futures of the raw values they leave on the workers)."""
 
-    def __init__(self, graph: WindowGraph, recipe: FeatureRecipe) -> None:
+    def __init__(self, graph: WindowGraph, recipe: FeatureRecipe, *, raw_here: bool) -> None:
         self.graph, self.recipe = graph, recipe
         self.client = graph.blocks.client
         self.rounds = sorted({d.round for d in recipe.features})
         self.column = {name: j for j, name in enumerate(recipe.names)}
-        self.raw = np.zeros((graph.n, len(recipe.names)), order="F")
+        self.raw = np.zeros((graph.n, len(recipe.names)), order="F") if raw_here else None
+        self.left: list[list[Any]] = [[] for _ in range(graph.blocks.partitions)]
         self.edges = dict(zip(recipe.names, recipe.feature_edges, strict=True))
         n_bins = 1 + max((e.size for e in recipe.feature_edges), default=0)
         self.dtype = bin_dtype(n_bins)
@@ -125,12 +193,25 @@ class _Rounds:
         return Partitioned(self.client, tuple(piece[0] for piece in settled), blocks.bounds)
 
     def collect(self) -> None:
-        """Copy the finished values the workers sent into the raw table."""
+        """Copy the finished values the workers sent into the raw table, or note where
+        they stay."""
+        if self.raw is None:
+            for j, future in enumerate(self.pending):
+                self.left[j].append(future)
+            self.pending = []
+            return
         bounds = self.graph.blocks.bounds
         for j, values in enumerate(self.client.gather(self.pending)):
             for name, column in values.items():
                 self.raw[bounds[j] : bounds[j + 1], self.column[name]] = column
         self.pending = []
+
+    def values(self) -> np.ndarray | WorkerRawFeatures:
+        if self.raw is not None:
+            return self.raw
+        return WorkerRawFeatures(
+            self.client, self.graph.blocks.bounds, self.left, self.recipe.names
+        )
 
     def aggregate(self, blocks: Partitioned, rnd: int) -> Partitioned:
         layer = [
@@ -175,9 +256,21 @@ def _measure_block(block: Block, names: Sequence[str], version: str, basis: Role
     return binned, members.mixture, members.loadings, members.error, triangles
 
 
-def measure_window(graph: WindowGraph, recipe: FeatureRecipe, basis: RoleBasis) -> MeasuredWindow:
-    """The frozen recipe's raw values and bins, and the memberships, of every account."""
-    rounds = _Rounds(graph, recipe)
+def measure_window(
+    graph: WindowGraph,
+    recipe: FeatureRecipe,
+    basis: RoleBasis,
+    *,
+    raw_here_max_bytes: int | None = None,
+) -> MeasuredWindow:
+    """The frozen recipe's raw values and bins, and the memberships, of every account.
+
+    The raw values come to this process when they take at most ``raw_here_max_bytes``
+    (None: always); above it they stay on the workers (:class:`WorkerRawFeatures`).
+    """
+    raw_bytes = graph.n * len(recipe.names) * 8
+    raw_here = raw_here_max_bytes is None or raw_bytes <= raw_here_max_bytes
+    rounds = _Rounds(graph, recipe, raw_here=raw_here)
     uses_egonet = any(d.parent is None and d.op in EGONET_FEATURES for d in recipe.features)
     blocks = with_egonet(graph) if uses_egonet else graph.blocks
     for rnd in rounds.rounds:
@@ -198,7 +291,7 @@ def measure_window(graph: WindowGraph, recipe: FeatureRecipe, basis: RoleBasis) 
         )
     members = Memberships(loadings=loadings, mixture=mixture, error=error)
     return MeasuredWindow(
-        raw=rounds.raw,
+        raw=rounds.values(),
         binned=np.asfortranarray(binned),
         members=members,
         triangles=triangles if uses_egonet else None,

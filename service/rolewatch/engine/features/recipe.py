@@ -13,7 +13,7 @@ import hashlib
 import json
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -30,6 +30,18 @@ FORMAT = "rolewatch.feature-recipe"
 FORMAT_VERSION = 1
 
 
+class RawRows(Protocol):
+    """Raw feature values held elsewhere, read by rows like an n x f array: ``raw[rows]``
+    (an integer or an integer array) gives those rows as float64."""
+
+    shape: tuple[int, int]
+
+    @property
+    def nbytes(self) -> int: ...
+
+    def __getitem__(self, rows: Any) -> np.ndarray: ...
+
+
 @dataclass(frozen=True)
 class FeatureTable:
     """ReFeX features of one snapshot, computed by a :class:`FeatureRecipe`.
@@ -41,7 +53,9 @@ class FeatureTable:
     names : tuple of str
         Column names, the recipe's features in order.
     raw : numpy.ndarray
-        n x f float64 unbinned values (shown as evidence).
+        n x f float64 unbinned values (shown as evidence). A window measured on a cluster
+        may instead hold an object read by rows like an array (``raw[rows]``), whose
+        values stay where they were computed.
     binned : numpy.ndarray
         n x f vertical logarithmic bin indices (Henderson et al., KDD 2011), the matrix
         RolX factorises; an unsigned integer dtype (``uint8`` unless a feature has more
@@ -56,7 +70,7 @@ class FeatureTable:
 
     nodes: np.ndarray
     names: tuple[str, ...]
-    raw: np.ndarray
+    raw: np.ndarray | RawRows
     binned: np.ndarray
     recipe_version: str
     triangles: np.ndarray | None = None
