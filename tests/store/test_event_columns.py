@@ -79,7 +79,7 @@ def test_a_windows_events_come_back_as_python_sorts_them(store_url, read, monkey
     # reference: Python's sorted() by (time, id), ids compared by code point
     inside = [e for e in events if e["id"] not in ("at-end", "before")]
     expected = sorted(inside, key=lambda e: (parse_time_us(e["time"]), e["id"]))
-    assert loaded.event_id.tolist() == [e["id"] for e in expected]
+    assert [str(event_id) for event_id in loaded.event_id] == [e["id"] for e in expected]
     assert loaded.actor.tolist() == [e["actor"] for e in expected]
     assert loaded.target.tolist() == [e["target"] for e in expected]
     assert loaded.weight.tolist() == [e["weight"] for e in expected]  # exact doubles
@@ -93,8 +93,8 @@ def test_a_windows_events_come_back_as_python_sorts_them(store_url, read, monkey
     for event_id, actor, target in zip(
         columns.event_id, columns.actor_code, columns.target_code, strict=True
     ):
-        assert columns.names[actor] == by_id[event_id]["actor"]
-        assert columns.names[target] == by_id[event_id]["target"]
+        assert columns.names[actor] == by_id[str(event_id)]["actor"]
+        assert columns.names[target] == by_id[str(event_id)]["target"]
 
     # the same events interned from plain object arrays give the same window
     again = interned(

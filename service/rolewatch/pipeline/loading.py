@@ -15,6 +15,7 @@ from rolewatch.store import memberships as stored_memberships
 from rolewatch.store.alerts import WindowRef
 from rolewatch.store.db import Connection
 from rolewatch.store.event_columns import start_event_columns
+from rolewatch.store.event_ids import EventIds, as_event_ids, reordered
 
 
 @dataclass(frozen=True)
@@ -26,7 +27,7 @@ class WindowEvents:
     from the integer positions without looking the ids up again.
     """
 
-    event_id: np.ndarray
+    event_id: EventIds  # object array of str, or an Arrow string array (store.event_ids)
     actor: np.ndarray
     target: np.ndarray
     weight: np.ndarray
@@ -78,11 +79,11 @@ def from_codes(event_id, names, actor_code, target_code, weight, *, order=None) 
     rank[by_text] = np.arange(by_text.size)
     accounts = distinct[by_text]
     actor_index, target_index = rank[actor_code], rank[target_code]
-    event_id = np.asarray(event_id, dtype=object)
+    event_id = as_event_ids(event_id)
     weight = np.asarray(weight, dtype=np.float64)
     if order is not None:
         actor_index, target_index = actor_index[order], target_index[order]
-        event_id, weight = event_id[order], weight[order]
+        event_id, weight = reordered(event_id, order), weight[order]
     return WindowEvents(
         event_id=event_id,
         actor=accounts[actor_index],

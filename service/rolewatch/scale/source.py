@@ -119,7 +119,7 @@ def _archived_window_events(
     kept = both.take(pa.array(order[np.sort(first)]))
     names, actor_code, target_code = coded_accounts(kept.column("actor"), kept.column("target"))
     events = from_codes(
-        kept.column("id").to_numpy(zero_copy_only=False),
+        kept.column("id").combine_chunks(),
         names,
         actor_code,
         target_code,

@@ -29,7 +29,9 @@ Both leave the rows in the order the database returned them and sort by (time, e
 in numpy (comparing ids by code point, as SQLite compares UTF-8 text and Python compares
 strings; a database collation could differ). The columns stay in that storage order with
 the sorting permutation beside them, so the caller reorders integer codes rather than a
-million string objects per column.
+million string objects per column. The event ids the helper and PostgreSQL read stay an
+Arrow string array: no Python string per event (about 70 bytes each, 690 MB for a
+10,000,000-event window, against about 20 bytes in Arrow).
 """
 
 from __future__ import annotations
@@ -45,6 +47,7 @@ import numpy as np
 from sqlalchemy.engine import Connection
 
 from rolewatch.store.account_codes import coded_accounts
+from rolewatch.store.event_ids import EventIds, ids_at
 from rolewatch.store.sqlite_window_reader import (
     HELPER_MIN_ROWS,
     ArrowWindow,
@@ -75,7 +78,7 @@ class EventColumns:
     array of str, in no particular order); ``actor_code`` and ``target_code`` index it.
     ``event_id[order]`` (and so on) is the (time, event id) order."""
 
-    event_id: np.ndarray  # object (str)
+    event_id: EventIds
     names: np.ndarray  # object (str), distinct
     actor_code: np.ndarray  # int64
     target_code: np.ndarray  # int64
@@ -206,7 +209,7 @@ def _busy_ms(dbapi_connection: Any) -> int:
 
 def _from_arrow(window: ArrowWindow) -> EventColumns:
     events = window.events
-    event_id = np.asarray(events.column("event_id").to_numpy(zero_copy_only=False), dtype=object)
+    event_id = events.column("event_id").combine_chunks()
     return EventColumns(
         event_id=event_id,
         names=np.asarray(window.names.to_numpy(zero_copy_only=False), dtype=object),
@@ -250,7 +253,7 @@ class _Chunk:
         )
 
 
-def _time_then_id(time_us: np.ndarray, event_id: np.ndarray) -> np.ndarray:
+def _time_then_id(time_us: np.ndarray, event_id: EventIds) -> np.ndarray:
     """The order by time, events at the same microsecond by id (rare: each run sorted on
     its own)."""
     order = np.argsort(time_us, kind="stable")
@@ -258,7 +261,7 @@ def _time_then_id(time_us: np.ndarray, event_id: np.ndarray) -> np.ndarray:
     edges = np.flatnonzero(tied[1:] != tied[:-1])  # runs of equal times: [first, last)
     for first, last in zip(edges[0::2], edges[1::2] + 1, strict=True):
         block = order[first:last]
-        order[first:last] = block[np.argsort(event_id[block].astype(str), kind="stable")]
+        order[first:last] = block[np.argsort(ids_at(event_id, block), kind="stable")]
     return order
 
 
@@ -279,9 +282,9 @@ def _postgres_columns(uri: str, start_us: int, end_us: int) -> EventColumns:
     if not table.num_rows:
         return _empty()
     names, actor_code, target_code = coded_accounts(table.column("actor"), table.column("target"))
-    event_id = table.column("event_id").to_numpy(zero_copy_only=False)
+    event_id = table.column("event_id").combine_chunks()
     return EventColumns(
-        event_id=np.asarray(event_id, dtype=object),
+        event_id=event_id,
         names=names,
         actor_code=actor_code,
         target_code=target_code,
