@@ -19,6 +19,7 @@ the caller gets an :class:`OSError` and does the work itself.
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 import threading
@@ -103,10 +104,22 @@ def serve(
             parts = [_OK, *answer(request)]
         except Exception:  # reported to the parent, which does the work itself
             parts = [_FAILED, traceback.format_exc(limit=3).encode("utf-8")]
-        _write_frame(answers, parts)
+        try:
+            _write_frame(answers, parts)
+        except BrokenPipeError:  # the parent is gone (it died or stopped waiting)
+            _quiet_stdout()
+            return
         del parts
         if after_each is not None:
             after_each()
+
+
+def _quiet_stdout() -> None:
+    """Point stdout at the null device, so the interpreter's last flush at exit does not
+    print a second broken-pipe error (the Python documentation's advice for SIGPIPE)."""
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, sys.stdout.fileno())
+    os.close(devnull)
 
 
 def _write_frame(stream: IO[bytes] | None, parts: Sequence[Any]) -> None:

@@ -4,6 +4,9 @@ networkx ships it; modularity checked with networkx.community.modularity."""
 
 from __future__ import annotations
 
+import subprocess
+import sys
+
 import networkx as nx
 import numpy as np
 import scipy.sparse as sp
@@ -67,3 +70,21 @@ def test_the_child_serves_one_window_after_another_and_a_dead_one_is_replaced():
     np.testing.assert_array_equal(again, first)
     assert communities.HELPER.process is not child
     _no_child()
+
+
+def test_a_child_whose_parent_stopped_reading_exits_quietly():
+    # The parent closed its end of the answers pipe (it died, say): the child's answer
+    # meets a broken pipe, and the child ends without a traceback on its error stream.
+    child = subprocess.Popen(
+        [sys.executable, "-m", "rolewatch.pipeline.communities"],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
+    assert child.stdin is not None and child.stdout is not None and child.stderr is not None
+    child.stdout.close()
+    request = b"not a graph"  # answered with a failure report: still an answer to write
+    child.stdin.write(len(request).to_bytes(8, "little") + request)
+    child.stdin.close()
+    assert child.wait(timeout=60) == 0
+    assert child.stderr.read() == b""
