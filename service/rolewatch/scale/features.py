@@ -37,7 +37,7 @@ from rolewatch.engine.features.graph import EGONET_FEATURES
 from rolewatch.engine.features.recipe import FeatureRecipe, FeatureTable
 from rolewatch.scale.graph import TRIANGLES, WindowGraph, fetch_columns, with_egonet
 from rolewatch.scale.graph_steps import Block, add_columns
-from rolewatch.scale.partitions import Partitioned
+from rolewatch.scale.partitions import Partitioned, split_by_range
 
 __all__ = ["MeasuredWindow", "WorkerRawFeatures", "measure_window"]
 
@@ -66,7 +66,6 @@ class WorkerRawFeatures:
         self.pieces = pieces  # [partition][round]: future of {name: values of its rows}
         self.names = tuple(names)
         self.shape = (int(self.bounds[-1]), len(self.names))
-        self.dtype = np.dtype(np.float64)
 
     @property
     def nbytes(self) -> int:
@@ -81,17 +80,23 @@ class WorkerRawFeatures:
             raise IndexError(f"row out of range for a window of {n} accounts")
         wanted = np.where(wanted < 0, wanted + n, wanted)
         out = np.empty((wanted.size, self.shape[1]))
-        owner = np.searchsorted(self.bounds, wanted, side="right") - 1
-        masks, futures = [], []
-        for j in np.unique(owner):
-            mask = owner == j
-            local = wanted[mask] - self.bounds[j]
-            masks.append(mask)
-            futures.append(
-                self.client.submit(_take_rows, local, self.names, *self.pieces[j], pure=False)
+        owned = [
+            (j, positions)
+            for j, positions in enumerate(split_by_range(wanted, self.bounds))
+            if positions.size
+        ]
+        futures = [
+            self.client.submit(
+                _take_rows,
+                wanted[positions] - self.bounds[j],
+                self.names,
+                *self.pieces[j],
+                pure=False,
             )
-        for mask, values in zip(masks, self.client.gather(futures), strict=True):
-            out[mask] = values
+            for j, positions in owned
+        ]
+        for (_, positions), values in zip(owned, self.client.gather(futures), strict=True):
+            out[positions] = values
         return out[0] if single else out
 
 
