@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 
 from rolewatch.scale import graph_steps as steps
-from rolewatch.scale.partitions import Partitioned, fetch, range_bounds
+from rolewatch.scale.partitions import Partitioned, balanced_bounds, fetch
 
 __all__ = [
     "TRIANGLES",
@@ -47,9 +47,13 @@ def scatter_events(
     n: int,
     partitions: int,
 ) -> tuple[Partitioned, int]:
-    """A window's events (account codes ``0 <= code < n``) sent to the workers in
-    ``partitions`` chunks, with the code bounds of the partitions."""
-    p = max(1, min(partitions, n))
+    """A window's events (account codes ``0 <= code < n``) sent to the workers in one
+    chunk per partition, with the code bounds of at most ``partitions`` partitions, each
+    about the same share of accounts plus events sent and received (an account's adjacency
+    row costs by its events, and one account's row is never split)."""
+    load = np.bincount(actor, minlength=n) + np.bincount(target, minlength=n) + 1
+    bounds = balanced_bounds(load, max(1, min(partitions, n)))
+    p = len(bounds) - 1
     cuts = np.linspace(0, len(actor), p + 1).astype(np.int64)
     chunks = [
         (
@@ -59,7 +63,7 @@ def scatter_events(
         )
         for lo, hi in zip(cuts[:-1], cuts[1:], strict=True)
     ]
-    return Partitioned(client, tuple(client.scatter(chunks)), range_bounds(n, p)), n
+    return Partitioned(client, tuple(client.scatter(chunks)), bounds), n
 
 
 def build_graph(events: tuple[Partitioned, int]) -> WindowGraph:

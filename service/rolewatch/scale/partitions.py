@@ -4,7 +4,10 @@ own them.
 
 Accounts are interned once by the closing process (their positions among the window's
 sorted ids, :meth:`rolewatch.engine.snapshot.Snapshot.nodes`), so workers never hold
-account ids as strings. Partition ``j`` owns the codes ``bounds[j] <= code < bounds[j+1]``;
+account ids as strings. Partition ``j`` owns the codes ``bounds[j] <= code < bounds[j+1]``,
+ranges chosen so each partition gets about the same work (:func:`balanced_bounds`: a range
+of equal code counts would give the first partition most of the events wherever the ids'
+sort order follows their activity);
 a :class:`Partitioned` value is one Dask future per partition. A partition that needs rows
 owned by others (its accounts' neighbours' values) asks each owner for exactly the rows it
 needs (:func:`fetch`): ``P²`` small pieces, each a block of rows, instead of a hash shuffle
@@ -20,12 +23,23 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Partitioned", "fetch", "range_bounds", "split_by_range"]
+__all__ = ["Partitioned", "balanced_bounds", "fetch", "split_by_range"]
 
 
-def range_bounds(n: int, partitions: int) -> np.ndarray:
-    """``partitions + 1`` increasing code bounds splitting ``n`` codes into equal ranges."""
-    return np.linspace(0, n, partitions + 1).astype(np.int64)
+def balanced_bounds(load: np.ndarray, partitions: int) -> np.ndarray:
+    """Increasing code bounds splitting the codes ``0 <= code < len(load)`` into at most
+    ``partitions`` contiguous ranges of about equal total ``load`` (one number per code).
+
+    Every range but the last ends at the first code where the running total reaches its
+    share, so no range holds more than ``total / partitions`` plus one code's load; a code
+    heavier than a share leaves a range empty, and empty ranges are dropped (fewer
+    partitions). ``load`` must be non-negative with a positive total.
+    """
+    n = int(load.size)
+    running = np.cumsum(load, dtype=np.float64)
+    shares = running[-1] * np.arange(1, partitions) / partitions
+    inner = np.searchsorted(running, shares, side="left") + 1
+    return np.unique(np.concatenate([[0], np.clip(inner, 1, n), [n]]).astype(np.int64))
 
 
 def split_by_range(codes: np.ndarray, bounds: np.ndarray) -> list[np.ndarray]:
