@@ -373,10 +373,10 @@ class Settings(BaseSettings):
         "and their evidence); 0 stores every window's memberships.",
     )
     dask_partitions: int = Field(
-        8,
+        64,
         ge=1,
-        description="Most partitions the Dask close splits a window's accounts into (fewer "
-        "on small windows: about 250,000 accounts each, at least one per worker).",
+        description="Most partitions the Dask close splits a window's accounts into (the "
+        "close uses about one per 250,000 accounts, at least one per worker).",
     )
 
     # --- retention and logging ---------------------------------------------------------

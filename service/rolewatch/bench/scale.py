@@ -1,14 +1,15 @@
 """Closing one power-law window locally and on a local Dask cluster, side by side in one run.
 
-``close-dask-10m``: a window of 10,000,000 events; ``close-dask-scaling``: 1M, 3M, 10M and
-30M events. For each size a SQLite store gets a training window (a fifth of the size) that
-is closed locally first (the fit, not timed here); the store file is then copied, and the big
-window is closed once with ``compute = "local"`` and once with ``compute = "dask"`` on a
-local cluster of two worker processes, one thread and ``memory_limit`` 3 GB each. Reported:
-both close times and their ratio, the seconds of each stage of both closes, the peak
-resident memory of the closing process during each close, and the peak of each Dask worker
-(sampled every 0.2 s with psutil).
-``--quick`` uses 100,000 and 300,000 events.
+``close-dask-10m``: a window of 10,000,000 events; ``close-dask-30m``: 30,000,000;
+``close-dask-scaling``: 1M, 3M, 10M and 30M events. For each size a SQLite store gets a
+training window (a fifth of the size) that is closed locally first (the fit, not timed here);
+the store file is then copied, and the big window is closed once with ``compute = "dask"`` on
+a local cluster of two worker processes, one thread and ``memory_limit`` 3 GB each, and once
+with ``compute = "local"`` when the in-process close would fit in the memory this machine
+has free (see :data:`LOCAL_MB_PER_MILLION_EVENTS`). Reported: both close times and their
+ratio, the seconds of each stage of both closes, the peak resident memory of the closing
+process during each close, and the peak of each Dask worker (sampled every 0.2 s with
+psutil). ``--quick`` uses 100,000 and 300,000 events.
 
 ``archive-history-52``: 52 windows of 200,000 accounts each (10,400,000 rows, 8 roles)
 written as per-window Parquet outputs (:mod:`rolewatch.scale.outputs`); the first read builds
@@ -35,14 +36,23 @@ import numpy as np
 
 from rolewatch.bench.close import FIRST_END, WEEK_US, _load, _power_law_events
 
-CASES = ("close-dask-10m", "close-dask-scaling", "archive-history-52")
+CASES = ("close-dask-10m", "close-dask-30m", "close-dask-scaling", "archive-history-52")
 SIZES = {
     "close-dask-10m": [10_000_000],
+    "close-dask-30m": [30_000_000],
     "close-dask-scaling": [1_000_000, 3_000_000, 10_000_000, 30_000_000],
 }
-QUICK = {"close-dask-10m": [300_000], "close-dask-scaling": [100_000, 300_000]}
+QUICK = {
+    "close-dask-10m": [300_000],
+    "close-dask-30m": [300_000],
+    "close-dask-scaling": [100_000, 300_000],
+}
 WORKER_MEMORY = "3GB"
 LOAD_CHUNK = 2_000_000  # events generated and stored at once (smaller windows: one draw)
+# The in-process close's peak memory per million events of this generator's windows: 7.3-7.5
+# GB at 10,000,000 events, 3.2 GB at 3,000,000 (this bench, docs/scale.md). A size whose
+# in-process close would need more than the memory free is closed on Dask only.
+LOCAL_MB_PER_MILLION_EVENTS = 750
 
 
 class _PeakMemory:
@@ -149,23 +159,45 @@ def _one_size(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
     shutil.copyfile(local_db, dask_db)
     pids = list(client.run(os.getpid).values())
     on_dask = _close(dask_db, now_us, pids, compute="dask", dask_scheduler=scheduler)
-    local = _close(local_db, now_us, pids)
-    for path in (local_db, dask_db):
-        path.unlink()
-    return {
+    dask_db.unlink()
+    dask = {
         "events": events,
-        "accounts": local["accounts"],
-        "local_seconds": local["seconds"],
+        "accounts": on_dask["accounts"],
         "dask_seconds": on_dask["seconds"],
-        "ratio": round(on_dask["seconds"] / max(local["seconds"], 1e-9), 2),
-        "local_peak_rss_mb": local["peak_rss_mb"],
         "dask_closer_peak_rss_mb": on_dask["peak_rss_mb"],
         "dask_worker_peak_mb": on_dask["worker_peak_mb"],
         "dask_worker_restarts": on_dask["worker_restarts"],
-        "same_alert_count": local["alerts"] == on_dask["alerts"],
-        "local_stage_seconds": local["stage_seconds"],
         "dask_stage_seconds": on_dask["stage_seconds"],
     }
+    skipped = _local_would_not_fit(events)
+    if skipped:
+        local_db.unlink()
+        return {**dask, "local_skipped": skipped}
+    local = _close(local_db, now_us, pids)
+    local_db.unlink()
+    return {
+        **dask,
+        "local_seconds": local["seconds"],
+        "ratio": round(on_dask["seconds"] / max(local["seconds"], 1e-9), 2),
+        "local_peak_rss_mb": local["peak_rss_mb"],
+        "same_alert_count": local["alerts"] == on_dask["alerts"],
+        "local_stage_seconds": local["stage_seconds"],
+    }
+
+
+def _local_would_not_fit(events: int) -> str | None:
+    """Why the in-process close of ``events`` events is not run here, or None if it fits."""
+    import psutil
+
+    need_mb = events / 1e6 * LOCAL_MB_PER_MILLION_EVENTS
+    free_mb = psutil.virtual_memory().available / 2**20
+    if need_mb < 0.9 * free_mb:
+        return None
+    return (
+        f"the in-process close would need about {need_mb / 1024:.1f} GB "
+        f"({LOCAL_MB_PER_MILLION_EVENTS} MB per million events, measured up to 10,000,000) "
+        f"and {free_mb / 1024:.1f} GB is free"
+    )
 
 
 def _write_history_windows(folder: str, accounts: np.ndarray, k: int) -> None:
