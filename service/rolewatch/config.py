@@ -204,6 +204,14 @@ class Settings(BaseSettings):
     )
     roles_min: int = Field(2, ge=1, description="Smallest number of roles the selection considers.")
     roles_max: int = Field(12, ge=1, description="Largest number of roles the selection considers.")
+    training_sample_accounts: int | None = Field(
+        500_000,
+        ge=10,
+        description="Most accounts training fits the feature bins, the pruning, the role "
+        "basis and the role descriptions on: a seeded sample (by a hash of the account id) "
+        "when the training windows hold more; every account's features still come from the "
+        "whole graph. Empty uses all accounts.",
+    )
     roles_sample_rows: int | None = Field(
         4000,
         ge=100,

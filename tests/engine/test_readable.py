@@ -85,6 +85,22 @@ def test_a_few_rows_give_the_same_values_as_all_rows():
     assert some.row(1)["out_degree"] == full.values[0, MEASURES.index("out_degree")]
 
 
+def test_rows_next_to_a_hub_count_triangles_like_networkx():
+    """Many rows beside a hub: over a million two-step paths, so the listing of every node
+    counts their triangles; the clustering must still be networkx's."""
+    G = nx.star_graph(1500).to_directed()  # hub 0, leaves 1..1500
+    for leaf in range(1, 1000, 2):  # close pairs of the first 1,000 leaves into triangles
+        G.add_edge(leaf, leaf + 1)
+        G.add_edge(leaf + 1, leaf)
+    snap, _ = _digraph_snapshot(G)
+    rows = np.arange(1, 1501)
+    measured = readable_measures(snap.counts, rows=rows).column("clustering")
+    clustering = nx.clustering(G.to_undirected())
+    expected = [clustering[int(snap.nodes[r][2:])] for r in rows]
+    assert 0 < sum(expected) < len(rows)
+    np.testing.assert_allclose(measured, expected)
+
+
 def test_rows_outside_the_window_are_refused():
     snap, _ = _digraph_snapshot(_random_digraph(1))
     with pytest.raises(EngineInputError, match="node indices"):

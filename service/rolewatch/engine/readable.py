@@ -108,11 +108,16 @@ def _triangles_of(U: sp.csr_matrix, rows: np.ndarray | None) -> np.ndarray:
 
     All nodes: the degree-ordered listing (Schank & Wagner 2005). A few rows: ``U[rows] @ U``
     masked by ``U[rows]`` counts each triangle twice per row, and expands only the
-    neighbourhoods of those rows.
+    neighbourhoods of those rows: one entry per two-step path from them, so when those paths
+    outnumber the matrix's own entries (many rows, or rows next to hubs) the listing of
+    every node is cheaper and is used instead.
     """
     if rows is None:
         return triangles_per_node(U)
     block = U[rows]
+    degree = np.diff(U.indptr).astype(np.float64)
+    if float((block @ degree).sum()) > max(U.nnz, 1 << 20):
+        return triangles_per_node(U)[rows]
     paths = (block @ U).multiply(block)
     return np.asarray(paths.sum(axis=1)).ravel() / 2.0
 

@@ -12,11 +12,12 @@ sample only where the accounts changed.
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 
-__all__ = ["mixed", "row_keys"]
+__all__ = ["account_sample", "mixed", "row_keys"]
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
@@ -57,3 +58,40 @@ def row_keys(tables: Any) -> np.ndarray:
             parts.append(mixed(np.arange(offset, offset + rows, dtype=np.uint64), 0))
         offset += rows
     return np.concatenate(parts) if parts else np.zeros(0, dtype=np.uint64)
+
+
+def account_sample(
+    nodes: Sequence[np.ndarray], size: int | None, seed: int = 0
+) -> list[np.ndarray] | None:
+    """Rows of a seeded sample of at most ``size`` distinct accounts, per window.
+
+    Training fits its bins, pruning and role basis on a sample of accounts when the windows
+    hold more (their features still come from the whole graph). The sample is consistent
+    (Broder, Compression and Complexity of Sequences 1997): an account is in it when its
+    hashed id is among the ``size`` smallest, so it is in or out in every window alike.
+
+    Parameters
+    ----------
+    nodes : sequence of array of str
+        Each training window's account ids, in row order.
+    size : int or None
+        Most distinct accounts kept; None keeps all.
+    seed : int
+        Salt of the hash order.
+
+    Returns
+    -------
+    list of numpy.ndarray or None
+        Each window's sampled row positions, ascending; None when the windows hold at most
+        ``size`` distinct accounts (nothing to leave out).
+    """
+    if size is None:
+        return None
+    if size < 1:
+        raise ValueError(f"the account sample needs at least one account, got {size}")
+    keys = [mixed(_account_keys(np.asarray(ids)), seed) for ids in nodes]
+    distinct = np.unique(np.concatenate(keys)) if keys else np.zeros(0, dtype=np.uint64)
+    if distinct.size <= size:
+        return None
+    cutoff = distinct[size - 1]
+    return [np.flatnonzero(k <= cutoff) for k in keys]

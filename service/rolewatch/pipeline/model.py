@@ -14,6 +14,7 @@ from rolewatch.engine.basis import RoleBasis
 from rolewatch.engine.features import FeatureRecipe, FeatureTable
 from rolewatch.engine.naming import RoleProfile, describe_roles
 from rolewatch.engine.readable import readable_measures
+from rolewatch.engine.rowkeys import account_sample
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.store.db import Connection
 from rolewatch.store.models import RoleInfo, StoredModel, active_model, save_model
@@ -41,9 +42,18 @@ def fit_model(
 ) -> FrozenModel:
     """Discover the recipe, fit the basis and describe its roles on reference snapshots.
 
-    With a ``previous`` model, the new roles are matched to the old ones so ids persist, and
-    names an operator gave to persisting roles are kept.
+    Windows with more than ``training_sample_accounts`` accounts are fitted on a seeded
+    sample of them (:func:`rolewatch.engine.rowkeys.account_sample`): their features come
+    from the whole graph, but the bins, the pruning, the basis and the role descriptions
+    see the sample only, so training's memory stops growing with the window past one full
+    feature table. With a ``previous`` model, the new roles are matched to the old ones so
+    ids persist, and names an operator gave to persisting roles are kept.
     """
+    sample = account_sample(
+        [snapshot.nodes for snapshot in snapshots],
+        settings.training_sample_accounts,
+        settings.seed,
+    )
     recipe = FeatureRecipe.discover(
         snapshots,
         max_rounds=settings.feature_rounds,
@@ -51,8 +61,13 @@ def fit_model(
         tolerance=settings.prune_tolerance,
         tolerance_step=settings.prune_tolerance_step,
         binning=settings.binning,
+        rows=sample,
     )
-    tables = [recipe.transform(snapshot) for snapshot in snapshots]
+    rows_of: list[np.ndarray | None] = [None] * len(snapshots) if sample is None else [*sample]
+    tables = [
+        recipe.transform(snapshot) if rows is None else recipe.transform(snapshot).take(rows)
+        for snapshot, rows in zip(snapshots, rows_of, strict=True)
+    ]
     basis = RoleBasis.fit(
         tables,
         n_roles=settings.roles,
@@ -65,7 +80,7 @@ def fit_model(
     )
     if previous is not None:
         basis = basis.aligned_to(previous.basis)
-    descriptions = _describe(basis, snapshots, tables)
+    descriptions = _describe(basis, snapshots, tables, rows_of)
     kept_names = {info.role_id: info.name for info in previous.roles} if previous else {}
     infos = []
     for description, features in zip(descriptions, basis.F, strict=True):
@@ -81,17 +96,22 @@ def fit_model(
 
 
 def _describe(
-    basis: RoleBasis, snapshots: list[Snapshot], tables: list[FeatureTable]
+    basis: RoleBasis,
+    snapshots: list[Snapshot],
+    tables: list[FeatureTable],
+    rows_of: list[np.ndarray | None],
 ) -> list[RoleProfile]:
-    """Readable measures and mixtures of every account of the reference windows, stacked;
-    the share of new counterparts counts from the second window on (NaN in the first)."""
+    """Readable measures and mixtures of every account (or of the sampled ones) of the
+    reference windows, stacked; the share of new counterparts counts from the second
+    window on (NaN in the first)."""
     measure_blocks, mixture_blocks = [], []
     previous: Snapshot | None = None
-    for snapshot, table in zip(snapshots, tables, strict=True):
+    for snapshot, table, rows in zip(snapshots, tables, rows_of, strict=True):
         if snapshot.n_nodes == 0:
             continue
         new = activity_counts(snapshot, previous).new_counterparts if previous else None
-        measure_blocks.append(readable_measures(snapshot.counts, new_counterparts=new).values)
+        measures = readable_measures(snapshot.counts, rows=rows, new_counterparts=new)
+        measure_blocks.append(measures.values)
         mixture_blocks.append(basis.memberships(table).mixture)
         previous = snapshot
     if not measure_blocks:

@@ -53,6 +53,7 @@ def discover_features(
     bin_fraction: float,
     tolerance: float,
     tolerance_step: float,
+    rows: Sequence[np.ndarray] | None = None,
 ) -> Discovered:
     """Run the ReFeX discovery rounds (Henderson et al., KDD 2011).
 
@@ -66,19 +67,33 @@ def discover_features(
         ``p`` of vertical logarithmic binning.
     tolerance, tolerance_step : float
         Round ``r`` prunes with ``tolerance + r * tolerance_step``.
+    rows : sequence of array of int, optional
+        Per graph, the rows binning and pruning look at (a sample of the accounts,
+        :func:`rolewatch.engine.rowkeys.account_sample`); every feature is still computed on
+        the whole graph, so a sampled account's aggregates see all its neighbours. None:
+        all rows.
 
     Returns
     -------
     Discovered
     """
-    kept = Discovered(binned=np.zeros((sum(g.n for g in graphs), 0), dtype=np.uint8))
+    picked = [np.arange(g.n) for g in graphs] if rows is None else list(rows)
+    if len(picked) != len(graphs):
+        raise ValueError(f"{len(graphs)} graphs but row samples for {len(picked)}")
+    kept = Discovered(binned=np.zeros((sum(r.size for r in picked), 0), dtype=np.uint8))
     # raw columns of the features kept in the previous round, per snapshot
     frontier: list[dict[str, np.ndarray]] = [{} for _ in graphs]
     candidates = base_definitions()
     for rnd in range(max_rounds + 1):
         kept.rounds = rnd
         new = _keep_round(
-            kept, graphs, candidates, frontier, bin_fraction, tolerance + rnd * tolerance_step
+            kept,
+            graphs,
+            picked,
+            candidates,
+            frontier,
+            bin_fraction,
+            tolerance + rnd * tolerance_step,
         )
         if not new or rnd == max_rounds:
             break
@@ -93,13 +108,14 @@ def discover_features(
 def _keep_round(
     kept: Discovered,
     graphs: Sequence[SnapshotGraph],
+    rows: Sequence[np.ndarray],
     candidates: Sequence[FeatureDef],
     frontier: Sequence[dict[str, np.ndarray]],
     bin_fraction: float,
     tolerance: float,
 ) -> list[FeatureDef]:
     """Bin and prune one round's candidates; add the survivors to ``kept`` and return them."""
-    cand_bin, cand_edges = _bin_candidates(graphs, candidates, frontier, bin_fraction)
+    cand_bin, cand_edges = _bin_candidates(graphs, rows, candidates, frontier, bin_fraction)
     n_fixed = len(kept.features)
     keep = prune_agreeing(np.hstack([kept.binned, cand_bin]), tolerance, n_fixed=n_fixed)
     new = [int(j) - n_fixed for j in keep if j >= n_fixed]
@@ -112,22 +128,28 @@ def _keep_round(
 
 def _bin_candidates(
     graphs: Sequence[SnapshotGraph],
+    rows: Sequence[np.ndarray],
     candidates: Sequence[FeatureDef],
     frontier: Sequence[dict[str, np.ndarray]],
     bin_fraction: float,
 ) -> tuple[np.ndarray, list[np.ndarray]]:
-    """Binned candidate columns pooled over the reference graphs, and their edges.
+    """Binned candidate columns pooled over the reference graphs' ``rows``, and their edges.
 
     Candidates are computed :data:`CANDIDATE_CHUNK` at a time so that only a few raw
     float columns are alive at once; bins are kept in the smallest unsigned dtype that
     holds them (:func:`bin_dtype`).
     """
-    rows = sum(g.n for g in graphs)
-    out = np.zeros((rows, len(candidates)), dtype=bin_dtype(max_bins(rows, bin_fraction)))
+    pooled_rows = sum(r.size for r in rows)
+    dtype = bin_dtype(max_bins(pooled_rows, bin_fraction))
+    out = np.zeros((pooled_rows, len(candidates)), dtype=dtype)
+    whole = [r.size == g.n for r, g in zip(rows, graphs, strict=True)]
     edges: list[np.ndarray] = []
     for lo in range(0, len(candidates), CANDIDATE_CHUNK):
         part = candidates[lo : lo + CANDIDATE_CHUNK]
-        per_graph = [raw_columns(g, part, frontier[k]) for k, g in enumerate(graphs)]
+        per_graph = [
+            [c if whole[k] else c[rows[k]] for c in raw_columns(g, part, frontier[k])]
+            for k, g in enumerate(graphs)
+        ]
         for j in range(len(part)):
             pooled = (
                 np.concatenate([cols[j] for cols in per_graph])

@@ -99,6 +99,17 @@ class FeatureTable:
         j = self.names.index(name)
         return (self.binned if binned else self.raw)[:, j]
 
+    def take(self, rows: np.ndarray) -> FeatureTable:
+        """The table of ``rows`` only (positions, ascending), e.g. a training sample."""
+        return FeatureTable(
+            nodes=self.nodes[rows],
+            names=self.names,
+            raw=np.asarray(self.raw[rows]),
+            binned=self.binned[rows],
+            recipe_version=self.recipe_version,
+            triangles=None if self.triangles is None else self.triangles[rows],
+        )
+
 
 @dataclass(frozen=True, eq=False, repr=False, kw_only=True)
 class FeatureRecipe:
@@ -198,6 +209,7 @@ class FeatureRecipe:
         tolerance: float = 1.0,
         tolerance_step: float = 1.0,
         binning: str = "frozen",
+        rows: Sequence[np.ndarray] | None = None,
     ) -> FeatureRecipe:
         """Run ReFeX feature discovery on reference snapshots (Henderson et al., KDD 2011).
 
@@ -220,6 +232,10 @@ class FeatureRecipe:
             recipe keeps thousands of near-duplicate columns.
         binning : {"frozen", "relative"}
             How :meth:`transform` bins later snapshots.
+        rows : sequence of array of int, optional
+            Per snapshot, the rows (a sample of the accounts) that the bin edges and the
+            pruning are learnt on; features are still computed on the whole snapshots.
+            None: all rows.
 
         Returns
         -------
@@ -244,12 +260,15 @@ class FeatureRecipe:
             bin_fraction=bin_fraction,
             tolerance=tolerance,
             tolerance_step=tolerance_step,
+            rows=rows,
         )
         reference = {
             "snapshots": len(snaps),
             "rows": int(sum(s.n_nodes for s in snaps)),
             "rounds": found.rounds,
         }
+        if rows is not None:
+            reference["sampled_rows"] = int(sum(np.size(r) for r in rows))
         return cls(
             features=tuple(found.features),
             feature_edges=tuple(found.edges),
