@@ -8,7 +8,10 @@ The events are the fictional marketplace sample in fixtures/sample (invented dat
 
 from __future__ import annotations
 
+import gc
 import json
+import time
+from dataclasses import replace
 
 import networkx as nx
 import numpy as np
@@ -25,7 +28,12 @@ from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.windows import WindowGeometry
 from rolewatch.scale import dispatch
 from rolewatch.scale.dispatch import DaskMeasure, account_codes
-from rolewatch.scale.features import WorkerRawFeatures
+from rolewatch.scale.features import (
+    SCRATCH_FOLDER,
+    RawValuesLost,
+    ScratchValues,
+    WorkerRawFeatures,
+)
 from rolewatch.scale.graph import build_graph, scatter_events, triangle_table
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest, parse_time_us
@@ -111,6 +119,53 @@ def test_features_and_memberships_match_the_local_engine(
         # the triangles the evidence's clustering reads, counted on the partitions
         assert local_table.triangles is not None
         np.testing.assert_array_equal(dask_table.triangles, local_table.triangles)
+
+
+def _scratch_files(client) -> int:
+    """Raw-value files in every worker's scratch folder."""
+    return sum(client.run(_count_scratch_files).values())
+
+
+def _wait_for_scratch_files(client, count: int) -> None:
+    deadline = time.monotonic() + 30
+    while _scratch_files(client) != count and time.monotonic() < deadline:
+        time.sleep(0.2)
+
+
+def _count_scratch_files(dask_worker) -> int:
+    from pathlib import Path
+
+    folder = Path(dask_worker.local_directory) / SCRATCH_FOLDER
+    return len(list(folder.glob("*.npy"))) if folder.exists() else 0
+
+
+def test_raw_values_on_workers_are_files_deleted_with_their_table(dask_cluster, sample_windows):
+    model, windows = sample_windows
+    gc.collect()  # earlier tests' tables
+    _wait_for_scratch_files(dask_cluster, 0)
+    measure = DaskMeasure(dask_cluster, partitions=4, raw_here_max_bytes=0)
+    snapshot = windows[5].snapshot()
+    table, _members = measure(model, snapshot, windows[5])
+    local_table, _ = measure_locally(model, snapshot, windows[5])
+    assert _scratch_files(dask_cluster) > 0
+    # the values came from the files, not from the workers' memory
+    assert all(isinstance(s, ScratchValues) for piece in table.raw.pieces for s in piece)
+    np.testing.assert_allclose(table.raw[[3, 1]], local_table.raw[[3, 1]], rtol=1e-9, atol=0)
+    del table
+    gc.collect()
+    _wait_for_scratch_files(dask_cluster, 0)
+    assert _scratch_files(dask_cluster) == 0
+
+
+def test_reading_values_of_a_worker_that_left_raises_a_clear_error(dask_cluster, sample_windows):
+    model, windows = sample_windows
+    measure = DaskMeasure(dask_cluster, partitions=4, raw_here_max_bytes=0)
+    table, _members = measure(model, windows[5].snapshot(), windows[5])
+    raw = table.raw
+    gone = [[replace(s, worker="tcp://127.0.0.1:9") for s in piece] for piece in raw.pieces]
+    lost = WorkerRawFeatures(dask_cluster, raw.bounds, gone, raw.names)
+    with pytest.raises(RawValuesLost, match="next tick closes the window again"):
+        lost[[0, 1]]
 
 
 def test_triangles_on_partitions_match_networkx(dask_cluster, sample_windows):

@@ -17,16 +17,22 @@ values), and the worker keeps float64 values only for the parents of later round
 degrees. The memberships against the frozen basis run per partition from the bins
 (:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results come back.
 
-A large window's float64 values (more than ``raw_here_max_bytes``) stay on the workers
-instead, each round's values of a partition one Dask result that the worker may spill to
-its disk: the closing process reads only the rows it shows (the alerted accounts',
-:class:`WorkerRawFeatures`), so its memory does not hold an n x f float64 table.
+A large window's float64 values (more than ``raw_here_max_bytes``) stay with the workers
+instead: each round's values of a partition are written, rows contiguous, to a file in the
+local directory of the worker that computed them (Dask's per-worker scratch space), and only
+the file's name travels. Neither the closing process nor the workers' memory then holds an
+n x f float64 table (at 30,000,000 events it would be about 5 GB, more than two 3 GB
+workers hold beside their working arrays); the closing process reads back only the rows it
+shows (the alerted accounts', :class:`WorkerRawFeatures`), a few pages of each file.
 """
 
 from __future__ import annotations
 
+import uuid
+import weakref
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -39,37 +45,109 @@ from rolewatch.scale.graph import TRIANGLES, WindowGraph, fetch_columns, with_eg
 from rolewatch.scale.graph_steps import Block, add_columns
 from rolewatch.scale.partitions import Partitioned, split_by_range
 
-__all__ = ["MeasuredWindow", "WorkerRawFeatures", "measure_window"]
+__all__ = [
+    "MeasuredWindow",
+    "RawValuesLost",
+    "ScratchValues",
+    "WorkerRawFeatures",
+    "measure_window",
+]
 
 _DEGREE = {"in": "in_degree", "out": "out_degree", "all": "degree"}
 FETCH_BYTES = 128 * 2**20  # parent values one partition fetches at once, at most
 Layer = Sequence[tuple[str, str, str, str]]  # name, kind (sum / mean), direction, parent
+SCRATCH_FOLDER = "rolewatch-raw-values"  # inside each worker's local directory
+
+
+@dataclass(frozen=True)
+class ScratchValues:
+    """Where one partition's raw values of one round were written: a C-ordered
+    rows x ``names`` float64 ``.npy`` file in the local directory of ``worker``."""
+
+    worker: str
+    path: str
+    names: tuple[str, ...]
+
+
+class RawValuesLost(RuntimeError):
+    """A worker holding part of a window's raw values left the cluster."""
+
+
+def _write_scratch(raw: dict[str, np.ndarray]) -> ScratchValues:
+    """Write a partition's finished raw columns to this worker's local directory."""
+    from distributed import get_worker
+
+    worker = get_worker()
+    if not raw:
+        return ScratchValues(worker=worker.address, path="", names=())
+    folder = Path(worker.local_directory) / SCRATCH_FOLDER
+    folder.mkdir(exist_ok=True)
+    path = folder / f"{uuid.uuid4().hex}.npy"
+    np.save(path, np.column_stack(list(raw.values())))
+    return ScratchValues(worker=worker.address, path=str(path), names=tuple(raw))
+
+
+def _read_scratch(path: str, rows: np.ndarray) -> np.ndarray:
+    """Rows ``rows`` (local to the partition) of one scratch file, read through a memory
+    map so that only their pages are touched."""
+    return np.asarray(np.load(path, mmap_mode="r")[rows])
+
+
+def _remove_scratch(paths: Sequence[str]) -> None:
+    for path in paths:
+        Path(path).unlink(missing_ok=True)
+
+
+def _release_scratch(client: Any, paths: dict[str, list[str]]) -> None:
+    """Ask each worker to delete its scratch files (a worker that is gone took its local
+    directory with it)."""
+    from distributed import fire_and_forget
+
+    try:
+        alive = set(client.scheduler_info().get("workers", {}))
+        for worker, files in paths.items():
+            if worker in alive:
+                fire_and_forget(client.submit(_remove_scratch, files, workers=[worker], pure=False))
+    except Exception:  # noqa: BLE001 - the client may be closed already at exit
+        return
 
 
 class WorkerRawFeatures:
-    """A window's raw feature values left on the workers that computed them, read by rows.
+    """A window's raw feature values left with the workers that computed them, read by rows.
 
     ``values[rows]`` (an integer or an array of account codes) gathers just those rows,
-    n x f float64 in the recipe's column order, like indexing the in-process table; one
-    task per partition holding any of them. The values live as long as this object (Dask
-    frees them when its futures are dropped). A worker lost after the computation takes its
-    partitions' values with it (the window's events, scattered from the closing process,
-    cannot be recomputed): reading them then raises Dask's error and the close fails before
-    anything is written, to be retried on the next tick.
+    n x f float64 in the recipe's column order, like indexing the in-process table: one
+    small task per scratch file holding any of them, run on the worker that wrote it. The
+    files live as long as this object (they are deleted when it is dropped). A worker lost
+    after the computation takes its files with it (the window's events, scattered from the
+    closing process, cannot be recomputed): reading them then raises
+    :class:`RawValuesLost` and the close fails before anything is written, to be retried on
+    the next tick.
     """
 
     def __init__(
-        self, client: Any, bounds: np.ndarray, pieces: list[list[Any]], names: Sequence[str]
+        self,
+        client: Any,
+        bounds: np.ndarray,
+        pieces: list[list[ScratchValues]],
+        names: Sequence[str],
     ) -> None:
         self.client = client
         self.bounds = np.asarray(bounds, dtype=np.int64)
-        self.pieces = pieces  # [partition][round]: future of {name: values of its rows}
+        self.pieces = pieces  # [partition][round]: where that round's values were written
         self.names = tuple(names)
+        self.column = {name: j for j, name in enumerate(self.names)}
         self.shape = (int(self.bounds[-1]), len(self.names))
+        files: dict[str, list[str]] = {}
+        for piece in pieces:
+            for scratch in piece:
+                if scratch.path:
+                    files.setdefault(scratch.worker, []).append(scratch.path)
+        weakref.finalize(self, _release_scratch, client, files)
 
     @property
     def nbytes(self) -> int:
-        """Bytes the values take on the workers (as float64)."""
+        """Bytes the values take on the workers' disks (as float64)."""
         return self.shape[0] * self.shape[1] * 8
 
     def __getitem__(self, rows: Any) -> np.ndarray:
@@ -80,36 +158,38 @@ class WorkerRawFeatures:
             raise IndexError(f"row out of range for a window of {n} accounts")
         wanted = np.where(wanted < 0, wanted + n, wanted)
         out = np.empty((wanted.size, self.shape[1]))
-        owned = [
-            (j, positions)
+        reads = [
+            (positions, wanted[positions] - self.bounds[j], scratch)
             for j, positions in enumerate(split_by_range(wanted, self.bounds))
             if positions.size
+            for scratch in self.pieces[j]
+            if scratch.names
         ]
+        self._check_writers([scratch for *_, scratch in reads])
         futures = [
             self.client.submit(
-                _take_rows,
-                wanted[positions] - self.bounds[j],
-                self.names,
-                *self.pieces[j],
+                _read_scratch,
+                scratch.path,
+                local,
+                workers=[scratch.worker],
+                allow_other_workers=False,
                 pure=False,
             )
-            for j, positions in owned
+            for _, local, scratch in reads
         ]
-        for (_, positions), values in zip(owned, self.client.gather(futures), strict=True):
-            out[positions] = values
+        for (positions, _, scratch), values in zip(reads, self.client.gather(futures), strict=True):
+            columns = np.array([self.column[name] for name in scratch.names])
+            out[np.ix_(positions, columns)] = values
         return out[0] if single else out
 
-
-def _take_rows(
-    rows: np.ndarray, names: Sequence[str], *rounds: dict[str, np.ndarray]
-) -> np.ndarray:
-    """Rows ``rows`` (local to the partition) of its raw values, columns in ``names``
-    order."""
-    columns = {name: column for piece in rounds for name, column in piece.items()}
-    out = np.empty((len(rows), len(names)))
-    for j, name in enumerate(names):
-        out[:, j] = columns[name][rows]
-    return out
+    def _check_writers(self, scratches: Sequence[ScratchValues]) -> None:
+        alive = set(self.client.scheduler_info().get("workers", {}))
+        gone = sorted({s.worker for s in scratches} - alive)
+        if gone:
+            raise RawValuesLost(
+                f"the Dask worker {gone[0]} that wrote part of the window's raw feature "
+                "values is gone; nothing was written, and the next tick closes the window again"
+            )
 
 
 @dataclass(frozen=True)
@@ -149,9 +229,11 @@ def _settle(
     keep: frozenset[str],
     edges: dict[str, np.ndarray],
     dtype: Any,
-) -> tuple[Block, dict[str, np.ndarray]]:
-    """Bin the finished recipe features, hand their float64 values back, and keep float64
-    values only for the columns in ``keep``."""
+    to_scratch: bool,
+) -> tuple[Block, dict[str, np.ndarray] | ScratchValues]:
+    """Bin the finished recipe features, hand their float64 values back (or write them to
+    this worker's scratch directory and hand back where), and keep float64 values only for
+    the columns in ``keep``."""
     bins = dict(block.bins)
     raw = {}
     for name in finished:
@@ -160,7 +242,8 @@ def _settle(
         bins[name] = binned
         raw[name] = block.columns[name]
     columns = {name: values for name, values in block.columns.items() if name in keep}
-    return replace(block, columns=columns, bins=bins), raw
+    settled = replace(block, columns=columns, bins=bins)
+    return settled, _write_scratch(raw) if to_scratch else raw
 
 
 def parent_group(n: int) -> int:
@@ -179,7 +262,7 @@ class _Rounds:
         self.rounds = sorted({d.round for d in recipe.features})
         self.column = {name: j for j, name in enumerate(recipe.names)}
         self.raw = np.zeros((graph.n, len(recipe.names)), order="F") if raw_here else None
-        self.left: list[list[Any]] = [[] for _ in range(graph.blocks.partitions)]
+        self.left: list[list[ScratchValues]] = [[] for _ in range(graph.blocks.partitions)]
         self.edges = dict(zip(recipe.names, recipe.feature_edges, strict=True))
         n_bins = 1 + max((e.size for e in recipe.feature_edges), default=0)
         self.dtype = bin_dtype(n_bins)
@@ -192,7 +275,9 @@ class _Rounds:
     def settle(self, blocks: Partitioned, rnd: int) -> Partitioned:
         finished = [d.name for d in self.recipe.features if d.round == rnd]
         keep = self.keep_after(rnd)
-        settled = blocks.map(_settle, finished, keep, self.edges, self.dtype).pieces(2)
+        settled = blocks.map(
+            _settle, finished, keep, self.edges, self.dtype, self.raw is None
+        ).pieces(2)
         self.collect()
         self.pending = [piece[1] for piece in settled]
         return Partitioned(self.client, tuple(piece[0] for piece in settled), blocks.bounds)
@@ -201,8 +286,8 @@ class _Rounds:
         """Copy the finished values the workers sent into the raw table, or note where
         they stay."""
         if self.raw is None:
-            for j, future in enumerate(self.pending):
-                self.left[j].append(future)
+            for j, scratch in enumerate(self.client.gather(self.pending)):
+                self.left[j].append(scratch)
             self.pending = []
             return
         bounds = self.graph.blocks.bounds

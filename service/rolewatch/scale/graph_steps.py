@@ -46,6 +46,22 @@ EVENT_DTYPE = np.int32  # account codes on the workers (fewer than 2**31 account
 MAX_WEDGES = 4_000_000  # wedges generated at once, as in the engine's kernel
 
 
+def _nbytes(*parts: np.ndarray | sp.csr_matrix) -> int:
+    """Bytes held by arrays and CSR matrices, plus a little for the object itself.
+
+    Blocks are Dask results: Dask measures a result with ``sys.getsizeof`` unless told
+    otherwise, which would count a block's matrices as nothing, so the workers would neither
+    see them in their managed memory nor spill them to disk under pressure.
+    """
+    total = 256
+    for part in parts:
+        if isinstance(part, sp.csr_matrix):
+            total += part.data.nbytes + part.indices.nbytes + part.indptr.nbytes
+        else:
+            total += np.asarray(part).nbytes
+    return total
+
+
 @dataclass(frozen=True, eq=False)
 class Block:
     """The accounts ``lo <= code < lo + rows`` of one partition.
@@ -69,6 +85,17 @@ class Block:
 
     def adjacency_of(self, direction: str) -> sp.csr_matrix:
         return {"in": self.inn, "out": self.out, "all": self.all}[direction]
+
+    def __sizeof__(self) -> int:
+        return _nbytes(
+            self.need,
+            self.out,
+            self.inn,
+            self.all,
+            self.mutual,
+            *self.columns.values(),
+            *self.bins.values(),
+        )
 
 
 def route_events(chunk: tuple[np.ndarray, ...], bounds: np.ndarray) -> tuple:
@@ -186,6 +213,9 @@ class Oriented:
     need_degree: np.ndarray
     upper: sp.csr_matrix
     sums: tuple[np.ndarray, np.ndarray, np.ndarray]
+
+    def __sizeof__(self) -> int:
+        return _nbytes(self.need, self.need_degree, self.upper, *self.sums)
 
 
 def orient(block: Block, *pieces: np.ndarray) -> Oriented:
