@@ -54,7 +54,7 @@ __all__ = [
 ]
 
 _DEGREE = {"in": "in_degree", "out": "out_degree", "all": "degree"}
-FETCH_BYTES = 128 * 2**20  # parent values one partition fetches at once, at most
+FETCH_BYTES = 64 * 2**20  # parent values one partition fetches at once, at most
 Layer = Sequence[tuple[str, str, str, str]]  # name, kind (sum / mean), direction, parent
 SCRATCH_FOLDER = "rolewatch-raw-values"  # inside each worker's local directory
 
@@ -206,7 +206,8 @@ def _add_aggregates(
     block: Block, layer: Layer, parents: Sequence[str], *pieces: np.ndarray
 ) -> Block:
     """Aggregates of ``parents`` from their values at the block's neighbours (fetched)."""
-    fetched = np.asfortranarray(np.concatenate(pieces, axis=0))
+    fetched = np.empty((sum(len(piece) for piece in pieces), len(parents)), order="F")
+    np.concatenate(pieces, axis=0, out=fetched)
     position = {name: k for k, name in enumerate(parents)}
     sums: dict[tuple[str, str], np.ndarray] = {}
     columns = {}
@@ -249,7 +250,7 @@ def _settle(
 def parent_group(n: int) -> int:
     """Parent columns fetched at once: a partition's neighbours are at most the window's
     ``n`` accounts, so a group of float64 columns stays within :data:`FETCH_BYTES`."""
-    return max(4, FETCH_BYTES // (8 * max(n, 1)))
+    return max(1, FETCH_BYTES // (8 * max(n, 1)))
 
 
 class _Rounds:

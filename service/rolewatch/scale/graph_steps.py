@@ -67,10 +67,11 @@ class Block:
     """The accounts ``lo <= code < lo + rows`` of one partition.
 
     ``need`` are the sorted codes of their neighbours; ``out``, ``inn`` and ``all`` are
-    0/1 float64 CSR rows (``rows x len(need)``) listing out-, in- and all neighbours by
-    position in ``need``; ``mutual`` marks the entries of ``all`` that run both ways;
-    ``columns`` the float64 values of the block's rows still needed by name, ``bins`` the
-    frozen bins of the recipe features already finished.
+    boolean CSR patterns (``rows x len(need)``) listing out-, in- and all neighbours by
+    position in ``need`` (:meth:`adjacency_of` gives them as 0/1 float64 for products);
+    ``mutual`` marks the entries of ``all`` that run both ways; ``columns`` the float64
+    values of the block's rows still needed by name, ``bins`` the frozen bins of the recipe
+    features already finished.
     """
 
     lo: int
@@ -84,7 +85,12 @@ class Block:
     bins: dict[str, np.ndarray] = field(default_factory=dict)
 
     def adjacency_of(self, direction: str) -> sp.csr_matrix:
-        return {"in": self.inn, "out": self.out, "all": self.all}[direction]
+        """The 0/1 float64 rows of one direction, for products (built on the fly: the block
+        keeps its patterns one byte an entry)."""
+        pattern = {"in": self.inn, "out": self.out, "all": self.all}[direction]
+        return sp.csr_matrix(
+            (np.ones(pattern.nnz), pattern.indices, pattern.indptr), shape=pattern.shape
+        )
 
     def __sizeof__(self) -> int:
         return _nbytes(
@@ -137,10 +143,12 @@ def _ones(m: sp.csr_matrix) -> sp.csr_matrix:
 
 
 def _compact(m: sp.csr_matrix, need: np.ndarray) -> sp.csr_matrix:
-    """``m``'s pattern as 0/1 float64 with columns renumbered to positions in ``need``."""
+    """``m``'s pattern (boolean: a block holds many, and products need no stored ones)
+    with columns renumbered to positions in ``need``."""
     columns = np.searchsorted(need, m.indices).astype(np.int32)
     return sp.csr_matrix(
-        (np.ones(m.nnz), columns, m.indptr.astype(np.int64)), shape=(m.shape[0], need.size)
+        (np.ones(m.nnz, dtype=bool), columns, m.indptr.astype(np.int64)),
+        shape=(m.shape[0], need.size),
     )
 
 
@@ -236,7 +244,8 @@ def orient(block: Block, *pieces: np.ndarray) -> Oriented:
         ),
         shape=block.all.shape,
     )
-    sums = (block.all @ fetched[:, 0], block.all @ fetched[:, 1], block.all @ fetched[:, 2])
+    adjacency = block.adjacency_of("all")
+    sums = (adjacency @ fetched[:, 0], adjacency @ fetched[:, 1], adjacency @ fetched[:, 2])
     return Oriented(block.lo, block.need, need_degree, upper, sums)
 
 
