@@ -27,13 +27,13 @@ def _block():
     chunk = (actor[keep], target[keep], rng.gamma(2.0, 5.0, keep.sum()))
     bounds = np.array([0, 700, n])
     routed = route_events(chunk, bounds)
-    return build_block(0, 700, n, routed[0])
+    return build_block(0, 700, n, routed[0])[0]
 
 
 def test_block_size_is_the_size_of_its_matrices_and_columns():
     block = _block()
     parts = [block.need, block.out, block.inn, block.all, block.mutual]
-    parts += list(block.columns.values()) + list(block.bins.values())
+    parts += list(block.columns.values())
     held = sum(sizeof(part) for part in parts)  # Dask's own sizes of arrays and CSR matrices
     assert held > 100_000
     assert abs(sizeof(block) - held) <= 4_096  # the buffers, give or take object headers

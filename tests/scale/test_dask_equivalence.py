@@ -27,6 +27,7 @@ from rolewatch.pipeline.offline import split_windows
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.windows import WindowGeometry
 from rolewatch.scale import dispatch
+from rolewatch.scale import features as dask_features
 from rolewatch.scale.dispatch import DaskMeasure, account_codes
 from rolewatch.scale.features import (
     SCRATCH_FOLDER,
@@ -87,11 +88,18 @@ def _integer_features(recipe) -> np.ndarray:
     return np.array([integer[name] for name in recipe.names])
 
 
-@pytest.mark.parametrize("raw_here_max_bytes", [None, 0], ids=["raw-gathered", "raw-on-workers"])
+@pytest.mark.parametrize(
+    ("raw_here_max_bytes", "fetch_bytes"),
+    [(None, None), (0, None), (None, 1)],
+    ids=["raw-gathered", "raw-on-workers", "one-parent-per-fetch"],
+)
 def test_features_and_memberships_match_the_local_engine(
-    dask_cluster, sample_windows, raw_here_max_bytes
+    dask_cluster, sample_windows, raw_here_max_bytes, fetch_bytes, monkeypatch
 ):
     model, windows = sample_windows
+    if fetch_bytes is not None:  # every parent column fetched and aggregated on its own
+        monkeypatch.setattr(dask_features, "FETCH_BYTES", fetch_bytes)
+        assert dask_features.parent_group(10) == 1
     measure = DaskMeasure(dask_cluster, partitions=4, raw_here_max_bytes=raw_here_max_bytes)
     columns = _integer_features(model.recipe)
     assert columns.any() and (~columns).any()

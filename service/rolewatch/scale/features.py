@@ -9,13 +9,16 @@ rows (the distributed form of
 :meth:`rolewatch.engine.features.graph.SnapshotGraph.aggregate`: a sum over the neighbours,
 the mean that sum times ``1 / degree``).
 
-Worker memory stays bounded by what later rounds need: when a round ends, each of its
-recipe features is binned with the frozen edges on the worker
+Worker memory stays bounded by what later rounds need. A partition's adjacency block is
+built once and never copied; every step (the base counts, the egonet features, each group of
+a round's aggregates) makes one new result of a few columns per partition and settles it at
+once: each recipe feature is binned with the frozen edges on the worker
 (:func:`rolewatch.engine.features.binning.apply_bins`, one byte a value), its float64 values
 are sent to the closing process (which fills the window's raw table, the evidence's
-values), and the worker keeps float64 values only for the parents of later rounds and the
-degrees. The memberships against the frozen basis run per partition from the bins
-(:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results come back.
+values), and the worker keeps float64 values only for the parents of later rounds. Groups
+go to the cluster one behind the other, so the values fetched for one group are freed before
+the next group's are. The memberships against the frozen basis run per partition from the
+bins (:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results come back.
 
 A large window's float64 values (more than ``raw_here_max_bytes``) stay with the workers
 instead: each round's values of a partition are written, rows contiguous, to a file in the
@@ -28,10 +31,11 @@ shows (the alerted accounts', :class:`WorkerRawFeatures`), a few pages of each f
 
 from __future__ import annotations
 
+import operator
 import uuid
 import weakref
 from collections.abc import Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -39,10 +43,10 @@ import numpy as np
 
 from rolewatch.engine.basis import Memberships, RoleBasis
 from rolewatch.engine.features.binning import apply_bins, bin_dtype
-from rolewatch.engine.features.graph import EGONET_FEATURES
+from rolewatch.engine.features.graph import EGONET_FEATURES, LOCAL_FEATURES
 from rolewatch.engine.features.recipe import FeatureRecipe, FeatureTable
-from rolewatch.scale.graph import TRIANGLES, WindowGraph, fetch_columns, with_egonet
-from rolewatch.scale.graph_steps import Block, add_columns
+from rolewatch.scale.graph import TRIANGLES, WindowGraph, egonet_table, fetch_columns
+from rolewatch.scale.graph_steps import Block
 from rolewatch.scale.partitions import Partitioned, split_by_range
 
 __all__ = [
@@ -55,6 +59,7 @@ __all__ = [
 
 _DEGREE = {"in": "in_degree", "out": "out_degree", "all": "degree"}
 FETCH_BYTES = 64 * 2**20  # parent values one partition fetches at once, at most
+GROUPS_AHEAD = 1  # groups of parents computing while the one before them finishes
 Layer = Sequence[tuple[str, str, str, str]]  # name, kind (sum / mean), direction, parent
 SCRATCH_FOLDER = "rolewatch-raw-values"  # inside each worker's local directory
 
@@ -202,60 +207,95 @@ class MeasuredWindow:
     triangles: np.ndarray | None = None  # per account, when the recipe counted them
 
 
-def _add_aggregates(
-    block: Block, layer: Layer, parents: Sequence[str], *pieces: np.ndarray
-) -> Block:
-    """Aggregates of ``parents`` from their values at the block's neighbours (fetched)."""
-    fetched = np.empty((sum(len(piece) for piece in pieces), len(parents)), order="F")
-    np.concatenate(pieces, axis=0, out=fetched)
+Columns = dict[str, np.ndarray]  # float64 values of one partition's rows, by feature name
+
+
+def _settle(
+    columns: Columns,
+    edges: dict[str, np.ndarray],
+    keep: frozenset[str],
+    dtype: Any,
+    to_scratch: bool,
+) -> tuple[Columns, Columns, Columns | ScratchValues]:
+    """A partition's newly computed columns, settled: ``(kept, bins, raw)``.
+
+    Every recipe feature among them is binned with its frozen edges (``bins``, one byte a
+    value), its float64 values are handed back (``raw``: sent to the closing process, or
+    written to this worker's scratch directory and handed back as where), and only the
+    columns in ``keep`` (later rounds' parents, the triangles) stay as float64 (``kept``).
+    """
+    bins, raw = {}, {}
+    for name, values in columns.items():
+        if name in edges:
+            binned = np.empty(values.size, dtype=dtype)
+            apply_bins(values, edges[name], out=binned)
+            bins[name], raw[name] = binned, values
+    kept = {name: values for name, values in columns.items() if name in keep}
+    return kept, bins, _write_scratch(raw) if to_scratch else raw
+
+
+def _aggregates(
+    block: Block,
+    layer: Layer,
+    sources: Sequence[Sequence[str]],
+    settle: tuple,
+    *pieces: np.ndarray,
+) -> tuple[Columns, Columns, Columns | ScratchValues]:
+    """One group of a round's aggregates on one partition, settled (:func:`_settle`).
+
+    ``pieces`` are the parents' values at the block's neighbours, one piece per partition
+    for each source (a Dask result holding some of the parents, ``sources`` naming them
+    in order); ``layer`` the group's features, each a sum or mean of one parent over one
+    direction's neighbours.
+    """
+    parents = [name for names in sources for name in names]
+    fetched = np.empty((block.need.size, len(parents)), order="F")
+    per_source = len(pieces) // max(len(sources), 1)
+    column = 0
+    for s, names in enumerate(sources):
+        part = pieces[s * per_source : (s + 1) * per_source]
+        np.concatenate(part, axis=0, out=fetched[:, column : column + len(names)])
+        column += len(names)
     position = {name: k for k, name in enumerate(parents)}
+    adjacency: dict[str, Any] = {}
     sums: dict[tuple[str, str], np.ndarray] = {}
-    columns = {}
+    columns: Columns = {}
     for name, kind, direction, parent in layer:
         key = (direction, parent)
         if key not in sums:
-            sums[key] = block.adjacency_of(direction) @ fetched[:, position[parent]]
+            if direction not in adjacency:
+                adjacency[direction] = block.adjacency_of(direction)
+            sums[key] = adjacency[direction] @ fetched[:, position[parent]]
         summed = sums[key]
         if kind == "mean":
             degree = block.columns[_DEGREE[direction]]
             inverse = np.divide(1.0, degree, out=np.zeros_like(degree), where=degree > 0)
             summed = summed * inverse
         columns[name] = summed
-    return add_columns(block, columns)
+    return _settle(columns, *settle)
 
 
-def _settle(
-    block: Block,
-    finished: Sequence[str],
-    keep: frozenset[str],
-    edges: dict[str, np.ndarray],
-    dtype: Any,
-    to_scratch: bool,
-) -> tuple[Block, dict[str, np.ndarray] | ScratchValues]:
-    """Bin the finished recipe features, hand their float64 values back (or write them to
-    this worker's scratch directory and hand back where), and keep float64 values only for
-    the columns in ``keep``."""
-    bins = dict(block.bins)
-    raw = {}
-    for name in finished:
-        binned = np.empty(block.rows, dtype=dtype)
-        apply_bins(block.columns[name], edges[name], out=binned)
-        bins[name] = binned
-        raw[name] = block.columns[name]
-    columns = {name: values for name, values in block.columns.items() if name in keep}
-    settled = replace(block, columns=columns, bins=bins)
-    return settled, _write_scratch(raw) if to_scratch else raw
+def _need_size(block: Block) -> int:
+    return int(block.need.size)
 
 
-def parent_group(n: int) -> int:
-    """Parent columns fetched at once: a partition's neighbours are at most the window's
-    ``n`` accounts, so a group of float64 columns stays within :data:`FETCH_BYTES`."""
-    return max(1, FETCH_BYTES // (8 * max(n, 1)))
+def parent_group(need: int) -> int:
+    """Parent columns fetched at once when a partition's neighbours number at most
+    ``need``, so that a group of float64 columns stays within :data:`FETCH_BYTES`."""
+    return max(1, FETCH_BYTES // (8 * max(need, 1)))
 
 
 class _Rounds:
     """The recipe's rounds on the cluster, and the raw table they fill in this process (or
-    the futures of the raw values they leave on the workers)."""
+    the scratch files of the raw values they leave on the workers).
+
+    Every step makes, per partition, one new Dask result of a few columns and settles it
+    at once (:func:`_settle`): the bins are kept apart (``self.bins``), the float64 values
+    are kept only while a later round needs them (``self.where``: which result holds each
+    such column). Groups of parents go to the cluster at most :data:`GROUPS_AHEAD` ahead of
+    the last finished one, so the workers never hold the fetched values of every group at
+    once.
+    """
 
     def __init__(self, graph: WindowGraph, recipe: FeatureRecipe, *, raw_here: bool) -> None:
         self.graph, self.recipe = graph, recipe
@@ -267,35 +307,47 @@ class _Rounds:
         self.edges = dict(zip(recipe.names, recipe.feature_edges, strict=True))
         n_bins = 1 + max((e.size for e in recipe.feature_edges), default=0)
         self.dtype = bin_dtype(n_bins)
-        self.pending: list[Any] = []
+        self.where: dict[str, Partitioned] = {}  # float64 columns still kept, by name
+        self.bins: list[Partitioned] = []
+        self.in_flight: list[list[Any]] = []  # settled results not yet waited for
 
     def keep_after(self, rnd: int) -> frozenset[str]:
         later = {str(d.parent) for d in self.recipe.features if d.round > rnd}
-        return frozenset(later | set(_DEGREE.values()) | {TRIANGLES})
+        return frozenset(later | {TRIANGLES})
 
-    def settle(self, blocks: Partitioned, rnd: int) -> Partitioned:
-        finished = [d.name for d in self.recipe.features if d.round == rnd]
-        keep = self.keep_after(rnd)
-        settled = blocks.map(
-            _settle, finished, keep, self.edges, self.dtype, self.raw is None
-        ).pieces(2)
-        self.collect()
-        self.pending = [piece[1] for piece in settled]
-        return Partitioned(self.client, tuple(piece[0] for piece in settled), blocks.bounds)
+    def _settling(self, rnd: int) -> tuple:
+        return self.edges, self.keep_after(rnd), self.dtype, self.raw is None
 
-    def collect(self) -> None:
-        """Copy the finished values the workers sent into the raw table, or note where
-        they stay."""
-        if self.raw is None:
-            for j, scratch in enumerate(self.client.gather(self.pending)):
-                self.left[j].append(scratch)
-            self.pending = []
-            return
+    def add(self, settled: list[Any], names: Sequence[str], rnd: int) -> None:
+        """Track one step's settled results (one ``(kept, bins, raw)`` future per
+        partition) holding the columns ``names``."""
         bounds = self.graph.blocks.bounds
-        for j, values in enumerate(self.client.gather(self.pending)):
-            for name, column in values.items():
-                self.raw[bounds[j] : bounds[j + 1], self.column[name]] = column
-        self.pending = []
+        items = Partitioned(self.client, tuple(settled), bounds).pieces(3)
+        kept = Partitioned(self.client, tuple(item[0] for item in items), bounds)
+        for name in self.keep_after(rnd).intersection(names):
+            self.where[name] = kept
+        self.bins.append(Partitioned(self.client, tuple(item[1] for item in items), bounds))
+        self.in_flight.append([item[2] for item in items])
+
+    def settle_first(self, tables: Sequence[tuple[Partitioned, Sequence[str]]]) -> None:
+        """Round 0: settle the base (and egonet) columns."""
+        for table, names in tables:
+            settled = table.map(_settle, *self._settling(0))
+            self.add(list(settled.futures), names, 0)
+        self.collect(keep=0)
+
+    def collect(self, keep: int) -> None:
+        """Wait for all but the last ``keep`` steps in flight; copy the finished values they
+        sent into the raw table, or note where they were written."""
+        bounds = self.graph.blocks.bounds
+        while len(self.in_flight) > keep:
+            raws = self.client.gather(self.in_flight.pop(0))
+            for j, values in enumerate(raws):
+                if self.raw is None:
+                    self.left[j].append(values)
+                    continue
+                for name, column in values.items():
+                    self.raw[bounds[j] : bounds[j + 1], self.column[name]] = column
 
     def values(self) -> np.ndarray | WorkerRawFeatures:
         if self.raw is not None:
@@ -304,37 +356,53 @@ class _Rounds:
             self.client, self.graph.blocks.bounds, self.left, self.recipe.names
         )
 
-    def aggregate(self, blocks: Partitioned, rnd: int) -> Partitioned:
+    def aggregate(self, rnd: int, group_size: int) -> None:
+        """Round ``rnd``'s aggregates, in groups of at most ``group_size`` parents."""
         layer = [
             (d.name, *d.op.split("_"), str(d.parent))
             for d in self.recipe.features
             if d.round == rnd
         ]
         parents = sorted({parent for *_, parent in layer})
-        size = parent_group(self.graph.n)
-        for g in range(0, len(parents), size):
-            group = parents[g : g + size]
+        blocks = self.graph.blocks
+        for g in range(0, len(parents), group_size):
+            group = parents[g : g + group_size]
             part = [entry for entry in layer if entry[3] in group]
-            pieces = fetch_columns(self.graph, blocks, group)
-            blocks = Partitioned(
-                self.client,
-                tuple(
-                    self.client.submit(_add_aggregates, block, part, group, *pieces[i], pure=False)
-                    for i, block in enumerate(blocks.futures)
-                ),
-                blocks.bounds,
-            )
-        return blocks
+            sources: dict[int, tuple[Partitioned, list[str]]] = {}
+            for parent in group:
+                table = self.where[parent]
+                sources.setdefault(id(table), (table, []))[1].append(parent)
+            fetched = [fetch_columns(self.graph, table, names) for table, names in sources.values()]
+            names = [names for _, names in sources.values()]
+            settled = [
+                self.client.submit(
+                    _aggregates,
+                    block,
+                    part,
+                    names,
+                    self._settling(rnd),
+                    *[piece for pieces in fetched for piece in pieces[i]],
+                    pure=False,
+                )
+                for i, block in enumerate(blocks.futures)
+            ]
+            self.add(settled, [entry[0] for entry in part], rnd)
+            self.collect(keep=GROUPS_AHEAD)
+        self.collect(keep=0)
+        later = self.keep_after(rnd)
+        self.where = {name: table for name, table in self.where.items() if name in later}
 
 
-def _measure_block(block: Block, names: Sequence[str], version: str, basis: RoleBasis) -> tuple:
-    """Frozen bins and memberships of one block, by the engine's own function, and its
-    triangles: ``(binned, mixture, loadings, error, triangles)`` (triangles empty when the
-    recipe has no egonet feature)."""
-    first = block.bins[names[0]] if names else np.zeros(block.rows, dtype=np.uint8)
+def _measure_block(
+    block: Block, names: Sequence[str], version: str, basis: RoleBasis, *bins: Columns
+) -> tuple:
+    """Frozen memberships of one block's rows, by the engine's own function, from the
+    bins of its steps: ``(binned, mixture, loadings, error)``."""
+    held = {name: values for part in bins for name, values in part.items()}
+    first = held[names[0]] if names else np.zeros(block.rows, dtype=np.uint8)
     binned = np.empty((block.rows, len(names)), dtype=first.dtype, order="F")
     for j, name in enumerate(names):
-        binned[:, j] = block.bins[name]
+        binned[:, j] = held[name]
     table = FeatureTable(
         nodes=np.arange(block.lo, block.lo + block.rows),  # codes: the basis reads no id
         names=tuple(names),
@@ -343,8 +411,7 @@ def _measure_block(block: Block, names: Sequence[str], version: str, basis: Role
         recipe_version=version,
     )
     members = basis.memberships(table)
-    triangles = block.columns.get(TRIANGLES, np.zeros(0))
-    return binned, members.mixture, members.loadings, members.error, triangles
+    return binned, members.mixture, members.loadings, members.error
 
 
 def measure_window(
@@ -363,17 +430,22 @@ def measure_window(
     raw_here = raw_here_max_bytes is None or raw_bytes <= raw_here_max_bytes
     rounds = _Rounds(graph, recipe, raw_here=raw_here)
     uses_egonet = any(d.parent is None and d.op in EGONET_FEATURES for d in recipe.features)
-    blocks = with_egonet(graph) if uses_egonet else graph.blocks
+    first: list[tuple[Partitioned, Sequence[str]]] = [(graph.base, LOCAL_FEATURES)]
+    if uses_egonet:
+        first.append((egonet_table(graph), (*EGONET_FEATURES, TRIANGLES)))
+    rounds.settle_first(first)
+    del first
+    triangles = rounds.where.get(TRIANGLES)
+    need = max(graph.blocks.map(_need_size).gather(), default=0)
     for rnd in rounds.rounds:
         if rnd > 0:
-            blocks = rounds.aggregate(blocks, rnd)
-        blocks = rounds.settle(blocks, rnd)
-    parts = blocks.map(_measure_block, list(recipe.names), recipe.version, basis)
-    rounds.collect()
-    del blocks
+            rounds.aggregate(rnd, parent_group(need))
+    parts = graph.blocks.map(
+        _measure_block, list(recipe.names), recipe.version, basis, *rounds.bins
+    )
     gathered = parts.gather()
-    binned, mixture, loadings, error, triangles = (
-        np.concatenate([part[k] for part in gathered], axis=0) for k in range(5)
+    binned, mixture, loadings, error = (
+        np.concatenate([part[k] for part in gathered], axis=0) for k in range(4)
     )
     if binned.shape[0] != graph.n:
         raise RuntimeError(
@@ -385,5 +457,10 @@ def measure_window(
         raw=rounds.values(),
         binned=np.asfortranarray(binned),
         members=members,
-        triangles=triangles if uses_egonet else None,
+        triangles=_gather_column(triangles, TRIANGLES) if triangles is not None else None,
     )
+
+
+def _gather_column(table: Partitioned, name: str) -> np.ndarray:
+    """One float64 column of every partition, in account order, in this process."""
+    return np.concatenate(table.map(operator.getitem, name).gather())

@@ -20,8 +20,8 @@ __all__ = [
     "build_graph",
     "fetch_columns",
     "scatter_events",
+    "egonet_table",
     "triangle_table",
-    "with_egonet",
 ]
 
 _DEGREES = ("degree", "out_degree", "in_degree")
@@ -31,10 +31,12 @@ TRIANGLES = "triangles"  # a block column beside the features, not one of them
 @dataclass(frozen=True)
 class WindowGraph:
     """The window's blocks (:class:`~rolewatch.scale.graph_steps.Block`, one per
-    partition), ``n`` accounts in all, and ``wanted[i][j]``: the rows partition ``i``
-    needs from partition ``j`` (futures)."""
+    partition), their base features (``base``: one dict of float64 columns per
+    partition), ``n`` accounts in all, and ``wanted[i][j]``: the rows partition ``i`` needs
+    from partition ``j`` (futures)."""
 
     blocks: Partitioned
+    base: Partitioned
     n: int
     wanted: list[list[Any]]
 
@@ -71,7 +73,7 @@ def build_graph(events: tuple[Partitioned, int]) -> WindowGraph:
     chunks, n = events
     client, bounds, p = chunks.client, chunks.bounds, chunks.partitions
     routed = chunks.map(steps.route_events, bounds).pieces(p)
-    blocks = Partitioned(
+    built = Partitioned(
         client,
         tuple(
             client.submit(
@@ -85,15 +87,17 @@ def build_graph(events: tuple[Partitioned, int]) -> WindowGraph:
             for j in range(p)
         ),
         bounds,
-    )
+    ).pieces(2)
+    blocks = Partitioned(client, tuple(item[0] for item in built), bounds)
+    base = Partitioned(client, tuple(item[1] for item in built), bounds)
     wanted = blocks.map(steps.need_parts, bounds).pieces(p)
-    return WindowGraph(blocks, n, wanted)
+    return WindowGraph(blocks, base, n, wanted)
 
 
-def fetch_columns(graph: WindowGraph, blocks: Partitioned, names: Sequence[str]) -> list:
-    """``[i][j]``: the values of ``names`` partition ``i``'s neighbours hold in
-    partition ``j``."""
-    return fetch(blocks, graph.wanted, steps.take_columns, list(names))
+def fetch_columns(graph: WindowGraph, owners: Partitioned, names: Sequence[str]) -> list:
+    """``[i][j]``: the values of ``names`` partition ``i``'s neighbours hold in partition
+    ``j`` (``owners``: the blocks, or one dict of feature columns per partition)."""
+    return fetch(owners, graph.wanted, steps.take_columns, list(names))
 
 
 def _counted(graph: WindowGraph) -> list[list[Any]]:
@@ -160,13 +164,13 @@ def triangle_table(graph: WindowGraph) -> Partitioned:
     return _on_triangle_counts(graph, _triangles_of, with_sums=False)
 
 
-def _add_egonet(block: steps.Block, sums: tuple, *pieces: tuple) -> steps.Block:
+def _egonet(block: steps.Block, sums: tuple, *pieces: tuple) -> dict[str, np.ndarray]:
     tri, opposite = steps.triangle_sums(block.rows, pieces)
-    columns = steps.egonet_columns(block.columns, sums, tri, opposite)
-    return steps.add_columns(block, {**columns, TRIANGLES: tri})
+    return {**steps.egonet_columns(block.columns, sums, tri, opposite), TRIANGLES: tri}
 
 
-def with_egonet(graph: WindowGraph) -> Partitioned:
-    """The blocks with the ReFeX egonet features added, and each account's triangles as
-    the column :data:`TRIANGLES` (the evidence's clustering reads them)."""
-    return _on_triangle_counts(graph, _add_egonet, with_sums=True)
+def egonet_table(graph: WindowGraph) -> Partitioned:
+    """Per partition, the ReFeX egonet features of its accounts and their triangles as
+    the column :data:`TRIANGLES` (the evidence's clustering reads them): one dict of
+    float64 columns."""
+    return _on_triangle_counts(graph, _egonet, with_sums=True)

@@ -19,7 +19,7 @@ read from the rows ``b``'s and ``c``'s owners send.
 from __future__ import annotations
 
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
@@ -28,9 +28,9 @@ from rolewatch.engine.sorting import unique_sorted
 
 __all__ = [
     "EVENT_DTYPE",
+    "BLOCK_COLUMNS",
     "Block",
     "Oriented",
-    "add_columns",
     "build_block",
     "count_triangles",
     "egonet_columns",
@@ -44,6 +44,7 @@ __all__ = [
 
 EVENT_DTYPE = np.int32  # account codes on the workers (fewer than 2**31 accounts a window)
 MAX_WEDGES = 4_000_000  # wedges generated at once, as in the engine's kernel
+BLOCK_COLUMNS = ("degree", "out_degree", "in_degree")  # kept with the adjacency (means, ranks)
 
 
 def _nbytes(*parts: np.ndarray | sp.csr_matrix) -> int:
@@ -69,9 +70,12 @@ class Block:
     ``need`` are the sorted codes of their neighbours; ``out``, ``inn`` and ``all`` are
     boolean CSR patterns (``rows x len(need)``) listing out-, in- and all neighbours by
     position in ``need`` (:meth:`adjacency_of` gives them as 0/1 float64 for products);
-    ``mutual`` marks the entries of ``all`` that run both ways; ``columns`` the float64
-    values of the block's rows still needed by name, ``bins`` the frozen bins of the recipe
-    features already finished.
+    ``mutual`` marks the entries of ``all`` that run both ways; ``columns`` the rows'
+    degrees (:data:`BLOCK_COLUMNS`, float64), which the means and the triangle ranks read.
+
+    A block never changes once built: the feature columns of its rows are separate Dask
+    results (plain dicts of arrays), so each round makes new small results instead of new
+    blocks that would share, and be counted and spilled with, the same matrices.
     """
 
     lo: int
@@ -82,7 +86,6 @@ class Block:
     all: sp.csr_matrix
     mutual: np.ndarray
     columns: dict[str, np.ndarray]
-    bins: dict[str, np.ndarray] = field(default_factory=dict)
 
     def adjacency_of(self, direction: str) -> sp.csr_matrix:
         """The 0/1 float64 rows of one direction, for products (built on the fly: the block
@@ -100,7 +103,6 @@ class Block:
             self.all,
             self.mutual,
             *self.columns.values(),
-            *self.bins.values(),
         )
 
 
@@ -152,9 +154,9 @@ def _compact(m: sp.csr_matrix, need: np.ndarray) -> sp.csr_matrix:
     )
 
 
-def build_block(lo: int, hi: int, n: int, *pieces: tuple) -> Block:
-    """Partition ``[lo, hi)``'s adjacency rows and local ReFeX counts from the routed
-    events (``(sent, received)`` pieces, one per chunk)."""
+def build_block(lo: int, hi: int, n: int, *pieces: tuple) -> tuple[Block, dict[str, np.ndarray]]:
+    """Partition ``[lo, hi)``'s adjacency rows and its local ReFeX counts (by name, float64)
+    from the routed events (``(sent, received)`` pieces, one per chunk)."""
     rows = hi - lo
     out_counts, out_weights = _summed(rows, n, [p[0] for p in pieces])
     in_counts, in_weights = _summed(rows, n, [p[1] for p in pieces])
@@ -175,7 +177,7 @@ def build_block(lo: int, hi: int, n: int, *pieces: tuple) -> Block:
         "out_events": np.asarray(out_counts.sum(axis=1), dtype=np.float64).ravel(),
         "reciprocity": np.divide(reciprocal, degree, out=np.zeros(rows), where=degree > 0),
     }
-    return Block(
+    block = Block(
         lo=lo,
         rows=rows,
         need=need,
@@ -183,8 +185,9 @@ def build_block(lo: int, hi: int, n: int, *pieces: tuple) -> Block:
         inn=_compact(in_counts, need),
         all=_compact(both, need),
         mutual=mutual,
-        columns=columns,
+        columns={name: columns[name].copy() for name in BLOCK_COLUMNS},
     )
+    return block, columns
 
 
 def need_parts(block: Block, bounds: np.ndarray) -> tuple[np.ndarray, ...]:
@@ -193,16 +196,13 @@ def need_parts(block: Block, bounds: np.ndarray) -> tuple[np.ndarray, ...]:
     return tuple(block.need[cuts[j] : cuts[j + 1]] - bounds[j] for j in range(len(bounds) - 1))
 
 
-def take_columns(block: Block, rows: np.ndarray, names: Sequence[str]) -> np.ndarray:
-    """The values of ``names`` at ``rows`` of ``block`` (rows x names, float64)."""
-    return np.column_stack([block.columns[name][rows] for name in names]).reshape(
-        rows.size, len(names)
-    )
-
-
-def add_columns(block: Block, columns: dict[str, np.ndarray]) -> Block:
-    """``block`` with more feature columns (the matrices are shared, not copied)."""
-    return replace(block, columns={**block.columns, **columns})
+def take_columns(
+    values: Block | dict[str, np.ndarray], rows: np.ndarray, names: Sequence[str]
+) -> np.ndarray:
+    """The values of ``names`` at ``rows`` of a block or of a partition's feature columns
+    (rows x names, float64)."""
+    columns = values.columns if isinstance(values, Block) else values
+    return np.column_stack([columns[name][rows] for name in names]).reshape(rows.size, len(names))
 
 
 def _stacked(pieces: Sequence[np.ndarray]) -> np.ndarray:
