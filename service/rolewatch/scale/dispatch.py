@@ -119,11 +119,12 @@ def _lost_data_errors() -> tuple[type[BaseException], ...]:
     """What a dying worker makes a close raise: its results' futures cancelled, a task
     that killed its workers, or a connection closed under a transfer (the scheduler sending
     the events to a worker that has just died drops the client's request with it)."""
-    from distributed.client import FutureCancelledError
+    from concurrent.futures import CancelledError  # one future's or several's, waited for
+
     from distributed.comm.core import CommClosedError
     from distributed.scheduler import KilledWorker
 
-    return (FutureCancelledError, KilledWorker, CommClosedError)
+    return (CancelledError, KilledWorker, CommClosedError)
 
 
 class DaskMeasure:
@@ -185,11 +186,13 @@ class DaskMeasure:
     def _measure_once(
         self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
     ) -> tuple[FeatureTable, Memberships]:
+        from distributed import wait
+
         from rolewatch.scale.features import measure_window
         from rolewatch.scale.graph import build_graph, scatter_events
 
         actor, target = account_codes(snapshot, events)
-        chunks = scatter_events(
+        scattered, n = scatter_events(
             self.client,
             actor,
             target,
@@ -197,19 +200,25 @@ class DaskMeasure:
             snapshot.n_nodes,
             self.partitions_for(snapshot.n_nodes),
         )
+        held = list(scattered.futures)
         try:
+            graph = build_graph((scattered, n))
+            built = [*graph.blocks.futures, *graph.base.futures]
+            held += built
+            wait(built)
+            # The blocks hold the events now: free the workers' copies of the chunks (a
+            # worker lost from here on fails the attempt either way: chunks scattered from
+            # this process cannot be recomputed).
+            del scattered
+            held = built
             measured = measure_window(
-                build_graph(chunks),
-                model.recipe,
-                model.basis,
-                raw_here_max_bytes=self.raw_here_max_bytes,
+                graph, model.recipe, model.basis, raw_here_max_bytes=self.raw_here_max_bytes
             )
         except BaseException:
-            # Free the chunks on the workers now: the error's traceback would keep their
-            # futures (and the workers' copies) alive until collected. Not after success:
-            # cancelling them would cancel the raw values left on the workers, which
-            # depend on them; they are released when this call returns.
-            self.client.cancel(list(chunks[0].futures))
+            # Free the window's data on the workers now: the error's traceback would keep
+            # their futures alive until collected. Not after success: the raw values left
+            # on the workers are released with the table that reads them.
+            self.client.cancel(held)
             raise
         table = FeatureTable(
             nodes=snapshot.nodes,
