@@ -205,7 +205,8 @@ class DaskMeasure:
             graph = build_graph((scattered, n))
             built = [*graph.blocks.futures, *graph.base.futures]
             held += built
-            wait(built)
+            with self.client.as_current():  # a client made for one scheduler is no default
+                wait(built)
             # The blocks hold the events now: free the workers' copies of the chunks (a
             # worker lost from here on fails the attempt either way: chunks scattered from
             # this process cannot be recomputed).
