@@ -15,9 +15,9 @@ a round's aggregates) makes one new result of a few columns per partition and se
 once: each recipe feature is binned with the frozen edges on the worker
 (:func:`rolewatch.engine.features.binning.apply_bins`, one byte a value), its float64 values
 are sent to the closing process (which fills the window's raw table, the evidence's
-values), and the worker keeps float64 values only for the parents of later rounds. Groups
-go to the cluster one behind the other, so the values fetched for one group are freed before
-the next group's are. The memberships against the frozen basis run per partition from the
+values), and the worker keeps float64 values only for the parents of later rounds. At most
+two groups of parents are on the cluster at once, so a worker never holds the fetched
+values of every group. The memberships against the frozen basis run per partition from the
 bins (:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results come back.
 
 A large window's float64 values (more than ``raw_here_max_bytes``) stay with the workers
@@ -59,7 +59,7 @@ __all__ = [
 
 _DEGREE = {"in": "in_degree", "out": "out_degree", "all": "degree"}
 FETCH_BYTES = 64 * 2**20  # parent values one partition fetches at once, at most
-GROUPS_AHEAD = 1  # groups of parents computing while the one before them finishes
+GROUPS_AHEAD = 1  # groups of parents left running when the next is sent (2 at once at most)
 Layer = Sequence[tuple[str, str, str, str]]  # name, kind (sum / mean), direction, parent
 SCRATCH_FOLDER = "rolewatch-raw-values"  # inside each worker's local directory
 
@@ -364,7 +364,7 @@ class _Rounds:
             if d.round == rnd
         ]
         parents = sorted({parent for *_, parent in layer})
-        blocks = self.graph.blocks
+        blocks, settling = self.graph.blocks, self._settling(rnd)
         for g in range(0, len(parents), group_size):
             group = parents[g : g + group_size]
             part = [entry for entry in layer if entry[3] in group]
@@ -380,7 +380,7 @@ class _Rounds:
                     block,
                     part,
                     names,
-                    self._settling(rnd),
+                    settling,
                     *[piece for pieces in fetched for piece in pieces[i]],
                     pure=False,
                 )
