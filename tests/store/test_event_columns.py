@@ -14,7 +14,7 @@ import pytest
 from rolewatch import helper_process
 from rolewatch.clock import to_rfc3339
 from rolewatch.config import load_settings
-from rolewatch.pipeline.loading import interned, load_window_events
+from rolewatch.pipeline.loading import interned, load_window_events, start_window_events
 from rolewatch.store import sqlite_window_reader
 from rolewatch.store.db import open_store
 from rolewatch.store.event_columns import event_columns
@@ -143,3 +143,38 @@ def test_the_helper_reports_a_request_it_cannot_serve_and_keeps_serving(tmp_path
     )
     assert sqlite_window_reader.HELPER.process is process  # the same child answered again
     assert read.events.num_rows == len(events) - 2  # all but the two outside the window
+
+
+def test_a_finished_read_is_not_held_by_the_function_that_finished_it(store_url, monkeypatch):
+    """The closer keeps the function that finishes its window read for the whole close; the
+    helper's answer (SQLite) or the driver's columns (PostgreSQL) it read must not stay
+    alive with it (about 40 bytes an event: 120 MB of a 3,000,000-event window, measured
+    with tracemalloc through a whole close)."""
+    import gc
+    import weakref
+
+    from rolewatch.store import event_columns as module
+
+    read: list[weakref.ref] = []
+    reader = "_postgres_columns" if store_url.startswith("postgresql") else "read_in_helper"
+    real = getattr(module, reader)
+
+    def watched(*args, **kwargs):
+        answer = real(*args, **kwargs)
+        read.append(weakref.ref(answer))
+        return answer
+
+    monkeypatch.setattr(module, reader, watched)
+    monkeypatch.setattr(module, "HELPER_MIN_ROWS", 0)
+    settings = load_settings(database_url=store_url)
+    engine = open_store(settings)
+    ingest(engine, settings, _events(), END + 3_600_000_000)
+    with engine.connect() as connection:
+        finish = start_window_events(connection, START, END)  # as the closer reads
+        loaded = finish()
+        gc.collect()
+        assert len(read) == 1 and read[0]() is None, "the finished read is still referenced"
+        assert len(loaded) == len(_events()) - 2
+        with pytest.raises(RuntimeError, match="handed over already"):
+            finish()
+    engine.dispose()
