@@ -31,9 +31,9 @@ from rolewatch.scale import features as dask_features
 from rolewatch.scale.dispatch import DaskMeasure, account_codes
 from rolewatch.scale.features import (
     SCRATCH_FOLDER,
-    RawValuesLost,
+    FeatureRowsLost,
     ScratchValues,
-    WorkerRawFeatures,
+    WorkerFeatureRows,
 )
 from rolewatch.scale.graph import build_graph, scatter_events, triangle_table
 from rolewatch.store.db import open_store
@@ -107,9 +107,11 @@ def test_features_and_memberships_match_the_local_engine(
         snapshot = events.snapshot()
         local_table, local_members = measure_locally(model, snapshot, events)
         dask_table, dask_members = measure(model, snapshot, events)
-        if raw_here_max_bytes == 0:
-            assert isinstance(dask_table.raw, WorkerRawFeatures)
+        if raw_here_max_bytes == 0:  # the raw values and the bins stay with the workers
+            assert isinstance(dask_table.raw, WorkerFeatureRows)
+            assert isinstance(dask_table.binned, WorkerFeatureRows)
             assert dask_table.raw.shape == local_table.raw.shape
+            assert dask_table.binned.shape == local_table.binned.shape
         dask_raw = dask_table.raw[np.arange(snapshot.n_nodes)]
         integral = np.broadcast_to(columns, local_table.raw.shape)
         # integer-valued features (degrees, counts, egonet edges, their sums) exactly
@@ -121,7 +123,9 @@ def test_features_and_memberships_match_the_local_engine(
         rows = np.random.default_rng(0).permutation(snapshot.n_nodes)[:7]
         np.testing.assert_array_equal(dask_table.raw[rows], dask_raw[rows])
         np.testing.assert_array_equal(dask_table.raw[int(rows[0])], dask_raw[rows[0]])
-        np.testing.assert_array_equal(dask_table.binned, local_table.binned)
+        dask_binned = dask_table.binned[np.arange(snapshot.n_nodes)]
+        assert dask_binned.dtype == local_table.binned.dtype
+        np.testing.assert_array_equal(dask_binned, local_table.binned)
         np.testing.assert_allclose(dask_members.mixture, local_members.mixture, rtol=0, atol=1e-9)
         np.testing.assert_allclose(dask_members.error, local_members.error, rtol=0, atol=1e-9)
         # the triangles the evidence's clustering reads, counted on the partitions
@@ -130,7 +134,7 @@ def test_features_and_memberships_match_the_local_engine(
 
 
 def _scratch_files(client) -> int:
-    """Raw-value files in every worker's scratch folder."""
+    """Feature-value files (raw values, bins) in every worker's scratch folder."""
     return sum(client.run(_count_scratch_files).values())
 
 
@@ -147,7 +151,9 @@ def _count_scratch_files(dask_worker) -> int:
     return len(list(folder.glob("*.npy"))) if folder.exists() else 0
 
 
-def test_raw_values_on_workers_are_files_deleted_with_their_table(dask_cluster, sample_windows):
+def test_raw_values_and_bins_on_workers_are_files_deleted_with_their_table(
+    dask_cluster, sample_windows
+):
     model, windows = sample_windows
     gc.collect()  # earlier tests' tables
     _wait_for_scratch_files(dask_cluster, 0)
@@ -156,9 +162,11 @@ def test_raw_values_on_workers_are_files_deleted_with_their_table(dask_cluster, 
     table, _members = measure(model, snapshot, windows[5])
     local_table, _ = measure_locally(model, snapshot, windows[5])
     assert _scratch_files(dask_cluster) > 0
-    # the values came from the files, not from the workers' memory
-    assert all(isinstance(s, ScratchValues) for piece in table.raw.pieces for s in piece)
+    # the values and the bins came from the files, not from the workers' memory
+    pieces = [*table.raw.pieces, *table.binned.pieces]
+    assert all(isinstance(s, ScratchValues) for piece in pieces for s in piece)
     np.testing.assert_allclose(table.raw[[3, 1]], local_table.raw[[3, 1]], rtol=1e-9, atol=0)
+    np.testing.assert_array_equal(table.binned[[3, 1]], local_table.binned[[3, 1]])
     del table
     gc.collect()
     _wait_for_scratch_files(dask_cluster, 0)
@@ -171,8 +179,8 @@ def test_reading_values_of_a_worker_that_left_raises_a_clear_error(dask_cluster,
     table, _members = measure(model, windows[5].snapshot(), windows[5])
     raw = table.raw
     gone = [[replace(s, worker="tcp://127.0.0.1:9") for s in piece] for piece in raw.pieces]
-    lost = WorkerRawFeatures(dask_cluster, raw.bounds, gone, raw.names)
-    with pytest.raises(RawValuesLost, match="next tick closes the window again"):
+    lost = WorkerFeatureRows(dask_cluster, raw.bounds, gone, raw.names)
+    with pytest.raises(FeatureRowsLost, match="next tick closes the window again"):
         lost[[0, 1]]
 
 
@@ -295,7 +303,7 @@ def test_baseline_windows_measured_on_the_cluster_give_the_local_evidence(
     def counting(self, model, snapshot, events):
         measured.append(snapshot.n_nodes)
         table, members = cluster_measure(self, model, snapshot, events)
-        left.append(isinstance(table.raw, WorkerRawFeatures))
+        left.append(isinstance(table.raw, WorkerFeatureRows))
         return table, members
 
     if raw_on_workers:

@@ -57,7 +57,9 @@ class RecentFeatures:
         events = int(round(float(snapshot.counts.sum())))
         kept = (
             _Kept(window.start, window.end, table.recipe_version, events, snapshot, table)
-            if size <= self._max_bytes and isinstance(table.raw, np.ndarray)
+            if size <= self._max_bytes
+            and isinstance(table.raw, np.ndarray)
+            and isinstance(table.binned, np.ndarray)
             else None
         )
         with self._lock:

@@ -23,10 +23,11 @@ bins (:meth:`rolewatch.engine.basis.RoleBasis.memberships`); only their results 
 A large window's float64 values (more than ``raw_here_max_bytes``) stay with the workers
 instead: each round's values of a partition are written, rows contiguous, to a file in the
 local directory of the worker that computed them (Dask's per-worker scratch space), and only
-the file's name travels. Neither the closing process nor the workers' memory then holds an
-n x f float64 table (at 30,000,000 events it would be about 5 GB, more than two 3 GB
-workers hold beside their working arrays); the closing process reads back only the rows it
-shows (the alerted accounts', :class:`WorkerRawFeatures`), a few pages of each file.
+the file's name travels; so are each partition's bins once its memberships are fitted.
+Neither the closing process nor the workers' memory then holds the n x f feature table (at
+30,000,000 events about 5 GB of float64 and 0.6 GB of bins, more than two 3 GB workers hold
+beside their working arrays); the closing process reads back only the rows it shows (the
+alerted accounts' raw values, :class:`WorkerFeatureRows`), a few pages of each file.
 """
 
 from __future__ import annotations
@@ -51,9 +52,9 @@ from rolewatch.scale.partitions import Partitioned, split_by_range
 
 __all__ = [
     "MeasuredWindow",
-    "RawValuesLost",
+    "FeatureRowsLost",
     "ScratchValues",
-    "WorkerRawFeatures",
+    "WorkerFeatureRows",
     "measure_window",
 ]
 
@@ -74,8 +75,8 @@ class ScratchValues:
     names: tuple[str, ...]
 
 
-class RawValuesLost(RuntimeError):
-    """A worker holding part of a window's raw values left the cluster."""
+class FeatureRowsLost(RuntimeError):
+    """A worker holding part of a window's raw values or bins left the cluster."""
 
 
 def _write_scratch(raw: dict[str, np.ndarray]) -> ScratchValues:
@@ -117,16 +118,17 @@ def _release_scratch(client: Any, paths: dict[str, list[str]]) -> None:
         return
 
 
-class WorkerRawFeatures:
-    """A window's raw feature values left with the workers that computed them, read by rows.
+class WorkerFeatureRows:
+    """A window's raw feature values (float64) or bins (``dtype``: the bins' unsigned
+    integers) left with the workers that computed them, read by rows.
 
     ``values[rows]`` (an integer or an array of account codes) gathers just those rows,
-    n x f float64 in the recipe's column order, like indexing the in-process table: one
+    n x f in the recipe's column order, like indexing the in-process table: one
     small task per scratch file holding any of them, run on the worker that wrote it. The
     files live as long as this object (they are deleted when it is dropped). A worker lost
     after the computation takes its files with it (the window's events, scattered from the
     closing process, cannot be recomputed): reading them then raises
-    :class:`RawValuesLost` and the close fails before anything is written, to be retried on
+    :class:`FeatureRowsLost` and the close fails before anything is written, to be retried on
     the next tick.
     """
 
@@ -136,10 +138,12 @@ class WorkerRawFeatures:
         bounds: np.ndarray,
         pieces: list[list[ScratchValues]],
         names: Sequence[str],
+        dtype: Any = np.float64,
     ) -> None:
         self.client = client
         self.bounds = np.asarray(bounds, dtype=np.int64)
-        self.pieces = pieces  # [partition][round]: where that round's values were written
+        self.pieces = pieces  # [partition][step]: where that step's values were written
+        self.dtype = np.dtype(dtype)
         self.names = tuple(names)
         self.column = {name: j for j, name in enumerate(self.names)}
         self.shape = (int(self.bounds[-1]), len(self.names))
@@ -152,8 +156,8 @@ class WorkerRawFeatures:
 
     @property
     def nbytes(self) -> int:
-        """Bytes the values take on the workers' disks (as float64)."""
-        return self.shape[0] * self.shape[1] * 8
+        """Bytes the values take on the workers' disks."""
+        return self.shape[0] * self.shape[1] * self.dtype.itemsize
 
     def __getitem__(self, rows: Any) -> np.ndarray:
         single = np.ndim(rows) == 0
@@ -162,7 +166,7 @@ class WorkerRawFeatures:
         if wanted.size and (wanted.min() < -n or wanted.max() >= n):
             raise IndexError(f"row out of range for a window of {n} accounts")
         wanted = np.where(wanted < 0, wanted + n, wanted)
-        out = np.empty((wanted.size, self.shape[1]))
+        out = np.empty((wanted.size, self.shape[1]), dtype=self.dtype)
         reads = [
             (positions, wanted[positions] - self.bounds[j], scratch)
             for j, positions in enumerate(split_by_range(wanted, self.bounds))
@@ -191,9 +195,9 @@ class WorkerRawFeatures:
         alive = set(self.client.scheduler_info().get("workers", {}))
         gone = sorted({s.worker for s in scratches} - alive)
         if gone:
-            raise RawValuesLost(
-                f"the Dask worker {gone[0]} that wrote part of the window's raw feature "
-                "values is gone; nothing was written, and the next tick closes the window again"
+            raise FeatureRowsLost(
+                f"the Dask worker {gone[0]} that wrote part of the window's feature values "
+                "is gone; nothing was written, and the next tick closes the window again"
             )
 
 
@@ -201,8 +205,8 @@ class WorkerRawFeatures:
 class MeasuredWindow:
     """A window measured on the cluster, in the order of its accounts."""
 
-    raw: np.ndarray | WorkerRawFeatures
-    binned: np.ndarray
+    raw: np.ndarray | WorkerFeatureRows
+    binned: np.ndarray | WorkerFeatureRows  # with the raw values: both here or both there
     members: Memberships
     triangles: np.ndarray | None = None  # per account, when the recipe counted them
 
@@ -349,10 +353,10 @@ class _Rounds:
                 for name, column in values.items():
                     self.raw[bounds[j] : bounds[j + 1], self.column[name]] = column
 
-    def values(self) -> np.ndarray | WorkerRawFeatures:
+    def values(self) -> np.ndarray | WorkerFeatureRows:
         if self.raw is not None:
             return self.raw
-        return WorkerRawFeatures(
+        return WorkerFeatureRows(
             self.client, self.graph.blocks.bounds, self.left, self.recipe.names
         )
 
@@ -394,11 +398,19 @@ class _Rounds:
 
 
 def _measure_block(
-    block: Block, names: Sequence[str], version: str, basis: RoleBasis, *bins: Columns
+    block: Block,
+    names: Sequence[str],
+    version: str,
+    basis: RoleBasis,
+    to_scratch: bool,
+    *bins: Columns,
 ) -> tuple:
     """Frozen memberships of one block's rows, by the engine's own function, from the
-    bins of its steps: ``(binned, mixture, loadings, error)``."""
+    bins of its steps: ``(binned, mixture, loadings, error)``; with ``to_scratch`` the bins
+    are written to this worker's scratch directory and ``binned`` says where."""
     held = {name: values for part in bins for name, values in part.items()}
+    if to_scratch:
+        where = _write_scratch({name: held[name] for name in names})
     first = held[names[0]] if names else np.zeros(block.rows, dtype=np.uint8)
     binned = np.empty((block.rows, len(names)), dtype=first.dtype, order="F")
     for j, name in enumerate(names):
@@ -411,7 +423,7 @@ def _measure_block(
         recipe_version=version,
     )
     members = basis.memberships(table)
-    return binned, members.mixture, members.loadings, members.error
+    return where if to_scratch else binned, members.mixture, members.loadings, members.error
 
 
 def measure_window(
@@ -423,8 +435,10 @@ def measure_window(
 ) -> MeasuredWindow:
     """The frozen recipe's raw values and bins, and the memberships, of every account.
 
-    The raw values come to this process when they take at most ``raw_here_max_bytes``
-    (None: always); above it they stay on the workers (:class:`WorkerRawFeatures`).
+    The raw values and the bins come to this process when the raw values take at most
+    ``raw_here_max_bytes`` (None: always); above it both stay on the workers
+    (:class:`WorkerFeatureRows`): the closing process needs neither for its scores, only
+    the alerted accounts' raw rows for their evidence.
     """
     raw_bytes = graph.n * len(recipe.names) * 8
     raw_here = raw_here_max_bytes is None or raw_bytes <= raw_here_max_bytes
@@ -441,21 +455,30 @@ def measure_window(
         if rnd > 0:
             rounds.aggregate(rnd, parent_group(need))
     parts = graph.blocks.map(
-        _measure_block, list(recipe.names), recipe.version, basis, *rounds.bins
+        _measure_block, list(recipe.names), recipe.version, basis, not raw_here, *rounds.bins
     )
     gathered = parts.gather()
-    binned, mixture, loadings, error = (
-        np.concatenate([part[k] for part in gathered], axis=0) for k in range(4)
+    mixture, loadings, error = (
+        np.concatenate([part[k] for part in gathered], axis=0) for k in range(1, 4)
     )
-    if binned.shape[0] != graph.n:
+    if mixture.shape[0] != graph.n:
         raise RuntimeError(
-            f"the Dask close returned {binned.shape[0]} rows for {graph.n} accounts; the "
+            f"the Dask close returned {mixture.shape[0]} rows for {graph.n} accounts; the "
             "close is retried on the next tick"
         )
+    binned: np.ndarray | WorkerFeatureRows
+    if raw_here:
+        binned = np.asfortranarray(np.concatenate([part[0] for part in gathered], axis=0))
+    else:
+        pieces = [[part[0]] for part in gathered]
+        binned = WorkerFeatureRows(
+            graph.blocks.client, graph.blocks.bounds, pieces, recipe.names, rounds.dtype
+        )
+    del gathered
     members = Memberships(loadings=loadings, mixture=mixture, error=error)
     return MeasuredWindow(
         raw=rounds.values(),
-        binned=np.asfortranarray(binned),
+        binned=binned,
         members=members,
         triangles=_gather_column(triangles, TRIANGLES) if triangles is not None else None,
     )

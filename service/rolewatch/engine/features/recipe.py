@@ -31,8 +31,8 @@ FORMAT_VERSION = 1
 
 
 class RawRows(Protocol):
-    """Raw feature values held elsewhere, read by rows like an n x f array: ``raw[rows]``
-    (an integer or an integer array) gives those rows as float64."""
+    """Feature values or bins held elsewhere, read by rows like an n x f array:
+    ``values[rows]`` (an integer or an integer array) gives those rows as an array."""
 
     shape: tuple[int, int]
 
@@ -60,7 +60,9 @@ class FeatureTable:
         n x f vertical logarithmic bin indices (Henderson et al., KDD 2011), the matrix
         RolX factorises; an unsigned integer dtype (``uint8`` unless a feature has more
         than 256 bins), eight times smaller than float64, so windows of a million events
-        stay cheap to transform and to keep.
+        stay cheap to transform and to keep. A large window measured on a cluster holds
+        its bins where they were computed, like its raw values (its memberships were
+        fitted there).
     recipe_version : str
     triangles : numpy.ndarray or None
         Triangles through each node of the undirected view, float64, when the recipe's
@@ -71,7 +73,7 @@ class FeatureTable:
     nodes: np.ndarray
     names: tuple[str, ...]
     raw: np.ndarray | RawRows
-    binned: np.ndarray
+    binned: np.ndarray | RawRows
     recipe_version: str
     triangles: np.ndarray | None = None
 
