@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from rolewatch.config import Settings
-from rolewatch.pipeline.loading import WindowEvents
+from rolewatch.pipeline.loading import interned
 from rolewatch.pipeline.model import fit_model
 from rolewatch.pipeline.offline import split_windows
 from rolewatch.pipeline.windows import WindowGeometry
@@ -30,11 +30,11 @@ def _training_snapshots(settings: Settings, event_id, time_us, actor, target, we
     spans = split_windows(np.asarray(time_us, dtype=np.int64), geometry)
     snapshots = []
     for _start, _end, rows in spans[: settings.training_windows]:
-        events = WindowEvents(
-            event_id=np.asarray(event_id, dtype=object)[rows],
-            actor=np.asarray(actor, dtype=object)[rows],
-            target=np.asarray(target, dtype=object)[rows],
-            weight=np.asarray(weight, dtype=np.float64)[rows],
+        events = interned(
+            np.asarray(event_id, dtype=object)[rows],
+            np.asarray(actor, dtype=object)[rows],
+            np.asarray(target, dtype=object)[rows],
+            np.asarray(weight, dtype=np.float64)[rows],
         )
         snapshots.append(events.snapshot())
     return snapshots

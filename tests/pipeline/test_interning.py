@@ -34,6 +34,8 @@ def test_interned_events_build_the_snapshot_from_events_builds():
     events = interned(np.arange(actor.size).astype(str), actor, target, weight)
     np.testing.assert_array_equal(events.actor, actor)
     np.testing.assert_array_equal(events.target, target)
+    # positions, not ids, per event: four bytes each below 2**31 accounts
+    assert events.actor_index.dtype == events.target_index.dtype == np.int32
     assert events.account_count() == len(set(actor) | set(target))
     built = events.snapshot()
     reference = Snapshot.from_events(actor.astype(str), target.astype(str), weight)

@@ -1,13 +1,15 @@
 """An alert's sample event ids: the first few events (in time order) that involve the
-account, from the interned positions or by looking the ids up — against the definition
-written as a plain loop over the events (no outside source: the rule is the product's)."""
+account, from the interned positions or, for a snapshot with other nodes, by looking the
+accounts up — against the definition written as a plain loop over the events (no outside
+source: the rule is the product's)."""
 
 from __future__ import annotations
 
 import numpy as np
 
+from rolewatch.engine.snapshot import Snapshot
 from rolewatch.pipeline.evidence import _sample_event_ids
-from rolewatch.pipeline.loading import WindowEvents, interned
+from rolewatch.pipeline.loading import interned
 
 
 def _by_definition(nodes, current, rows, per_account):
@@ -36,14 +38,18 @@ def _events(seed: int, n_events: int = 3000, n_accounts: int = 60):
 def test_interned_and_looked_up_positions_give_the_defined_samples():
     for seed in range(3):
         ids, actor, target, weight = _events(seed)
-        fast = interned(ids, actor, target, weight)
-        plain = WindowEvents(event_id=ids, actor=actor, target=target, weight=weight)
-        snapshot = fast.snapshot()
-        rows = np.random.default_rng(seed).choice(snapshot.n_nodes, 12, replace=False)
-        for per_account in (1, 5):
-            expected = _by_definition(list(snapshot.nodes), plain, rows, per_account)
-            assert _sample_event_ids(snapshot, fast, rows, per_account) == expected
-            assert _sample_event_ids(snapshot, plain, rows, per_account) == expected
+        current = interned(ids, actor, target, weight)
+        snapshot = current.snapshot()
+        # the same events with two isolated accounts among the nodes: rows shift by one
+        wider = Snapshot.from_events(
+            actor, target, weight, nodes=np.concatenate([["0-first"], snapshot.nodes, ["x"]])
+        )
+        assert not np.array_equal(wider.nodes, snapshot.nodes)
+        for nodes in (snapshot, wider):
+            rows = np.random.default_rng(seed).choice(nodes.n_nodes, 12, replace=False)
+            for per_account in (1, 5):
+                expected = _by_definition(list(nodes.nodes), current, rows, per_account)
+                assert _sample_event_ids(nodes, current, rows, per_account) == expected
 
 
 def test_no_rows_no_samples():

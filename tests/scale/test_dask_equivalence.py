@@ -21,14 +21,14 @@ import sqlalchemy as sa
 from rolewatch.pipeline import closer
 from rolewatch.pipeline.closer import close_due_windows
 from rolewatch.pipeline.compute import measure_locally
-from rolewatch.pipeline.loading import WindowEvents
+from rolewatch.pipeline.loading import interned
 from rolewatch.pipeline.model import fit_model
 from rolewatch.pipeline.offline import split_windows
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.windows import WindowGeometry
 from rolewatch.scale import dispatch
 from rolewatch.scale import features as dask_features
-from rolewatch.scale.dispatch import DaskMeasure, account_codes
+from rolewatch.scale.dispatch import DaskMeasure
 from rolewatch.scale.features import (
     SCRATCH_FOLDER,
     FeatureRowsLost,
@@ -56,7 +56,7 @@ def sample_windows(tmp_path_factory):
         "weight": np.array([float(e.get("weight", 1.0)) for e in events]),
     }
     windows = [
-        WindowEvents(**{name: values[rows] for name, values in columns.items()})
+        interned(*(values[rows] for values in columns.values()))
         for _start, _end, rows in split_windows(time_us, WindowGeometry.from_settings(settings))
     ]
     model = fit_model(settings, [w.snapshot() for w in windows[: settings.training_windows]])
@@ -188,7 +188,7 @@ def test_triangles_on_partitions_match_networkx(dask_cluster, sample_windows):
     _model, windows = sample_windows
     events = windows[5]
     snapshot = events.snapshot()
-    actor, target = account_codes(snapshot, events)
+    actor, target = events.rows_in(snapshot)
     graph = build_graph(
         scatter_events(dask_cluster, actor, target, events.weight, snapshot.n_nodes, 3)
     )
@@ -247,11 +247,11 @@ def test_a_window_smaller_than_the_partition_count_measures_like_the_local_engin
     dask_cluster, sample_windows
 ):
     model, windows = sample_windows
-    events = WindowEvents(
-        event_id=np.array(["e1", "e2", "e3", "e4"], dtype=object),
-        actor=np.array(["acct-a", "acct-b", "acct-c", "acct-b"], dtype=object),
-        target=np.array(["acct-b", "acct-c", "acct-a", "acct-a"], dtype=object),
-        weight=np.array([1.0, 2.0, 3.0, 1.0]),
+    events = interned(
+        np.array(["e1", "e2", "e3", "e4"], dtype=object),
+        np.array(["acct-a", "acct-b", "acct-c", "acct-b"], dtype=object),
+        np.array(["acct-b", "acct-c", "acct-a", "acct-a"], dtype=object),
+        np.array([1.0, 2.0, 3.0, 1.0]),
     )
     snapshot = events.snapshot()
     local_table, local_members = measure_locally(model, snapshot, events)

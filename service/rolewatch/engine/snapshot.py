@@ -33,6 +33,17 @@ def _as_id_array(values: Any, what: str) -> np.ndarray:
     return arr
 
 
+def _as_positions(index) -> np.ndarray:
+    """Event positions as a flat integer array, without copying one that is already
+    integer (a large window's int32 positions stay int32)."""
+    positions = np.asarray(index).reshape(-1)
+    if positions.dtype.kind in "iu":
+        return positions
+    if positions.size and not np.array_equal(positions, np.round(positions)):
+        raise ValueError("event positions must be whole numbers; intern the ids first")
+    return positions.astype(np.int64)
+
+
 def _check_weights(weight: Any, n_events: int) -> np.ndarray:
     """Return event weights as float64, rejecting NaN, infinite and negative values."""
     if weight is None:
@@ -171,8 +182,8 @@ class Snapshot:
         node_arr = _as_id_array(nodes, "nodes")
         if node_arr.size > 1 and not (node_arr[1:] > node_arr[:-1]).all():
             raise ValueError("nodes must be sorted and distinct; intern the ids with np.unique")
-        rows = np.asarray(actor_index, dtype=np.int64).reshape(-1)
-        cols = np.asarray(target_index, dtype=np.int64).reshape(-1)
+        rows = _as_positions(actor_index)
+        cols = _as_positions(target_index)
         if rows.shape != cols.shape:
             raise ValueError(
                 f"actor has {rows.size} ids but target has {cols.size}; every event needs both"

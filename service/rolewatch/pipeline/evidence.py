@@ -293,7 +293,7 @@ def _sample_event_ids(
         return {}
     wanted = np.zeros(snapshot.n_nodes, dtype=bool)
     wanted[rows] = True
-    actor_rows, target_rows = _event_rows(snapshot, current)
+    actor_rows, target_rows = current.rows_in(snapshot)
     involved = np.flatnonzero(wanted[actor_rows] | wanted[target_rows])
     nodes = np.concatenate([actor_rows[involved], target_rows[involved]])
     positions = np.concatenate([involved, involved])
@@ -309,19 +309,6 @@ def _sample_event_ids(
     for node, position in zip(nodes[first].tolist(), positions[first].tolist(), strict=True):
         samples.setdefault(node, []).append(str(current.event_id[position]))
     return samples
-
-
-def _event_rows(snapshot: Snapshot, current: WindowEvents) -> tuple[np.ndarray, np.ndarray]:
-    """Each event's actor and target as snapshot rows: the interned positions when the
-    snapshot was built from them (no string lookups), else looked up by id."""
-    if (
-        current.accounts is not None
-        and current.actor_index is not None
-        and current.target_index is not None
-        and np.array_equal(current.accounts, snapshot.nodes)
-    ):
-        return current.actor_index, current.target_index
-    return snapshot.index_of(current.actor), snapshot.index_of(current.target)
 
 
 def _mixture_list(model: FrozenModel, mixture: np.ndarray) -> tuple[RoleShare, ...]:

@@ -23,7 +23,7 @@ from rolewatch.pipeline.compute import (
     lookback_windows,
     past_from_result,
 )
-from rolewatch.pipeline.loading import PastWindow, WindowEvents
+from rolewatch.pipeline.loading import PastWindow, WindowEvents, interned
 from rolewatch.pipeline.model import FrozenModel, fit_model
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.windows import WindowGeometry
@@ -77,11 +77,11 @@ def run_offline(
 
     def window_events(rows: np.ndarray) -> WindowEvents:
         ordered = rows[np.lexsort((event_id[rows].astype(str), time_us[rows]))]
-        return WindowEvents(
-            event_id=event_id[ordered],
-            actor=np.asarray(actor, dtype=object)[ordered],
-            target=np.asarray(target, dtype=object)[ordered],
-            weight=np.asarray(weight, dtype=np.float64)[ordered],
+        return interned(
+            event_id[ordered],
+            np.asarray(actor, dtype=object)[ordered],
+            np.asarray(target, dtype=object)[ordered],
+            np.asarray(weight, dtype=np.float64)[ordered],
         )
 
     order = np.argsort(time_us, kind="stable")

@@ -14,8 +14,6 @@ import time
 from dataclasses import fields
 from typing import Any
 
-import numpy as np
-
 from rolewatch.config import Settings
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.features.recipe import FeatureTable
@@ -37,7 +35,6 @@ __all__ = [
     "DaskMeasure",
     "RAW_HERE_MAX_BYTES",
     "ScaleExtraMissing",
-    "account_codes",
     "close_clients",
     "dask_client",
     "keeps_memberships",
@@ -191,7 +188,7 @@ class DaskMeasure:
         from rolewatch.scale.features import measure_window
         from rolewatch.scale.graph import build_graph, scatter_events
 
-        actor, target = account_codes(snapshot, events)
+        actor, target = events.rows_in(snapshot)
         scattered, n = scatter_events(
             self.client,
             actor,
@@ -230,16 +227,6 @@ class DaskMeasure:
             triangles=measured.triangles,
         )
         return table, measured.members
-
-
-def account_codes(snapshot: Snapshot, events: WindowEvents) -> tuple[np.ndarray, np.ndarray]:
-    """Each event's actor and target as rows of ``snapshot`` (the ids interned once by
-    the load when it did, else looked up)."""
-    accounts, actor, target = events.accounts, events.actor_index, events.target_index
-    if accounts is not None and actor is not None and target is not None:
-        if accounts is snapshot.nodes or np.array_equal(accounts, snapshot.nodes):
-            return np.asarray(actor), np.asarray(target)
-    return snapshot.index_of(events.actor), snapshot.index_of(events.target)
 
 
 def measure_for(settings: Settings) -> Measure:
