@@ -4,6 +4,7 @@ networkx ships it; modularity checked with networkx.community.modularity."""
 
 from __future__ import annotations
 
+import io
 import subprocess
 import sys
 
@@ -32,6 +33,19 @@ def test_the_child_process_finds_the_communities_this_process_finds():
     # recalled from memory)
     groups = [set(np.flatnonzero(labels == label).tolist()) for label in np.unique(labels)]
     assert nx.community.modularity(nx.karate_club_graph(), groups, weight="weight") > 0.3
+
+
+def test_the_request_is_the_npy_stream_without_copying_the_graph():
+    ties = _karate_ties()
+    parts = communities._encode(ties, 0.5)
+    # reference: numpy's own .npy writer (np.save), array after array
+    expected = io.BytesIO()
+    for array in (np.array([34, 34]), np.array([0.5]), ties.data, ties.indices, ties.indptr):
+        np.save(expected, array, allow_pickle=False)
+    assert b"".join(bytes(part) for part in parts) == expected.getvalue()
+    # the graph's arrays go out as views of their own buffers, not as a joined copy
+    for array in (ties.data, ties.indices, ties.indptr):
+        assert any(np.shares_memory(np.asarray(part), array) for part in parts)
 
 
 def _no_child() -> None:

@@ -25,8 +25,10 @@ import os
 import subprocess
 import threading
 from concurrent.futures import Future
+from typing import Any
 
 import numpy as np
+import numpy.lib.format as npy
 import scipy.sparse as sp
 
 from rolewatch.engine.bridging import leiden_communities
@@ -107,14 +109,24 @@ def _run_child(payload: bytes, future: Future) -> None:
         future.set_exception(error)
 
 
-def _encode(graph: sp.csr_matrix, resolution: float) -> bytes:
-    """The graph's CSR arrays, its size and the resolution as consecutive ``.npy`` arrays."""
+def _encode(graph: sp.csr_matrix, resolution: float) -> list[Any]:
+    """The graph's CSR arrays, its size and the resolution as consecutive ``.npy`` arrays,
+    in parts: each array's ``.npy`` header, then a view of the array's own buffer. The
+    closing process keeps the graph until the communities are in (to compute them itself
+    if the child fails), so the request is not a second copy of it held meanwhile."""
     graph = sp.csr_matrix(graph)
-    buffer = io.BytesIO()
-    header = np.array([graph.shape[0], graph.shape[1]], dtype=np.int64)
-    for array in (header, np.array([resolution]), graph.data, graph.indices, graph.indptr):
-        np.save(buffer, array, allow_pickle=False)
-    return buffer.getvalue()
+    size = np.array([graph.shape[0], graph.shape[1]], dtype=np.int64)
+    parts: list[Any] = []
+    for array in (size, np.array([resolution]), graph.data, graph.indices, graph.indptr):
+        parts.extend(_npy_parts(np.ascontiguousarray(array)))
+    return parts
+
+
+def _npy_parts(array: np.ndarray) -> list[Any]:
+    """``array`` as ``np.save`` writes it: the ``.npy`` header, then the data (a view)."""
+    header = io.BytesIO()
+    npy.write_array_header_1_0(header, npy.header_data_from_array_1_0(array))
+    return [header.getvalue(), array.data.cast("B")]
 
 
 def _decode(stream: io.BufferedReader | io.BytesIO) -> tuple[sp.csr_matrix, float]:
