@@ -9,7 +9,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from rolewatch.engine.scoring import ShiftPolicy, TieEvidence, score_window
+from rolewatch.engine.components import COMPONENTS
+from rolewatch.engine.scoring import STATUSES, ShiftPolicy, TieEvidence, score_window
 
 N, K = 3000, 4
 
@@ -118,6 +119,11 @@ def test_statuses_too_little_and_new_are_not_scored():
         out.status[0] == "new" and out.status[1] == "too_little" and out.status[2] == "too_little"
     )
     assert np.isnan(out.score[[0, 1, 2]]).all() and not out.alert[[0, 1, 2]].any()
+    # the label arrays refer to a handful of shared strings (8 bytes an account), not one
+    # fixed-width text cell or one string object per account
+    for labels, allowed in ((out.status, STATUSES), (out.strongest, (*COMPONENTS, ""))):
+        assert labels.dtype == object and set(labels.tolist()) <= set(allowed)
+        assert len({id(label) for label in labels}) <= len(allowed)
 
 
 def test_scores_do_not_saturate_when_a_stratum_sits_still():

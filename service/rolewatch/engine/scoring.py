@@ -163,7 +163,7 @@ class WindowScores:
         without both)
     magnitude : float array, activity change ``|log((1+a)/(1+b))|``
     error : float array, current relative reconstruction error
-    status : str array, one of :data:`STATUSES` ("new": no baseline; "inactive": no
+    status : object array of str, one of :data:`STATUSES` ("new": no baseline; "inactive": no
         current mixture; "too_little": no structure to fit a role to (all features zero
         or an empty fit); "low_activity": fewer than ``min_events`` in either window;
         "scored")
@@ -172,7 +172,12 @@ class WindowScores:
         baseline with ``"stratified"``), NaN where not scored or not given
     components : dict of str to float array, the component z-scores of the
         ``"evidence"`` score (empty otherwise)
-    strongest : str array, the component with the largest z-score ("" where none)
+    strongest : object array of str, the component with the largest z-score ("" where
+        none)
+
+    The two label arrays hold references to a handful of shared strings, 8 bytes an
+    account (as numpy fixed-width text they took 4 bytes a character of the longest
+    label, 40-48 and 44 bytes an account).
     """
 
     score: np.ndarray
@@ -279,7 +284,7 @@ def score_window(
         composition=np.where(has_cur & has_base, comp, np.nan),
         magnitude=mag,
         error=err,
-        status=status.astype(str),
+        status=status,
         alert=alert_mask(score, policy),
         bridging=bridging,
     )
@@ -330,11 +335,11 @@ def _evidence_scores(
         composition=np.where(both, comp, np.nan),
         magnitude=mag,
         error=err,
-        status=status.astype(str),
+        status=status,
         alert=alert_mask(score, policy),
         bridging=z.get("bridging", np.full(n, np.nan)),
         components=z,
-        strongest=np.where(np.isfinite(score), label, "").astype(str),
+        strongest=np.where(np.isfinite(score), label, ""),
     )
 
 
@@ -377,14 +382,16 @@ def _statuses(
     b: np.ndarray,
     min_events: float,
 ) -> np.ndarray:
-    """One of :data:`STATUSES` per account; later rules override earlier ones."""
-    status = np.full(has_cur.size, "scored", dtype=object)
+    """One of :data:`STATUSES` per account; later rules override earlier ones. The rules
+    pick positions in :data:`STATUSES`, so every row refers to one of its five strings
+    (a string assigned through a mask would be copied into a new object per row)."""
+    code = np.full(has_cur.size, STATUSES.index("scored"), dtype=np.int8)
     low = ~(a >= min_events) | ~(b >= min_events)
-    status[low] = "low_activity"
-    status[~has_base] = "new"
-    status[~structured] = "too_little"
-    status[~has_cur] = "inactive"
-    return status
+    code[low] = STATUSES.index("low_activity")
+    code[~has_base] = STATUSES.index("new")
+    code[~structured] = STATUSES.index("too_little")
+    code[~has_cur] = STATUSES.index("inactive")
+    return np.asarray(STATUSES, dtype=object)[code]
 
 
 def _shift_score(

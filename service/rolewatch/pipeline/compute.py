@@ -474,7 +474,7 @@ def _measured_result(
     community: np.ndarray,
     inputs: ScoreInputs,
 ) -> WindowResult:
-    status = np.asarray(scores.status, dtype=object)
+    status = scores.status
     inactive_count = 0
     if past:
         still_here = snapshot.index_of(past[-1].accounts) >= 0
