@@ -25,6 +25,11 @@ def test_account_keys_are_fnv1a_64():
     # and the vectorised form agrees with the byte loop on ids of mixed lengths and scripts
     ids = ["m-00042", "new-7", "ü-ß", "x" * 57, "acct/2", "7"]
     assert [int(k) for k in account_keys(ids)] == [_fnv1a_64(i) for i in ids]
+    # one very long id among short ones, as a list, an object array and numpy text
+    ids = ["a", "é" * 200, "", "b-1", "ß" * 3 + "x" * 190]
+    expected = [_fnv1a_64(i) for i in ids]
+    for form in (ids, np.array(ids, dtype=object), np.array(ids)):
+        assert [int(k) for k in account_keys(form)] == expected
 
 
 def test_pair_keys_ignore_direction_and_separate_pairs():

@@ -50,6 +50,21 @@ def test_interned_events_build_the_snapshot_from_events_builds():
     )
 
 
+def test_one_long_id_does_not_widen_every_account_row():
+    # ids of every length up to the store's limit and across scripts; reference order:
+    # Python's own sorted() of str (code point order)
+    names = ["x" * 200, "a-1", "é" * 150, "Z", "a-10", "ü-ß", "a-2", "\U0001f600"]
+    actor = np.array(names, dtype=object)
+    target = np.array(names[1:] + names[:1], dtype=object)
+    events = interned(np.arange(len(names)).astype(str), actor, target, np.ones(len(names)))
+    assert events.accounts.tolist() == sorted(names)
+    snapshot = events.snapshot()
+    # one reference per account (8 bytes), not 4 bytes per character of the longest id
+    for ids in (events.accounts, snapshot.nodes):
+        assert ids.dtype == object and ids.nbytes == 8 * len(names)
+    np.testing.assert_array_equal(snapshot.index_of(actor), [sorted(names).index(a) for a in names])
+
+
 def test_from_interned_refuses_what_from_events_refuses():
     nodes = np.array(["a", "b", "c"])
     with pytest.raises(ValueError, match="actor == target"):

@@ -20,16 +20,20 @@ __all__ = ["Snapshot"]
 
 
 def _as_id_array(values: Any, what: str) -> np.ndarray:
-    """Return ``values`` as a 1-D numpy array of str ids, or raise a clear error."""
+    """Return ``values`` as a 1-D numpy array of str ids (numpy text, or an object array of
+    str kept as it is), or raise a clear error."""
     arr = np.asarray(values)
     if arr.ndim != 1:
         raise ValueError(
             f"{what} must be a one-dimensional sequence of account ids, got shape {arr.shape}"
         )
-    if arr.dtype.kind not in "US":
+    if arr.dtype.kind == "S":
+        return arr.astype(str)
+    if arr.dtype.kind != "U":
         if arr.size and not all(isinstance(v, str) for v in arr.tolist()):
             raise ValueError(f"{what} must hold account ids as strings")
-        arr = arr.astype(str) if arr.size else np.asarray([], dtype=str)
+        if not arr.size:
+            return np.asarray([], dtype=object)
     return arr
 
 
@@ -81,8 +85,10 @@ class Snapshot:
     Parameters
     ----------
     nodes : numpy.ndarray
-        1-D array of str account ids; row/column ``i`` of the matrices is ``nodes[i]``.
-        Sorted unless an explicit order was given.
+        1-D object array of str account ids; row/column ``i`` of the matrices is
+        ``nodes[i]``. Sorted unless an explicit order was given. Not numpy's fixed-width
+        text: that takes 4 bytes a character of the longest id for every id (one
+        200-character id would make every row 800 bytes).
     counts : scipy.sparse.csr_matrix
         ``n x n`` float64; ``counts[i, j]`` is the number of events ``i -> j``.
     weights : scipy.sparse.csr_matrix
@@ -250,7 +256,7 @@ class Snapshot:
         weights = sp.csr_matrix((wsum, c.copy(), indptr.copy()), shape=(n, n))
         counts.has_sorted_indices = True
         weights.has_sorted_indices = True
-        return cls(nodes=np.asarray(nodes), counts=counts, weights=weights)
+        return cls(nodes=np.asarray(nodes, dtype=object), counts=counts, weights=weights)
 
     @property
     def n_nodes(self) -> int:

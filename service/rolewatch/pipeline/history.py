@@ -72,16 +72,18 @@ class AccountHistory:
 
 
 def _rows_in(window: PastWindow, nodes: np.ndarray) -> np.ndarray:
-    """Row of each node in a past window (-1 where absent)."""
-    accounts = np.asarray(window.accounts).astype(str)
-    rows = np.full(nodes.size, -1, dtype=np.int64)
+    """Row of each node in a past window (-1 where absent), by a hash index of the
+    window's accounts (pandas), not a sort of them as fixed-width text."""
+    import pandas as pd
+
+    accounts = pd.Index(np.asarray(window.accounts, dtype=object))
     if accounts.size == 0 or nodes.size == 0:
-        return rows
-    order = np.argsort(accounts, kind="stable")
-    position = np.minimum(np.searchsorted(accounts[order], nodes), accounts.size - 1)
-    hit = accounts[order][position] == nodes
-    rows[hit] = order[position[hit]]
-    return rows
+        return np.full(nodes.size, -1, dtype=np.int64)
+    if accounts.is_unique:
+        return accounts.get_indexer(nodes).astype(np.int64)
+    first = np.flatnonzero(~accounts.duplicated(keep="first"))  # an account's first row
+    found = accounts[first].get_indexer(nodes)
+    return np.where(found >= 0, first[found], -1).astype(np.int64)
 
 
 def _column(window: PastWindow, name: str, rows: np.ndarray, width: int = 0) -> np.ndarray:
@@ -117,14 +119,16 @@ def account_history(
     novelty_windows : int
         Most earlier active windows summed into ``history_new``.
     """
-    nodes = np.asarray(nodes).astype(str)
+    nodes = np.asarray(nodes, dtype=object)
     n = nodes.size
     out = _empty(n, n_roles, len(past))
     counted = np.zeros(n, dtype=np.int64)
     mixtures = np.full((len(past), n, n_roles), np.nan)
+    newest_rows = None
     for step in range(len(past) - 1, -1, -1):  # newest first: a loop over windows only
         window = past[step]
         rows = _rows_in(window, nodes)
+        newest_rows = rows if newest_rows is None else newest_rows
         here = np.flatnonzero(rows >= 0)
         mixtures[step, here] = np.asarray(window.mixture)[rows[here]]
         first = here[out.window[here] < 0]
@@ -137,12 +141,11 @@ def account_history(
     summed, windows = novelty_history(out.recent_new, novelty_windows)
     out.history_new[:] = summed
     out.history_windows[:] = windows
-    if past:
-        rows = _rows_in(past[-1], nodes)
+    if newest_rows is not None:
         labels = past[-1].community
         if labels is not None:
-            hit = rows >= 0
-            out.reference_community[hit] = np.asarray(labels, dtype=np.int64)[rows[hit]]
+            hit = newest_rows >= 0
+            out.reference_community[hit] = np.asarray(labels, dtype=np.int64)[newest_rows[hit]]
     if mode == "previous" or not past:
         out.mixture[:] = out.window_mixture
     else:

@@ -31,7 +31,7 @@ class WindowEvents:
     """
 
     event_id: EventIds  # object array of str, or an Arrow string array (store.event_ids)
-    accounts: np.ndarray  # str, sorted, distinct
+    accounts: np.ndarray  # object array of str, sorted, distinct
     actor_index: np.ndarray
     target_index: np.ndarray
     weight: np.ndarray
@@ -89,8 +89,8 @@ def interned(event_id, actor, target, weight, *, order=None) -> WindowEvents:
 def from_codes(event_id, names, actor_code, target_code, weight, *, order=None) -> WindowEvents:
     """Window events from account codes into ``names`` (distinct ids in any order): the few
     distinct ids are sorted and the codes become positions among them."""
-    text = np.asarray(names, dtype=object).astype(str)
-    by_text = np.argsort(text, kind="stable")
+    distinct = np.asarray(names, dtype=object)
+    by_text = _text_order(distinct)
     rank = np.empty(by_text.size, dtype=_index_type(by_text.size))
     rank[by_text] = np.arange(by_text.size)
     actor_index, target_index = rank[actor_code], rank[target_code]
@@ -101,11 +101,24 @@ def from_codes(event_id, names, actor_code, target_code, weight, *, order=None) 
         event_id, weight = reordered(event_id, order), weight[order]
     return WindowEvents(
         event_id=event_id,
-        accounts=text[by_text],
+        accounts=distinct[by_text],
         actor_index=actor_index,
         target_index=target_index,
         weight=weight,
     )
+
+
+def _text_order(distinct: np.ndarray) -> np.ndarray:
+    """The permutation that sorts distinct str ids by code point (Arrow's sort of their
+    UTF-8 bytes, the order Python and numpy compare str in), without numpy's fixed-width
+    text: that takes 4 bytes a character of the longest id for every id."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if distinct.size and not all(isinstance(name, str) for name in distinct.tolist()):
+        distinct = distinct.astype(str).astype(object)
+    text = pa.array(distinct, type=pa.large_string())
+    return pc.sort_indices(text).to_numpy()
 
 
 def _index_type(count: int) -> type[np.integer]:

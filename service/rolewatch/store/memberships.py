@@ -127,7 +127,7 @@ def _column_lists(window_id: int, basis_version: str, columns: MembershipColumns
     community = columns.community if columns.community is not None else np.full(n, -1)
     score = np.asarray(columns.score, dtype=np.float64)
     return [
-        np.asarray(columns.accounts).astype(str).tolist(),
+        np.asarray(columns.accounts, dtype=object).tolist(),
         [window_id] * n,
         [basis_version] * n,
         _mixture_json(columns.role_ids, columns.mixture, fitted).tolist(),
