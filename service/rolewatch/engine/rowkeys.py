@@ -34,7 +34,11 @@ def mixed(keys: np.ndarray, salt: int) -> np.ndarray:
 
 
 def _account_keys(nodes: np.ndarray) -> np.ndarray:
-    distinct, index = np.unique(np.asarray(nodes, dtype=str), return_inverse=True)
+    import pandas as pd
+
+    # distinct ids by a hash table (pandas), not a sort of fixed-width text (4 bytes a
+    # character of the longest id for every id)
+    index, distinct = pd.factorize(np.asarray(nodes, dtype=object))
     digests = [hashlib.blake2b(x.encode("utf-8"), digest_size=8).digest() for x in distinct]
     return np.frombuffer(b"".join(digests), dtype="<u8")[index].astype(np.uint64)
 
