@@ -13,6 +13,11 @@ communities, the SQLite window reader).
 afterwards (bulk-loaded with ``COPY``); it needs ``ROLEWATCH_BENCH_POSTGRES_URL`` (for
 example ``postgresql+psycopg://postgres@127.0.0.1:5432/test``) and says so when it is not
 set. ``--quick`` uses 100,000 events.
+``close-long-id``: the close-1m store, trained once, closed twice side by side, each close
+in a fresh process (its own peak memory): as it is, and with three more events of one
+account whose id has the store's longest allowed length (200 characters). One long id
+must not change what a close costs (code that holds account ids as fixed-width text makes
+every account's row as wide as the longest id).
 """
 
 from __future__ import annotations
@@ -30,7 +35,7 @@ from typing import Any
 
 import numpy as np
 
-CASES = ("close-1m", "close-1m-postgres")
+CASES = ("close-1m", "close-1m-postgres", "close-long-id")
 POSTGRES_URL_VARIABLE = "ROLEWATCH_BENCH_POSTGRES_URL"
 WEEK_US = 7 * 86_400 * 1_000_000
 FIRST_END = 1_767_830_400_000_000  # 2026-01-08T00:00:00Z, a UTC-aligned 7-day window end
@@ -135,6 +140,10 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
         with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
             yield _close_1m(case, f"sqlite:///{Path(tmp) / 'close.db'}", quick)
         return
+    if case == "close-long-id":
+        with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
+            yield _close_long_id(case, Path(tmp), quick)
+        return
     url = os.environ.get(POSTGRES_URL_VARIABLE)
     if not url:
         yield {
@@ -188,4 +197,81 @@ def _close_1m(case: str, url: str, quick: bool) -> dict:
         "peak_rss_mb": round(_peak_rss_mb(), 1),
         "helper_peak_rss_mb": _helper_peaks_mb(),
         "target_seconds": 10 if url.startswith("sqlite") else 12,
+    }
+
+
+LONG_ID = "x" * 200  # schema.MAX_ACCOUNT_CHARS
+
+
+def _close_long_id(case: str, folder: Path, quick: bool) -> dict:
+    """The close-1m window closed as it is and with one 200-character account id added."""
+    import shutil
+    from concurrent.futures import ProcessPoolExecutor
+    from multiprocessing import get_context
+
+    from rolewatch.config import load_settings
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    big = 100_000 if quick else 1_000_000
+    accounts = 20_000 if quick else 180_000
+    rng = np.random.default_rng(0)
+    plain, widened = folder / "plain.db", folder / "long-id.db"
+    settings = load_settings(
+        database_url=f"sqlite:///{plain}", training_windows=1, window_period="7d", window_span="7d"
+    )
+    engine = open_store(settings)
+    for size, start, prefix in ((big // 5, FIRST_END - WEEK_US, "t-"), (big, FIRST_END, "w-")):
+        _load(plain, _power_law_events(rng, size, accounts, start, prefix))
+    close_window(engine, settings, FIRST_END, now_us=FIRST_END + 4 * WEEK_US)
+    engine.dispose()
+    shutil.copyfile(plain, widened)
+    t = FIRST_END + 1_000
+    _load(
+        widened,
+        [
+            (f"long-{i}", t + i, LONG_ID, f"a-{i:07d}", "payment", 1.0, t + i, False)
+            for i in range(3)
+        ],
+    )
+    closes = {}
+    for label, path in (("as_is", plain), ("long_id", widened)):
+        with ProcessPoolExecutor(max_workers=1, mp_context=get_context("spawn")) as pool:
+            closes[label] = pool.submit(_close_in_this_process, str(path)).result()
+    return {
+        "case": case,
+        "cores": os.cpu_count(),
+        "longest_id_chars": len(LONG_ID),
+        **{
+            f"{label}_{key}": value
+            for label, close in closes.items()
+            for key, value in close.items()
+        },
+        "peak_ratio": round(closes["long_id"]["peak_rss_mb"] / closes["as_is"]["peak_rss_mb"], 2),
+        "seconds_ratio": round(closes["long_id"]["seconds"] / closes["as_is"]["seconds"], 2),
+    }
+
+
+def _close_in_this_process(path: str) -> dict:
+    """Close the bench's measured window of the store at ``path`` (a fresh process's peak)."""
+    from rolewatch.config import load_settings
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    settings = load_settings(
+        database_url=f"sqlite:///{path}", training_windows=1, window_period="7d", window_span="7d"
+    )
+    engine = open_store(settings)
+    started = time.perf_counter()
+    summary = close_window(engine, settings, FIRST_END + WEEK_US, now_us=FIRST_END + 4 * WEEK_US)[
+        -1
+    ]
+    seconds = time.perf_counter() - started
+    engine.dispose()
+    return {
+        "accounts": summary.accounts,
+        "alerts": summary.alert_count,
+        "seconds": round(seconds, 2),
+        "stage_seconds": summary.stage_seconds,
+        "peak_rss_mb": round(_peak_rss_mb(), 1),
     }
