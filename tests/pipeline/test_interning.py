@@ -65,6 +65,13 @@ def test_one_long_id_does_not_widen_every_account_row():
     np.testing.assert_array_equal(snapshot.index_of(actor), [sorted(names).index(a) for a in names])
 
 
+def test_ids_that_are_not_text_are_interned_as_their_text():
+    events = interned(np.array(["e1", "e2"], dtype=object), [10, 9], [9, 100], [1.0, 2.0])
+    # reference: Python's sorted() of the ids written as str
+    assert events.accounts.tolist() == sorted(["10", "9", "100"])
+    assert events.actor.tolist() == ["10", "9"] and events.target.tolist() == ["9", "100"]
+
+
 def test_from_interned_refuses_what_from_events_refuses():
     nodes = np.array(["a", "b", "c"])
     with pytest.raises(ValueError, match="actor == target"):

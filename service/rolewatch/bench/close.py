@@ -156,18 +156,19 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
         yield _close_1m(case, schema_url, quick)
 
 
-def _close_1m(case: str, url: str, quick: bool) -> dict:
+def _bench_settings(url: str):
+    """One weekly window of training on the store at ``url``."""
     from rolewatch.config import load_settings
-    from rolewatch.pipeline.closer import close_window
-    from rolewatch.store.db import open_store
 
+    return load_settings(database_url=url, training_windows=1, window_period="7d", window_span="7d")
+
+
+def _load_windows(engine: Any, url: str, quick: bool) -> None:
+    """The training window (a fifth of the size) and the measured window of power-law
+    traffic, bulk-loaded into the store at ``url``."""
     big = 100_000 if quick else 1_000_000
     accounts = 20_000 if quick else 180_000
     rng = np.random.default_rng(0)
-    settings = load_settings(
-        database_url=url, training_windows=1, window_period="7d", window_span="7d"
-    )
-    engine = open_store(settings)
     for size, start, prefix in ((big // 5, FIRST_END - WEEK_US, "t-"), (big, FIRST_END, "w-")):
         rows = _power_law_events(rng, size, accounts, start, prefix)
         if url.startswith("sqlite"):
@@ -175,6 +176,15 @@ def _close_1m(case: str, url: str, quick: bool) -> dict:
         else:
             _load_postgres(engine, rows)
         del rows
+
+
+def _close_1m(case: str, url: str, quick: bool) -> dict:
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    settings = _bench_settings(url)
+    engine = open_store(settings)
+    _load_windows(engine, url, quick)
     now_us = FIRST_END + 4 * WEEK_US
     started = time.perf_counter()
     close_window(engine, settings, FIRST_END, now_us=now_us)
@@ -209,20 +219,13 @@ def _close_long_id(case: str, folder: Path, quick: bool) -> dict:
     from concurrent.futures import ProcessPoolExecutor
     from multiprocessing import get_context
 
-    from rolewatch.config import load_settings
     from rolewatch.pipeline.closer import close_window
     from rolewatch.store.db import open_store
 
-    big = 100_000 if quick else 1_000_000
-    accounts = 20_000 if quick else 180_000
-    rng = np.random.default_rng(0)
     plain, widened = folder / "plain.db", folder / "long-id.db"
-    settings = load_settings(
-        database_url=f"sqlite:///{plain}", training_windows=1, window_period="7d", window_span="7d"
-    )
+    settings = _bench_settings(f"sqlite:///{plain}")
     engine = open_store(settings)
-    for size, start, prefix in ((big // 5, FIRST_END - WEEK_US, "t-"), (big, FIRST_END, "w-")):
-        _load(plain, _power_law_events(rng, size, accounts, start, prefix))
+    _load_windows(engine, f"sqlite:///{plain}", quick)
     close_window(engine, settings, FIRST_END, now_us=FIRST_END + 4 * WEEK_US)
     engine.dispose()
     shutil.copyfile(plain, widened)
@@ -254,13 +257,10 @@ def _close_long_id(case: str, folder: Path, quick: bool) -> dict:
 
 def _close_in_this_process(path: str) -> dict:
     """Close the bench's measured window of the store at ``path`` (a fresh process's peak)."""
-    from rolewatch.config import load_settings
     from rolewatch.pipeline.closer import close_window
     from rolewatch.store.db import open_store
 
-    settings = load_settings(
-        database_url=f"sqlite:///{path}", training_windows=1, window_period="7d", window_span="7d"
-    )
+    settings = _bench_settings(f"sqlite:///{path}")
     engine = open_store(settings)
     started = time.perf_counter()
     summary = close_window(engine, settings, FIRST_END + WEEK_US, now_us=FIRST_END + 4 * WEEK_US)[

@@ -99,7 +99,7 @@ def start_communities(
 HELPER = HelperProcess(__name__)
 
 
-def _run_child(payload: bytes, future: Future) -> None:
+def _run_child(payload: list[Any], future: Future) -> None:
     """Have the child compute ``payload``'s labels and settle ``future`` with them (waiting
     on the child's pipes releases the GIL, so this thread costs the close nothing)."""
     try:

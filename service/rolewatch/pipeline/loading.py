@@ -89,8 +89,7 @@ def interned(event_id, actor, target, weight, *, order=None) -> WindowEvents:
 def from_codes(event_id, names, actor_code, target_code, weight, *, order=None) -> WindowEvents:
     """Window events from account codes into ``names`` (distinct ids in any order): the few
     distinct ids are sorted and the codes become positions among them."""
-    distinct = np.asarray(names, dtype=object)
-    by_text = _text_order(distinct)
+    distinct, by_text = _sorted_ids(names)
     rank = np.empty(by_text.size, dtype=_index_type(by_text.size))
     rank[by_text] = np.arange(by_text.size)
     actor_index, target_index = rank[actor_code], rank[target_code]
@@ -108,17 +107,21 @@ def from_codes(event_id, names, actor_code, target_code, weight, *, order=None) 
     )
 
 
-def _text_order(distinct: np.ndarray) -> np.ndarray:
-    """The permutation that sorts distinct str ids by code point (Arrow's sort of their
-    UTF-8 bytes, the order Python and numpy compare str in), without numpy's fixed-width
-    text: that takes 4 bytes a character of the longest id for every id."""
+def _sorted_ids(names) -> tuple[np.ndarray, np.ndarray]:
+    """The distinct ids as an object array of str, and the permutation that sorts them by
+    code point (Arrow's sort of their UTF-8 bytes, the order Python and numpy compare str
+    in), without numpy's fixed-width text: that takes 4 bytes a character of the longest id
+    for every id. Ids that are not str (ints, say) are written as str first."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    if distinct.size and not all(isinstance(name, str) for name in distinct.tolist()):
+    distinct = np.asarray(names, dtype=object)
+    try:
+        text = pa.array(distinct, type=pa.large_string())
+    except (pa.ArrowTypeError, pa.ArrowInvalid):
         distinct = distinct.astype(str).astype(object)
-    text = pa.array(distinct, type=pa.large_string())
-    return pc.sort_indices(text).to_numpy()
+        text = pa.array(distinct, type=pa.large_string())
+    return distinct, pc.sort_indices(text).to_numpy()
 
 
 def _index_type(count: int) -> type[np.integer]:
