@@ -2,7 +2,7 @@ import networkx as nx
 import numpy as np
 import pytest
 import scipy.sparse as sp
-from scipy.stats import norm
+from scipy.stats import norm, poisson
 from sklearn.metrics import adjusted_rand_score
 
 from rolewatch.engine.bridging import (
@@ -102,6 +102,77 @@ def test_bridging_zscore_isolated_unlabelled_and_shape_errors():
     assert np.isnan(z[[0, 2]]).all() and z[1] == 0.0
     with pytest.raises(ValueError, match="one entry per node"):
         bridging_zscore(sp.csr_matrix((3, 3)), np.zeros(2, dtype=int))
+
+
+def _bridging_by_definition(graph, labels):
+    """The bridging z-score of every node, one node at a time from the definition in
+    :func:`bridging_zscore`'s docstring, with networkx neighbours and scipy.stats'
+    Poisson and normal laws (reference implementation)."""
+    counts = {}
+    for v in graph:
+        cells = {}
+        for u in graph[v]:
+            if u != v and labels[u] >= 0:
+                cells[labels[u]] = cells.get(labels[u], 0) + 1
+        counts[v] = cells
+    home = {v: min(c, key=lambda x: (-c[x], x)) for v, c in counts.items() if c}
+    ends = sum(sum(c.values()) for c in counts.values())
+    share = {}
+    for c in counts.values():
+        for community, count in c.items():
+            share[community] = share.get(community, 0) + count / ends
+    z = np.full(graph.number_of_nodes(), np.nan)
+    for v, cells in counts.items():
+        if not cells:
+            continue
+        h, degree = home[v], sum(cells.values())
+        others = [u for u in home if u != v and home[u] == h]
+        from_home = sum(sum(counts[u].values()) for u in others)
+        tails = []
+        for community, count in cells.items():
+            if community == h:
+                continue
+            into = sum(counts[u].get(community, 0) for u in others)
+            expected = degree * (into + share[community]) / (from_home + 1)
+            tails.append(poisson.sf(count - 1, expected))
+        if not tails:
+            z[v] = 0.0
+            continue
+        p_any = 1 - (1 - min(tails)) ** len(tails)
+        z[v] = max(norm.isf(p_any), 0.0)
+    return z
+
+
+@pytest.mark.parametrize("slice_entries", [3, 40, None])
+def test_bridging_zscore_matches_the_definition_node_by_node(monkeypatch, slice_entries):
+    # Zachary's karate club and Les Misérables (classic graphs networkx ships), labelled
+    # by networkx's Louvain with a few nodes left unlabelled; computed in slices of a few
+    # rows (the whole graph in one slice when None) and node by node from the definition.
+    import rolewatch.engine.bridging as bridging
+
+    if slice_entries is not None:
+        monkeypatch.setattr(bridging, "SLICE_ENTRIES", slice_entries)
+    for graph in (nx.karate_club_graph(), nx.les_miserables_graph()):
+        graph = nx.convert_node_labels_to_integers(graph)
+        labels = np.full(graph.number_of_nodes(), -1)
+        for community, members in enumerate(nx.community.louvain_communities(graph, seed=2)):
+            labels[list(members)] = community
+        labels[::9] = -1
+        z = bridging_zscore(_adjacency(graph), labels)
+        expected = _bridging_by_definition(graph, labels)
+        np.testing.assert_array_equal(np.isnan(z), np.isnan(expected))
+        np.testing.assert_allclose(z, expected, rtol=1e-9, atol=1e-12)
+        assert (z[np.isfinite(z)] > 0).any()
+
+
+def test_undirected_ties_leave_out_a_diagonal_and_zeros():
+    # a self-loop and an explicit zero are no ties (hand-worked)
+    counts = sp.csr_matrix(np.array([[4.0, 1.0, 0.0], [0.0, 0.0, 2.0], [0.0, 0.0, 0.0]]))
+    counts.data[counts.data == 2.0] = 0.0  # stored, but zero
+    ties = undirected_ties(counts)
+    assert ties.nnz == 2
+    np.testing.assert_allclose(ties.toarray(), np.log1p([[0, 1, 0], [1, 0, 0], [0, 0, 0]]))
+    assert undirected_ties(sp.csr_matrix((0, 0))).shape == (0, 0)
 
 
 def _chain_of_groups(seed: int):
