@@ -151,3 +151,39 @@ def test_triangles_counted_by_the_features_give_networkx_clustering():
         reused.column("clustering"), [nx.clustering(U, order[r]) for r in rows]
     )
     np.testing.assert_array_equal(reused.values, readable_measures(snap.counts, rows=rows).values)
+
+
+@pytest.mark.parametrize("rows", [None, np.array([0, 33, 2, 8])])
+def test_self_ties_are_ignored_and_the_counts_are_left_as_they_are(rows):
+    # Zachary's karate club (networkx) with a self-loop on every member: tie measures are
+    # networkx's on the graph without them (nx.selfloop_edges removed); the events count
+    # them. The counts matrix, its indices unsorted in each row (valid CSR), must come back
+    # untouched (scipy's setdiag sorts index arrays in place that a pattern shares with it).
+    import scipy.sparse as sp
+
+    from rolewatch.engine.features.triangles import triangles_per_node
+
+    G = nx.karate_club_graph().to_directed()
+    looped = G.copy()
+    looped.add_edges_from((u, u) for u in G)
+    ordered = sp.csr_matrix(nx.to_scipy_sparse_array(looped, nodelist=sorted(G), weight=None))
+    # each row's entries in descending column order: valid CSR, just not sorted
+    reverse = np.concatenate(
+        [np.arange(hi - 1, lo - 1, -1) for lo, hi in zip(ordered.indptr[:-1], ordered.indptr[1:])]
+    )
+    counts = sp.csr_matrix(
+        (ordered.data[reverse], ordered.indices[reverse], ordered.indptr), shape=ordered.shape
+    )
+    before = (counts.data.copy(), counts.indices.copy(), counts.indptr.copy())
+    measured = readable_measures(counts, rows=rows)
+    picked = np.arange(G.number_of_nodes()) if rows is None else rows
+    np.testing.assert_array_equal(measured.column("out_degree"), [G.out_degree(u) for u in picked])
+    U = nx.Graph(G.to_undirected())
+    np.testing.assert_allclose(measured.column("clustering"), [nx.clustering(U, u) for u in picked])
+    np.testing.assert_array_equal(
+        measured.column("events_out"), [G.out_degree(u) + 1 for u in picked]
+    )
+    triangles = triangles_per_node(counts)
+    np.testing.assert_array_equal(triangles, [nx.triangles(U, u) for u in sorted(G)])
+    for kept, now in zip(before, (counts.data, counts.indices, counts.indptr), strict=True):
+        np.testing.assert_array_equal(kept, now)

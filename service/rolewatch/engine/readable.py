@@ -39,7 +39,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .errors import EngineInputError
-from .features.triangles import binary_pattern, triangles_per_node
+from .features.triangles import binary_pattern, off_diagonal_pattern, triangles_per_node
 
 __all__ = [
     "MEASURES",
@@ -103,23 +103,32 @@ class ReadableMeasures:
         return {name: float(v) for name, v in zip(MEASURES, self.values[position], strict=True)}
 
 
-def _triangles_of(U: sp.csr_matrix, rows: np.ndarray | None) -> np.ndarray:
-    """Triangles through each of ``rows`` (all nodes when None) of a symmetric 0/1 matrix.
+def _ties_of(C: sp.csr_matrix, nodes: np.ndarray | None) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+    """The out- and in-ties of ``nodes`` (all when None), one row per node: rows of ``C``
+    and of its transpose, taken from ``C`` without transposing the whole matrix."""
+    if nodes is None:
+        return off_diagonal_pattern(C), off_diagonal_pattern(C.T)
+    return off_diagonal_pattern(C[nodes], nodes), off_diagonal_pattern(C[:, nodes].T, nodes)
 
-    All nodes: the degree-ordered listing (Schank & Wagner 2005). A few rows: ``U[rows] @ U``
-    masked by ``U[rows]`` counts each triangle twice per row, and expands only the
-    neighbourhoods of those rows: one entry per two-step path from them, so when those paths
-    outnumber the matrix's own entries (many rows, or rows next to hubs) the listing of
-    every node is cheaper and is used instead.
+
+def _triangles_around(C: sp.csr_matrix, U: sp.csr_matrix, rows: np.ndarray) -> np.ndarray:
+    """Triangles through each of ``rows`` (``U``: their undirected 0/1 tie rows).
+
+    ``U @ N``, with ``N`` the undirected tie rows of their counterparts (built here from
+    ``C``, not for the whole graph), masked by ``U`` counts each triangle twice per row:
+    one entry per two-step path from ``rows``. When those paths outnumber the matrix's own
+    entries (many rows, or rows next to hubs) the degree-ordered listing of every node
+    (Schank & Wagner 2005) is cheaper and is used instead.
     """
-    if rows is None:
-        return triangles_per_node(U)
-    block = U[rows]
-    degree = np.diff(U.indptr).astype(np.float64)
-    if float((block @ degree).sum()) > max(U.nnz, 1 << 20):
-        return triangles_per_node(U)[rows]
-    paths = (block @ U).multiply(block)
-    return np.asarray(paths.sum(axis=1)).ravel() / 2.0
+    around = np.unique(U.indices)
+    out, into = _ties_of(C, around)
+    near = binary_pattern(out + into)
+    to_near = U[:, around]
+    paths = float((to_near @ np.diff(near.indptr).astype(np.float64)).sum())
+    if paths > max(C.nnz, 1 << 20):
+        return triangles_per_node(C)[rows]
+    two_steps = (to_near @ near).multiply(U)
+    return np.asarray(two_steps.sum(axis=1)).ravel() / 2.0
 
 
 def readable_measures(
@@ -165,20 +174,26 @@ def readable_measures(
     picked = np.arange(n) if rows is None else np.asarray(rows, dtype=np.int64)
     if picked.size and (picked.min() < 0 or picked.max() >= n):
         raise EngineInputError(f"rows must be node indices in [0, {n}), got {picked.min()}…")
-    D = binary_pattern(C)
-    D.setdiag(0)
-    D.eliminate_zeros()
-    U = binary_pattern(D + D.T)
-    out_deg = np.diff(D.indptr)[picked].astype(np.float64)
-    in_deg = np.asarray(D.sum(axis=0)).ravel()[picked]
-    deg = np.diff(U.indptr)[picked].astype(np.float64)
-    mutual = np.asarray(D.multiply(D.T).sum(axis=1)).ravel()[picked]
-    ev_out = np.asarray(C.sum(axis=1)).ravel()[picked]
-    ev_in = np.asarray(C.sum(axis=0)).ravel()[picked]
+    # only the measured rows' own ties are read: a few alerted accounts of a large window
+    # would otherwise cost several copies of the whole graph
+    out, into = _ties_of(C, None if rows is None else picked)
+    U = binary_pattern(out + into)
+    out_deg = np.diff(out.indptr).astype(np.float64)
+    in_deg = np.diff(into.indptr).astype(np.float64)
+    deg = np.diff(U.indptr).astype(np.float64)
+    mutual = np.asarray(out.multiply(into).sum(axis=1)).ravel()
+    if rows is None:
+        ev_out = np.asarray(C.sum(axis=1)).ravel()
+        ev_in = np.asarray(C.sum(axis=0)).ravel()
+    else:
+        ev_out = np.asarray(C[picked].sum(axis=1)).ravel()
+        ev_in = np.asarray(C[:, picked].sum(axis=0)).ravel()
     if triangles is not None:
         tri = np.asarray(triangles, dtype=np.float64)[picked]
+    elif rows is None:
+        tri = triangles_per_node(U)
     else:
-        tri = _triangles_of(U, None if rows is None else picked)
+        tri = _triangles_around(C, U, picked)
     pairs = deg * (deg - 1)
     events = ev_out + ev_in
     if new_counterparts is None:

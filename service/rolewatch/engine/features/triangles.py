@@ -13,7 +13,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-__all__ = ["binary_pattern", "triangle_counts", "triangles_per_node"]
+__all__ = ["binary_pattern", "off_diagonal_pattern", "triangle_counts", "triangles_per_node"]
 
 
 def binary_pattern(m: sp.spmatrix) -> sp.csr_matrix:
@@ -30,6 +30,36 @@ def binary_pattern(m: sp.spmatrix) -> sp.csr_matrix:
     """
     m = sp.csr_matrix(m)
     return sp.csr_matrix((np.ones(m.nnz), m.indices, m.indptr), shape=m.shape)
+
+
+def off_diagonal_pattern(m: sp.spmatrix, nodes: np.ndarray | None = None) -> sp.csr_matrix:
+    """:func:`binary_pattern` of ``m`` without each node's entry for itself.
+
+    Parameters
+    ----------
+    m : scipy.sparse matrix, shape (r, n)
+    nodes : array of int, shape (r,), optional
+        The node row ``s`` of ``m`` belongs to (row ``s`` itself when None: a square
+        matrix's diagonal).
+
+    Returns
+    -------
+    scipy.sparse.csr_matrix
+        Ones at every stored off-diagonal entry (duplicates once, explicit zeros kept).
+        ``m`` is never changed: scipy's ``setdiag`` on a pattern sharing ``m``'s index
+        arrays can sort or merge them in place, and on a matrix without a diagonal it
+        rebuilds the whole matrix through COO.
+    """
+    block = sp.csr_matrix(m)
+    if not block.has_canonical_format:
+        block = block.copy()
+        block.sum_duplicates()
+    rows = np.repeat(np.arange(block.shape[0]), np.diff(block.indptr))
+    owner = rows if nodes is None else np.asarray(nodes)[rows]
+    keep = block.indices != owner
+    per_row = np.bincount(rows[keep], minlength=block.shape[0])
+    indptr = np.concatenate([[0], np.cumsum(per_row)]).astype(block.indptr.dtype)
+    return sp.csr_matrix((np.ones(per_row.sum()), block.indices[keep], indptr), shape=block.shape)
 
 
 def _edge_keys(m: sp.csr_matrix) -> np.ndarray:
@@ -162,9 +192,7 @@ def triangles_per_node(adjacency: sp.spmatrix) -> np.ndarray:
     Degree-ordered listing of :func:`triangle_counts` (Schank & Wagner, 2005); used for
     the egonet features of ReFeX (Henderson et al., KDD 2011).
     """
-    A = binary_pattern(adjacency)
-    A.setdiag(0)
-    A.eliminate_zeros()
+    A = off_diagonal_pattern(adjacency)
     S = binary_pattern(A + A.T)
     S.sort_indices()
     return triangle_counts(S, None)[0]
