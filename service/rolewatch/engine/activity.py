@@ -92,8 +92,10 @@ def activity_counts(snapshot: Snapshot, previous: Snapshot | None = None) -> Act
 class Counterparts:
     """Who each account dealt with in a snapshot, ready for many per-account look-ups.
 
-    Transposes and previous-window neighbour patterns are built once, so listing the top
-    counterparts of thousands of alerted accounts costs a row slice each.
+    The previous window's neighbour pattern is built once; each listing takes its accounts'
+    rows of the window's counts and weights, and their columns (one pass over the matrix),
+    so listing the top counterparts of thousands of alerted accounts costs a few slices and
+    never a transposed copy of the whole window's graph.
 
     Parameters
     ----------
@@ -117,10 +119,8 @@ class Counterparts:
         self.previous = previous
         self.known = known
         self._keys = snapshot.node_keys if known is not None else None
-        self._out_counts = snapshot.counts.tocsr()
-        self._in_counts = snapshot.counts.T.tocsr()
-        self._out_weights = snapshot.weights.tocsr()
-        self._in_weights = snapshot.weights.T.tocsr()
+        self._counts = snapshot.counts.tocsr()
+        self._weights = snapshot.weights.tocsr()
         self._known = (
             _pattern_in_node_space(previous, snapshot).tocsr()
             if previous is not None and previous.n_nodes
@@ -166,19 +166,20 @@ class Counterparts:
         rows = np.asarray(rows, dtype=np.int64).reshape(-1)
         if rows.size == 0:
             return []
-        counts = (self._out_counts[rows] + self._in_counts[rows]).tocsr()
+        out_counts, in_counts = self._counts[rows], self._counts[:, rows].T.tocsr()
+        counts = (out_counts + in_counts).tocsr()
         counts.sum_duplicates()
         owner = np.repeat(np.arange(rows.size), np.diff(counts.indptr))
         columns, events = counts.indices, counts.data
         n = self.snapshot.n_nodes
         cell = owner * n + columns  # sorted: rows in order, columns sorted in each row
-        weights = _values_at(self._out_weights[rows] + self._in_weights[rows], n, cell)
+        weights = _values_at(self._weights[rows] + self._weights[:, rows].T, n, cell)
         order = np.lexsort((-weights, -events, owner))
         starts = np.searchsorted(owner[order], np.arange(rows.size))
         rank = np.arange(order.size) - starts[owner[order]]
         listed = order[rank < top]
-        sends = _values_at(self._out_counts[rows], n, cell[listed], pattern=True)
-        receives = _values_at(self._in_counts[rows], n, cell[listed], pattern=True)
+        sends = _values_at(out_counts, n, cell[listed], pattern=True)
+        receives = _values_at(in_counts, n, cell[listed], pattern=True)
         new = self._new_flags(rows, owner[listed], columns[listed], cell[listed])
         result: list[list[dict]] = [[] for _ in range(rows.size)]
         nodes = self.snapshot.nodes
