@@ -17,7 +17,17 @@ from rolewatch.engine.calibration import (
 )
 
 
-def test_novelty_tail_is_the_poisson_gamma_predictive():
+@pytest.fixture(params=[None, 7], ids=["whole", "in-slices"])
+def slice_rows(request, monkeypatch):
+    """Each per-account test computed at once, and in slices of 7 accounts (the same
+    values are expected either way)."""
+    if request.param is not None:
+        import rolewatch.engine.calibration as calibration
+
+        monkeypatch.setattr(calibration, "SLICE_ROWS", request.param)
+
+
+def test_novelty_tail_is_the_poisson_gamma_predictive(slice_rows):
     # Reference: the predictive law of a count given s counts in w windows under a
     # Gamma(a, b) prior on the rate, integrated numerically with scipy:
     # P(X > x) = integral of Poisson-sf(x; g*lam) * Gamma(lam; a + s, rate b + w) dlam (and
@@ -91,12 +101,20 @@ def test_g_statistic_matches_scipy_chi2_contingency():
         assert g[i] == pytest.approx(expected, rel=1e-9)
 
 
-def test_homogeneity_zscore_is_the_chi_square_tail():
-    # Reference: scipy.stats.chi2.sf with C - 1 degrees of freedom, then norm.isf.
+def test_homogeneity_zscore_is_the_chi_square_tail(slice_rows):
+    # Reference: scipy.stats.chi2.sf with C - 1 degrees of freedom, then norm.isf; the G
+    # statistic of each row from scipy.stats.chi2_contingency(lambda_="log-likelihood").
     current = np.array([[0.0, 60.0, 1.0, 3.0], [3.0, 2.0, 2.0, 1.0]])
     baseline = np.array([[4.0, 1.0, 3.0, 1.0], [3.0, 1.0, 2.0, 1.0]])
-    z = homogeneity_zscore(current, baseline, np.ones(2, dtype=bool), smoothing=0.0)
-    g = g_statistic(current, baseline)
+    current = np.vstack([current, np.random.default_rng(2).integers(1, 20, (18, 4))])
+    baseline = np.vstack([baseline, np.random.default_rng(3).integers(1, 20, (18, 4))])
+    z = homogeneity_zscore(current, baseline, np.ones(20, dtype=bool), smoothing=0.0)
+    g = [
+        stats.chi2_contingency(
+            np.vstack([now, before]), correction=False, lambda_="log-likelihood"
+        )[0]
+        for now, before in zip(current, baseline, strict=True)
+    ]
     np.testing.assert_allclose(z, stats.norm.isf(stats.chi2.sf(g, 3)), rtol=1e-6)
     assert z[0] > 5 and z[1] < 0
 

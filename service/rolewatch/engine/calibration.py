@@ -57,6 +57,9 @@ __all__ = [
 ]
 
 MAD_SCALE = 1.4826  # normal consistency constant of the MAD (common practice; 1 / 0.6745)
+# Accounts a per-account test computes at once: its temporary arrays stay a few MB long
+# however many accounts the window has (common practice, no source).
+SLICE_ROWS = 1 << 18
 Z_FLOOR = -8.0  # lowest z reported (p within 1e-15 of 1 carries no more information)
 LOG_TAIL_MIN = -1e5  # smallest log tail probability used: z stays finite (about 447)
 
@@ -137,9 +140,30 @@ def novelty_zscore(current, history_total, history_windows, valid) -> np.ndarray
     growth = max(growth, 1e-9)
     r = shape + total[ok]
     p = (rate + windows[ok]) / (rate + windows[ok] + growth)
-    log_tail = np.logaddexp(nbinom.logsf(x[ok], r, p), nbinom.logpmf(x[ok], r, p) + np.log(0.5))
-    z[ok] = z_from_log_tail(log_tail)
+    z[ok] = _by_slices(_mid_p_z, x[ok], r, p)
     return z
+
+
+def _mid_p_z(x: np.ndarray, r: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """z-score of the negative binomial's mid-p upper tail ``P(X > x) + P(X = x) / 2``."""
+    log_tail = np.logaddexp(nbinom.logsf(x, r, p), nbinom.logpmf(x, r, p) + np.log(0.5))
+    return z_from_log_tail(log_tail)
+
+
+def _by_slices(compute, *rows: np.ndarray) -> np.ndarray:
+    """``compute`` of arrays that are one row per account, over slices of
+    :data:`SLICE_ROWS` rows, joined: the same values as one call on every row (the tests
+    are row by row), without temporaries the length of the whole window (scipy's
+    distributions and the G statistic's tables make several)."""
+    size = len(rows[0])
+    if size <= SLICE_ROWS:
+        return compute(*rows)
+    return np.concatenate(
+        [
+            compute(*(column[start : start + SLICE_ROWS] for column in rows))
+            for start in range(0, size, SLICE_ROWS)
+        ]
+    )
 
 
 def g_statistic(current, baseline) -> np.ndarray:
@@ -183,7 +207,9 @@ def homogeneity_zscore(current, baseline, valid, *, smoothing: float = 2.0) -> n
         return z
     totals = cur[ok].sum(axis=0)
     shares = totals / totals.sum() if totals.sum() > 0 else np.full(cur.shape[1], 1 / cur.shape[1])
-    g = g_statistic(cur[ok], base[ok] + smoothing * shares)
+    g = _by_slices(
+        lambda now, before: g_statistic(now, before + smoothing * shares), cur[ok], base[ok]
+    )
     z[ok] = z_from_log_tail(chi2.logsf(g, cur.shape[1] - 1))
     return z
 
