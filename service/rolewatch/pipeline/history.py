@@ -14,7 +14,7 @@ out, one row per node of the window being measured.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -38,7 +38,8 @@ class AccountHistory:
         The baseline window's mixture (NaN rows: no baseline, or too little activity
         there to fit a role).
     mixture : (n, k) array
-        The baseline mixture the role score uses (the policy's baseline mode).
+        The baseline mixture the role score uses (the policy's baseline mode; in mode
+        "previous" the very array ``window_mixture``, not a copy).
     events_out, events_in, counterparts, new_counterparts : arrays
         The baseline window's counts.
     cells : (n, 4) array
@@ -123,14 +124,17 @@ def account_history(
     n = nodes.size
     out = _empty(n, n_roles, len(past))
     counted = np.zeros(n, dtype=np.int64)
-    mixtures = np.full((len(past), n, n_roles), np.nan)
+    # every past window's mixtures side by side, only for a baseline that averages them
+    # (windows x accounts x roles: gigabytes with a long look-back over millions of accounts)
+    mixtures = None if mode == "previous" else np.full((len(past), n, n_roles), np.nan)
     newest_rows = None
     for step in range(len(past) - 1, -1, -1):  # newest first: a loop over windows only
         window = past[step]
         rows = _rows_in(window, nodes)
         newest_rows = rows if newest_rows is None else newest_rows
         here = np.flatnonzero(rows >= 0)
-        mixtures[step, here] = np.asarray(window.mixture)[rows[here]]
+        if mixtures is not None:
+            mixtures[step, here] = np.asarray(window.mixture)[rows[here]]
         first = here[out.window[here] < 0]
         _fill_baseline(out, window, step, first, rows[first], n_roles)
         cells = _column(window, "ties", rows[here], 4)
@@ -146,11 +150,11 @@ def account_history(
         if labels is not None:
             hit = newest_rows >= 0
             out.reference_community[hit] = np.asarray(labels, dtype=np.int64)[newest_rows[hit]]
-    if mode == "previous" or not past:
-        out.mixture[:] = out.window_mixture
-    else:
-        out.mixture[:] = baseline_mixture(mixtures, mode=mode, last_k=last_k, half_life=half_life)
-    return out
+    if mixtures is None or not past:
+        return out  # the baseline is the baseline window's mixture itself (no copy)
+    return replace(
+        out, mixture=baseline_mixture(mixtures, mode=mode, last_k=last_k, half_life=half_life)
+    )
 
 
 def novelty_history(recent_new: np.ndarray, windows: int) -> tuple[np.ndarray, np.ndarray]:
@@ -165,11 +169,12 @@ def _empty(n: int, k: int, depth: int) -> AccountHistory:
     def nan(*shape: int) -> np.ndarray:
         return np.full(shape, np.nan)
 
+    window_mixture = nan(n, k)
     return AccountHistory(
         window=np.full(n, -1, dtype=np.int64),
         row=np.full(n, -1, dtype=np.int64),
-        window_mixture=nan(n, k),
-        mixture=nan(n, k),
+        window_mixture=window_mixture,
+        mixture=window_mixture,  # until a baseline mode that averages windows replaces it
         events_out=nan(n),
         events_in=nan(n),
         counterparts=nan(n),
