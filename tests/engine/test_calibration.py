@@ -19,7 +19,7 @@ from rolewatch.engine.calibration import (
 
 @pytest.fixture(params=[None, 7], ids=["whole", "in-slices"])
 def slice_rows(request, monkeypatch):
-    """Each per-account test computed at once, and in slices of 7 accounts (the same
+    """Each per-account computation at once, and in slices of 7 accounts (the same
     values are expected either way)."""
     if request.param is not None:
         import rolewatch.engine.calibration as calibration
@@ -166,7 +166,7 @@ def test_empirical_null_only_ever_lowers_evidence():
     np.testing.assert_allclose(out, narrow)
 
 
-def test_combine_is_the_sidak_corrected_maximum():
+def test_combine_is_the_sidak_corrected_maximum(slice_rows):
     # Reference: 1 - (1 - p_min)**m with p from scipy.stats.norm, for moderate values.
     components = np.array([[1.0, 3.0, np.nan, 5.0], [2.5, np.nan, np.nan, 45.0]])
     score, strongest = combine_zscores(components)
@@ -177,3 +177,8 @@ def test_combine_is_the_sidak_corrected_maximum():
     assert strongest.tolist()[:2] == [1, 0]
     # far in the tail the correction is log(m) on the log scale, and stays finite
     assert np.isfinite(score[3]) and 44.9 < score[3] < 45.0
+    # more accounts than a slice holds: each one as the reference gives it
+    many = np.tile(components[:, :3], 6)
+    score, strongest = combine_zscores(many)
+    assert score[::3] == pytest.approx([stats.norm.isf(1 - (1 - p1) ** 2)] * 6)
+    np.testing.assert_array_equal(strongest, [1, 0, -1] * 6)

@@ -114,3 +114,27 @@ def test_feature_moves_ranks_by_log_ratio_and_keeps_raw_values():
     assert feature_moves(names, [0, 0, 0, 0], [1, 2, 3, 4], top=2)[0]["feature"] == "triangles"
     with pytest.raises(ValueError):
         feature_moves(names, [1, 2], [1, 2])
+
+
+def test_role_aware_distance_in_blocks_is_the_definition_row_by_row(monkeypatch):
+    # Definition (recalled from memory, as above): the Hellinger distance of the images
+    # p F and q F, F's columns scaled to their largest value and rows to sum 1; mixtures
+    # that are not valid give NaN. Blocks of 3 rows, with invalid rows in some.
+    import rolewatch.engine.shift as shift
+
+    monkeypatch.setattr(shift, "_ROWS_PER_BLOCK", 3)
+    rng = np.random.default_rng(5)
+    F = rng.random((4, 6))
+    p, q = rng.dirichlet(np.ones(4), 20) * 2.0, rng.dirichlet(np.ones(4), 20)
+    p[[2, 9]] = np.nan
+    q[13, 0] = -0.5
+    d = role_aware_distance(p, q, F)
+    R = F / F.max(axis=0)
+    R = R / R.sum(axis=1, keepdims=True)
+    for i in range(20):
+        if i in (2, 9, 13):
+            assert np.isnan(d[i])
+            continue
+        a, b = (p[i] / p[i].sum()) @ R, q[i] @ R
+        expected = np.sqrt(0.5 * np.sum((np.sqrt(a / a.sum()) - np.sqrt(b / b.sum())) ** 2))
+        assert d[i] == pytest.approx(expected, rel=1e-12)

@@ -296,6 +296,19 @@ def combine_zscores(components) -> tuple[np.ndarray, np.ndarray]:
     Z = np.asarray(components, dtype=np.float64)
     if Z.ndim != 2:
         raise ValueError(f"components must be a c x n array, got shape {Z.shape}")
+    if Z.shape[1] > SLICE_ROWS:  # account by account: slices keep the temporaries small
+        parts = [
+            _combined(Z[:, start : start + SLICE_ROWS])
+            for start in range(0, Z.shape[1], SLICE_ROWS)
+        ]
+        return np.concatenate([part[0] for part in parts]), np.concatenate(
+            [part[1] for part in parts]
+        )
+    return _combined(Z)
+
+
+def _combined(Z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`combine_zscores` of a c x n block."""
     finite = np.isfinite(Z)
     m = finite.sum(axis=0)
     filled = np.where(finite, Z, -np.inf)

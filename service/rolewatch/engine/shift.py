@@ -195,20 +195,26 @@ def role_aware_distance(p, q, F):
     reconstructions instead of raw mixtures is our reading of "role-aware" shift in the
     role-dynamics setting (Rossi et al., WSDM 2013).
     """
-    P, Q = _pair(p, q)
+    P, Q = _rows(p), _rows(q)
+    if P.shape != Q.shape:
+        raise ValueError(f"mixtures must have the same shape, got {P.shape} and {Q.shape}")
     R = _role_space(F)
     if R.shape[0] != P.shape[1]:
         raise ValueError(f"F has {R.shape[0]} roles but the mixtures have {P.shape[1]}")
     if np.ndim(p) != 2:
+        P, Q = _pair(P, Q)
         return float(hellinger(P @ R, Q @ R)[0])
     # Only rows where both mixtures are valid have a distance (the others are NaN, as
-    # hellinger gives them); row blocks, because the images are n x features and the
-    # distance's temporaries several times that. Each row depends on its own row only.
+    # hellinger gives them); row blocks, normalised block by block, because the images
+    # are n x features and the distance's temporaries several times that. Each row
+    # depends on its own row only.
     out = np.full(P.shape[0], np.nan)
-    valid = np.flatnonzero(np.isfinite(P).all(axis=1) & np.isfinite(Q).all(axis=1))
-    for start in range(0, valid.size, _ROWS_PER_BLOCK):
-        rows = valid[start : start + _ROWS_PER_BLOCK]
-        out[rows] = hellinger(P[rows] @ R, Q[rows] @ R)
+    for start in range(0, P.shape[0], _ROWS_PER_BLOCK):
+        block_p, block_q = _pair(
+            P[start : start + _ROWS_PER_BLOCK], Q[start : start + _ROWS_PER_BLOCK]
+        )
+        valid = np.flatnonzero(np.isfinite(block_p).all(axis=1) & np.isfinite(block_q).all(axis=1))
+        out[start + valid] = hellinger(block_p[valid] @ R, block_q[valid] @ R)
     return out
 
 
