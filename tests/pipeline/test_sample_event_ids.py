@@ -6,6 +6,7 @@ source: the rule is the product's)."""
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.pipeline.evidence import _sample_event_ids
@@ -35,7 +36,13 @@ def _events(seed: int, n_events: int = 3000, n_accounts: int = 60):
     return ids, names[actor], names[target], rng.uniform(0.5, 2.0, n_events)
 
 
-def test_interned_and_looked_up_positions_give_the_defined_samples():
+@pytest.mark.parametrize("chunk", [None, 1, 97])
+def test_interned_and_looked_up_positions_give_the_defined_samples(monkeypatch, chunk):
+    # the events searched all at once, one at a time, and in chunks of 97
+    if chunk is not None:
+        import rolewatch.pipeline.evidence as evidence
+
+        monkeypatch.setattr(evidence, "SAMPLE_CHUNK_EVENTS", chunk)
     for seed in range(3):
         ids, actor, target, weight = _events(seed)
         current = interned(ids, actor, target, weight)

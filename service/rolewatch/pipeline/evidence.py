@@ -285,29 +285,42 @@ def _evidence(
     )
 
 
+# Events the sample search looks at once (its working arrays stay this long, whatever the
+# window's size; common practice, no source).
+SAMPLE_CHUNK_EVENTS = 1 << 22
+
+
 def _sample_event_ids(
     snapshot: Snapshot, current: WindowEvents, rows: np.ndarray, per_account: int = 5
 ) -> dict[int, list[str]]:
-    """The first few event ids (in time order) that involve each of ``rows``."""
+    """The first few event ids (in time order) that involve each of ``rows``, found over
+    chunks of events in time order (an account's quota filled, later events skip it)."""
     if len(rows) == 0:
         return {}
     wanted = np.zeros(snapshot.n_nodes, dtype=bool)
     wanted[rows] = True
+    taken = np.zeros(snapshot.n_nodes, dtype=np.int64)
     actor_rows, target_rows = current.rows_in(snapshot)
-    involved = np.flatnonzero(wanted[actor_rows] | wanted[target_rows])
-    nodes = np.concatenate([actor_rows[involved], target_rows[involved]])
-    positions = np.concatenate([involved, involved])
-    keep = wanted[nodes]
-    nodes, positions = nodes[keep], positions[keep]
-    order = np.lexsort((positions, nodes))
-    nodes, positions = nodes[order], positions[order]
-    # each node's events in time order; keep its first per_account
-    starts = np.flatnonzero(np.r_[True, nodes[1:] != nodes[:-1]])
-    rank = np.arange(nodes.size) - np.repeat(starts, np.diff(np.r_[starts, nodes.size]))
-    first = rank < per_account
     samples: dict[int, list[str]] = {}
-    for node, position in zip(nodes[first].tolist(), positions[first].tolist(), strict=True):
-        samples.setdefault(node, []).append(str(current.event_id[position]))
+    for start in range(0, len(actor_rows), SAMPLE_CHUNK_EVENTS):
+        actor = actor_rows[start : start + SAMPLE_CHUNK_EVENTS]
+        target = target_rows[start : start + SAMPLE_CHUNK_EVENTS]
+        involved = np.flatnonzero(wanted[actor] | wanted[target])
+        nodes = np.concatenate([actor[involved], target[involved]])
+        positions = np.concatenate([involved, involved]) + start
+        keep = wanted[nodes]
+        nodes, positions = nodes[keep], positions[keep]
+        order = np.lexsort((positions, nodes))
+        nodes, positions = nodes[order], positions[order]
+        # each node's events of the chunk in time order, after those taken before it
+        starts = np.flatnonzero(np.r_[True, nodes[1:] != nodes[:-1]]) if nodes.size else nodes
+        rank = np.arange(nodes.size) - np.repeat(starts, np.diff(np.r_[starts, nodes.size]))
+        first = rank + taken[nodes] < per_account
+        nodes, positions = nodes[first], positions[first]
+        np.add.at(taken, nodes, 1)
+        wanted[nodes[taken[nodes] >= per_account]] = False
+        for node, position in zip(nodes.tolist(), positions.tolist(), strict=True):
+            samples.setdefault(node, []).append(str(current.event_id[position]))
     return samples
 
 
