@@ -3,6 +3,7 @@ reference implementation; the random graphs are generated here)."""
 
 import networkx as nx
 import numpy as np
+import pytest
 
 from rolewatch.engine.activity import Counterparts, activity_counts
 from rolewatch.engine.pairs import KnownPairs, account_keys, pair_keys
@@ -77,9 +78,17 @@ def test_top_counterparts_rank_by_events_then_weight_and_flag_new_ones():
         assert ranks == sorted(ranks)
 
 
-def test_top_of_many_rows_keeps_each_rows_leaders_and_flags_pairs_unseen_in_the_history():
+@pytest.mark.parametrize("group_entries", [None, 1, 40])
+def test_top_of_many_rows_keeps_each_rows_leaders_and_flags_pairs_unseen_in_the_history(
+    monkeypatch, group_entries
+):
     # networkx as the reference: counterparts, events and weights from the multigraph; the
-    # known history is every pair of two earlier random windows.
+    # known history is every pair of two earlier random windows. The rows listed at once,
+    # one at a time, and in groups of about 40 counterpart entries.
+    if group_entries is not None:
+        import rolewatch.engine.activity as activity
+
+        monkeypatch.setattr(activity, "TOP_GROUP_ENTRIES", group_entries)
     actor, target, weight = _random_events(5)
     snapshot = Snapshot.from_events(actor, target, weight)
     graph = _multigraph(actor, target, weight)
