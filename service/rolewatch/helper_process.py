@@ -49,14 +49,17 @@ class HelperProcess:
         """Send one request and wait for its answer (waiting on the pipe releases the GIL);
         the answer is a view of the bytes read, not a copy. ``request`` is one bytes-like
         object or a sequence of them sent back to back as one request (the buffers of
-        arrays the caller holds anyway go down the pipe without being joined into a copy).
-        Raises :class:`HelperError` when the child reports a failure and :class:`OSError`
-        when it cannot be started or stops answering (it is then stopped)."""
+        arrays the caller holds anyway go down the pipe without being joined into a copy);
+        a list is emptied once written, so buffers only it holds are let go while the
+        answer is awaited. Raises :class:`HelperError` when the child reports a failure and
+        :class:`OSError` when it cannot be started or stops answering (it is then stopped)."""
         parts = request if isinstance(request, list | tuple) else [request]
         with self._lock:
             process = self._running()
             try:
                 _write_frame(process.stdin, parts)
+                if isinstance(request, list):
+                    request.clear()
                 answer = memoryview(_read_frame(process.stdout))
             except BaseException:
                 self._stop(process)

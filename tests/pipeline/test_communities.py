@@ -60,6 +60,42 @@ def test_a_child_that_cannot_start_leaves_the_work_to_this_process(monkeypatch):
     np.testing.assert_array_equal(job.result(), window_communities(ties, 1.0))
 
 
+def test_with_a_rebuild_the_job_lets_the_graph_go_and_builds_it_again_to_fall_back(
+    monkeypatch,
+):
+    # Once the request is written to the child, nothing here holds the graph's arrays
+    # (weak references to them die); a child that cannot start makes the job build the
+    # graph again and compute the same labels here.
+    import gc
+    import weakref
+
+    built = []
+
+    def rebuild() -> sp.csr_matrix:
+        built.append(1)
+        return _karate_ties()
+
+    ties = _karate_ties()
+    arrays = [weakref.ref(array) for array in (ties.data, ties.indices, ties.indptr)]
+    job = start_communities(ties, 1.0, min_ties=0, rebuild=rebuild)
+    del ties
+    labels = job.result()
+    gc.collect()
+    assert all(ref() is None for ref in arrays)
+    np.testing.assert_array_equal(labels, window_communities(_karate_ties(), 1.0))
+    assert not built  # the child answered
+    # the request's parts are let go once written, before the answer comes
+    parts = communities._encode(_karate_ties(), 1.0)
+    answer = communities.HELPER.exchange(parts)
+    assert parts == []
+    np.testing.assert_array_equal(np.load(io.BytesIO(answer), allow_pickle=False), labels)
+    _no_child()
+    monkeypatch.setattr(helper_process.sys, "executable", "/nonexistent/python")
+    job = start_communities(_karate_ties(), 1.0, min_ties=0, rebuild=rebuild)
+    np.testing.assert_array_equal(job.result(), labels)
+    assert built == [1]
+
+
 def test_small_graphs_and_bridging_off_stay_in_process():
     ties = _karate_ties()
     assert start_communities(ties, 1.0)._future is None  # far below PROCESS_MIN_TIES

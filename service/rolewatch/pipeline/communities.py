@@ -24,6 +24,7 @@ import logging
 import os
 import subprocess
 import threading
+from collections.abc import Callable
 from concurrent.futures import Future
 from typing import Any
 
@@ -58,10 +59,22 @@ def window_communities(graph: sp.csr_matrix, resolution: float) -> np.ndarray:
 
 
 class CommunityJob:
-    """The communities of one window, being computed; :meth:`result` waits for them."""
+    """The communities of one window, being computed; :meth:`result` waits for them.
 
-    def __init__(self, graph: sp.csr_matrix, resolution: float, future: Future | None) -> None:
-        self._graph = graph
+    ``graph_of`` gives the graph when the labels are computed in this process (a small
+    graph, or the child failed): the graph itself, or a function that builds it again so
+    that the job need not keep a large graph while the child works on it.
+    """
+
+    def __init__(
+        self,
+        nodes: int,
+        graph_of: Callable[[], sp.csr_matrix],
+        resolution: float,
+        future: Future | None,
+    ) -> None:
+        self._nodes = nodes
+        self._graph_of = graph_of
         self._resolution = resolution
         self._future = future
 
@@ -70,30 +83,45 @@ class CommunityJob:
         if self._future is not None:
             try:
                 labels = np.asarray(self._future.result(), dtype=np.int64)
-                if labels.shape == (self._graph.shape[0],):
+                if labels.shape == (self._nodes,):
                     return labels
                 log.warning(
                     "community process answered %s labels; computing them here", labels.shape
                 )
             except (OSError, ValueError, subprocess.SubprocessError) as error:
                 log.warning("community process failed (%s); computing them here", error)
-        return window_communities(self._graph, self._resolution)
+        return window_communities(self._graph_of(), self._resolution)
 
 
 def start_communities(
-    graph: sp.csr_matrix, resolution: float, *, min_ties: int = PROCESS_MIN_TIES
+    graph: sp.csr_matrix,
+    resolution: float,
+    *,
+    min_ties: int = PROCESS_MIN_TIES,
+    rebuild: Callable[[], sp.csr_matrix] | None = None,
 ) -> CommunityJob:
     """Start computing the window's communities: in a child process when the graph has at
     least ``min_ties`` undirected ties and the machine more than one core, else later, in
-    this process, when the result is asked for."""
+    this process, when the result is asked for.
+
+    With ``rebuild`` (a function giving the same graph again), a graph sent to the child is
+    not kept here: its buffers go once they are written to the child, and should the child
+    fail, the graph is built again to compute the labels here.
+    """
+    nodes = graph.shape[0]
     if resolution <= 0 or graph.nnz // 2 < min_ties or (os.cpu_count() or 1) < 2:
-        return CommunityJob(graph, resolution, None)
+        return CommunityJob(nodes, _holding(graph), resolution, None)
     future: Future = Future()
     payload = _encode(graph, resolution)
     threading.Thread(
         target=_run_child, args=(payload, future), name="rolewatch-communities", daemon=True
     ).start()
-    return CommunityJob(graph, resolution, future)
+    return CommunityJob(nodes, _holding(graph) if rebuild is None else rebuild, resolution, future)
+
+
+def _holding(graph: sp.csr_matrix) -> Callable[[], sp.csr_matrix]:
+    """A ``graph_of`` that keeps the graph itself."""
+    return lambda: graph
 
 
 HELPER = HelperProcess(__name__)
@@ -111,9 +139,9 @@ def _run_child(payload: list[Any], future: Future) -> None:
 
 def _encode(graph: sp.csr_matrix, resolution: float) -> list[Any]:
     """The graph's CSR arrays, its size and the resolution as consecutive ``.npy`` arrays,
-    in parts: each array's ``.npy`` header, then a view of the array's own buffer. The
-    closing process keeps the graph until the communities are in (to compute them itself
-    if the child fails), so the request is not a second copy of it held meanwhile."""
+    in parts: each array's ``.npy`` header, then a view of the array's own buffer, so the
+    request is not a second copy of the graph (the helper empties the list once written,
+    which lets the buffers go when nothing else holds the graph)."""
     graph = sp.csr_matrix(graph)
     size = np.array([graph.shape[0], graph.shape[1]], dtype=np.int64)
     parts: list[Any] = []

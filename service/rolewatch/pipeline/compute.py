@@ -258,14 +258,31 @@ def compute_window(
     # while this one computes the features, memberships and scores (same seed and input,
     # so the same communities). The bridging stage counts only the wait.
     if communities is None:
-        communities = start_communities(graph, policy.bridge_resolution)
-    step = _Step(model, settings, policy, snapshot, counts, activity, graph, clock, measure, recent)
-    return _measure(step, current, past, known, communities, window, raise_alerts, events_of)
+        communities = _start_communities(graph, snapshot, policy.bridge_resolution)
+    # The baselines and the bridging z-score come first, so the tie graph is let go before
+    # the features, scores and evidence (a large window's graph is hundreds of MB).
+    with clock.stage("history"):
+        history = _history(model, policy, snapshot, past)
+    with clock.stage("bridging"):
+        bridging = _bridging(graph, history, policy)
+    del graph
+    step = _Step(model, settings, policy, snapshot, counts, activity, clock, measure, recent)
+    return _measure(
+        step, current, past, known, communities, window, raise_alerts, events_of, history, bridging
+    )
 
 
 def start_window_communities(settings: Settings, snapshot: Snapshot) -> CommunityJob:
     """Start computing a window's communities ahead of :func:`compute_window`."""
-    return start_communities(undirected_ties(snapshot.counts), settings.bridge_resolution)
+    graph = undirected_ties(snapshot.counts)
+    return _start_communities(graph, snapshot, settings.bridge_resolution)
+
+
+def _start_communities(graph: sp.csr_matrix, snapshot: Snapshot, resolution: float) -> CommunityJob:
+    """The window's communities, started from its tie graph; should they be computed in
+    this process after all, the graph is built again from the snapshot, so the job does not
+    keep it."""
+    return start_communities(graph, resolution, rebuild=lambda: undirected_ties(snapshot.counts))
 
 
 @dataclass(frozen=True)
@@ -278,7 +295,6 @@ class _Step:
     snapshot: Snapshot
     counts: TieCounts
     activity: Activity
-    graph: sp.csr_matrix
     clock: StageClock
     measure: Measure
     recent: RecentFeatures | None
@@ -302,8 +318,10 @@ def _measure(
     window: WindowRef,
     raise_alerts: bool,
     events_of: EventsOf | None,
+    history: AccountHistory,
+    bridging: np.ndarray | None,
 ) -> WindowResult:
-    """Features to alerts, once the snapshot and tie cells are there."""
+    """Features to alerts, once the snapshot, tie cells, baselines and bridging are there."""
     model, policy, snapshot, clock = step.model, step.policy, step.snapshot, step.clock
     if step.measure is measure_locally:
         with clock.stage("features"):
@@ -313,18 +331,6 @@ def _measure(
     else:  # on a cluster both come back together; their seconds count as features
         with clock.stage("features"):
             table, members = step.measure(model, snapshot, current)
-    with clock.stage("history"):
-        history = account_history(
-            snapshot.nodes,
-            past,
-            n_roles=len(model.basis.role_ids),
-            mode=policy.baseline,
-            last_k=policy.last_k,
-            half_life=policy.half_life,
-            novelty_windows=policy.novelty_windows,
-        )
-    with clock.stage("bridging"):
-        bridging = _bridging(step.graph, history, policy)
     with clock.stage("scoring"):
         inputs = _score_inputs(
             model, members, step.activity, step.counts, history, policy, bridging
@@ -388,6 +394,21 @@ def _structured(members: Memberships) -> np.ndarray:
     account whose binned features are all zero gets an all-zero fit)."""
     loadings = np.asarray(members.loadings, dtype=np.float64)
     return np.isfinite(loadings).all(axis=1) & (np.nan_to_num(loadings).sum(axis=1) > 0)
+
+
+def _history(
+    model: FrozenModel, policy: ShiftPolicy, snapshot: Snapshot, past: list[PastWindow]
+) -> AccountHistory:
+    """Every account's baseline, novelty history and reference community."""
+    return account_history(
+        snapshot.nodes,
+        past,
+        n_roles=len(model.basis.role_ids),
+        mode=policy.baseline,
+        last_k=policy.last_k,
+        half_life=policy.half_life,
+        novelty_windows=policy.novelty_windows,
+    )
 
 
 def _bridging(

@@ -11,10 +11,12 @@ import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 
-# In the order a close runs them: read the window's events and history, ReFeX features on the
-# snapshot, tie cells against the known pairs, memberships against the frozen basis, each
-# account's baseline and novelty history, communities and the bridging z-score, the shift
-# scores, the alerts' evidence, and the write transaction.
+# The stages of a close, in the order they are shown: read the window's events and history,
+# the snapshot and its ReFeX features, tie cells against the known pairs, memberships
+# against the frozen basis, each account's baseline and novelty history, communities and the
+# bridging z-score, the shift scores, the alerts' evidence, and the write transaction. (A
+# close runs the baselines and the bridging z-score before the features, so that it can let
+# the tie graph go early, and waits for the communities last.)
 STAGES = (
     "load",
     "features",
