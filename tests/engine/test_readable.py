@@ -169,7 +169,10 @@ def test_self_ties_are_ignored_and_the_counts_are_left_as_they_are(rows):
     ordered = sp.csr_matrix(nx.to_scipy_sparse_array(looped, nodelist=sorted(G), weight=None))
     # each row's entries in descending column order: valid CSR, just not sorted
     reverse = np.concatenate(
-        [np.arange(hi - 1, lo - 1, -1) for lo, hi in zip(ordered.indptr[:-1], ordered.indptr[1:])]
+        [
+            np.arange(hi - 1, lo - 1, -1)
+            for lo, hi in zip(ordered.indptr[:-1], ordered.indptr[1:], strict=True)
+        ]
     )
     counts = sp.csr_matrix(
         (ordered.data[reverse], ordered.indices[reverse], ordered.indptr), shape=ordered.shape
