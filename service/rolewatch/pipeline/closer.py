@@ -19,10 +19,8 @@ import logging
 import threading
 import time
 import weakref
-from collections.abc import Callable
 from contextlib import AbstractContextManager
 from dataclasses import asdict, dataclass, replace
-from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from rolewatch.clock import now_micros, to_rfc3339
@@ -62,7 +60,6 @@ from rolewatch.store.windows import WindowMeasures, WindowSpan
 
 log = logging.getLogger("rolewatch.pipeline")
 
-EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
 CLOSER_LOCK_ID = 0x7277_636C  # "rwcl": the closer's advisory lock id within this store
 MAX_RECOMPUTES = 5
 # Set when the service shuts down: the closer finishes the window it is writing and stops
@@ -243,7 +240,7 @@ def _close_once(
         known,
         window=window,
         raise_alerts=True,
-        events_of=_stored_events(engine, settings),
+        events_of=event_source.stored_events_reader(engine, settings),
         clock=clock,
         measure=measure_for(settings),
         recent=_recent_features(engine),
@@ -303,28 +300,6 @@ def _recent_features(engine: Engine) -> RecentFeatures:
     if recent is None:
         recent = _RECENT.setdefault(engine, RecentFeatures())
     return recent
-
-
-def _stored_events(
-    engine: Engine, settings: Settings
-) -> Callable[[WindowRef], WindowEvents | None]:
-    """Reads an earlier window's events back (for the features an alert shows as "before");
-    None once retention purged them."""
-
-    def read(ref: WindowRef) -> WindowEvents | None:
-        with engine.connect() as connection:
-            events = event_source.window_events(
-                connection, settings, _micros(ref.start), _micros(ref.end)
-            )
-        return events if len(events) else None
-
-    return read
-
-
-def _micros(text: str) -> int:
-    """Microseconds since the epoch of an RFC 3339 time written by ``to_rfc3339``."""
-    moment = datetime.fromisoformat(text.replace("Z", "+00:00"))
-    return (moment - EPOCH) // timedelta(microseconds=1)
 
 
 def _claim_window(connection: Connection, start_us: int, end_us: int, loaded: int) -> None:

@@ -9,18 +9,21 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, fields
+from datetime import datetime, timedelta
 from typing import Any
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from rolewatch.clock import EPOCH
 from rolewatch.config import Settings
 from rolewatch.pipeline.loading import WindowEvents, from_codes
 from rolewatch.pipeline.loading import start_window_events as start_window_events_in_store
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.account_codes import coded_accounts
-from rolewatch.store.db import Connection
+from rolewatch.store.alerts import WindowRef
+from rolewatch.store.db import Connection, Engine
 from rolewatch.store.windows import StreamState
 
 # the archive's columns a close reads (kind is not part of a window's graph)
@@ -31,6 +34,7 @@ __all__ = [
     "first_event_time_from",
     "stored_part",
     "start_window_events",
+    "stored_events_reader",
     "stream_state",
     "window_events",
 ]
@@ -144,3 +148,23 @@ def _stored_table(rows: list[Any], schema: pa.Schema) -> pa.Table:
 def stored_part(events: WindowEvents) -> int:
     """How many of the window's events the store holds (what the close re-check counts)."""
     return events.from_store if isinstance(events, ArchivedWindowEvents) else len(events)
+
+
+def stored_events_reader(
+    engine: Engine, settings: Settings
+) -> Callable[[WindowRef], WindowEvents | None]:
+    """Reads an earlier window's events back (for the features an alert shows as "before");
+    None once retention purged them."""
+
+    def read(ref: WindowRef) -> WindowEvents | None:
+        with engine.connect() as connection:
+            events = window_events(connection, settings, _micros(ref.start), _micros(ref.end))
+        return events if len(events) else None
+
+    return read
+
+
+def _micros(text: str) -> int:
+    """Microseconds since the epoch of an RFC 3339 time written by ``to_rfc3339``."""
+    moment = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    return (moment - EPOCH) // timedelta(microseconds=1)
