@@ -84,7 +84,7 @@ def _without_diagonal(S: sp.csr_matrix) -> sp.csr_matrix:
     """``S`` without its diagonal and explicit zeros. A window's graph has no diagonal
     (an event never links an account to itself), and scipy's ``setdiag(0)`` on a matrix
     without one rebuilds it through COO with a slot for every node: a transient copy of
-    the whole graph (about 1.5 GB at 30,000,000 events), for nothing."""
+    the whole graph (several times its size, briefly), for nothing."""
     diagonal = S.diagonal()
     if diagonal.any():
         S = (S - sp.diags(diagonal, format="csr")).tocsr()
@@ -230,7 +230,7 @@ def bridging_zscore(ties, labels) -> np.ndarray:
     few. The tail probability goes to a z-score with ``scipy.special.ndtri_exp`` on its
     logarithm, exact far into the tail. The counting runs over slices of rows of at most
     :data:`SLICE_ENTRIES` ties, so the working arrays stay a few times a slice long rather
-    than a dozen times the graph (at 30,000,000 events, about 2 GB less at once).
+    than a dozen times the graph.
     """
     pattern = sp.csr_matrix(ties)
     lab = np.asarray(labels, dtype=np.int64).reshape(-1)

@@ -103,12 +103,18 @@ class ReadableMeasures:
         return {name: float(v) for name, v in zip(MEASURES, self.values[position], strict=True)}
 
 
-def _ties_of(C: sp.csr_matrix, nodes: np.ndarray | None) -> tuple[sp.csr_matrix, sp.csr_matrix]:
-    """The out- and in-ties of ``nodes`` (all when None), one row per node: rows of ``C``
+def _blocks_of(C: sp.csr_matrix, nodes: np.ndarray | None) -> tuple[sp.spmatrix, sp.spmatrix]:
+    """The events out of and into ``nodes`` (all when None), one row per node: rows of ``C``
     and of its transpose, taken from ``C`` without transposing the whole matrix."""
     if nodes is None:
-        return off_diagonal_pattern(C), off_diagonal_pattern(C.T)
-    return off_diagonal_pattern(C[nodes], nodes), off_diagonal_pattern(C[:, nodes].T, nodes)
+        return C, C.T
+    return C[nodes], C[:, nodes].T
+
+
+def _ties_of(C: sp.csr_matrix, nodes: np.ndarray | None) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+    """The out- and in-ties (0/1, no self-ties) of ``nodes`` (all when None), one row each."""
+    sent, received = _blocks_of(C, nodes)
+    return off_diagonal_pattern(sent, nodes), off_diagonal_pattern(received, nodes)
 
 
 def _triangles_around(C: sp.csr_matrix, U: sp.csr_matrix, rows: np.ndarray) -> np.ndarray:
@@ -176,18 +182,20 @@ def readable_measures(
         raise EngineInputError(f"rows must be node indices in [0, {n}), got {picked.min()}…")
     # only the measured rows' own ties are read: a few alerted accounts of a large window
     # would otherwise cost several copies of the whole graph
-    out, into = _ties_of(C, None if rows is None else picked)
+    nodes = None if rows is None else picked
+    sent, received = _blocks_of(C, nodes)
+    out, into = off_diagonal_pattern(sent, nodes), off_diagonal_pattern(received, nodes)
     U = binary_pattern(out + into)
     out_deg = np.diff(out.indptr).astype(np.float64)
     in_deg = np.diff(into.indptr).astype(np.float64)
     deg = np.diff(U.indptr).astype(np.float64)
     mutual = np.asarray(out.multiply(into).sum(axis=1)).ravel()
-    if rows is None:
-        ev_out = np.asarray(C.sum(axis=1)).ravel()
-        ev_in = np.asarray(C.sum(axis=0)).ravel()
-    else:
-        ev_out = np.asarray(C[picked].sum(axis=1)).ravel()
-        ev_in = np.asarray(C[:, picked].sum(axis=0)).ravel()
+    ev_out = np.asarray(sent.sum(axis=1)).ravel()
+    ev_in = (
+        np.asarray(C.sum(axis=0)).ravel()
+        if rows is None
+        else np.asarray(received.sum(axis=1)).ravel()
+    )
     if triangles is not None:
         tri = np.asarray(triangles, dtype=np.float64)[picked]
     elif rows is None:
