@@ -18,6 +18,11 @@ in a fresh process (its own peak memory): as it is, and with three more events o
 account whose id has the store's longest allowed length (200 characters). One long id
 must not change what a close costs (code that holds account ids as fixed-width text makes
 every account's row as wide as the longest id).
+``close-lookback``: a full look-back. A close compares each account with the earlier
+measured windows it reads back (eight by default); close-1m has only the training window
+behind it. Here the training window and eight windows of 1,000,000 events of the same
+accounts are closed one after the other (not timed), then the tenth window is closed in a
+fresh process: its seconds, stages and peak memory show what reading the look-back costs.
 """
 
 from __future__ import annotations
@@ -35,7 +40,7 @@ from typing import Any
 
 import numpy as np
 
-CASES = ("close-1m", "close-1m-postgres", "close-long-id")
+CASES = ("close-1m", "close-1m-postgres", "close-long-id", "close-lookback")
 POSTGRES_URL_VARIABLE = "ROLEWATCH_BENCH_POSTGRES_URL"
 WEEK_US = 7 * 86_400 * 1_000_000
 FIRST_END = 1_767_830_400_000_000  # 2026-01-08T00:00:00Z, a UTC-aligned 7-day window end
@@ -143,6 +148,10 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     if case == "close-long-id":
         with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
             yield _close_long_id(case, Path(tmp), quick)
+        return
+    if case == "close-lookback":
+        with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
+            yield _close_lookback(case, Path(tmp), quick)
         return
     url = os.environ.get(POSTGRES_URL_VARIABLE)
     if not url:
@@ -255,17 +264,59 @@ def _close_long_id(case: str, folder: Path, quick: bool) -> dict:
     }
 
 
-def _close_in_this_process(path: str) -> dict:
-    """Close the bench's measured window of the store at ``path`` (a fresh process's peak)."""
+LOOKBACK_WINDOWS = 8  # the look-back of the default settings (compute.lookback_windows)
+
+
+def _close_lookback(case: str, folder: Path, quick: bool) -> dict:
+    """The window after eight measured windows of the same accounts, closed in a fresh
+    process."""
+    from concurrent.futures import ProcessPoolExecutor
+    from multiprocessing import get_context
+
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    path = folder / "lookback.db"
+    big = 100_000 if quick else 1_000_000
+    accounts = 20_000 if quick else 180_000
+    settings = _bench_settings(f"sqlite:///{path}")
+    engine = open_store(settings)
+    rng = np.random.default_rng(0)
+    _load(path, _power_law_events(rng, big // 5, accounts, FIRST_END - WEEK_US, "t-"))
+    for window in range(LOOKBACK_WINDOWS + 1):
+        start = FIRST_END + window * WEEK_US
+        _load(path, _power_law_events(rng, big, accounts, start, f"w{window}-"))
+    now_us = FIRST_END + (LOOKBACK_WINDOWS + 4) * WEEK_US
+    started = time.perf_counter()
+    for window in range(LOOKBACK_WINDOWS + 1):  # the training window, then eight measured
+        close_window(engine, settings, FIRST_END + window * WEEK_US, now_us=now_us)
+    preparing_seconds = time.perf_counter() - started
+    engine.dispose()
+    end_us = FIRST_END + (LOOKBACK_WINDOWS + 1) * WEEK_US
+    with ProcessPoolExecutor(max_workers=1, mp_context=get_context("spawn")) as pool:
+        close = pool.submit(_close_in_this_process, str(path), end_us, now_us).result()
+    return {
+        "case": case,
+        "cores": os.cpu_count(),
+        "events_per_window": big,
+        "measured_windows_before": LOOKBACK_WINDOWS,
+        "preparing_seconds": round(preparing_seconds, 2),
+        **close,
+    }
+
+
+def _close_in_this_process(
+    path: str, end_us: int = FIRST_END + WEEK_US, now_us: int = FIRST_END + 4 * WEEK_US
+) -> dict:
+    """Close the window ending at ``end_us`` of the store at ``path`` (a fresh process's
+    peak)."""
     from rolewatch.pipeline.closer import close_window
     from rolewatch.store.db import open_store
 
     settings = _bench_settings(f"sqlite:///{path}")
     engine = open_store(settings)
     started = time.perf_counter()
-    summary = close_window(engine, settings, FIRST_END + WEEK_US, now_us=FIRST_END + 4 * WEEK_US)[
-        -1
-    ]
+    summary = close_window(engine, settings, end_us, now_us=now_us)[-1]
     seconds = time.perf_counter() - started
     engine.dispose()
     return {
