@@ -98,7 +98,8 @@ def test_a_kept_window_stands_only_for_the_stored_window_it_matches():
 
     def past(accounts=snapshot.nodes, counted=events, window=ref):
         mixture = np.zeros((len(accounts), 2))
-        return PastWindow(accounts=accounts, mixture=mixture, events=counted, ref=window)
+        stored = PastWindow(accounts=accounts, mixture=mixture, events=counted, ref=window)
+        return stored.facts()
 
     assert recent.find(past(), recipe.version) is not None
     assert recent.find(past(), "another-recipe") is None

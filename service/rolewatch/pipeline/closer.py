@@ -37,7 +37,7 @@ from rolewatch.pipeline.compute import (
     past_from_result,
     start_window_communities,
 )
-from rolewatch.pipeline.loading import WindowEvents, load_past_windows
+from rolewatch.pipeline.loading import WindowEvents, stored_past_windows
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.stages import StageClock
@@ -219,8 +219,10 @@ def _close_once(
         if model is None:
             training = stored_windows.unmeasured_training_windows(connection)
         else:
-            past = load_past_windows(
+            # listed now, each read in the history stage (one at a time, not all held)
+            past = stored_past_windows(
                 connection,
+                engine,
                 model,
                 before_end_us=end_us,
                 limit=lookback_windows(settings),

@@ -11,7 +11,7 @@ counts and community labels, and the keys of its first-seen pairs.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -204,7 +204,7 @@ def compute_window(
     model: FrozenModel,
     settings: Settings,
     current: WindowEvents,
-    past: list[PastWindow],
+    past: Sequence[PastWindow],
     known: KnownPairs,
     *,
     window: WindowRef,
@@ -220,7 +220,10 @@ def compute_window(
     Parameters
     ----------
     past
-        Earlier measured windows, oldest first (at most :func:`lookback_windows`).
+        Earlier measured windows, oldest first (at most :func:`lookback_windows`), each
+        taken once, newest first, in the history stage (the closer passes
+        :class:`rolewatch.pipeline.loading.StoredPastWindows`, which reads each from the
+        store when it is taken, so the look-back is never held whole).
     known
         Every account pair that interacted in an earlier window.
     window
@@ -268,7 +271,7 @@ def compute_window(
     del graph
     step = _Step(model, settings, policy, snapshot, counts, activity, clock, measure, recent)
     return _measure(
-        step, current, past, known, communities, window, raise_alerts, events_of, history, bridging
+        step, current, known, communities, window, raise_alerts, events_of, history, bridging
     )
 
 
@@ -312,7 +315,6 @@ def _features_by(step: _Step) -> Callable[[Snapshot, WindowEvents], FeatureTable
 def _measure(
     step: _Step,
     current: WindowEvents,
-    past: list[PastWindow],
     known: KnownPairs,
     communities: CommunityJob,
     window: WindowRef,
@@ -356,7 +358,6 @@ def _measure(
             activity=step.activity,
             ties=step.counts.cells,
             history=history,
-            past=past,
             known=known,
             events_of=events_of,
             recent=step.recent,
@@ -375,7 +376,7 @@ def _measure(
         scores,
         step.activity,
         alerts,
-        past,
+        history,
         step.counts,
         community,
         inputs,
@@ -397,7 +398,7 @@ def _structured(members: Memberships) -> np.ndarray:
 
 
 def _history(
-    model: FrozenModel, policy: ShiftPolicy, snapshot: Snapshot, past: list[PastWindow]
+    model: FrozenModel, policy: ShiftPolicy, snapshot: Snapshot, past: Sequence[PastWindow]
 ) -> AccountHistory:
     """Every account's baseline, novelty history and reference community."""
     return account_history(
@@ -460,7 +461,7 @@ def _empty_result(
     snapshot: Snapshot,
     activity: Activity,
     n_roles: int,
-    past: list[PastWindow],
+    past: Sequence[PastWindow],
     counts: TieCounts,
 ) -> WindowResult:
     """The result of a window without events: nobody active, everyone before inactive."""
@@ -490,16 +491,12 @@ def _measured_result(
     scores: WindowScores,
     activity: Activity,
     alerts: list[NewAlert],
-    past: list[PastWindow],
+    history: AccountHistory,
     counts: TieCounts,
     community: np.ndarray,
     inputs: ScoreInputs,
 ) -> WindowResult:
     status = scores.status
-    inactive_count = 0
-    if past:
-        still_here = snapshot.index_of(past[-1].accounts) >= 0
-        inactive_count = int((~still_here).sum())
     role_ids = np.asarray(model.basis.role_ids)
     fitted = status != "too_little"
     mixture = np.where(fitted[:, None], members.mixture, np.nan)
@@ -515,7 +512,7 @@ def _measured_result(
         alerts=alerts,
         reconstruction_error=float(np.mean(members.error)),
         new_count=int(np.sum(status == "new")),
-        inactive_count=inactive_count,
+        inactive_count=history.gone,
         scored_count=int(np.sum(status == "scored")),
         ties=counts.cells,
         community=community,

@@ -25,7 +25,7 @@ from rolewatch.engine.scoring import ShiftPolicy, WindowScores
 from rolewatch.engine.shift import feature_moves
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.pipeline.history import AccountHistory
-from rolewatch.pipeline.loading import PastWindow, WindowEvents
+from rolewatch.pipeline.loading import PastWindowFacts, WindowEvents
 from rolewatch.pipeline.model import FrozenModel
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.store.alerts import (
@@ -62,7 +62,6 @@ class AlertContext:
     activity: Activity
     ties: np.ndarray  # n x 4 tie cells of this window
     history: AccountHistory
-    past: list[PastWindow]
     known: KnownPairs
     events_of: Callable[[WindowRef], WindowEvents | None] | None
     recent: RecentFeatures | None = None
@@ -138,7 +137,7 @@ def _baseline_features(
     found: dict[int, tuple[np.ndarray, dict[str, float]]] = {}
     windows = context.history.window[rows]
     for step in np.unique(windows[windows >= 0]):
-        measured = _window_features(context, context.past[int(step)])
+        measured = _window_features(context, context.history.windows[int(step)])
         if measured is None:
             continue
         snapshot, table = measured
@@ -153,7 +152,7 @@ def _baseline_features(
 
 
 def _window_features(
-    context: AlertContext, past: PastWindow
+    context: AlertContext, past: PastWindowFacts
 ) -> tuple[Snapshot, FeatureTable] | None:
     """An earlier window's snapshot and feature table, or None when its events are gone."""
     if context.recent is not None:
@@ -255,7 +254,7 @@ def _evidence(
     model, history = context.model, context.history
     account = str(context.snapshot.nodes[row])
     step = int(history.window[row])
-    baseline_ref = context.past[step].ref if step >= 0 else None
+    baseline_ref = history.windows[step].ref if step >= 0 else None
     before_mixture = history.window_mixture[row]
     moves = (
         _readable_moves(context.table.names, before_raw, after_raw)

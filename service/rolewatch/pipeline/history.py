@@ -9,17 +9,20 @@ counterparts from its last few active windows; the bridging component labels
 counterparts by the communities of the latest measured window.
 
 No database access: :class:`rolewatch.pipeline.loading.PastWindow` entries in, arrays
-out, one row per node of the window being measured.
+out, one row per node of the window being measured. The entries are taken newest first,
+each once, and not kept: the closer's look-back reads each window from the store when it is
+taken (:class:`rolewatch.pipeline.loading.StoredPastWindows`), so it holds one at a time.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
 
 from rolewatch.engine.shift import baseline_mixture
-from rolewatch.pipeline.loading import PastWindow
+from rolewatch.pipeline.loading import PastWindow, PastWindowFacts
 
 __all__ = ["AccountHistory", "account_history", "novelty_history"]
 
@@ -55,6 +58,10 @@ class AccountHistory:
         ``history_new`` sums the first ``novelty_windows``.
     reference_community : int array
         The account's community in the latest measured window (-1: none).
+    windows : tuple of PastWindowFacts
+        Which window each index of ``window`` is, oldest first, with its counts.
+    gone : int
+        Accounts of the latest measured window not active in this one.
     """
 
     window: np.ndarray
@@ -70,21 +77,31 @@ class AccountHistory:
     history_windows: np.ndarray
     recent_new: np.ndarray
     reference_community: np.ndarray
+    windows: tuple[PastWindowFacts, ...] = ()
+    gone: int = 0
 
 
 def _rows_in(window: PastWindow, nodes: np.ndarray) -> np.ndarray:
     """Row of each node in a past window (-1 where absent), by a hash index of the
     window's accounts (pandas), not a sort of them as fixed-width text."""
+    return _rows_and_gone(window, nodes)[0]
+
+
+def _rows_and_gone(window: PastWindow, nodes: np.ndarray) -> tuple[np.ndarray, int]:
+    """:func:`_rows_in`, and how many of the window's rows hold an account that is not
+    among ``nodes`` (the distinct accounts active now)."""
     import pandas as pd
 
     accounts = pd.Index(np.asarray(window.accounts, dtype=object))
     if accounts.size == 0 or nodes.size == 0:
-        return np.full(nodes.size, -1, dtype=np.int64)
-    if accounts.is_unique:
-        return accounts.get_indexer(nodes).astype(np.int64)
+        return np.full(nodes.size, -1, dtype=np.int64), int(accounts.size)
+    if accounts.is_unique:  # each node is at most one row, each row at most one node
+        rows = accounts.get_indexer(nodes).astype(np.int64)
+        return rows, int(accounts.size - np.count_nonzero(rows >= 0))
     first = np.flatnonzero(~accounts.duplicated(keep="first"))  # an account's first row
     found = accounts[first].get_indexer(nodes)
-    return np.where(found >= 0, first[found], -1).astype(np.int64)
+    gone = int(np.count_nonzero(pd.Index(nodes).get_indexer(accounts) < 0))
+    return np.where(found >= 0, first[found], -1).astype(np.int64), gone
 
 
 def _column(window: PastWindow, name: str, rows: np.ndarray, width: int = 0) -> np.ndarray:
@@ -98,7 +115,7 @@ def _column(window: PastWindow, name: str, rows: np.ndarray, width: int = 0) -> 
 
 def account_history(
     nodes: np.ndarray,
-    past: list[PastWindow],
+    past: Sequence[PastWindow],
     *,
     n_roles: int,
     mode: str = "previous",
@@ -112,8 +129,9 @@ def account_history(
     ----------
     nodes : array of str
         The accounts of the window being measured.
-    past : list of PastWindow
-        Earlier measured windows, oldest first (the look-back).
+    past : sequence of PastWindow
+        Earlier measured windows, oldest first (the look-back); each is taken once, newest
+        first.
     n_roles : int
     mode, last_k, half_life :
         The role score's baseline (:func:`rolewatch.engine.shift.baseline_mixture`).
@@ -127,11 +145,15 @@ def account_history(
     # every past window's mixtures side by side, only for a baseline that averages them
     # (windows x accounts x roles: gigabytes with a long look-back over millions of accounts)
     mixtures = None if mode == "previous" else np.full((len(past), n, n_roles), np.nan)
-    newest_rows = None
+    facts: list[PastWindowFacts] = []
+    gone = 0
     for step in range(len(past) - 1, -1, -1):  # newest first: a loop over windows only
         window = past[step]
-        rows = _rows_in(window, nodes)
-        newest_rows = rows if newest_rows is None else newest_rows
+        facts.append(window.facts())
+        rows, absent = _rows_and_gone(window, nodes)
+        if step == len(past) - 1:
+            gone = absent
+            _fill_reference_community(out, window, rows)
         here = np.flatnonzero(rows >= 0)
         if mixtures is not None:
             mixtures[step, here] = np.asarray(window.mixture)[rows[here]]
@@ -142,19 +164,23 @@ def account_history(
         take = here[known]
         out.recent_new[take, counted[take]] = cells[known][:, [1, 3]]
         counted[take] += 1
+        del window  # before the next window is read
     summed, windows = novelty_history(out.recent_new, novelty_windows)
     out.history_new[:] = summed
     out.history_windows[:] = windows
-    if newest_rows is not None:
-        labels = past[-1].community
-        if labels is not None:
-            hit = newest_rows >= 0
-            out.reference_community[hit] = np.asarray(labels, dtype=np.int64)[newest_rows[hit]]
-    if mixtures is None or not past:
+    out = replace(out, windows=tuple(reversed(facts)), gone=gone)
+    if mixtures is None or not facts:
         return out  # the baseline is the baseline window's mixture itself (no copy)
     return replace(
         out, mixture=baseline_mixture(mixtures, mode=mode, last_k=last_k, half_life=half_life)
     )
+
+
+def _fill_reference_community(out: AccountHistory, window: PastWindow, rows: np.ndarray) -> None:
+    """Each node's community in ``window`` (the latest measured one), where it was there."""
+    if window.community is not None:
+        hit = rows >= 0
+        out.reference_community[hit] = np.asarray(window.community, dtype=np.int64)[rows[hit]]
 
 
 def novelty_history(recent_new: np.ndarray, windows: int) -> tuple[np.ndarray, np.ndarray]:

@@ -3,10 +3,12 @@ events, and the stored memberships of the windows before it."""
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import overload
 
 import numpy as np
+from sqlalchemy.engine import Engine
 
 from rolewatch.clock import to_rfc3339
 from rolewatch.engine.snapshot import Snapshot
@@ -130,6 +132,18 @@ def _index_type(count: int) -> type[np.integer]:
 
 
 @dataclass(frozen=True)
+class PastWindowFacts:
+    """What the close keeps of an earlier window once its accounts are folded into their
+    history (:func:`rolewatch.pipeline.history.account_history`): which window it was, and
+    its account and event counts, by which the features kept from its close are matched to it
+    (:class:`rolewatch.pipeline.recent.RecentFeatures`)."""
+
+    ref: WindowRef | None
+    accounts: int
+    events: int  # each event counted once (the stored counts hold every event twice)
+
+
+@dataclass(frozen=True)
 class PastWindow:
     """What one earlier window left for the windows after it, mapped onto the model's role
     ids: mixtures (NaN rows where the account had too little activity to fit a role),
@@ -148,6 +162,13 @@ class PastWindow:
     @property
     def events_in(self) -> np.ndarray | None:
         return None if self.events_out is None else self.events - self.events_out
+
+    def facts(self) -> PastWindowFacts:
+        return PastWindowFacts(
+            ref=self.ref,
+            accounts=len(self.accounts),
+            events=int(round(float(np.nansum(self.events)) / 2)),
+        )
 
 
 def load_window_events(connection: Connection, start_us: int, end_us: int) -> WindowEvents:
@@ -181,46 +202,97 @@ def start_window_events(
     return finish
 
 
-def load_past_windows(
+class StoredPastWindows(Sequence[PastWindow]):
+    """The last measured windows before a close, oldest first, each read from the store
+    when it is asked for (and not kept).
+
+    The close folds them into its accounts' history one at a time, newest first, so a long
+    look-back of large windows is never held at once: each holds a string and a dozen
+    numbers per account (about 0.9 GB for 4.6 million accounts).
+    """
+
+    def __init__(
+        self,
+        engine: Engine,
+        model: FrozenModel,
+        windows: list[tuple[int, int, int]],
+        outputs: str | None = None,
+    ) -> None:
+        self.engine = engine
+        self.model = model
+        self.windows = windows  # (id, start_us, end_us), oldest first
+        self.outputs = outputs
+
+    def __len__(self) -> int:
+        return len(self.windows)
+
+    @overload
+    def __getitem__(self, step: int) -> PastWindow: ...
+
+    @overload
+    def __getitem__(self, step: slice) -> Sequence[PastWindow]: ...
+
+    def __getitem__(self, step: int | slice) -> PastWindow | Sequence[PastWindow]:
+        if isinstance(step, slice):
+            return StoredPastWindows(self.engine, self.model, self.windows[step], self.outputs)
+        window_id, start_us, end_us = self.windows[step]
+        with self.engine.connect() as connection:
+            return read_past_window(
+                connection, self.model, window_id, start_us, end_us, outputs=self.outputs
+            )
+
+
+def stored_past_windows(
     connection: Connection,
+    engine: Engine,
     model: FrozenModel,
     *,
     before_end_us: int,
     limit: int,
     outputs: str | None = None,
-) -> list[PastWindow]:
-    """Stored memberships of the last ``limit`` measured windows before ``before_end_us``,
-    oldest first, with mixtures laid out in the model's role order (missing roles are 0;
-    accounts with too little activity get NaN rows). A window whose memberships the store
-    does not hold (``store_memberships_max_accounts``) is read from the Parquet ``outputs``."""
-    column_of = {str(role_id): column for column, role_id in enumerate(model.basis.role_ids)}
-    past = []
-    for window_id, start_us, end_us in stored_memberships.measured_windows(
+) -> StoredPastWindows:
+    """The last ``limit`` measured windows before ``before_end_us`` (listed now through
+    ``connection``, each read through ``engine`` when it is asked for)."""
+    listed = stored_memberships.measured_windows(
         connection, before_end_us=before_end_us, limit=limit
-    ):
-        stored = stored_memberships.window_columns(connection, window_id)
-        if not len(stored.accounts) and outputs:
-            from rolewatch.scale.output_reads import stored_window
+    )
+    return StoredPastWindows(engine, model, listed, outputs)
 
-            stored = stored_window(outputs, end_us)
-        mixture = _mixture_matrix(stored.mixtures, list(column_of))
-        totals = mixture.sum(axis=1, keepdims=True)
-        np.divide(mixture, totals, out=mixture, where=totals > 0)
-        mixture[stored.status == "too_little"] = np.nan
-        past.append(
-            PastWindow(
-                accounts=stored.accounts,
-                mixture=mixture,
-                events=stored.events_out + stored.events_in,
-                events_out=stored.events_out,
-                counterparts=stored.counterparts,
-                new_counterparts=stored.new_counterparts,
-                ties=stored.ties,
-                community=stored.community,
-                ref=WindowRef(id=window_id, start=to_rfc3339(start_us), end=to_rfc3339(end_us)),
-            )
-        )
-    return past
+
+def read_past_window(
+    connection: Connection,
+    model: FrozenModel,
+    window_id: int,
+    start_us: int,
+    end_us: int,
+    *,
+    outputs: str | None = None,
+) -> PastWindow:
+    """One measured window's stored memberships, with mixtures laid out in the model's role
+    order (missing roles are 0; accounts with too little activity get NaN rows). A window
+    whose memberships the store does not hold (``store_memberships_max_accounts``) is read
+    from the Parquet ``outputs``."""
+    column_of = {str(role_id): column for column, role_id in enumerate(model.basis.role_ids)}
+    stored = stored_memberships.window_columns(connection, window_id)
+    if not len(stored.accounts) and outputs:
+        from rolewatch.scale.output_reads import stored_window
+
+        stored = stored_window(outputs, end_us)
+    mixture = _mixture_matrix(stored.mixtures, list(column_of))
+    totals = mixture.sum(axis=1, keepdims=True)
+    np.divide(mixture, totals, out=mixture, where=totals > 0)
+    mixture[stored.status == "too_little"] = np.nan
+    return PastWindow(
+        accounts=stored.accounts,
+        mixture=mixture,
+        events=stored.events_out + stored.events_in,
+        events_out=stored.events_out,
+        counterparts=stored.counterparts,
+        new_counterparts=stored.new_counterparts,
+        ties=stored.ties,
+        community=stored.community,
+        ref=WindowRef(id=window_id, start=to_rfc3339(start_us), end=to_rfc3339(end_us)),
+    )
 
 
 def _mixture_matrix(mixtures: list[dict], role_ids: list[str]) -> np.ndarray:

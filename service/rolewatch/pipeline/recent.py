@@ -24,7 +24,7 @@ import numpy as np
 
 from rolewatch.engine.features import FeatureTable
 from rolewatch.engine.snapshot import Snapshot
-from rolewatch.pipeline.loading import PastWindow
+from rolewatch.pipeline.loading import PastWindowFacts
 from rolewatch.store.alerts import WindowRef
 
 __all__ = ["MAX_KEPT_BYTES", "RecentFeatures"]
@@ -65,7 +65,9 @@ class RecentFeatures:
         with self._lock:
             self._kept = kept
 
-    def find(self, past: PastWindow, recipe_version: str) -> tuple[Snapshot, FeatureTable] | None:
+    def find(
+        self, past: PastWindowFacts, recipe_version: str
+    ) -> tuple[Snapshot, FeatureTable] | None:
         """The kept snapshot and features of ``past``, or None when they are not here."""
         with self._lock:
             kept = self._kept
@@ -77,11 +79,6 @@ class RecentFeatures:
             ref.end,
             recipe_version,
         )
-        stored_events = int(round(float(np.nansum(past.events)) / 2))
-        if (
-            not same_window
-            or kept.snapshot.n_nodes != len(past.accounts)
-            or kept.events != stored_events
-        ):
+        if not same_window or kept.snapshot.n_nodes != past.accounts or kept.events != past.events:
             return None
         return kept.snapshot, kept.table
