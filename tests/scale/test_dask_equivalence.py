@@ -21,7 +21,7 @@ import sqlalchemy as sa
 from rolewatch.pipeline import closer
 from rolewatch.pipeline.closer import close_due_windows
 from rolewatch.pipeline.compute import measure_locally
-from rolewatch.pipeline.loading import interned
+from rolewatch.pipeline.loading import PastWindowFacts, interned
 from rolewatch.pipeline.model import fit_model
 from rolewatch.pipeline.offline import split_windows
 from rolewatch.pipeline.recent import RecentFeatures
@@ -36,6 +36,7 @@ from rolewatch.scale.features import (
     WorkerFeatureRows,
 )
 from rolewatch.scale.graph import build_graph, scatter_events, triangle_table
+from rolewatch.store.alerts import WindowRef
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest, parse_time_us
 from rolewatch.store.schema import alerts
@@ -182,6 +183,36 @@ def test_reading_values_of_a_worker_that_left_raises_a_clear_error(dask_cluster,
     lost = WorkerFeatureRows(dask_cluster, raw.bounds, gone, raw.names)
     with pytest.raises(FeatureRowsLost, match="next tick closes the window again"):
         lost[[0, 1]]
+
+
+def test_values_left_on_the_workers_are_kept_by_what_this_process_holds(
+    dask_cluster, sample_windows
+):
+    model, windows = sample_windows
+    events = windows[5]
+    snapshot = events.snapshot()
+    table, _members = DaskMeasure(dask_cluster, partitions=4, raw_here_max_bytes=0)(
+        model, snapshot, events
+    )
+    ref = WindowRef(id=6, start="2026-02-01T00:00:00Z", end="2026-02-08T00:00:00Z")
+    facts = PastWindowFacts(
+        ref=ref, accounts=snapshot.n_nodes, events=int(round(float(snapshot.counts.sum())))
+    )
+    # room for the snapshot only: the values on the workers' disks cost this process nothing
+    recent = RecentFeatures(max_bytes=snapshot.counts.data.nbytes * 3)
+    assert table.raw.nbytes > 0
+    recent.remember(ref, snapshot, table)
+    kept = recent.find(facts, model.recipe.version)
+    assert kept is not None and kept[1] is table
+    # a writer of the values has left the cluster: not used, and let go
+    raw = table.raw
+    gone = [[replace(s, worker="tcp://127.0.0.1:9") for s in piece] for piece in raw.pieces]
+    lost = replace(table, raw=WorkerFeatureRows(dask_cluster, raw.bounds, gone, raw.names))
+    assert not lost.raw.readable()
+    recent.remember(ref, snapshot, lost)
+    assert recent.find(facts, model.recipe.version) is None
+    recent.remember(ref, snapshot, table)  # the same values whole again: found again
+    assert recent.find(facts, model.recipe.version) is not None
 
 
 def test_triangles_on_partitions_match_networkx(dask_cluster, sample_windows):

@@ -9,6 +9,7 @@ known history.
 
 from __future__ import annotations
 
+import logging
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
@@ -39,6 +40,8 @@ from rolewatch.store.alerts import (
 )
 
 __all__ = ["REVIEW_NOTICE", "AlertContext", "alerts_with_evidence"]
+
+log = logging.getLogger("rolewatch.pipeline")
 
 REVIEW_NOTICE = (
     "A lead for human review, not a verdict: check the evidence before acting on this "
@@ -137,28 +140,51 @@ def _baseline_features(
     found: dict[int, tuple[np.ndarray, dict[str, float]]] = {}
     windows = context.history.window[rows]
     for step in np.unique(windows[windows >= 0]):
-        measured = _window_features(context, context.history.windows[int(step)])
-        if measured is None:
-            continue
-        snapshot, table = measured
         wanted = rows[windows == step]
-        at = snapshot.index_of(context.snapshot.nodes[wanted])
-        present = at >= 0
-        readable = readable_measures(snapshot.counts, rows=at[present], triangles=table.triangles)
-        raw = table.raw[at[present]]
-        for position, row in enumerate(wanted[present]):
-            found[int(row)] = (raw[position], readable.row(position))
+        found.update(_baseline_rows(context, context.history.windows[int(step)], wanted))
     return found
 
 
-def _window_features(
+def _baseline_rows(
+    context: AlertContext, past: PastWindowFacts, wanted: np.ndarray
+) -> dict[int, tuple[np.ndarray, dict[str, float]]]:
+    """:func:`_baseline_features` of the accounts ``wanted`` whose baseline is ``past``."""
+    kept = (
+        None if context.recent is None else context.recent.find(past, context.model.recipe.version)
+    )
+    if kept is not None:
+        try:
+            return _rows_of(context, *kept, wanted)
+        except Exception as error:  # noqa: BLE001 - kept values are a cache: recompute
+            log.warning(
+                "the kept features of the baseline window could not be read; computing them again",
+                extra={"fields": {"window": past.ref and past.ref.end, "error": repr(error)}},
+            )
+            context.recent.forget()  # type: ignore[union-attr]
+    measured = _recomputed_features(context, past)
+    return {} if measured is None else _rows_of(context, *measured, wanted)
+
+
+def _rows_of(
+    context: AlertContext, snapshot: Snapshot, table: FeatureTable, wanted: np.ndarray
+) -> dict[int, tuple[np.ndarray, dict[str, float]]]:
+    """Raw features and readable measures in ``snapshot`` of the rows ``wanted`` of this
+    window (those of its accounts that were there)."""
+    at = snapshot.index_of(context.snapshot.nodes[wanted])
+    present = at >= 0
+    readable = readable_measures(snapshot.counts, rows=at[present], triangles=table.triangles)
+    raw = table.raw[at[present]]
+    return {
+        int(row): (raw[position], readable.row(position))
+        for position, row in enumerate(wanted[present])
+    }
+
+
+def _recomputed_features(
     context: AlertContext, past: PastWindowFacts
 ) -> tuple[Snapshot, FeatureTable] | None:
-    """An earlier window's snapshot and feature table, or None when its events are gone."""
-    if context.recent is not None:
-        kept = context.recent.find(past, context.model.recipe.version)
-        if kept is not None:
-            return kept
+    """An earlier window's snapshot and feature table from its stored events, or None when
+    its events are gone."""
     if context.events_of is None or past.ref is None:
         return None
     events = context.events_of(past.ref)

@@ -10,9 +10,12 @@ as before.
 
 A kept window is used only when it matches the stored one it stands for: same start and
 end, same feature recipe, and the same number of accounts and of events as that window's
-stored memberships. Only tables up to :data:`MAX_KEPT_BYTES` whose raw values are in this
-process are kept, so a very large window does not hold its memory (or its Dask workers')
-until the next close.
+stored memberships. A window is kept only when what this process holds of it fits
+:data:`MAX_KEPT_BYTES`: its snapshot, and its raw values and bins unless a cluster close
+left them with its workers (``compute = "dask"``, a large window: they stay in the workers'
+scratch files, read by rows, and this process holds only their file names), so a very
+large window does not hold its memory until the next close. Values left on workers that
+have since left the cluster are not used: the evidence recomputes that window instead.
 """
 
 from __future__ import annotations
@@ -51,19 +54,22 @@ class RecentFeatures:
         self._lock = threading.Lock()
 
     def remember(self, window: WindowRef, snapshot: Snapshot, table: FeatureTable) -> None:
-        """Keep this window's features (replacing the previous window's), unless they are
-        larger than the limit or their raw values were left on a cluster's workers."""
-        size = table.raw.nbytes + table.binned.nbytes + snapshot.counts.data.nbytes * 3
+        """Keep this window's features (replacing the previous window's), unless what this
+        process would hold of them is larger than the limit."""
+        held = snapshot.counts.data.nbytes * 3 + _held_here(table.raw) + _held_here(table.binned)
         events = int(round(float(snapshot.counts.sum())))
         kept = (
             _Kept(window.start, window.end, table.recipe_version, events, snapshot, table)
-            if size <= self._max_bytes
-            and isinstance(table.raw, np.ndarray)
-            and isinstance(table.binned, np.ndarray)
+            if held <= self._max_bytes
             else None
         )
         with self._lock:
             self._kept = kept
+
+    def forget(self) -> None:
+        """Drop the kept window (its values could not be read)."""
+        with self._lock:
+            self._kept = None
 
     def find(
         self, past: PastWindowFacts, recipe_version: str
@@ -81,4 +87,19 @@ class RecentFeatures:
         )
         if not same_window or kept.snapshot.n_nodes != past.accounts or kept.events != past.events:
             return None
+        if not _readable(kept.table.raw):
+            self.forget()
+            return None
         return kept.snapshot, kept.table
+
+
+def _held_here(values: object) -> int:
+    """Bytes ``values`` take in this process: none for values left on a cluster's workers
+    (:class:`rolewatch.scale.features.WorkerFeatureRows`, whose ``nbytes`` are on disk)."""
+    return values.nbytes if isinstance(values, np.ndarray) else 0
+
+
+def _readable(values: object) -> bool:
+    """False for values left on workers of which one has left the cluster since."""
+    readable = getattr(values, "readable", None)
+    return True if readable is None else bool(readable())

@@ -191,6 +191,15 @@ class WorkerFeatureRows:
             out[np.ix_(positions, columns)] = values
         return out[0] if single else out
 
+    def readable(self) -> bool:
+        """Whether every worker that wrote these values is still in the cluster (and the
+        client still connected)."""
+        try:
+            alive = set(self.client.scheduler_info().get("workers", {}))
+        except Exception:  # noqa: BLE001 - a closed client cannot say, so: not readable
+            return False
+        return all(s.worker in alive for piece in self.pieces for s in piece if s.path)
+
     def _check_writers(self, scratches: Sequence[ScratchValues]) -> None:
         alive = set(self.client.scheduler_info().get("workers", {}))
         gone = sorted({s.worker for s in scratches} - alive)
