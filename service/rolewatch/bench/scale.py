@@ -13,6 +13,15 @@ psutil). A size whose Dask close fails on every attempt (workers restarted over 
 limit) gives a line with ``dask_closed: false`` and the error, and the run goes on.
 ``--quick`` uses 100,000 and 300,000 events.
 
+``close-dask-next``: the window after one closed on Dask by the same process, as a running
+service closes it. The store gets a training window (closed locally) and two windows of
+4,000,000 events; the first is closed on Dask, and its raw feature values (over 512 MB)
+stay in the workers' scratch files, kept for the next window's evidence. The second window
+is closed by that process, then again on a copy of the store taken before, by a fresh
+engine (as after a restart: the evidence measures the first window again on the cluster).
+Reported: both closes' seconds, stages, alerts, peak resident memory of this process (and
+what it held as each close began) and of each worker. ``--quick`` uses 300,000 events.
+
 ``archive-history-52``: 52 windows of 200,000 accounts each (10,400,000 rows, 8 roles)
 written as per-window Parquet outputs (:mod:`rolewatch.scale.outputs`); the first read builds
 the per-window row-group index (``open_ms``); then 200 reads of one random account's
@@ -38,16 +47,24 @@ import numpy as np
 
 from rolewatch.bench.close import FIRST_END, WEEK_US, _load, _power_law_events
 
-CASES = ("close-dask-10m", "close-dask-30m", "close-dask-scaling", "archive-history-52")
+CASES = (
+    "close-dask-10m",
+    "close-dask-30m",
+    "close-dask-scaling",
+    "close-dask-next",
+    "archive-history-52",
+)
 SIZES = {
     "close-dask-10m": [10_000_000],
     "close-dask-30m": [30_000_000],
     "close-dask-scaling": [1_000_000, 3_000_000, 10_000_000, 30_000_000],
+    "close-dask-next": [4_000_000],
 }
 QUICK = {
     "close-dask-10m": [300_000],
     "close-dask-30m": [300_000],
     "close-dask-scaling": [100_000, 300_000],
+    "close-dask-next": [300_000],
 }
 WORKER_MEMORY = "3GB"
 LOAD_CHUNK = 2_000_000  # events generated and stored at once (smaller windows: one draw)
@@ -66,6 +83,7 @@ class _PeakMemory:
 
         self.me = psutil.Process()
         self.workers: list[Any] = [psutil.Process(pid) for pid in worker_pids]
+        self.start_mb = self.me.memory_info().rss / 2**20
         self.peak_mb = 0.0
         self.worker_peak_mb = [0.0] * len(worker_pids)
         self.worker_restarts = 0
@@ -111,18 +129,29 @@ def _settings(path: Path, **extra: Any):
 
 
 def _close(path: Path, now_us: int, worker_pids: list[int], **extra: Any) -> dict:
-    from rolewatch.pipeline.closer import close_window
     from rolewatch.store.db import open_store
 
     settings = _settings(path, **extra)
     engine = open_store(settings)
+    try:
+        return _timed_close(engine, settings, FIRST_END + WEEK_US, now_us, worker_pids)
+    finally:
+        engine.dispose()
+
+
+def _timed_close(
+    engine: Any, settings: Any, end_us: int, now_us: int, worker_pids: list[int]
+) -> dict:
+    """Close the window ending at ``end_us``: its seconds, alerts, stages and memory."""
+    from rolewatch.pipeline.closer import close_window
+
     with _PeakMemory(worker_pids) as memory:
         started = time.perf_counter()
-        summaries = close_window(engine, settings, FIRST_END + WEEK_US, now_us=now_us)
+        summaries = close_window(engine, settings, end_us, now_us=now_us)
         seconds = time.perf_counter() - started
-    engine.dispose()
     return {
         "seconds": round(seconds, 2),
+        "start_rss_mb": round(memory.start_mb, 1),
         "peak_rss_mb": round(memory.peak_mb, 1),
         "worker_peak_mb": [round(m, 1) for m in memory.worker_peak_mb],
         "worker_restarts": memory.worker_restarts,
@@ -191,6 +220,49 @@ def _one_size(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
         "local_peak_rss_mb": local["peak_rss_mb"],
         "same_alert_count": local["alerts"] == on_dask["alerts"],
         "local_stage_seconds": local["stage_seconds"],
+    }
+
+
+def _next_window(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
+    """The window after one this process closed on Dask, closed by this process and by a
+    fresh engine on a copy of the store (see the module's docstring)."""
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    rng = np.random.default_rng(0)
+    accounts = max(20_000, events // 6)
+    path, copy = tmp / f"next-{events}.db", tmp / f"next-{events}-restarted.db"
+    open_store(_settings(path)).dispose()
+    _load_in_chunks(path, rng, events // 5, accounts, FIRST_END - WEEK_US, "t-")
+    _load_in_chunks(path, rng, events, accounts, FIRST_END, "w-")
+    _load_in_chunks(path, rng, events, accounts, FIRST_END + WEEK_US, "v-")
+    now_us = FIRST_END + 5 * WEEK_US
+    training = open_store(_settings(path))
+    close_window(training, _settings(path), FIRST_END, now_us=now_us)
+    training.dispose()
+    pids = list(client.run(os.getpid).values())
+    on_dask = _settings(path, compute="dask", dask_scheduler=scheduler)
+    engine = open_store(on_dask)
+    close_window(engine, on_dask, FIRST_END + WEEK_US, now_us=now_us)
+    engine.dispose()  # its connections: the engine, and what the closer keeps for it, stay
+    shutil.copyfile(path, copy)
+    next_end = FIRST_END + 2 * WEEK_US
+    kept = _timed_close(engine, on_dask, next_end, now_us, pids)
+    engine.dispose()
+    del engine  # and with it the first window's kept values (their files on the workers)
+    restarted_settings = _settings(copy, compute="dask", dask_scheduler=scheduler)
+    restarted = open_store(restarted_settings)
+    again = _timed_close(restarted, restarted_settings, next_end, now_us, pids)
+    restarted.dispose()
+    path.unlink()
+    copy.unlink()
+    return {
+        "events": events,
+        "accounts": kept["accounts"],
+        "seconds_ratio": round(again["seconds"] / max(kept["seconds"], 1e-9), 2),
+        "same_alert_count": kept["alerts"] == again["alerts"],
+        **{f"next_{key}": value for key, value in kept.items()},
+        **{f"restarted_{key}": value for key, value in again.items()},
     }
 
 
@@ -310,8 +382,9 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     client = Client(cluster)
     try:
         with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
+            measure = _next_window if case == "close-dask-next" else _one_size
             for events in (QUICK if quick else SIZES)[case]:
-                measured = _one_size(events, client, cluster.scheduler_address, Path(tmp))
+                measured = measure(events, client, cluster.scheduler_address, Path(tmp))
                 yield {
                     "case": case,
                     "cores": os.cpu_count(),
