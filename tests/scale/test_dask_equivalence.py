@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import gc
 import json
+import threading
 import time
 from dataclasses import replace
 
@@ -172,6 +173,40 @@ def test_raw_values_and_bins_on_workers_are_files_deleted_with_their_table(
     gc.collect()
     _wait_for_scratch_files(dask_cluster, 0)
     assert _scratch_files(dask_cluster) == 0
+
+
+def test_values_dropped_on_the_client_event_loop_thread_are_deleted_without_blocking_it(
+    dask_cluster, sample_windows
+):
+    # The garbage collector may finalise a table on any thread, an event-loop thread
+    # included (seen: a kept window let go by a collection during a message decode on the
+    # thread running an in-process scheduler, whose finalizer then waited for that
+    # scheduler for ever). On the client's own loop thread the wait fails instead, and
+    # the files stayed: this test.
+    from distributed import Client
+
+    model, windows = sample_windows
+    gc.collect()
+    _wait_for_scratch_files(dask_cluster, 0)
+    own = Client(dask_cluster.scheduler.address, set_as_default=False)  # its own loop thread
+    try:
+        measure = DaskMeasure(own, partitions=4, raw_here_max_bytes=0)
+        held = [measure(model, windows[5].snapshot(), windows[5])[0]]
+        assert _scratch_files(dask_cluster) > 0
+        dropped, after = threading.Event(), threading.Event()
+
+        def drop() -> None:
+            held.clear()  # the last reference: finalised here, on the loop's thread
+            dropped.set()
+
+        own.loop.add_callback(drop)
+        assert dropped.wait(30)
+        own.loop.add_callback(after.set)
+        assert after.wait(30), "the client's event loop is blocked"
+        _wait_for_scratch_files(dask_cluster, 0)
+        assert _scratch_files(dask_cluster) == 0
+    finally:
+        own.close(timeout=5)
 
 
 def test_reading_values_of_a_worker_that_left_raises_a_clear_error(dask_cluster, sample_windows):

@@ -33,6 +33,7 @@ alerted accounts' raw values, :class:`WorkerFeatureRows`), a few pages of each f
 from __future__ import annotations
 
 import operator
+import threading
 import uuid
 import weakref
 from collections.abc import Sequence
@@ -104,6 +105,16 @@ def _remove_scratch(paths: Sequence[str]) -> None:
         Path(path).unlink(missing_ok=True)
 
 
+def _release_scratch_soon(client: Any, paths: dict[str, list[str]]) -> None:
+    """:func:`_release_scratch` on a thread of its own. This is the values' finalizer, and
+    the garbage collector may run it on any thread, an event-loop thread included: on the
+    client's own, a call that waits for the scheduler fails (and the files would stay); on
+    the one running an in-process scheduler, it would wait for that scheduler for ever."""
+    threading.Thread(
+        target=_release_scratch, args=(client, paths), name="rolewatch-scratch", daemon=True
+    ).start()
+
+
 def _release_scratch(client: Any, paths: dict[str, list[str]]) -> None:
     """Ask each worker to delete its scratch files (a worker that is gone took its local
     directory with it)."""
@@ -152,7 +163,7 @@ class WorkerFeatureRows:
             for scratch in piece:
                 if scratch.path:
                     files.setdefault(scratch.worker, []).append(scratch.path)
-        weakref.finalize(self, _release_scratch, client, files)
+        weakref.finalize(self, _release_scratch_soon, client, files)
 
     @property
     def nbytes(self) -> int:
