@@ -149,10 +149,9 @@ def _baseline_rows(
     context: AlertContext, past: PastWindowFacts, wanted: np.ndarray
 ) -> dict[int, tuple[np.ndarray, dict[str, float]]]:
     """:func:`_baseline_features` of the accounts ``wanted`` whose baseline is ``past``."""
-    kept = (
-        None if context.recent is None else context.recent.find(past, context.model.recipe.version)
-    )
-    if kept is not None:
+    recent = context.recent
+    kept = None if recent is None else recent.find(past, context.model.recipe.version)
+    if recent is not None and kept is not None:
         try:
             return _rows_of(context, *kept, wanted)
         except Exception as error:  # noqa: BLE001 - kept values are a cache: recompute
@@ -160,7 +159,7 @@ def _baseline_rows(
                 "the kept features of the baseline window could not be read; computing them again",
                 extra={"fields": {"window": past.ref and past.ref.end, "error": repr(error)}},
             )
-            context.recent.forget()  # type: ignore[union-attr]
+            recent.forget()
     measured = _recomputed_features(context, past)
     return {} if measured is None else _rows_of(context, *measured, wanted)
 

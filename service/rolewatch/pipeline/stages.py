@@ -11,9 +11,10 @@ import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 
-# The stages of a close, in the order they are shown: read the window's events and history,
-# the snapshot and its ReFeX features, tie cells against the known pairs, memberships
-# against the frozen basis, each account's baseline and novelty history, communities and the
+# The stages of a close, in the order they are shown: read the window's events and the
+# known pairs, the snapshot and its ReFeX features, tie cells against the known pairs,
+# memberships against the frozen basis, each account's baseline and novelty history (the
+# earlier windows read one at a time from the store, folded in as read), communities and the
 # bridging z-score, the shift scores, the alerts' evidence, and the write transaction. (A
 # close runs the baselines and the bridging z-score before the features, so that it can let
 # the tie graph go early, and waits for the communities last.)
