@@ -6,11 +6,9 @@ fixtures/sample, invented data; numbers within 1e-9 relative, docs/scale.md)."""
 
 from __future__ import annotations
 
-import json
 import logging
 
 import pytest
-import sqlalchemy as sa
 
 from rolewatch.pipeline import closer
 from rolewatch.pipeline.closer import close_due_windows
@@ -19,10 +17,9 @@ from rolewatch.scale import dispatch
 from rolewatch.scale.features import WorkerFeatureRows, _remove_scratch
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
-from rolewatch.store.schema import alerts
 
 from .conftest import NOW, sample_events, sample_settings
-from .test_dask_equivalence import _assert_close_documents
+from .test_dask_equivalence import _alert_evidence, _assert_close_documents
 
 
 class _Noting(RecentFeatures):
@@ -68,20 +65,9 @@ def _evidence_of_closes(dask_cluster, tmp_path, compute: str, recent: RecentFeat
     try:
         ingest(engine, settings, sample_events(), NOW)
         close_due_windows(engine, settings, now_us=NOW, drain=True)
-        with engine.connect() as connection:
-            rows = connection.execute(
-                sa.select(alerts.c.account, alerts.c.window_end_us, alerts.c.evidence).order_by(
-                    alerts.c.window_end_us, alerts.c.account
-                )
-            ).all()
+        return _alert_evidence(engine)
     finally:
         engine.dispose()
-    found = []
-    for account, end, evidence in rows:
-        document = json.loads(evidence)
-        document["window"].pop("id")
-        found.append((account, end, document))
-    return found
 
 
 def _assert_same_evidence(ours, local) -> None:
