@@ -14,9 +14,12 @@ import pytest
 
 
 def assert_same_closes(left: dict, right: dict) -> None:
-    """Same windows, accounts, statuses, roles and alerts; mixtures and scores within
-    1e-9 (both stored from float64 computations whose sums may run in another order)."""
+    """Same windows, accounts, statuses, roles, activity and tie cells, known pairs and
+    alerts; mixtures and scores within 1e-9 (both stored from float64 computations whose
+    sums may run in another order)."""
     assert left["windows"] == right["windows"]
+    assert left["counts"] == right["counts"]
+    assert left["pairs"] == right["pairs"]
     assert len(left["memberships"]) == len(right["memberships"])
     for ours, theirs in zip(left["memberships"], right["memberships"], strict=True):
         end, account, mixture, score, status, dominant = ours

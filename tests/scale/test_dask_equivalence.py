@@ -23,10 +23,7 @@ from rolewatch.pipeline import closer
 from rolewatch.pipeline.closer import close_due_windows
 from rolewatch.pipeline.compute import measure_locally
 from rolewatch.pipeline.loading import PastWindowFacts, interned
-from rolewatch.pipeline.model import fit_model
-from rolewatch.pipeline.offline import split_windows
 from rolewatch.pipeline.recent import RecentFeatures
-from rolewatch.pipeline.windows import WindowGeometry
 from rolewatch.scale import dispatch
 from rolewatch.scale import features as dask_features
 from rolewatch.scale.dispatch import DaskMeasure
@@ -39,31 +36,11 @@ from rolewatch.scale.features import (
 from rolewatch.scale.graph import build_graph, scatter_events, triangle_table
 from rolewatch.store.alerts import WindowRef
 from rolewatch.store.db import open_store
-from rolewatch.store.events import ingest, parse_time_us
+from rolewatch.store.events import ingest
 from rolewatch.store.schema import alerts
 
 from .conftest import NOW, sample_events, sample_settings, written
 from .helpers import assert_same_closes, scheduler_transitions
-
-
-@pytest.fixture(scope="module")
-def sample_windows(tmp_path_factory):
-    events = sample_events()
-    settings = sample_settings(tmp_path_factory.mktemp("model") / "unused.db")
-    time_us = np.array([parse_time_us(e["time"]) for e in events])
-    columns = {
-        "event_id": np.array([e["id"] for e in events], dtype=object),
-        "actor": np.array([e["actor"] for e in events], dtype=object),
-        "target": np.array([e["target"] for e in events], dtype=object),
-        "weight": np.array([float(e.get("weight", 1.0)) for e in events]),
-    }
-    windows = [
-        interned(*(values[rows] for values in columns.values()))
-        for _start, _end, rows in split_windows(time_us, WindowGeometry.from_settings(settings))
-    ]
-    model = fit_model(settings, [w.snapshot() for w in windows[: settings.training_windows]])
-    return model, windows
-
 
 COUNTS = {
     "in_degree",
@@ -364,18 +341,18 @@ def test_baseline_windows_measured_on_the_cluster_give_the_local_evidence(
     # values left on the workers, the evidence reads the alerted accounts' rows from there.
     measured: list[int] = []
     left: list[bool] = []
-    cluster_measure = DaskMeasure.__call__
+    cluster_measure = DaskMeasure._measure  # the window's own and its baselines' measures
 
-    def counting(self, model, snapshot, events):
+    def counting(self, model, snapshot, events, known):
         measured.append(snapshot.n_nodes)
-        table, members = cluster_measure(self, model, snapshot, events)
+        table, members, ties = cluster_measure(self, model, snapshot, events, known)
         left.append(isinstance(table.raw, WorkerFeatureRows))
-        return table, members
+        return table, members, ties
 
     if raw_on_workers:
         monkeypatch.setattr(dispatch, "RAW_HERE_MAX_BYTES", 0)
 
-    monkeypatch.setattr(DaskMeasure, "__call__", counting)
+    monkeypatch.setattr(DaskMeasure, "_measure", counting)
     monkeypatch.setattr(closer, "_recent_features", lambda _engine: RecentFeatures(max_bytes=0))
     evidence, closed = {}, {}
     for compute in ("local", "dask"):

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
+from typing import Protocol, runtime_checkable
 
 import numpy as np
 import scipy.sparse as sp
@@ -38,8 +39,10 @@ from rolewatch.store.memberships import MIXTURE_DECIMALS, MembershipColumns
 
 __all__ = [
     "REVIEW_NOTICE",
+    "Measured",
     "PastWindow",
     "ScoreInputs",
+    "TieMeasure",
     "WindowRef",
     "WindowResult",
     "as_stored",
@@ -56,6 +59,23 @@ EventsOf = Callable[[WindowRef], WindowEvents | None]
 # A window's feature table and memberships against the frozen model, from its snapshot and
 # events: in this process by default; rolewatch.scale.dispatch picks a Dask cluster instead.
 Measure = Callable[[FrozenModel, Snapshot, WindowEvents], tuple[FeatureTable, Memberships]]
+# A window's feature table, memberships and tie cells.
+Measured = tuple[FeatureTable, Memberships, TieCounts]
+
+
+@runtime_checkable
+class TieMeasure(Protocol):
+    """A :data:`Measure` that also counts the window's tie cells where it computes the
+    features (a cluster: one partitioned graph serves both, and the known-pair history is
+    looked up there)."""
+
+    def __call__(
+        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
+    ) -> tuple[FeatureTable, Memberships]: ...
+
+    def with_ties(
+        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents, known: KnownPairs
+    ) -> Measured: ...
 
 
 def measure_locally(
@@ -237,7 +257,8 @@ def compute_window(
         Collects the seconds of each stage (features, ties, memberships, history, bridging,
         scoring, evidence).
     measure
-        Computes the feature table and memberships (:func:`measure_locally` by default).
+        Computes the feature table and memberships (:func:`measure_locally` by default); a
+        :class:`TieMeasure` counts the tie cells too (their seconds then count as features).
     recent
         Keeps this window's features for the next window's alerts, and gives an earlier
         window's when it holds them (instead of ``events_of`` and a recomputation).
@@ -249,11 +270,15 @@ def compute_window(
     clock = clock if clock is not None else StageClock()
     with clock.stage("features"):
         snapshot = current.snapshot()
-    with clock.stage("ties"):
-        counts = tie_counts(snapshot, known)
-        activity = _activity(snapshot, counts)
+    counts = None
+    if snapshot.n_nodes == 0 or not isinstance(measure, TieMeasure):
+        with clock.stage("ties"):
+            counts = tie_counts(snapshot, known)
     if snapshot.n_nodes == 0:
-        return _empty_result(snapshot, activity, len(model.basis.role_ids), past, counts)
+        assert counts is not None
+        return _empty_result(
+            snapshot, _activity(snapshot, counts), len(model.basis.role_ids), past, counts
+        )
     policy = policy_from_settings(settings)
     with clock.stage("bridging"):
         graph = undirected_ties(snapshot.counts)
@@ -269,9 +294,18 @@ def compute_window(
     with clock.stage("bridging"):
         bridging = _bridging(graph, history, policy)
     del graph
-    step = _Step(model, settings, policy, snapshot, counts, activity, clock, measure, recent)
+    step = _Step(model, settings, policy, snapshot, clock, measure, recent)
     return _measure(
-        step, current, known, communities, window, raise_alerts, events_of, history, bridging
+        step,
+        current,
+        known,
+        counts,
+        communities,
+        window,
+        raise_alerts,
+        events_of,
+        history,
+        bridging,
     )
 
 
@@ -296,8 +330,6 @@ class _Step:
     settings: Settings
     policy: ShiftPolicy
     snapshot: Snapshot
-    counts: TieCounts
-    activity: Activity
     clock: StageClock
     measure: Measure
     recent: RecentFeatures | None
@@ -316,6 +348,7 @@ def _measure(
     step: _Step,
     current: WindowEvents,
     known: KnownPairs,
+    counts: TieCounts | None,
     communities: CommunityJob,
     window: WindowRef,
     raise_alerts: bool,
@@ -323,20 +356,14 @@ def _measure(
     history: AccountHistory,
     bridging: np.ndarray | None,
 ) -> WindowResult:
-    """Features to alerts, once the snapshot, tie cells, baselines and bridging are there."""
+    """Features to alerts, once the snapshot, baselines and bridging are there (and the
+    tie cells, unless ``counts`` is None: the measure counts them with the features)."""
     model, policy, snapshot, clock = step.model, step.policy, step.snapshot, step.clock
-    if step.measure is measure_locally:
-        with clock.stage("features"):
-            table = model.recipe.transform(snapshot)
-        with clock.stage("memberships"):
-            members = model.basis.memberships(table)
-    else:  # on a cluster both come back together; their seconds count as features
-        with clock.stage("features"):
-            table, members = step.measure(model, snapshot, current)
+    table, members, counts = _features(step, current, known, counts)
+    with clock.stage("ties"):
+        activity = _activity(snapshot, counts)
     with clock.stage("scoring"):
-        inputs = _score_inputs(
-            model, members, step.activity, step.counts, history, policy, bridging
-        )
+        inputs = _score_inputs(model, members, activity, counts, history, policy, bridging)
         scores = inputs.score(policy)
     alerts: list[NewAlert] = []
     if raise_alerts and np.any(scores.alert):
@@ -355,8 +382,8 @@ def _measure(
             table=table,
             mixture=members.mixture,
             scores=scores,
-            activity=step.activity,
-            ties=step.counts.cells,
+            activity=activity,
+            ties=counts.cells,
             history=history,
             known=known,
             events_of=events_of,
@@ -374,13 +401,34 @@ def _measure(
         snapshot,
         members,
         scores,
-        step.activity,
+        activity,
         alerts,
         history,
-        step.counts,
+        counts,
         community,
         inputs,
     )
+
+
+def _features(
+    step: _Step, current: WindowEvents, known: KnownPairs, counts: TieCounts | None
+) -> Measured:
+    """The window's feature table and memberships, and its tie cells (``counts``, or
+    counted by the measure with the features when None)."""
+    model, snapshot, clock = step.model, step.snapshot, step.clock
+    if counts is None:  # on a cluster all come back together; their seconds count as features
+        assert isinstance(step.measure, TieMeasure)
+        with clock.stage("features"):
+            return step.measure.with_ties(model, snapshot, current, known)
+    if step.measure is measure_locally:
+        with clock.stage("features"):
+            table = model.recipe.transform(snapshot)
+        with clock.stage("memberships"):
+            members = model.basis.memberships(table)
+    else:
+        with clock.stage("features"):
+            table, members = step.measure(model, snapshot, current)
+    return table, members, counts
 
 
 def _activity(snapshot: Snapshot, counts: TieCounts) -> Activity:

@@ -17,9 +17,12 @@ from typing import Any
 from rolewatch.config import Settings
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.features.recipe import FeatureTable
+from rolewatch.engine.pairs import KnownPairs
 from rolewatch.engine.snapshot import Snapshot
+from rolewatch.engine.ties import TieCounts, tie_counts
 from rolewatch.pipeline.compute import (
     Measure,
+    Measured,
     WindowResult,
     measure_locally,
     membership_columns,
@@ -126,12 +129,14 @@ def _lost_data_errors() -> tuple[type[BaseException], ...]:
 
 class DaskMeasure:
     """Computes a window's feature table and memberships on a Dask cluster
-    (:func:`rolewatch.pipeline.compute.measure_locally` is the in-process equivalent).
+    (:func:`rolewatch.pipeline.compute.measure_locally` is the in-process equivalent), and
+    with :meth:`with_ties` its tie cells too (:mod:`rolewatch.scale.ties`; in-process:
+    :func:`rolewatch.engine.ties.tie_counts`).
 
     A worker that dies mid-computation loses its intermediate tables (Dask recomputes them
-    on the other workers) and the window's event chunks this process scattered to it (which
-    Dask cannot recompute: the computation's futures are cancelled). The computation is then
-    started again from the events, up to ``attempts`` times in all.
+    on the other workers) and the window's event chunks and known-pair ranges this process
+    scattered to it (which Dask cannot recompute: the computation's futures are cancelled).
+    The computation is then started again from the events, up to ``attempts`` times in all.
     """
 
     def __init__(
@@ -163,10 +168,32 @@ class DaskMeasure:
     ) -> tuple[FeatureTable, Memberships]:
         if snapshot.n_nodes == 0:
             return measure_locally(model, snapshot, events)
+        table, members, _ties = self._measure(model, snapshot, events, None)
+        return table, members
+
+    def with_ties(
+        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents, known: KnownPairs
+    ) -> Measured:
+        """The feature table, memberships and the tie cells against ``known``, all counted
+        on the cluster from the same partitioned graph."""
+        if snapshot.n_nodes == 0:
+            table, members = measure_locally(model, snapshot, events)
+            return table, members, tie_counts(snapshot, known)
+        table, members, ties = self._measure(model, snapshot, events, known)
+        assert ties is not None
+        return table, members, ties
+
+    def _measure(
+        self,
+        model: FrozenModel,
+        snapshot: Snapshot,
+        events: WindowEvents,
+        known: KnownPairs | None,
+    ) -> tuple[FeatureTable, Memberships, TieCounts | None]:
         lost = _lost_data_errors()
         for attempt in range(1, self.attempts + 1):
             try:
-                return self._measure_once(model, snapshot, events)
+                return self._measure_once(model, snapshot, events, known)
             except lost as error:
                 log.warning(
                     "the Dask cluster lost the window's data; computing it again",
@@ -181,12 +208,17 @@ class DaskMeasure:
         )
 
     def _measure_once(
-        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
-    ) -> tuple[FeatureTable, Memberships]:
+        self,
+        model: FrozenModel,
+        snapshot: Snapshot,
+        events: WindowEvents,
+        known: KnownPairs | None,
+    ) -> tuple[FeatureTable, Memberships, TieCounts | None]:
         from distributed import wait
 
         from rolewatch.scale.features import measure_window
         from rolewatch.scale.graph import build_graph, scatter_events
+        from rolewatch.scale.ties import count_ties
 
         actor, target = events.rows_in(snapshot)
         scattered, n = scatter_events(
@@ -209,9 +241,13 @@ class DaskMeasure:
             # this process cannot be recomputed).
             del scattered
             held = built
+            # counted beside the features: the cluster works on both at once
+            pending = None if known is None else count_ties(graph, snapshot.node_keys, known)
+            held += [] if pending is None else pending.futures
             measured = measure_window(
                 graph, model.recipe, model.basis, raw_here_max_bytes=self.raw_here_max_bytes
             )
+            ties = None if pending is None else pending.result()
         except BaseException:
             # Free the window's data on the workers now: the error's traceback would keep
             # their futures alive until collected. Not after success: the raw values left
@@ -226,7 +262,7 @@ class DaskMeasure:
             recipe_version=model.recipe.version,
             triangles=measured.triangles,
         )
-        return table, measured.members
+        return table, measured.members, ties
 
 
 def measure_for(settings: Settings) -> Measure:

@@ -1,0 +1,209 @@
+"""A window's tie cells counted on the Dask cluster, partition by partition, against a
+known-pair history split by key range across the workers.
+
+The quantities are those of :func:`rolewatch.engine.ties.tie_counts` (each account's
+distinct counterparts by direction, known or new to it; its counterparts in either
+direction and the new ones among them; the keys of the window's first-seen pairs), computed
+without the window's pairs or the whole history in one process:
+
+* each partition's block (:class:`rolewatch.scale.graph_steps.Block`) lists its accounts'
+  neighbours once (``all``), so the key of every pair it touches is made where the block
+  lives, from its own accounts' keys and its neighbours' keys fetched from their owners
+  (:func:`rolewatch.engine.pairs.pair_keys`: the same keys the local engine makes);
+* the history (:class:`rolewatch.engine.pairs.KnownPairs`, sorted keys) is cut into as many
+  contiguous key ranges as there are partitions, each holding about the same number of
+  keys, and each range is one value on the cluster; a partition sends each range only the
+  keys that fall in it and gets back which of them are known (a binary search there), so
+  no worker holds more of the history than its ranges;
+* a pair whose two accounts live in different partitions is looked up by both (each needs
+  its own account's cells); the window's new pairs are collected per key range, where
+  both copies meet and one is kept, so the ranges' sorted parts laid end to end are the
+  local engine's ``new_pairs``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from rolewatch.engine.pairs import KnownPairs, pair_keys
+from rolewatch.engine.sorting import unique_sorted
+from rolewatch.engine.ties import TieCounts
+from rolewatch.scale import graph_steps as steps
+from rolewatch.scale.graph import WindowGraph
+from rolewatch.scale.partitions import Partitioned, fetch
+
+__all__ = ["KnownRanges", "PendingTies", "count_ties", "known_ranges"]
+
+
+@dataclass(frozen=True)
+class KnownRanges:
+    """The known-pair history on the cluster: ``chunks[k]`` holds the sorted keys ``starts
+    [k - 1] <= key < starts[k]`` (the first range from the lowest key, the last to the
+    highest)."""
+
+    chunks: tuple[Any, ...]
+    starts: np.ndarray
+
+    @property
+    def ranges(self) -> int:
+        return len(self.chunks)
+
+
+def known_ranges(client: Any, known: KnownPairs, ranges: int) -> KnownRanges:
+    """Send ``known`` to the workers cut into at most ``ranges`` key ranges of about equal
+    size (an empty history is one empty range)."""
+    keys = known.keys
+    count = max(1, min(ranges, keys.size))
+    cuts = np.linspace(0, keys.size, count + 1).astype(np.int64)
+    # keys are unique, so the cut keys increase and each range starts at its first key
+    starts = keys[cuts[1:-1]].astype(np.uint64)
+    parts = [keys[lo:hi] for lo, hi in zip(cuts[:-1], cuts[1:], strict=True)]
+    return KnownRanges(tuple(client.scatter(parts, hash=False)), starts)
+
+
+def _take_keys(keys: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    return keys[rows]
+
+
+@dataclass(frozen=True, eq=False)
+class _Queries:
+    """A block's pair keys (one per entry of ``block.all``) grouped by key range:
+    ``order`` lists the entries range by range, ``cuts[k]:cuts[k + 1]`` of it are range
+    ``k``'s."""
+
+    order: np.ndarray
+    cuts: np.ndarray
+
+    def __sizeof__(self) -> int:
+        return 256 + self.order.nbytes + self.cuts.nbytes
+
+
+def _pair_queries(
+    block: steps.Block, own: np.ndarray, starts: np.ndarray, *fetched: np.ndarray
+) -> tuple:
+    """``(queries, keys of range 0, keys of range 1, ...)`` for one block."""
+    neighbour_keys = np.concatenate(fetched) if fetched else np.zeros(0, dtype=np.uint64)
+    entry_row = np.repeat(np.arange(block.rows), np.diff(block.all.indptr))
+    keys = pair_keys(own[entry_row], neighbour_keys[block.all.indices])
+    in_range = np.searchsorted(starts, keys, side="right")
+    order = np.argsort(in_range, kind="stable")
+    cuts = np.searchsorted(in_range[order], np.arange(starts.size + 2))
+    grouped = keys[order]
+    pieces = [grouped[cuts[k] : cuts[k + 1]] for k in range(starts.size + 1)]
+    return (_Queries(order, cuts), *pieces)
+
+
+def _known_among(chunk: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    """Which of ``keys`` one range of the history holds."""
+    return KnownPairs(chunk).contains(keys)
+
+
+def _tie_cells(block: steps.Block, queries: _Queries, *known: np.ndarray) -> tuple:
+    """``(cells, counterparts, new_counterparts)`` of a block's accounts, from the
+    known flags of its entries' keys (one array per range, in the queries' order)."""
+    entry_known = np.zeros(block.all.nnz, dtype=bool)
+    entry_known[queries.order] = np.concatenate(known) if known else np.zeros(0, dtype=bool)
+    shape = block.all.shape
+    known_entries = sp.csr_matrix(
+        (entry_known.astype(np.int8), block.all.indices, block.all.indptr), shape=shape
+    )
+
+    def known_per_row(pattern: sp.csr_matrix) -> np.ndarray:
+        ones = sp.csr_matrix(
+            (np.ones(pattern.nnz, dtype=np.int8), pattern.indices, pattern.indptr), shape=shape
+        )
+        return np.asarray(ones.multiply(known_entries).sum(axis=1), dtype=np.int64).ravel()
+
+    out_degree = np.diff(block.out.indptr).astype(np.int64)
+    in_degree = np.diff(block.inn.indptr).astype(np.int64)
+    counterparts = np.diff(block.all.indptr).astype(np.int64)
+    out_known, in_known = known_per_row(block.out), known_per_row(block.inn)
+    cells = np.column_stack([out_known, out_degree - out_known, in_known, in_degree - in_known])
+    row_of_entry = np.repeat(np.arange(block.rows), np.diff(block.all.indptr))
+    known_counterparts = np.bincount(row_of_entry[entry_known], minlength=block.rows)
+    return cells, counterparts, counterparts - known_counterparts
+
+
+def _new_in_range(*pieces: np.ndarray) -> np.ndarray:
+    """The distinct unknown keys of one range, sorted: ``pieces`` alternate every block's
+    keys in the range and their known flags."""
+    unknown = [keys[~flags] for keys, flags in zip(pieces[::2], pieces[1::2], strict=True)]
+    if not unknown:
+        return np.zeros(0, dtype=np.uint64)
+    return unique_sorted(np.concatenate(unknown).astype(np.uint64))
+
+
+@dataclass(frozen=True)
+class PendingTies:
+    """Tie cells being counted on the cluster: every partition's cells and every key
+    range's new pairs (futures); :meth:`result` gathers them."""
+
+    cells: tuple[Any, ...]
+    new_pairs: tuple[Any, ...]
+    client: Any
+
+    @property
+    def futures(self) -> list[Any]:
+        return [*self.cells, *self.new_pairs]
+
+    def result(self) -> TieCounts:
+        """The window's :class:`~rolewatch.engine.ties.TieCounts`, in code order."""
+        parts = self.client.gather(list(self.cells))
+        new_pairs = self.client.gather(list(self.new_pairs))
+        return TieCounts(
+            cells=np.concatenate([cells for cells, _c, _n in parts]).astype(np.int64),
+            counterparts=np.concatenate([c for _cells, c, _n in parts]).astype(np.int64),
+            new_counterparts=np.concatenate([n for _cells, _c, n in parts]).astype(np.int64),
+            new_pairs=np.concatenate(new_pairs).astype(np.uint64),
+        )
+
+
+def count_ties(graph: WindowGraph, node_keys: np.ndarray, known: KnownPairs) -> PendingTies:
+    """Start counting the tie cells of the window on ``graph`` (its accounts' keys
+    ``node_keys`` in code order) against ``known``; returns at once."""
+    blocks = graph.blocks
+    client, bounds, p = blocks.client, blocks.bounds, blocks.partitions
+    keys = Partitioned(
+        client,
+        tuple(client.scatter([node_keys[bounds[j] : bounds[j + 1]] for j in range(p)], hash=False)),
+        bounds,
+    )
+    history = known_ranges(client, known, p)
+    fetched = fetch(keys, graph.wanted, _take_keys)
+    r = history.ranges
+    queries = [
+        client.submit(
+            _pair_queries,
+            blocks.futures[i],
+            keys.futures[i],
+            history.starts,
+            *fetched[i],
+            pure=False,
+        )
+        for i in range(p)
+    ]
+    pieces = Partitioned(client, tuple(queries), bounds).pieces(r + 1)
+    flags = [
+        [
+            client.submit(_known_among, history.chunks[k], pieces[i][k + 1], pure=False)
+            for k in range(r)
+        ]
+        for i in range(p)
+    ]
+    cells = tuple(
+        client.submit(_tie_cells, blocks.futures[i], pieces[i][0], *flags[i], pure=False)
+        for i in range(p)
+    )
+    new_pairs = tuple(
+        client.submit(
+            _new_in_range,
+            *[item for i in range(p) for item in (pieces[i][k + 1], flags[i][k])],
+            pure=False,
+        )
+        for k in range(r)
+    )
+    return PendingTies(cells, new_pairs, client)
