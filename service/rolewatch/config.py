@@ -371,7 +371,9 @@ class Settings(BaseSettings):
     output_archive: str | None = Field(
         None,
         description="Path or URL of a Parquet dataset, partitioned by window, that every "
-        "closed window's memberships and scores are also written to (empty: none).",
+        "closed window's memberships and scores, and its first-seen account pairs, are also "
+        "written to (empty: none); a Dask close then reads the known pairs there on the "
+        "workers.",
     )
     store_memberships_max_accounts: int = Field(
         0,

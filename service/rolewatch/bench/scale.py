@@ -22,6 +22,17 @@ engine (as after a restart: the evidence measures the first window again on the 
 Reported: both closes' seconds, stages, alerts, peak resident memory of this process (and
 what it held as each close began) and of each worker. ``--quick`` uses 300,000 events.
 
+``close-dask-history``: a window closed on Dask against a long known-pair history, as a
+service running for months has one. The store gets a training window (closed locally), a
+window of 1,000,000 events, and, before the training window, 40 closed windows of old
+events whose first-seen pairs make the history (100,000,000 keys in all, drawn at random:
+8 bytes each in the store, 800 MB together). The window is closed twice on copies of one
+store, side by side: with the history read from the store by the closing process and sent
+to the workers by key range (no ``output_archive``), and with ``output_archive`` set, every
+window's pairs already in its Parquet file, so the workers read the history there.
+Reported: both closes' seconds, stages, alerts and the peak resident memory of this process
+and of each worker. ``--quick`` uses 100,000 events and 1,000,000 keys.
+
 ``archive-history-52``: 52 windows of 200,000 accounts each (10,400,000 rows, 8 roles)
 written as per-window Parquet outputs (:mod:`rolewatch.scale.outputs`); the first read builds
 the per-window row-group index (``open_ms``); then 200 reads of one random account's
@@ -52,6 +63,7 @@ CASES = (
     "close-dask-30m",
     "close-dask-scaling",
     "close-dask-next",
+    "close-dask-history",
     "archive-history-52",
 )
 SIZES = {
@@ -59,13 +71,18 @@ SIZES = {
     "close-dask-30m": [30_000_000],
     "close-dask-scaling": [1_000_000, 3_000_000, 10_000_000, 30_000_000],
     "close-dask-next": [4_000_000],
+    "close-dask-history": [1_000_000],
 }
 QUICK = {
     "close-dask-10m": [300_000],
     "close-dask-30m": [300_000],
     "close-dask-scaling": [100_000, 300_000],
     "close-dask-next": [300_000],
+    "close-dask-history": [100_000],
 }
+# The known pairs of the close-dask-history store: 40 old windows' first-seen pairs.
+HISTORY_KEYS = 100_000_000
+HISTORY_WINDOWS = 40
 WORKER_MEMORY = "3GB"
 LOAD_CHUNK = 2_000_000  # events generated and stored at once (smaller windows: one draw)
 # The in-process close's peak memory per million events of this generator's windows: 7.3-7.5
@@ -266,6 +283,86 @@ def _next_window(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
     }
 
 
+def _old_windows_with_pairs(path: Path, keys: int, now_us: int) -> None:
+    """:data:`HISTORY_WINDOWS` closed windows before the training window, each with its share
+    of ``keys`` random first-seen pair keys (no memberships: they are not in the look-back)."""
+    from rolewatch.store.db import open_store, write_transaction
+    from rolewatch.store.pairs import insert_window_pairs
+    from rolewatch.store.windows import insert_window
+
+    rng = np.random.default_rng(2)
+    engine = open_store(_settings(path))
+    share = keys // HISTORY_WINDOWS
+    for window in range(HISTORY_WINDOWS):
+        end_us = FIRST_END - (HISTORY_WINDOWS + 1 - window) * WEEK_US
+        part = rng.integers(0, 2**64 - 1, share, dtype=np.uint64, endpoint=True)
+        with write_transaction(engine) as connection:
+            window_id = insert_window(
+                connection,
+                start_us=end_us - WEEK_US,
+                end_us=end_us,
+                closed_us=now_us,
+                event_count=share,
+                training=True,
+                measures=None,
+            )
+            insert_window_pairs(connection, window_id, part)
+    engine.dispose()
+
+
+def _write_pair_files(path: Path, outputs: str, before_end_us: int) -> None:
+    """Every earlier window's pairs in its Parquet file, as the closes would have left them."""
+    from rolewatch.scale.pair_outputs import write_window_pairs
+    from rolewatch.store.db import open_store
+    from rolewatch.store.pairs import known_pair_windows, window_pair_keys
+
+    engine = open_store(_settings(path))
+    with engine.connect() as connection:
+        for end in known_pair_windows(connection, before_end_us=before_end_us):
+            write_window_pairs(outputs, end, window_pair_keys(connection, end_us=end))
+    engine.dispose()
+
+
+def _long_history(events: int, client: Any, scheduler: str, tmp: Path, keys: int) -> dict:
+    """One window closed on Dask against a long known-pair history, read by this process
+    from the store and read by the workers from the outputs (see the module's docstring)."""
+    from rolewatch.pipeline.closer import close_window
+    from rolewatch.store.db import open_store
+
+    rng = np.random.default_rng(0)
+    accounts = max(20_000, events // 6)
+    stored, archived = tmp / "history-store.db", tmp / "history-outputs.db"
+    open_store(_settings(stored)).dispose()
+    _load_in_chunks(stored, rng, events // 5, accounts, FIRST_END - WEEK_US, "t-")
+    _load_in_chunks(stored, rng, events, accounts, FIRST_END, "w-")
+    now_us = FIRST_END + 4 * WEEK_US
+    _old_windows_with_pairs(stored, keys, now_us)
+    training = open_store(_settings(stored))
+    close_window(training, _settings(stored), FIRST_END, now_us=now_us)
+    training.dispose()
+    shutil.copyfile(stored, archived)
+    outputs = str(tmp / "history-outputs")
+    end_us = FIRST_END + WEEK_US
+    _write_pair_files(archived, outputs, end_us)
+    pids = list(client.run(os.getpid).values())
+    from_store = _close(stored, now_us, pids, compute="dask", dask_scheduler=scheduler)
+    from_outputs = _close(
+        archived, now_us, pids, compute="dask", dask_scheduler=scheduler, output_archive=outputs
+    )
+    stored.unlink()
+    archived.unlink()
+    shutil.rmtree(outputs)
+    return {
+        "events": events,
+        "known_pairs": keys,
+        "accounts": from_store["accounts"],
+        "seconds_ratio": round(from_store["seconds"] / max(from_outputs["seconds"], 1e-9), 2),
+        "same_alert_count": from_store["alerts"] == from_outputs["alerts"],
+        **{f"store_{key}": value for key, value in from_store.items()},
+        **{f"outputs_{key}": value for key, value in from_outputs.items()},
+    }
+
+
 def _local_would_not_fit(events: int) -> str | None:
     """Why the in-process close of ``events`` events is not run here, or None if it fits."""
     import psutil
@@ -382,9 +479,15 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
     client = Client(cluster)
     try:
         with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
-            measure = _next_window if case == "close-dask-next" else _one_size
             for events in (QUICK if quick else SIZES)[case]:
-                measured = measure(events, client, cluster.scheduler_address, Path(tmp))
+                address, folder = cluster.scheduler_address, Path(tmp)
+                if case == "close-dask-next":
+                    measured = _next_window(events, client, address, folder)
+                elif case == "close-dask-history":
+                    keys = 1_000_000 if quick else HISTORY_KEYS
+                    measured = _long_history(events, client, address, folder, keys)
+                else:
+                    measured = _one_size(events, client, address, folder)
                 yield {
                     "case": case,
                     "cores": os.cpu_count(),

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from rolewatch.engine.pairs import KnownPairs, pair_keys
+from rolewatch.engine.pairs import PairHistory, pair_keys
 from rolewatch.engine.snapshot import Snapshot
 
 
@@ -109,7 +109,7 @@ class Counterparts:
         The current window.
     previous : Snapshot, optional
         The window before, to flag counterparts that are new.
-    known : KnownPairs, optional
+    known : PairHistory, optional
         The known-pair history; when given, a counterpart is new when the pair never
         interacted in any earlier window (``previous`` is then not needed).
     """
@@ -119,7 +119,7 @@ class Counterparts:
         snapshot: Snapshot,
         previous: Snapshot | None = None,
         *,
-        known: KnownPairs | None = None,
+        known: PairHistory | None = None,
     ) -> None:
         self.snapshot = snapshot
         self.previous = previous

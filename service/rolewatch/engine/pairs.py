@@ -27,12 +27,13 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from dataclasses import dataclass
+from typing import Protocol
 
 import numpy as np
 
 from rolewatch.engine.sorting import unique_sorted
 
-__all__ = ["FNV_OFFSET", "FNV_PRIME", "KnownPairs", "account_keys", "pair_keys"]
+__all__ = ["FNV_OFFSET", "FNV_PRIME", "KnownPairs", "PairHistory", "account_keys", "pair_keys"]
 
 FNV_OFFSET = np.uint64(0xCBF29CE484222325)
 FNV_PRIME = np.uint64(0x100000001B3)
@@ -109,6 +110,16 @@ def pair_keys(first, second) -> np.ndarray:
     a, b = _finalise(a), _finalise(b)
     low, high = np.minimum(a, b), np.maximum(a, b)
     return _finalise(low * _GOLDEN + high)
+
+
+class PairHistory(Protocol):
+    """What the tie counts and the evidence ask of a known-pair history: which keys it
+    holds, and which of a window's keys it does not (:class:`KnownPairs` in memory; a Dask
+    close may keep it on its workers, :mod:`rolewatch.scale.ties`)."""
+
+    def contains(self, keys) -> np.ndarray: ...
+
+    def new_keys(self, keys) -> np.ndarray: ...
 
 
 @dataclass(frozen=True)

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from rolewatch.engine.pairs import KnownPairs, pair_keys
+from rolewatch.engine.pairs import PairHistory, pair_keys
 from rolewatch.engine.snapshot import Snapshot
 
 __all__ = ["TIE_CELLS", "TieCounts", "tie_counts"]
@@ -54,15 +54,16 @@ class TieCounts:
     new_pairs: np.ndarray
 
 
-def tie_counts(snapshot: Snapshot, known: KnownPairs) -> TieCounts:
+def tie_counts(snapshot: Snapshot, known: PairHistory) -> TieCounts:
     """Count every node's counterparts by direction and by novelty against ``known``.
 
     Parameters
     ----------
     snapshot : Snapshot
         The window.
-    known : KnownPairs
-        Every pair that interacted in an earlier window (empty: every counterpart is new).
+    known : PairHistory
+        Every pair that interacted in an earlier window (:class:`~rolewatch.engine.pairs.
+        KnownPairs`; empty: every counterpart is new).
 
     Returns
     -------

@@ -44,7 +44,12 @@ from rolewatch.pipeline.stages import StageClock
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
 from rolewatch.review.intake import file_window_alerts, screen_alerts
 from rolewatch.scale import source as event_source
-from rolewatch.scale.dispatch import keeps_memberships, measure_for, record_outputs
+from rolewatch.scale.dispatch import (
+    keeps_memberships,
+    known_pairs_for,
+    measure_for,
+    record_outputs,
+)
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.alerts import Alert, insert_alerts
 from rolewatch.store.db import (
@@ -55,7 +60,7 @@ from rolewatch.store.db import (
     write_transaction,
 )
 from rolewatch.store.memberships import insert_memberships
-from rolewatch.store.pairs import insert_window_pairs, known_pair_parts
+from rolewatch.store.pairs import insert_window_pairs
 from rolewatch.store.windows import WindowMeasures, WindowSpan
 
 log = logging.getLogger("rolewatch.pipeline")
@@ -228,7 +233,8 @@ def _close_once(
                 limit=lookback_windows(settings),
                 outputs=settings.output_archive,
             )
-            known = KnownPairs.from_parts(known_pair_parts(connection, before_end_us=end_us))
+            measure = measure_for(settings)
+            known = known_pairs_for(connection, settings, measure, before_end_us=end_us)
         current = finish_events()
     if model is None:
         return _close_training(engine, settings, geometry, end_us, now_us, current, training, clock)
@@ -244,7 +250,7 @@ def _close_once(
         raise_alerts=True,
         events_of=event_source.stored_events_reader(engine, settings),
         clock=clock,
-        measure=measure_for(settings),
+        measure=measure,
         recent=_recent_features(engine),
     )
     seconds = time.perf_counter() - started

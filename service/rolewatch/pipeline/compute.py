@@ -23,7 +23,7 @@ from rolewatch.engine.activity import Activity
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.bridging import bridging_zscore, undirected_ties
 from rolewatch.engine.features.recipe import FeatureTable
-from rolewatch.engine.pairs import KnownPairs
+from rolewatch.engine.pairs import PairHistory
 from rolewatch.engine.scoring import ShiftPolicy, TieEvidence, WindowScores, score_window
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.engine.ties import TieCounts, tie_counts
@@ -74,7 +74,7 @@ class TieMeasure(Protocol):
     ) -> tuple[FeatureTable, Memberships]: ...
 
     def with_ties(
-        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents, known: KnownPairs
+        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents, known: PairHistory
     ) -> Measured: ...
 
 
@@ -225,7 +225,7 @@ def compute_window(
     settings: Settings,
     current: WindowEvents,
     past: Sequence[PastWindow],
-    known: KnownPairs,
+    known: PairHistory,
     *,
     window: WindowRef,
     raise_alerts: bool,
@@ -347,7 +347,7 @@ def _features_by(step: _Step) -> Callable[[Snapshot, WindowEvents], FeatureTable
 def _measure(
     step: _Step,
     current: WindowEvents,
-    known: KnownPairs,
+    known: PairHistory,
     counts: TieCounts | None,
     communities: CommunityJob,
     window: WindowRef,
@@ -411,7 +411,7 @@ def _measure(
 
 
 def _features(
-    step: _Step, current: WindowEvents, known: KnownPairs, counts: TieCounts | None
+    step: _Step, current: WindowEvents, known: PairHistory, counts: TieCounts | None
 ) -> Measured:
     """The window's feature table and memberships, and its tie cells (``counts``, or
     counted by the measure with the features when None)."""

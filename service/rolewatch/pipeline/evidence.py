@@ -20,7 +20,7 @@ import numpy as np
 from rolewatch.engine.activity import Activity, Counterparts
 from rolewatch.engine.features import FeatureTable
 from rolewatch.engine.headline import LEADS, change_text, measure_moves
-from rolewatch.engine.pairs import KnownPairs
+from rolewatch.engine.pairs import PairHistory
 from rolewatch.engine.readable import MEASURE_LABELS, MEASURES, feature_label, readable_measures
 from rolewatch.engine.scoring import ShiftPolicy, WindowScores
 from rolewatch.engine.shift import feature_moves
@@ -65,7 +65,7 @@ class AlertContext:
     activity: Activity
     ties: np.ndarray  # n x 4 tie cells of this window
     history: AccountHistory
-    known: KnownPairs
+    known: PairHistory
     events_of: Callable[[WindowRef], WindowEvents | None] | None
     recent: RecentFeatures | None = None
     # Features of a baseline window recomputed from its events: None transforms it here;

@@ -17,7 +17,9 @@ from contextlib import contextmanager
 # earlier windows read one at a time from the store, folded in as read), communities and the
 # bridging z-score, the shift scores, the alerts' evidence, and the write transaction. (A
 # close runs the baselines and the bridging z-score before the features, so that it can let
-# the tie graph go early, and waits for the communities last.)
+# the tie graph go early, and waits for the communities last. With compute = "dask" the
+# cluster computes the features, memberships and tie cells together: their seconds count as
+# features, and the ties stage holds only the activity counts.)
 STAGES = (
     "load",
     "features",

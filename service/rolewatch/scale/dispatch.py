@@ -14,10 +14,12 @@ import time
 from dataclasses import fields
 from typing import Any
 
+from sqlalchemy.engine import Connection
+
 from rolewatch.config import Settings
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.features.recipe import FeatureTable
-from rolewatch.engine.pairs import KnownPairs
+from rolewatch.engine.pairs import KnownPairs, PairHistory
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.engine.ties import TieCounts, tie_counts
 from rolewatch.pipeline.compute import (
@@ -30,6 +32,7 @@ from rolewatch.pipeline.compute import (
 from rolewatch.pipeline.loading import WindowEvents
 from rolewatch.pipeline.model import FrozenModel
 from rolewatch.pipeline.recent import MAX_KEPT_BYTES
+from rolewatch.store.pairs import known_pair_parts, known_pair_windows, window_pair_keys
 
 __all__ = [
     "ACCOUNTS_PER_PARTITION",
@@ -41,6 +44,7 @@ __all__ = [
     "close_clients",
     "dask_client",
     "keeps_memberships",
+    "known_pairs_for",
     "measure_for",
     "record_outputs",
 ]
@@ -172,7 +176,7 @@ class DaskMeasure:
         return table, members
 
     def with_ties(
-        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents, known: KnownPairs
+        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents, known: PairHistory
     ) -> Measured:
         """The feature table, memberships and the tie cells against ``known``, all counted
         on the cluster from the same partitioned graph."""
@@ -188,7 +192,7 @@ class DaskMeasure:
         model: FrozenModel,
         snapshot: Snapshot,
         events: WindowEvents,
-        known: KnownPairs | None,
+        known: PairHistory | None,
     ) -> tuple[FeatureTable, Memberships, TieCounts | None]:
         lost = _lost_data_errors()
         for attempt in range(1, self.attempts + 1):
@@ -212,7 +216,7 @@ class DaskMeasure:
         model: FrozenModel,
         snapshot: Snapshot,
         events: WindowEvents,
-        known: KnownPairs | None,
+        known: PairHistory | None,
     ) -> tuple[FeatureTable, Memberships, TieCounts | None]:
         from distributed import wait
 
@@ -278,6 +282,36 @@ def measure_for(settings: Settings) -> Measure:
     )
 
 
+def known_pairs_for(
+    connection: Connection, settings: Settings, measure: Measure, *, before_end_us: int
+) -> PairHistory:
+    """The known-pair history a close before ``before_end_us`` counts its ties against.
+
+    A Dask close with ``output_archive`` set leaves it in the outputs, every earlier window's
+    first-seen pairs in its own file, and the workers read it one key range each
+    (:class:`rolewatch.scale.ties.ArchivedPairs`): the closing process never holds it. An
+    earlier window without its file there (closed before the outputs kept pairs, or before
+    ``output_archive`` was set) has it written first from the store, one window at a time.
+    Any other close reads the whole history from the store.
+    """
+    outputs = settings.output_archive
+    if not (outputs and isinstance(measure, DaskMeasure)):
+        return KnownPairs.from_parts(known_pair_parts(connection, before_end_us=before_end_us))
+    from rolewatch.scale.pair_outputs import pair_windows, write_window_pairs
+    from rolewatch.scale.ties import ArchivedPairs
+
+    ends = known_pair_windows(connection, before_end_us=before_end_us)
+    missing = sorted(set(ends) - pair_windows(outputs, ends))
+    for end in missing:
+        write_window_pairs(outputs, end, window_pair_keys(connection, end_us=end))
+    if missing:
+        log.info(
+            "wrote the known pairs of earlier windows to the outputs",
+            extra={"fields": {"windows": len(missing)}},
+        )
+    return ArchivedPairs(measure.client, outputs, ends)
+
+
 def keeps_memberships(settings: Settings, accounts: int) -> bool:
     """Whether a window of ``accounts`` accounts keeps its memberships in the SQL store
     (otherwise only ``output_archive`` holds them)."""
@@ -288,11 +322,15 @@ def keeps_memberships(settings: Settings, accounts: int) -> bool:
 def record_outputs(
     settings: Settings, end_us: int, model: FrozenModel, result: WindowResult
 ) -> None:
-    """Write a measured window's memberships and scores to ``output_archive`` (if set)."""
+    """Write a measured window's memberships and scores, and its first-seen pairs, to
+    ``output_archive`` (if set)."""
     if not settings.output_archive:
         return
     from rolewatch.scale.outputs import WindowOutputs, write_window_outputs
+    from rolewatch.scale.pair_outputs import write_window_pairs
 
+    if result.new_pairs is not None:
+        write_window_pairs(settings.output_archive, end_us, result.new_pairs)
     columns = membership_columns(model, result)
     write_window_outputs(
         settings.output_archive,

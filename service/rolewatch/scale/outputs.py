@@ -3,9 +3,11 @@
 Layout::
 
     OUTPUTS/window_end_us=1768435200000000/memberships.parquet
+    OUTPUTS/window_end_us=1768435200000000/pairs.parquet
 
-One file per window, rows sorted by account and written in row groups with min/max
-statistics, so reading one account's history touches one row group per window
+One memberships file per window (its first-seen pairs beside it:
+:mod:`rolewatch.scale.pair_outputs`), rows sorted by account and written in row groups with
+min/max statistics, so reading one account's history touches one row group per window
 (:mod:`rolewatch.scale.output_reads`). Columns: ``account`` (string), ``status`` (string),
 ``dominant_role`` (int64, -1 when none), ``score`` (float64, null when unscored),
 ``events_out``, ``events_in`` (int64), ``basis_version`` (string), ``mixture`` (map from role
@@ -28,6 +30,7 @@ import pyarrow.fs
 import pyarrow.parquet as pq
 
 __all__ = [
+    "MEMBERSHIPS_FILE",
     "OUTPUT_SCHEMA",
     "PARTITION",
     "TIE_COLUMNS",
@@ -37,6 +40,7 @@ __all__ = [
 ]
 
 PARTITION = "window_end_us"
+MEMBERSHIPS_FILE = "memberships.parquet"
 # Small row groups: one account's read decodes one group per window (1,024 rows; 16,384
 # made the 52-window history read 5-10 times slower in rolewatch bench archive-history-52).
 ROW_GROUP = 1_024
@@ -138,13 +142,16 @@ def _table(outputs: WindowOutputs) -> pa.Table:
     )
 
 
-def window_file(path: str, window_end_us: int) -> tuple[pa.fs.FileSystem, str]:
-    """The filesystem holding ``path`` and the path of one window's file within it."""
+def window_file(
+    path: str, window_end_us: int, name: str = MEMBERSHIPS_FILE
+) -> tuple[pa.fs.FileSystem, str]:
+    """The filesystem holding ``path`` and the path of one window's file ``name`` (its
+    memberships by default) within it."""
     folder = f"{path.rstrip('/')}/{PARTITION}={int(window_end_us)}"
     if "://" in folder:
         filesystem, root = pa.fs.FileSystem.from_uri(folder)
-        return filesystem, f"{root}/memberships.parquet"
-    return pa.fs.LocalFileSystem(), f"{folder}/memberships.parquet"
+        return filesystem, f"{root}/{name}"
+    return pa.fs.LocalFileSystem(), f"{folder}/{name}"
 
 
 def write_window_outputs(path: str, window_end_us: int, outputs: WindowOutputs) -> int:

@@ -10,9 +10,12 @@ without the window's pairs or the whole history in one process:
   neighbours once (``all``), so the key of every pair it touches is made where the block
   lives, from its own accounts' keys and its neighbours' keys fetched from their owners
   (:func:`rolewatch.engine.pairs.pair_keys`: the same keys the local engine makes);
-* the history (:class:`rolewatch.engine.pairs.KnownPairs`, sorted keys) is cut into as many
-  contiguous key ranges as there are partitions, each holding about the same number of
-  keys, and each range is one value on the cluster; a partition sends each range only the
+* the history is cut into as many contiguous key ranges as there are partitions, each range
+  one value on the cluster: a :class:`rolewatch.engine.pairs.KnownPairs` the closing process
+  holds is sent cut into ranges of about the same number of keys; an :class:`ArchivedPairs`
+  (every earlier window's first-seen pairs in the Parquet outputs) is read on the workers,
+  each range from the row groups of every window's file that reach into it, so the closing
+  process never holds the history; a partition sends each range only the
   keys that fall in it and gets back which of them are known (a binary search there), so
   no worker holds more of the history than its ranges;
 * a pair whose two accounts live in different partitions is looked up by both (each needs
@@ -29,14 +32,14 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-from rolewatch.engine.pairs import KnownPairs, pair_keys
+from rolewatch.engine.pairs import KnownPairs, PairHistory, pair_keys
 from rolewatch.engine.sorting import unique_sorted
 from rolewatch.engine.ties import TieCounts
 from rolewatch.scale import graph_steps as steps
 from rolewatch.scale.graph import WindowGraph
 from rolewatch.scale.partitions import Partitioned, fetch
 
-__all__ = ["KnownRanges", "PendingTies", "count_ties", "known_ranges"]
+__all__ = ["ArchivedPairs", "KnownRanges", "PendingTies", "count_ties", "known_ranges"]
 
 
 @dataclass(frozen=True)
@@ -53,9 +56,14 @@ class KnownRanges:
         return len(self.chunks)
 
 
-def known_ranges(client: Any, known: KnownPairs, ranges: int) -> KnownRanges:
-    """Send ``known`` to the workers cut into at most ``ranges`` key ranges of about equal
-    size (an empty history is one empty range)."""
+def known_ranges(client: Any, known: PairHistory, ranges: int) -> KnownRanges:
+    """The history ``known`` on the workers in at most ``ranges`` key ranges: a
+    :class:`KnownPairs` is sent cut into ranges of about equal size (an empty history is one
+    empty range); a :class:`ArchivedPairs` is read there."""
+    if isinstance(known, ArchivedPairs):
+        return known.ranges_on(client, ranges)
+    if not isinstance(known, KnownPairs):
+        raise TypeError(f"cannot send a {type(known).__name__} to the workers")
     keys = known.keys
     count = max(1, min(ranges, keys.size))
     cuts = np.linspace(0, keys.size, count + 1).astype(np.int64)
@@ -63,6 +71,68 @@ def known_ranges(client: Any, known: KnownPairs, ranges: int) -> KnownRanges:
     starts = keys[cuts[1:-1]].astype(np.uint64)
     parts = [keys[lo:hi] for lo, hi in zip(cuts[:-1], cuts[1:], strict=True)]
     return KnownRanges(tuple(client.scatter(parts, hash=False)), starts)
+
+
+class ArchivedPairs:
+    """A known-pair history the closing process never holds: the first-seen pairs of the
+    windows ``window_ends``, kept in the Parquet outputs at ``outputs``
+    (:mod:`rolewatch.scale.pair_outputs`), read on the workers one key range each.
+
+    The ranges split the 64-bit key space evenly (pair keys are hashes, so each holds about
+    the same share of the history); they are read when first asked for and stay on the
+    cluster while this object lives, so the tie counts and the evidence's look-ups
+    (:meth:`contains`) share one read.
+    """
+
+    def __init__(self, client: Any, outputs: str, window_ends: list[int]) -> None:
+        self.client = client
+        self.outputs = outputs
+        self.window_ends = list(window_ends)
+        self._ranges: KnownRanges | None = None
+
+    def ranges_on(self, client: Any, ranges: int) -> KnownRanges:
+        """The history read on the workers in ``ranges`` key ranges (the first call's
+        count; later calls reuse them)."""
+        if self._ranges is None:
+            from rolewatch.scale.pair_outputs import pair_range
+
+            count = max(1, ranges)
+            step = 2**64 // count
+            bounds = [k * step for k in range(1, count)]
+            lows, highs = [0, *bounds], [*bounds, None]
+            chunks = tuple(
+                client.submit(pair_range, self.outputs, self.window_ends, low, high, pure=False)
+                for low, high in zip(lows, highs, strict=True)
+            )
+            self._ranges = KnownRanges(chunks, np.array(bounds, dtype=np.uint64))
+        return self._ranges
+
+    def contains(self, keys) -> np.ndarray:
+        """Which of ``keys`` the history holds (looked up on the workers)."""
+        query = np.asarray(keys, dtype=np.uint64).reshape(-1)
+        if query.size == 0 or not self.window_ends:
+            return np.zeros(query.size, dtype=bool)
+        history = self.ranges_on(self.client, self._default_ranges())
+        in_range = np.searchsorted(history.starts, query, side="right")
+        found = np.zeros(query.size, dtype=bool)
+        asked = [np.flatnonzero(in_range == k) for k in range(history.ranges)]
+        answers = self.client.gather(
+            [
+                self.client.submit(_known_among, history.chunks[k], query[rows], pure=False)
+                for k, rows in enumerate(asked)
+            ]
+        )
+        for rows, answer in zip(asked, answers, strict=True):
+            found[rows] = answer
+        return found
+
+    def new_keys(self, keys) -> np.ndarray:
+        """The distinct keys among ``keys`` that the history does not hold, sorted."""
+        distinct = unique_sorted(np.asarray(keys, dtype=np.uint64))
+        return distinct[~self.contains(distinct)]
+
+    def _default_ranges(self) -> int:
+        return max(1, len(self.client.scheduler_info().get("workers", {})))
 
 
 def _take_keys(keys: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -162,7 +232,7 @@ class PendingTies:
         )
 
 
-def count_ties(graph: WindowGraph, node_keys: np.ndarray, known: KnownPairs) -> PendingTies:
+def count_ties(graph: WindowGraph, node_keys: np.ndarray, known: PairHistory) -> PendingTies:
     """Start counting the tie cells of the window on ``graph`` (its accounts' keys
     ``node_keys`` in code order) against ``known``; returns at once."""
     blocks = graph.blocks

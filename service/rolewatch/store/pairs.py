@@ -36,3 +36,27 @@ def known_pair_parts(connection: Connection, *, before_end_us: int) -> list[np.n
         .order_by(windows.c.end_us)
     ).scalars()
     return [np.frombuffer(bytes(blob), dtype=_WIRE).astype(np.uint64) for blob in rows]
+
+
+def known_pair_windows(connection: Connection, *, before_end_us: int) -> list[int]:
+    """The ends of the windows before ``before_end_us`` that stored their new pairs, oldest
+    first."""
+    rows = connection.execute(
+        sa.select(windows.c.end_us)
+        .join(pair_history, windows.c.id == pair_history.c.window_id)
+        .where(windows.c.end_us < before_end_us)
+        .order_by(windows.c.end_us)
+    ).scalars()
+    return [int(end) for end in rows]
+
+
+def window_pair_keys(connection: Connection, *, end_us: int) -> np.ndarray:
+    """The stored new pairs of the window ending at ``end_us`` (none when it stored none)."""
+    blob = connection.execute(
+        sa.select(pair_history.c.pairs)
+        .join(windows, windows.c.id == pair_history.c.window_id)
+        .where(windows.c.end_us == end_us)
+    ).scalar()
+    if blob is None:
+        return np.zeros(0, dtype=np.uint64)
+    return np.frombuffer(bytes(blob), dtype=_WIRE).astype(np.uint64)
