@@ -336,10 +336,10 @@ def _long_history(events: int, client: Any, scheduler: str, tmp: Path, keys: int
     _load_in_chunks(stored, rng, events // 5, accounts, FIRST_END - WEEK_US, "t-")
     _load_in_chunks(stored, rng, events, accounts, FIRST_END, "w-")
     now_us = FIRST_END + 4 * WEEK_US
-    _old_windows_with_pairs(stored, keys, now_us)
     training = open_store(_settings(stored))
     close_window(training, _settings(stored), FIRST_END, now_us=now_us)
     training.dispose()
+    _old_windows_with_pairs(stored, keys, now_us)  # after the fit, which would take them in
     shutil.copyfile(stored, archived)
     outputs = str(tmp / "history-outputs")
     end_us = FIRST_END + WEEK_US
