@@ -36,28 +36,30 @@ def _first_five_weeks(settings) -> list[dict]:
     return [event for event in events if parse_time_us(event["time"]) < last_end]
 
 
-def _holder_of_scattered_data(dask_scheduler) -> str | None:
-    """A worker holding data scattered by a client (keys ``tuple-<token>``, Dask's naming
-    for a scattered tuple: the close scatters each chunk of events as a tuple of arrays),
-    or None while there is none."""
+def _holder_of_scattered_data(dask_scheduler, prefix: str = "tuple-") -> str | None:
+    """A worker holding a value whose key starts with ``prefix``, or None while there is
+    none: by default data scattered by a client (keys ``tuple-<token>``, Dask's naming for a
+    scattered tuple: the close scatters each chunk of events as a tuple of arrays)."""
     for task in dask_scheduler.tasks.values():
-        if str(task.key).startswith("tuple-") and task.who_has:
+        if str(task.key).startswith(prefix) and task.who_has:
             return next(iter(task.who_has)).address
     return None
 
 
 class _KillOnScatter(threading.Thread):
-    """Kills (SIGKILL) the first worker seen holding a window's scattered events."""
+    """Kills (SIGKILL) the first worker seen holding a window's scattered events (or, with
+    ``prefix``, another value of the close)."""
 
-    def __init__(self, client) -> None:
+    def __init__(self, client, prefix: str = "tuple-") -> None:
         super().__init__(daemon=True)
         self.client = client
+        self.prefix = prefix
         self.killed: list[int] = []
         self.stop = threading.Event()
 
     def run(self) -> None:
         while not self.stop.is_set():
-            address = self.client.run_on_scheduler(_holder_of_scattered_data)
+            address = self.client.run_on_scheduler(_holder_of_scattered_data, prefix=self.prefix)
             if address is not None:
                 pid = self.client.run(os.getpid)[address]
                 os.kill(pid, signal.SIGKILL)
@@ -87,8 +89,9 @@ def cluster():
     cluster.close()
 
 
-def _close_killing_a_worker(engine, settings, client):
-    """Close the due windows while a worker holding the window's events is killed."""
+def _close_killing_a_worker(engine, settings, client, prefix: str = "tuple-"):
+    """Close the due windows while a worker holding the window's events (or the value
+    ``prefix`` names) is killed."""
     client.wait_for_workers(2, timeout=60)
     deadline = time.monotonic() + 30
     # The chunks of an earlier failed attempt are released asynchronously: wait, so the
@@ -96,7 +99,7 @@ def _close_killing_a_worker(engine, settings, client):
     while client.run_on_scheduler(_holder_of_scattered_data) is not None:
         assert time.monotonic() < deadline, "an earlier close's events stayed on the cluster"
         time.sleep(0.05)
-    killer = _KillOnScatter(client)
+    killer = _KillOnScatter(client, prefix)
     killer.start()
     try:
         return close_due_windows(engine, settings, now_us=NOW, drain=True)
@@ -141,4 +144,30 @@ def test_a_worker_killed_mid_close_leaves_the_window_closed_once(
     assert len(ends) == len(set(ends)) == 5
     keys = [(row[0], row[1]) for row in results["dask"]["memberships"]]
     assert len(keys) == len(set(keys))
+    assert_same_closes(results["dask"], results["local"])
+
+
+def test_a_worker_killed_holding_a_range_of_the_archived_history_leaves_the_same_close(
+    cluster, tmp_path
+):
+    # The known pairs read on the workers from the outputs (a range is a task result, read
+    # from the pair files): losing a worker that holds one closes the window all the same.
+    results = {}
+    for compute in ("local", "dask"):
+        settings = sample_settings(
+            tmp_path / f"{compute}.db",
+            compute=compute,
+            dask_scheduler=cluster.scheduler.address,
+            dask_partitions=4,
+            output_archive=str(tmp_path / f"{compute}-outputs"),
+        )
+        engine = open_store(settings)
+        ingest(engine, settings, _first_five_weeks(settings), NOW)
+        if compute == "local":
+            close_due_windows(engine, settings, now_us=NOW, drain=True)
+        else:
+            closed = _close_killing_a_worker(engine, settings, cluster, prefix="pair_range-")
+            assert [summary.training for summary in closed].count(False) == 1
+        results[compute] = written(engine)
+        engine.dispose()
     assert_same_closes(results["dask"], results["local"])

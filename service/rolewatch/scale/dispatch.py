@@ -203,6 +203,7 @@ class DaskMeasure:
                     "the Dask cluster lost the window's data; computing it again",
                     extra={"fields": {"attempt": attempt, "error": repr(error)[:300]}},
                 )
+                _forget_history_read(known)
                 if attempt < self.attempts:
                     time.sleep(RETRY_PAUSE_S * attempt)
         raise DaskDataLost(
@@ -267,6 +268,15 @@ class DaskMeasure:
             triangles=measured.triangles,
         )
         return table, measured.members, ties
+
+
+def _forget_history_read(known: PairHistory | None) -> None:
+    """Let the next attempt read an archived history again: the ranges read by this one
+    may be gone with a worker, or forgotten by a scheduler that lost this client."""
+    from rolewatch.scale.ties import ArchivedPairs
+
+    if isinstance(known, ArchivedPairs):
+        known.forget_ranges()
 
 
 def measure_for(settings: Settings) -> Measure:

@@ -107,11 +107,28 @@ class ArchivedPairs:
             self._ranges = KnownRanges(chunks, np.array(bounds, dtype=np.uint64))
         return self._ranges
 
+    def forget_ranges(self) -> None:
+        """Drop the ranges read so far (the next use reads them again)."""
+        self._ranges = None
+
     def contains(self, keys) -> np.ndarray:
-        """Which of ``keys`` the history holds (looked up on the workers)."""
+        """Which of ``keys`` the history holds (looked up on the workers; read again once
+        if the cluster lost the ranges read before)."""
+        from concurrent.futures import CancelledError
+
+        from distributed.comm.core import CommClosedError
+        from distributed.scheduler import KilledWorker
+
         query = np.asarray(keys, dtype=np.uint64).reshape(-1)
         if query.size == 0 or not self.window_ends:
             return np.zeros(query.size, dtype=bool)
+        try:
+            return self._look_up(query)
+        except (CancelledError, KilledWorker, CommClosedError):
+            self.forget_ranges()
+            return self._look_up(query)
+
+    def _look_up(self, query: np.ndarray) -> np.ndarray:
         history = self.ranges_on(self.client, self._default_ranges())
         in_range = np.searchsorted(history.starts, query, side="right")
         found = np.zeros(query.size, dtype=bool)
