@@ -144,14 +144,20 @@ def _closed(dask_cluster, tmp_path, compute: str, outputs: str | None):
     return engine, settings
 
 
-@pytest.mark.slow
-def test_a_dask_close_with_outputs_never_reads_the_history_whole(
-    dask_cluster, tmp_path, monkeypatch
-):
+def _closed_locally(dask_cluster, tmp_path) -> dict:
+    """What the local engine writes for the whole sample: the reference."""
     engine, settings = _closed(dask_cluster, tmp_path, "local", None)
     close_due_windows(engine, settings, now_us=NOW, drain=True)
     expected = written(engine)
     engine.dispose()
+    return expected
+
+
+@pytest.mark.slow
+def test_a_dask_close_with_outputs_never_reads_the_history_whole(
+    dask_cluster, tmp_path, monkeypatch
+):
+    expected = _closed_locally(dask_cluster, tmp_path)
 
     outputs = tmp_path / "outputs"
     engine, settings = _closed(dask_cluster, tmp_path, "dask", str(outputs))
@@ -181,10 +187,7 @@ def test_a_dask_close_with_outputs_never_reads_the_history_whole(
 def test_earlier_windows_without_their_pairs_file_have_it_written_from_the_store(
     dask_cluster, tmp_path, caplog
 ):
-    engine, settings = _closed(dask_cluster, tmp_path, "local", None)
-    close_due_windows(engine, settings, now_us=NOW, drain=True)
-    expected = written(engine)
-    engine.dispose()
+    expected = _closed_locally(dask_cluster, tmp_path)
 
     # the first five weeks closed on Dask before output_archive was set, the rest after
     outputs = tmp_path / "outputs"
