@@ -89,6 +89,20 @@ def cluster():
     cluster.close()
 
 
+def _five_weeks_stored(tmp_path, compute: str, client, **extra):
+    """A store of its own holding the sample's first five weeks, closed with ``compute``."""
+    settings = sample_settings(
+        tmp_path / f"{compute}.db",
+        compute=compute,
+        dask_scheduler=client.scheduler.address,
+        dask_partitions=4,
+        **extra,
+    )
+    engine = open_store(settings)
+    ingest(engine, settings, _first_five_weeks(settings), NOW)
+    return engine, settings
+
+
 def _close_killing_a_worker(engine, settings, client, prefix: str = "tuple-"):
     """Close the due windows while a worker holding the window's events (or the value
     ``prefix`` names) is killed."""
@@ -114,14 +128,7 @@ def test_a_worker_killed_mid_close_leaves_the_window_closed_once(
 ):
     results = {}
     for compute in ("local", "dask"):
-        settings = sample_settings(
-            tmp_path / f"{compute}.db",
-            compute=compute,
-            dask_scheduler=cluster.scheduler.address,
-            dask_partitions=4,
-        )
-        engine = open_store(settings)
-        ingest(engine, settings, _first_five_weeks(settings), NOW)
+        engine, settings = _five_weeks_stored(tmp_path, compute, cluster)
         if compute == "local":
             close_due_windows(engine, settings, now_us=NOW, drain=True)
         else:
@@ -154,15 +161,9 @@ def test_a_worker_killed_holding_a_range_of_the_archived_history_leaves_the_same
     # from the pair files): losing a worker that holds one closes the window all the same.
     results = {}
     for compute in ("local", "dask"):
-        settings = sample_settings(
-            tmp_path / f"{compute}.db",
-            compute=compute,
-            dask_scheduler=cluster.scheduler.address,
-            dask_partitions=4,
-            output_archive=str(tmp_path / f"{compute}-outputs"),
+        engine, settings = _five_weeks_stored(
+            tmp_path, compute, cluster, output_archive=str(tmp_path / f"{compute}-outputs")
         )
-        engine = open_store(settings)
-        ingest(engine, settings, _first_five_weeks(settings), NOW)
         if compute == "local":
             close_due_windows(engine, settings, now_us=NOW, drain=True)
         else:
