@@ -18,9 +18,14 @@ import pytest
 from rolewatch.engine.pairs import KnownPairs
 from rolewatch.engine.ties import tie_counts
 from rolewatch.pipeline.closer import close_due_windows
-from rolewatch.scale import dispatch, pair_outputs
+from rolewatch.scale import dispatch, held_pairs, pair_outputs
 from rolewatch.scale.graph import build_graph, scatter_events
-from rolewatch.scale.pair_outputs import pair_range, pair_windows, write_window_pairs
+from rolewatch.scale.pair_outputs import (
+    pair_range,
+    pair_windows,
+    with_window_pairs,
+    write_window_pairs,
+)
 from rolewatch.scale.ties import ArchivedPairs, count_ties
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest, parse_time_us
@@ -105,6 +110,63 @@ def test_archived_history_on_the_workers_answers_as_the_history_in_memory(dask_c
     np.testing.assert_array_equal(history.new_keys(query), known.new_keys(query))
     assert history.ranges_on(dask_cluster, 9) is ranges  # read once, shared
     assert history.contains(np.zeros(0, dtype=np.uint64)).size == 0
+
+
+def test_a_range_merged_with_newer_windows_equals_the_plain_union(archived):
+    outputs, known = archived
+    low, high = 2**62, 2**63 + 12345
+    older = pair_range(outputs, ENDS[:2], low, high)
+    merged = with_window_pairs(older, outputs, ENDS[2:], low, high)
+    # reference: numpy's union of the sorted sets, cut to the range
+    keys = known.keys
+    np.testing.assert_array_equal(merged, keys[(keys >= np.uint64(low)) & (keys < np.uint64(high))])
+    # a window merged in twice, and a merge into an empty range, keep each key once
+    np.testing.assert_array_equal(with_window_pairs(merged, outputs, ENDS[2:], low, high), merged)
+    empty = np.zeros(0, dtype=np.uint64)
+    np.testing.assert_array_equal(
+        with_window_pairs(empty, outputs, ENDS, low, high), pair_range(outputs, ENDS, low, high)
+    )
+
+
+def _gathered(client, history: ArchivedPairs, ranges: int) -> np.ndarray:
+    chunks = history.ranges_on(client, ranges).chunks
+    return np.concatenate(client.gather(list(chunks)))
+
+
+def test_the_next_close_reads_only_the_windows_closed_since(dask_cluster, archived, tmp_path):
+    outputs, known = archived
+    assert _gathered(dask_cluster, ArchivedPairs(dask_cluster, outputs, ENDS), 4).size == len(known)
+    newer = np.random.default_rng(5).integers(0, 2**64 - 1, 3_000, dtype=np.uint64, endpoint=True)
+    newer = newer[~known.contains(newer)]
+    write_window_pairs(outputs, 4_000, newer)
+    # the older windows' files gone: a whole read would fail, the kept ranges need none
+    for end in ENDS:
+        (tmp_path / "outputs" / f"window_end_us={end}" / "pairs.parquet").unlink()
+    history = ArchivedPairs(dask_cluster, outputs, [*ENDS, 4_000])
+    expected = known.with_keys(newer)
+    np.testing.assert_array_equal(_gathered(dask_cluster, history, 4), expected.keys)
+    query = np.concatenate([newer[:100], known.keys[:100], np.arange(100, dtype=np.uint64)])
+    np.testing.assert_array_equal(history.contains(query), expected.contains(query))
+    held_pairs.forget_held_pairs()
+
+
+def test_a_history_that_does_not_extend_the_kept_one_is_read_whole(dask_cluster, archived):
+    outputs, known = archived
+    parts = _random_parts()
+    _gathered(dask_cluster, ArchivedPairs(dask_cluster, outputs, ENDS), 4)
+    # an older window no longer asked for is not kept in the answer
+    later = ArchivedPairs(dask_cluster, outputs, ENDS[1:])
+    np.testing.assert_array_equal(
+        _gathered(dask_cluster, later, 4), KnownPairs.from_parts(parts[1:]).keys
+    )
+    # after the cluster lost data the ranges are forgotten: a rewritten file is read again
+    later.forget_ranges()
+    write_window_pairs(outputs, ENDS[1], parts[1][:10])
+    again = ArchivedPairs(dask_cluster, outputs, ENDS[1:])
+    np.testing.assert_array_equal(
+        _gathered(dask_cluster, again, 4), KnownPairs.from_parts([parts[1][:10], parts[2]]).keys
+    )
+    held_pairs.forget_held_pairs()
 
 
 def test_tie_cells_against_the_archived_history_equal_the_local_engine(

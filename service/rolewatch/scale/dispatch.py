@@ -105,6 +105,9 @@ def dask_client(scheduler: str | None) -> Any:
 
 def close_clients() -> None:
     """Close every client this process made (and the local cluster it started, if any)."""
+    from rolewatch.scale.held_pairs import forget_held_pairs
+
+    forget_held_pairs()  # its futures belong to a client closed here
     with _LOCK:
         for client in _CLIENTS.values():
             cluster = client.cluster

@@ -23,7 +23,14 @@ import pyarrow.parquet as pq
 
 from rolewatch.scale.outputs import window_file
 
-__all__ = ["PAIRS_FILE", "ROW_GROUP", "pair_range", "pair_windows", "write_window_pairs"]
+__all__ = [
+    "PAIRS_FILE",
+    "ROW_GROUP",
+    "pair_range",
+    "pair_windows",
+    "with_window_pairs",
+    "write_window_pairs",
+]
 
 PAIRS_FILE = "pairs.parquet"
 # 1 MB of keys a row group: a range read decodes at most two groups it does not need whole
@@ -93,3 +100,18 @@ def pair_range(path: str, window_ends: Iterable[int], low: int, high: int | None
     if merged.size < 2:
         return merged
     return merged[np.r_[True, merged[1:] != merged[:-1]]]
+
+
+def with_window_pairs(
+    keys: np.ndarray, path: str, window_ends: Iterable[int], low: int, high: int | None
+) -> np.ndarray:
+    """The sorted range ``keys`` with the pairs ``low <= key < high`` of the windows
+    ``window_ends`` merged in (each must have its file): the same range of the history
+    they make together, read from those windows' files only."""
+    added = pair_range(path, window_ends, low, high)
+    if added.size == 0 or keys.size == 0:
+        return added if keys.size == 0 else keys
+    # windows' first-seen pairs are disjoint; a key already there is kept once all the same
+    slots = np.searchsorted(keys, added)
+    fresh = added[(slots == keys.size) | (keys[np.minimum(slots, keys.size - 1)] != added)]
+    return np.insert(keys, np.searchsorted(keys, fresh), fresh)

@@ -15,7 +15,8 @@ without the window's pairs or the whole history in one process:
   holds is sent cut into ranges of about the same number of keys; an :class:`ArchivedPairs`
   (every earlier window's first-seen pairs in the Parquet outputs) is read on the workers,
   each range from the row groups of every window's file that reach into it, so the closing
-  process never holds the history; a partition sends each range only the
+  process never holds the history (and kept there for the next close, which adds only the
+  windows closed since: :mod:`rolewatch.scale.held_pairs`); a partition sends each range only the
   keys that fall in it and gets back which of them are known (a binary search there), so
   no worker holds more of the history than its ranges;
 * a pair whose two accounts live in different partitions is looked up by both (each needs
@@ -81,7 +82,8 @@ class ArchivedPairs:
     The ranges split the 64-bit key space evenly (pair keys are hashes, so each holds about
     the same share of the history); they are read when first asked for and stay on the
     cluster while this object lives, so the tie counts and the evidence's look-ups
-    (:meth:`contains`) share one read.
+    (:meth:`contains`) share one read, and after it for the next close, which reads only
+    the windows closed since (:mod:`rolewatch.scale.held_pairs`).
     """
 
     def __init__(self, client: Any, outputs: str, window_ends: list[int]) -> None:
@@ -91,25 +93,23 @@ class ArchivedPairs:
         self._ranges: KnownRanges | None = None
 
     def ranges_on(self, client: Any, ranges: int) -> KnownRanges:
-        """The history read on the workers in ``ranges`` key ranges (the first call's
-        count; later calls reuse them)."""
+        """The history on the workers in ``ranges`` key ranges (the first call's count;
+        later calls reuse them): the ranges the last close of this process read, extended
+        with the windows they lack, when it asked for an older part of the same history
+        (:mod:`rolewatch.scale.held_pairs`), else read whole."""
         if self._ranges is None:
-            from rolewatch.scale.pair_outputs import pair_range
+            from rolewatch.scale.held_pairs import held_ranges
 
-            count = max(1, ranges)
-            step = 2**64 // count
-            bounds = [k * step for k in range(1, count)]
-            lows, highs = [0, *bounds], [*bounds, None]
-            chunks = tuple(
-                client.submit(pair_range, self.outputs, self.window_ends, low, high, pure=False)
-                for low, high in zip(lows, highs, strict=True)
-            )
-            self._ranges = KnownRanges(chunks, np.array(bounds, dtype=np.uint64))
+            self._ranges = held_ranges(client, self.outputs, self.window_ends, max(1, ranges))
         return self._ranges
 
     def forget_ranges(self) -> None:
-        """Drop the ranges read so far (the next use reads them again)."""
+        """Drop the ranges read so far, and those kept for later closes (the next use
+        reads them again from the files)."""
+        from rolewatch.scale.held_pairs import forget_held_pairs
+
         self._ranges = None
+        forget_held_pairs()
 
     def contains(self, keys) -> np.ndarray:
         """Which of ``keys`` the history holds (looked up on the workers; read again once
