@@ -33,6 +33,15 @@ window's pairs already in its Parquet file, so the workers read the history ther
 Reported: both closes' seconds, stages, alerts and the peak resident memory of this process
 and of each worker. ``--quick`` uses 100,000 events and 1,000,000 keys.
 
+``close-dask-history-next``: the window after one closed on Dask against that history with
+``output_archive`` set, as a running service closes it: the same store with one more window
+of 1,000,000 events. The first window is closed by this process (its workers keep the
+history's key ranges, :mod:`rolewatch.scale.held_pairs`); the store and the outputs are
+copied; the second window is closed by this process, which adds only the first window's
+pairs to the kept ranges, then on the copies, whose other outputs path makes the workers
+read the whole history from every window's file (as after a restart). Reported as for
+``close-dask-history``. ``--quick`` uses 100,000 events and 1,000,000 keys.
+
 ``archive-history-52``: 52 windows of 200,000 accounts each (10,400,000 rows, 8 roles)
 written as per-window Parquet outputs (:mod:`rolewatch.scale.outputs`); the first read builds
 the per-window row-group index (``open_ms``); then 200 reads of one random account's
@@ -64,6 +73,7 @@ CASES = (
     "close-dask-scaling",
     "close-dask-next",
     "close-dask-history",
+    "close-dask-history-next",
     "archive-history-52",
 )
 SIZES = {
@@ -72,6 +82,7 @@ SIZES = {
     "close-dask-scaling": [1_000_000, 3_000_000, 10_000_000, 30_000_000],
     "close-dask-next": [4_000_000],
     "close-dask-history": [1_000_000],
+    "close-dask-history-next": [1_000_000],
 }
 QUICK = {
     "close-dask-10m": [300_000],
@@ -79,6 +90,7 @@ QUICK = {
     "close-dask-scaling": [100_000, 300_000],
     "close-dask-next": [300_000],
     "close-dask-history": [100_000],
+    "close-dask-history-next": [100_000],
 }
 # The known pairs of the close-dask-history store: 40 old windows' first-seen pairs.
 HISTORY_KEYS = 100_000_000
@@ -323,23 +335,34 @@ def _write_pair_files(path: Path, outputs: str, before_end_us: int) -> None:
     engine.dispose()
 
 
-def _long_history(events: int, client: Any, scheduler: str, tmp: Path, keys: int) -> dict:
-    """One window closed on Dask against a long known-pair history, read by this process
-    from the store and read by the workers from the outputs (see the module's docstring)."""
+def _history_store(path: Path, events: int, keys: int, windows: int) -> int:
+    """A store with a training window (closed, fitted), ``windows`` windows of ``events``
+    power-law events after it and :data:`HISTORY_WINDOWS` older closed windows holding
+    ``keys`` first-seen pairs; returns the ``now_us`` its closes take."""
     from rolewatch.pipeline.closer import close_window
     from rolewatch.store.db import open_store
 
     rng = np.random.default_rng(0)
     accounts = max(20_000, events // 6)
-    stored, archived = tmp / "history-store.db", tmp / "history-outputs.db"
-    open_store(_settings(stored)).dispose()
-    _load_in_chunks(stored, rng, events // 5, accounts, FIRST_END - WEEK_US, "t-")
-    _load_in_chunks(stored, rng, events, accounts, FIRST_END, "w-")
+    open_store(_settings(path)).dispose()
+    _load_in_chunks(path, rng, events // 5, accounts, FIRST_END - WEEK_US, "t-")
+    for window in range(windows):
+        start_us = FIRST_END + window * WEEK_US
+        prefix = "w-" if window == 0 else f"w{window}-"
+        _load_in_chunks(path, rng, events, accounts, start_us, prefix)
     now_us = FIRST_END + 4 * WEEK_US
-    training = open_store(_settings(stored))
-    close_window(training, _settings(stored), FIRST_END, now_us=now_us)
+    training = open_store(_settings(path))
+    close_window(training, _settings(path), FIRST_END, now_us=now_us)
     training.dispose()
-    _old_windows_with_pairs(stored, keys, now_us)  # after the fit, which would take them in
+    _old_windows_with_pairs(path, keys, now_us)  # after the fit, which would take them in
+    return now_us
+
+
+def _long_history(events: int, client: Any, scheduler: str, tmp: Path, keys: int) -> dict:
+    """One window closed on Dask against a long known-pair history, read by this process
+    from the store and read by the workers from the outputs (see the module's docstring)."""
+    stored, archived = tmp / "history-store.db", tmp / "history-outputs.db"
+    now_us = _history_store(stored, events, keys, windows=1)
     shutil.copyfile(stored, archived)
     outputs = str(tmp / "history-outputs")
     end_us = FIRST_END + WEEK_US
@@ -360,6 +383,41 @@ def _long_history(events: int, client: Any, scheduler: str, tmp: Path, keys: int
         "same_alert_count": from_store["alerts"] == from_outputs["alerts"],
         **{f"store_{key}": value for key, value in from_store.items()},
         **{f"outputs_{key}": value for key, value in from_outputs.items()},
+    }
+
+
+def _history_next(events: int, client: Any, scheduler: str, tmp: Path, keys: int) -> dict:
+    """The window after one closed against a long archived history: with the history's
+    ranges kept on the workers, and read whole (see the module's docstring)."""
+    from rolewatch.store.db import open_store
+
+    path, copy = tmp / "history-next.db", tmp / "history-next-restarted.db"
+    outputs, copied = tmp / "history-next-outputs", tmp / "history-next-outputs-restarted"
+    now_us = _history_store(path, events, keys, windows=2)
+    _write_pair_files(path, str(outputs), FIRST_END + WEEK_US)
+    pids = list(client.run(os.getpid).values())
+    common = dict(compute="dask", dask_scheduler=scheduler)
+    _close(path, now_us, pids, output_archive=str(outputs), **common)  # keeps the ranges
+    shutil.copyfile(path, copy)
+    shutil.copytree(outputs, copied)
+    next_end = FIRST_END + 2 * WEEK_US
+    results = []
+    for store, folder in ((path, outputs), (copy, copied)):
+        settings = _settings(store, output_archive=str(folder), **common)
+        engine = open_store(settings)
+        results.append(_timed_close(engine, settings, next_end, now_us, pids))
+        engine.dispose()
+        store.unlink()
+        shutil.rmtree(folder)
+    kept, again = results
+    return {
+        "events": events,
+        "known_pairs": keys,
+        "accounts": kept["accounts"],
+        "seconds_ratio": round(again["seconds"] / max(kept["seconds"], 1e-9), 2),
+        "same_alert_count": kept["alerts"] == again["alerts"],
+        **{f"kept_{key}": value for key, value in kept.items()},
+        **{f"read_whole_{key}": value for key, value in again.items()},
     }
 
 
@@ -483,9 +541,10 @@ def run(case: str, *, quick: bool = False) -> Iterator[dict]:
                 address, folder = cluster.scheduler_address, Path(tmp)
                 if case == "close-dask-next":
                     measured = _next_window(events, client, address, folder)
-                elif case == "close-dask-history":
+                elif case in ("close-dask-history", "close-dask-history-next"):
                     keys = 1_000_000 if quick else HISTORY_KEYS
-                    measured = _long_history(events, client, address, folder, keys)
+                    history = _long_history if case == "close-dask-history" else _history_next
+                    measured = history(events, client, address, folder, keys)
                 else:
                     measured = _one_size(events, client, address, folder)
                 yield {
