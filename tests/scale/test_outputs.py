@@ -15,7 +15,9 @@ import pytest
 import sqlalchemy as sa
 
 from rolewatch.pipeline.closer import close_due_windows
-from rolewatch.scale.output_reads import account_history
+from rolewatch.scale import output_reads
+from rolewatch.scale.output_reads import OutputIndex, account_history, archived_window_ends
+from rolewatch.scale.pair_outputs import write_window_pairs
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
 from rolewatch.store.schema import memberships, windows
@@ -66,3 +68,35 @@ def test_closed_windows_are_written_sorted_and_read_back_per_account(tmp_path):
         assert row["mixture"].keys() == shares.keys()
         for role, share in shares.items():
             assert row["mixture"][role] == pytest.approx(share, abs=1e-6)
+
+
+def test_a_folder_holding_only_pairs_is_not_a_window_of_the_history(tmp_path, monkeypatch):
+    outputs = tmp_path / "outputs"
+    settings = sample_settings(tmp_path / "store.db", output_archive=str(outputs))
+    engine = open_store(settings)
+    ingest(engine, settings, sample_events(), NOW)
+    close_due_windows(engine, settings, now_us=NOW, drain=True)
+    engine.dispose()
+    measured = archived_window_ends(str(outputs))
+    assert measured == sorted(
+        int(f.parent.name.split("=")[1])
+        for f in outputs.glob("window_end_us=*/memberships.parquet")
+    )
+    # an older window closed before the outputs were set: its pairs only (written at a Dask
+    # close), and a folder some other tool left without the partition's name
+    write_window_pairs(str(outputs), 1_000_000, [1, 2, 3])
+    (outputs / "notes").mkdir()
+    (outputs / "notes" / "memberships.parquet").write_bytes(b"")
+    assert archived_window_ends(str(outputs)) == measured
+    opened: list[int] = []
+    real_open = output_reads._open_window
+
+    def counted_open(path, end_us):
+        opened.append(end_us)
+        return real_open(path, end_us)
+
+    monkeypatch.setattr(output_reads, "_open_window", counted_open)
+    account = sample_events()[0]["actor"]
+    history = account_history(OutputIndex(str(outputs)), account)
+    assert history and 1_000_000 not in opened
+    assert sorted(opened) == measured

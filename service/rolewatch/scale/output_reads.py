@@ -23,7 +23,13 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from rolewatch.scale.outputs import OUTPUT_SCHEMA, PARTITION, TIE_COLUMNS, window_file
+from rolewatch.scale.outputs import (
+    MEMBERSHIPS_FILE,
+    OUTPUT_SCHEMA,
+    PARTITION,
+    TIE_COLUMNS,
+    window_file,
+)
 from rolewatch.store.memberships import MIXTURE_DECIMALS, StoredWindow
 
 __all__ = [
@@ -139,14 +145,19 @@ def output_index(path: str) -> OutputIndex:
 
 
 def archived_window_ends(path: str) -> list[int]:
-    """The window ends that have a folder in the outputs, oldest first."""
+    """The window ends whose memberships file is in the outputs, oldest first (one listing
+    of the folders' files: a folder holding only a window's pairs, closed before the
+    outputs were set, is not listed, and no read tries to open its memberships)."""
     filesystem, name = window_file(path, 0)
     root = name.rsplit("/", 2)[0]
-    selector = pa.fs.FileSelector(root, allow_not_found=True)
+    selector = pa.fs.FileSelector(root, allow_not_found=True, recursive=True)
     ends = []
     for info in filesystem.get_file_info(selector):
-        key, _, value = info.base_name.partition("=")
-        if info.type == pa.fs.FileType.Directory and key == PARTITION and value.isdigit():
+        if info.type != pa.fs.FileType.File or info.base_name != MEMBERSHIPS_FILE:
+            continue
+        parent, folder, _file = info.path.rsplit("/", 2)
+        key, _, value = folder.partition("=")
+        if parent == root and key == PARTITION and value.isdigit():
             ends.append(int(value))
     return sorted(ends)
 
