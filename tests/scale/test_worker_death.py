@@ -28,12 +28,19 @@ from .conftest import NOW, sample_events, sample_settings, written
 from .helpers import assert_same_closes
 
 
-def _first_five_weeks(settings) -> list[dict]:
+def _weeks(settings, first_week: int, weeks: int) -> list[dict]:
+    """The sample's events of ``weeks`` windows from its ``first_week`` (0: its first)."""
     events = sample_events()
     geometry = WindowGeometry.from_settings(settings)
     first = min(parse_time_us(event["time"]) for event in events)
-    last_end = geometry.end_after(first) + 4 * geometry.period_us
-    return [event for event in events if parse_time_us(event["time"]) < last_end]
+    start = geometry.end_after(first) + (first_week - 1) * geometry.period_us
+    end = start + weeks * geometry.period_us
+    return [
+        event
+        for event in events
+        if (first_week == 0 or parse_time_us(event["time"]) >= start)
+        and parse_time_us(event["time"]) < end
+    ]
 
 
 def _holder_of_scattered_data(dask_scheduler, prefix: str = "tuple-") -> str | None:
@@ -99,7 +106,7 @@ def _five_weeks_stored(tmp_path, compute: str, client, **extra):
         **extra,
     )
     engine = open_store(settings)
-    ingest(engine, settings, _first_five_weeks(settings), NOW)
+    ingest(engine, settings, _weeks(settings, 0, 5), NOW)
     return engine, settings
 
 
@@ -171,4 +178,28 @@ def test_a_worker_killed_holding_a_range_of_the_archived_history_leaves_the_same
             assert [summary.training for summary in closed].count(False) == 1
         results[compute] = written(engine)
         engine.dispose()
+    assert_same_closes(results["dask"], results["local"])
+
+
+def test_a_worker_killed_holding_a_kept_range_of_the_history_leaves_the_same_close(
+    cluster, tmp_path
+):
+    # The next close of the same process extends the ranges kept from the close before with
+    # that window's pairs (rolewatch.scale.held_pairs): losing a worker that holds an
+    # extended range closes the window all the same.
+    results = {}
+    for compute in ("local", "dask"):
+        engine, settings = _five_weeks_stored(
+            tmp_path, compute, cluster, output_archive=str(tmp_path / f"{compute}-outputs")
+        )
+        close_due_windows(engine, settings, now_us=NOW, drain=True)
+        ingest(engine, settings, _weeks(settings, 5, 1), NOW)
+        if compute == "local":
+            close_due_windows(engine, settings, now_us=NOW, drain=True)
+        else:
+            closed = _close_killing_a_worker(engine, settings, cluster, prefix="with_window_pairs-")
+            assert [summary.training for summary in closed] == [False]
+        results[compute] = written(engine)
+        engine.dispose()
+    assert len(results["local"]["windows"]) == 6
     assert_same_closes(results["dask"], results["local"])
