@@ -5,7 +5,8 @@ engine writes. When every attempt loses its data, the close fails before writing
 and the next close of the window succeeds.
 
 The events are the fictional marketplace sample in fixtures/sample (invented data), cut
-after its fifth week so that one window is measured after the four training windows.
+after its fifth week so that one window is measured after the four training windows (its
+sixth week added for the next close of the same process).
 """
 
 from __future__ import annotations
