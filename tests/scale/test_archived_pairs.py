@@ -144,7 +144,9 @@ def test_the_next_close_reads_only_the_windows_closed_since(dask_cluster, archiv
         (tmp_path / "outputs" / f"window_end_us={end}" / "pairs.parquet").unlink()
     history = ArchivedPairs(dask_cluster, outputs, [*ENDS, 4_000])
     expected = known.with_keys(newer)
-    np.testing.assert_array_equal(_gathered(dask_cluster, history, 4), expected.keys)
+    # a close with a few more partitions is served by the kept count of ranges
+    np.testing.assert_array_equal(_gathered(dask_cluster, history, 6), expected.keys)
+    assert history.ranges_on(dask_cluster, 6).ranges == 4
     query = np.concatenate([newer[:100], known.keys[:100], np.arange(100, dtype=np.uint64)])
     np.testing.assert_array_equal(history.contains(query), expected.contains(query))
     held_pairs.forget_held_pairs()
@@ -159,6 +161,12 @@ def test_a_history_that_does_not_extend_the_kept_one_is_read_whole(dask_cluster,
     np.testing.assert_array_equal(
         _gathered(dask_cluster, later, 4), KnownPairs.from_parts(parts[1:]).keys
     )
+    # more than twice the kept ranges asked for: read again in the new count
+    wider = ArchivedPairs(dask_cluster, outputs, ENDS[1:])
+    np.testing.assert_array_equal(
+        _gathered(dask_cluster, wider, 9), KnownPairs.from_parts(parts[1:]).keys
+    )
+    assert wider.ranges_on(dask_cluster, 9).ranges == 9
     # after the cluster lost data the ranges are forgotten: a rewritten file is read again
     later.forget_ranges()
     write_window_pairs(outputs, ENDS[1], parts[1][:10])

@@ -9,8 +9,9 @@ those windows' files into each range (merged where the range lives, the older pa
 read again): a close opens one pair file per range instead of every window's.
 
 One history is kept per process (one closer runs at a time), for one client and one outputs
-path; it is read whole again when the client, the path or the ranges' count change, when a
-window it holds is no longer asked for, and after the cluster lost data
+path; it is read whole again when the client or the path change, when a close asks for
+more than twice or less than half its ranges, when a window it holds is no longer asked for,
+and after the cluster lost data
 (:func:`forget_held_pairs`). Its cost is the workers' memory between closes: 8 bytes a
 known pair, spread over the workers as the ranges are.
 """
@@ -45,8 +46,9 @@ _held: _Held | None = None
 def held_ranges(client: Any, outputs: str, window_ends: Iterable[int], count: int) -> KnownRanges:
     """The first-seen pairs of the windows ``window_ends`` on the cluster, in ``count`` key
     ranges splitting the 64-bit key space evenly: the ranges kept from the last call
-    extended with the windows they lack when they hold none that is not asked for, else read
-    whole. The result is kept for the next call."""
+    extended with the windows they lack when they hold none that is not asked for (in the
+    kept count of ranges when it is within a factor of two of ``count``), else read whole.
+    The result is kept for the next call."""
     global _held
     ends = frozenset(int(end) for end in window_ends)
     with _LOCK:
@@ -55,7 +57,7 @@ def held_ranges(client: Any, outputs: str, window_ends: Iterable[int], count: in
             held is not None
             and held.client is client
             and held.outputs == outputs
-            and held.ranges.ranges == count
+            and _close_enough(held.ranges.ranges, count)
             and held.window_ends <= ends
         ):
             added = sorted(ends - held.window_ends)
@@ -65,6 +67,15 @@ def held_ranges(client: Any, outputs: str, window_ends: Iterable[int], count: in
             ranges = _read(client, outputs, sorted(ends), count)
         _held = _Held(client, outputs, ends, ranges)
         return ranges
+
+
+def _close_enough(kept: int, asked: int) -> bool:
+    """Whether ``kept`` ranges serve a close that asks for ``asked`` (its partitions):
+    the count follows the window's accounts, so it moves a little from one close to the
+    next; within a factor of two the kept ranges are used as they are (any count serves the
+    tie counts), beyond it they are read again in the new count, so that a much larger
+    window does not leave a worker holding one range of a big history."""
+    return asked <= 2 * kept and kept <= 2 * asked
 
 
 def forget_held_pairs() -> None:
