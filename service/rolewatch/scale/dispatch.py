@@ -274,11 +274,12 @@ class DaskMeasure:
 
 
 def _forget_history_read(known: PairHistory | None) -> None:
-    """Let the next attempt read an archived history again: the ranges read by this one
-    may be gone with a worker, or forgotten by a scheduler that lost this client."""
-    from rolewatch.scale.ties import ArchivedPairs
+    """Let the next attempt place the history on the cluster again: the ranges placed by
+    this one (or kept from an earlier close) may be gone with a worker, or forgotten by a
+    scheduler that lost this client."""
+    from rolewatch.scale.ties import PairsOnCluster
 
-    if isinstance(known, ArchivedPairs):
+    if isinstance(known, PairsOnCluster):
         known.forget_ranges()
 
 
@@ -305,11 +306,18 @@ def known_pairs_for(
     (:class:`rolewatch.scale.ties.ArchivedPairs`): the closing process never holds it. An
     earlier window without its file there (closed before the outputs kept pairs, or before
     ``output_archive`` was set) has it written first from the store, one window at a time.
-    Any other close reads the whole history from the store.
+    A Dask close without outputs reads the history from the store: whole at the first close
+    of the process, later only the windows closed since, merged into the ranges kept on the
+    cluster (:class:`rolewatch.scale.stored_pairs.StoredPairs`). A local close reads the
+    whole history from the store.
     """
     outputs = settings.output_archive
-    if not (outputs and isinstance(measure, DaskMeasure)):
+    if not isinstance(measure, DaskMeasure):
         return KnownPairs.from_parts(known_pair_parts(connection, before_end_us=before_end_us))
+    if not outputs:
+        from rolewatch.scale.stored_pairs import StoredPairs
+
+        return StoredPairs.read(connection, measure.client, before_end_us=before_end_us)
     from rolewatch.scale.pair_outputs import pair_windows, write_window_pairs
     from rolewatch.scale.ties import ArchivedPairs
 

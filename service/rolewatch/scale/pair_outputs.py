@@ -21,6 +21,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from rolewatch.engine.sorting import merged_sorted
 from rolewatch.scale.outputs import window_file
 
 __all__ = [
@@ -108,10 +109,4 @@ def with_window_pairs(
     """The sorted range ``keys`` with the pairs ``low <= key < high`` of the windows
     ``window_ends`` merged in (each must have its file): the same range of the history
     they make together, read from those windows' files only."""
-    added = pair_range(path, window_ends, low, high)
-    if added.size == 0 or keys.size == 0:
-        return added if keys.size == 0 else keys
-    # windows' first-seen pairs are disjoint; a key already there is kept once all the same
-    slots = np.searchsorted(keys, added)
-    fresh = added[(slots == keys.size) | (keys[np.minimum(slots, keys.size - 1)] != added)]
-    return np.insert(keys, np.searchsorted(keys, fresh), fresh)
+    return merged_sorted(keys, pair_range(path, window_ends, low, high))

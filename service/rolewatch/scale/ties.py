@@ -40,7 +40,14 @@ from rolewatch.scale import graph_steps as steps
 from rolewatch.scale.graph import WindowGraph
 from rolewatch.scale.partitions import Partitioned, fetch
 
-__all__ = ["ArchivedPairs", "KnownRanges", "PendingTies", "count_ties", "known_ranges"]
+__all__ = [
+    "ArchivedPairs",
+    "KnownRanges",
+    "PairsOnCluster",
+    "PendingTies",
+    "count_ties",
+    "known_ranges",
+]
 
 
 @dataclass(frozen=True)
@@ -60,8 +67,8 @@ class KnownRanges:
 def known_ranges(client: Any, known: PairHistory, ranges: int) -> KnownRanges:
     """The history ``known`` on the workers in at most ``ranges`` key ranges: a
     :class:`KnownPairs` is sent cut into ranges of about equal size (an empty history is one
-    empty range); a :class:`ArchivedPairs` is read there."""
-    if isinstance(known, ArchivedPairs):
+    empty range); a :class:`PairsOnCluster` is placed there (or already is)."""
+    if isinstance(known, PairsOnCluster):
         return known.ranges_on(client, ranges)
     if not isinstance(known, KnownPairs):
         raise TypeError(f"cannot send a {type(known).__name__} to the workers")
@@ -74,53 +81,48 @@ def known_ranges(client: Any, known: PairHistory, ranges: int) -> KnownRanges:
     return KnownRanges(tuple(client.scatter(parts, hash=False)), starts)
 
 
-class ArchivedPairs:
-    """A known-pair history the closing process never holds: the first-seen pairs of the
-    windows ``window_ends``, kept in the Parquet outputs at ``outputs``
-    (:mod:`rolewatch.scale.pair_outputs`), read on the workers one key range each.
+class PairsOnCluster:
+    """A known-pair history placed on the cluster in key ranges the first time a close asks
+    for it (:meth:`ranges_on`; how is the subclass's :meth:`_place`), so the tie counts and
+    the evidence's look-ups (:meth:`contains`) share one placing, and kept there after it for
+    the next close, which adds only the windows closed since
+    (:mod:`rolewatch.scale.held_pairs`)."""
 
-    The ranges split the 64-bit key space evenly (pair keys are hashes, so each holds about
-    the same share of the history); they are read when first asked for and stay on the
-    cluster while this object lives, so the tie counts and the evidence's look-ups
-    (:meth:`contains`) share one read, and after it for the next close, which reads only
-    the windows closed since (:mod:`rolewatch.scale.held_pairs`).
-    """
-
-    def __init__(self, client: Any, outputs: str, window_ends: list[int]) -> None:
+    def __init__(self, client: Any) -> None:
         self.client = client
-        self.outputs = outputs
-        self.window_ends = list(window_ends)
         self._ranges: KnownRanges | None = None
 
-    def ranges_on(self, client: Any, ranges: int) -> KnownRanges:
-        """The history on the workers in ``ranges`` key ranges (the first call's count;
-        later calls reuse them): the ranges the last close of this process read, extended
-        with the windows they lack, when it asked for an older part of the same history
-        (:mod:`rolewatch.scale.held_pairs`), else read whole."""
-        if self._ranges is None:
-            from rolewatch.scale.held_pairs import held_ranges
+    def _place(self, client: Any, count: int) -> KnownRanges:
+        raise NotImplementedError
 
-            self._ranges = held_ranges(client, self.outputs, self.window_ends, max(1, ranges))
+    def _is_empty(self) -> bool:
+        raise NotImplementedError
+
+    def ranges_on(self, client: Any, ranges: int) -> KnownRanges:
+        """The history on the workers in about ``ranges`` key ranges (the first call's;
+        later calls reuse them)."""
+        if self._ranges is None:
+            self._ranges = self._place(client, max(1, ranges))
         return self._ranges
 
     def forget_ranges(self) -> None:
-        """Drop the ranges read so far, and those kept for later closes (the next use
-        reads them again from the files)."""
+        """Drop the ranges placed so far, and those kept for later closes (the next use
+        places the history whole again)."""
         from rolewatch.scale.held_pairs import forget_held_pairs
 
         self._ranges = None
         forget_held_pairs()
 
     def contains(self, keys) -> np.ndarray:
-        """Which of ``keys`` the history holds (looked up on the workers; read again once
-        if the cluster lost the ranges read before)."""
+        """Which of ``keys`` the history holds (looked up on the workers; placed again once
+        if the cluster lost the ranges placed before)."""
         from concurrent.futures import CancelledError
 
         from distributed.comm.core import CommClosedError
         from distributed.scheduler import KilledWorker
 
         query = np.asarray(keys, dtype=np.uint64).reshape(-1)
-        if query.size == 0 or not self.window_ends:
+        if query.size == 0 or self._is_empty():
             return np.zeros(query.size, dtype=bool)
         try:
             return self._look_up(query)
@@ -150,6 +152,31 @@ class ArchivedPairs:
 
     def _default_ranges(self) -> int:
         return max(1, len(self.client.scheduler_info().get("workers", {})))
+
+
+class ArchivedPairs(PairsOnCluster):
+    """A known-pair history the closing process never holds: the first-seen pairs of the
+    windows ``window_ends``, kept in the Parquet outputs at ``outputs``
+    (:mod:`rolewatch.scale.pair_outputs`), read on the workers one key range each.
+
+    The ranges split the 64-bit key space evenly (pair keys are hashes, so each holds about
+    the same share of the history); the first close reads every window's file, a later
+    close of the same process only the windows closed since
+    (:func:`rolewatch.scale.held_pairs.archived_ranges`).
+    """
+
+    def __init__(self, client: Any, outputs: str, window_ends: list[int]) -> None:
+        super().__init__(client)
+        self.outputs = outputs
+        self.window_ends = list(window_ends)
+
+    def _place(self, client: Any, count: int) -> KnownRanges:
+        from rolewatch.scale.held_pairs import archived_ranges
+
+        return archived_ranges(client, self.outputs, self.window_ends, count)
+
+    def _is_empty(self) -> bool:
+        return not self.window_ends
 
 
 def _take_keys(keys: np.ndarray, rows: np.ndarray) -> np.ndarray:

@@ -8,6 +8,8 @@ the history holds each pair once; the next close reads all of them back.
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numpy as np
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
@@ -48,6 +50,27 @@ def known_pair_windows(connection: Connection, *, before_end_us: int) -> list[in
         .order_by(windows.c.end_us)
     ).scalars()
     return [int(end) for end in rows]
+
+
+class PairWindow(NamedTuple):
+    """One window's part of the stored history, named without reading it: a part whose
+    window, record or size differ is a different part."""
+
+    end_us: int
+    window_id: int
+    pair_count: int
+
+
+def pair_window_parts(connection: Connection, *, before_end_us: int) -> list[PairWindow]:
+    """The parts of the history before ``before_end_us``, oldest first (their keys not
+    read)."""
+    rows = connection.execute(
+        sa.select(windows.c.end_us, windows.c.id, pair_history.c.pair_count)
+        .join(pair_history, windows.c.id == pair_history.c.window_id)
+        .where(windows.c.end_us < before_end_us)
+        .order_by(windows.c.end_us)
+    ).all()
+    return [PairWindow(int(end), int(window_id), int(count)) for end, window_id, count in rows]
 
 
 def window_pair_keys(connection: Connection, *, end_us: int) -> np.ndarray:
