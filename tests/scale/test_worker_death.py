@@ -182,23 +182,26 @@ def test_a_worker_killed_holding_a_range_of_the_archived_history_leaves_the_same
     assert_same_closes(results["dask"], results["local"])
 
 
+@pytest.mark.parametrize(
+    ("outputs", "prefix"), [(True, "with_window_pairs-"), (False, "merged_sorted-")]
+)
 def test_a_worker_killed_holding_a_kept_range_of_the_history_leaves_the_same_close(
-    cluster, tmp_path
+    cluster, tmp_path, outputs, prefix
 ):
     # The next close of the same process extends the ranges kept from the close before with
-    # that window's pairs (rolewatch.scale.held_pairs): losing a worker that holds an
-    # extended range closes the window all the same.
+    # that window's pairs (rolewatch.scale.held_pairs), read on the workers from the outputs
+    # or sent from the store: losing a worker that holds an extended range closes the window
+    # all the same.
     results = {}
     for compute in ("local", "dask"):
-        engine, settings = _five_weeks_stored(
-            tmp_path, compute, cluster, output_archive=str(tmp_path / f"{compute}-outputs")
-        )
+        extra = {"output_archive": str(tmp_path / f"{compute}-outputs")} if outputs else {}
+        engine, settings = _five_weeks_stored(tmp_path, compute, cluster, **extra)
         close_due_windows(engine, settings, now_us=NOW, drain=True)
         ingest(engine, settings, _weeks(settings, 5, 1), NOW)
         if compute == "local":
             close_due_windows(engine, settings, now_us=NOW, drain=True)
         else:
-            closed = _close_killing_a_worker(engine, settings, cluster, prefix="with_window_pairs-")
+            closed = _close_killing_a_worker(engine, settings, cluster, prefix=prefix)
             assert [summary.training for summary in closed] == [False]
         results[compute] = written(engine)
         engine.dispose()
