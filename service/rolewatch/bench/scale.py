@@ -33,14 +33,15 @@ window's pairs already in its Parquet file, so the workers read the history ther
 Reported: both closes' seconds, stages, alerts and the peak resident memory of this process
 and of each worker. ``--quick`` uses 100,000 events and 1,000,000 keys.
 
-``close-dask-history-next``: the window after one closed on Dask against that history with
-``output_archive`` set, as a running service closes it: the same store with one more window
-of 1,000,000 events. The first window is closed by this process (its workers keep the
-history's key ranges, :mod:`rolewatch.scale.held_pairs`); the store and the outputs are
-copied; the second window is closed by this process, which adds only the first window's
-pairs to the kept ranges, then on the copies, whose other outputs path makes the workers
-read the whole history from every window's file (as after a restart). Reported as for
-``close-dask-history``. ``--quick`` uses 100,000 events and 1,000,000 keys.
+``close-dask-history-next``: the window after one closed on Dask against that history, as a
+running service closes it: the same store with one more window of 1,000,000 events, once
+with ``output_archive`` set and once without. The first window is closed by this process
+(its workers keep the history's key ranges, :mod:`rolewatch.scale.held_pairs`); the store
+(and the outputs) are copied; the second window is closed by this process, which adds only
+the first window's pairs to the kept ranges, then on the copies, whose other address makes
+the close place the whole history again (read on the workers from every window's file, or
+read from the store by this process and sent), as after a restart. Reported per source as
+for ``close-dask-history``. ``--quick`` uses 100,000 events and 1,000,000 keys.
 
 ``archive-history-52``: 52 windows of 200,000 accounts each (10,400,000 rows, 8 roles)
 written as per-window Parquet outputs (:mod:`rolewatch.scale.outputs`); the first read builds
@@ -387,38 +388,58 @@ def _long_history(events: int, client: Any, scheduler: str, tmp: Path, keys: int
 
 
 def _history_next(events: int, client: Any, scheduler: str, tmp: Path, keys: int) -> dict:
-    """The window after one closed against a long archived history: with the history's
-    ranges kept on the workers, and read whole (see the module's docstring)."""
+    """The window after one closed against a long history, the history from the outputs and
+    from the store: with its ranges kept on the workers, and placed whole (see the module's
+    docstring)."""
+    base = tmp / "history-next-base.db"
+    now_us = _history_store(base, events, keys, windows=2)
+    pids = list(client.run(os.getpid).values())
+    measured: dict[str, Any] = {"events": events, "known_pairs": keys}
+    for source in ("outputs", "store"):
+        path = tmp / f"history-next-{source}.db"
+        shutil.copyfile(base, path)
+        outputs = tmp / f"history-next-{source}-outputs" if source == "outputs" else None
+        if outputs is not None:
+            _write_pair_files(path, str(outputs), FIRST_END + WEEK_US)
+        kept, again = _next_closes(path, outputs, now_us, pids, scheduler)
+        measured |= {
+            "accounts": kept["accounts"],
+            f"{source}_seconds_ratio": round(again["seconds"] / max(kept["seconds"], 1e-9), 2),
+            f"{source}_same_alert_count": kept["alerts"] == again["alerts"],
+            **{f"{source}_kept_{key}": value for key, value in kept.items()},
+            **{f"{source}_placed_whole_{key}": value for key, value in again.items()},
+        }
+    base.unlink()
+    return measured
+
+
+def _next_closes(
+    path: Path, outputs: Path | None, now_us: int, pids: list[int], scheduler: str
+) -> tuple[dict, dict]:
+    """Close the first window of ``path`` (its history's ranges kept on the workers), then
+    the next by this process and on copies of the store and outputs (placed whole)."""
     from rolewatch.store.db import open_store
 
-    path, copy = tmp / "history-next.db", tmp / "history-next-restarted.db"
-    outputs, copied = tmp / "history-next-outputs", tmp / "history-next-outputs-restarted"
-    now_us = _history_store(path, events, keys, windows=2)
-    _write_pair_files(path, str(outputs), FIRST_END + WEEK_US)
-    pids = list(client.run(os.getpid).values())
-    common = dict(compute="dask", dask_scheduler=scheduler)
-    _close(path, now_us, pids, output_archive=str(outputs), **common)  # keeps the ranges
+    common: dict[str, Any] = dict(compute="dask", dask_scheduler=scheduler)
+    if outputs is not None:
+        common["output_archive"] = str(outputs)
+    _close(path, now_us, pids, **common)  # keeps the ranges
+    copy = path.with_name(path.stem + "-restarted.db")
     shutil.copyfile(path, copy)
-    shutil.copytree(outputs, copied)
-    next_end = FIRST_END + 2 * WEEK_US
+    copied = None if outputs is None else outputs.with_name(outputs.name + "-restarted")
+    if outputs is not None and copied is not None:
+        shutil.copytree(outputs, copied)
     results = []
     for store, folder in ((path, outputs), (copy, copied)):
-        settings = _settings(store, output_archive=str(folder), **common)
+        extra = {} if folder is None else {"output_archive": str(folder)}
+        settings = _settings(store, **{**common, **extra})
         engine = open_store(settings)
-        results.append(_timed_close(engine, settings, next_end, now_us, pids))
+        results.append(_timed_close(engine, settings, FIRST_END + 2 * WEEK_US, now_us, pids))
         engine.dispose()
         store.unlink()
-        shutil.rmtree(folder)
-    kept, again = results
-    return {
-        "events": events,
-        "known_pairs": keys,
-        "accounts": kept["accounts"],
-        "seconds_ratio": round(again["seconds"] / max(kept["seconds"], 1e-9), 2),
-        "same_alert_count": kept["alerts"] == again["alerts"],
-        **{f"kept_{key}": value for key, value in kept.items()},
-        **{f"read_whole_{key}": value for key, value in again.items()},
-    }
+        if folder is not None:
+            shutil.rmtree(folder)
+    return results[0], results[1]
 
 
 def _local_would_not_fit(events: int) -> str | None:
