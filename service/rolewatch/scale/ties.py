@@ -12,13 +12,15 @@ without the window's pairs or the whole history in one process:
   (:func:`rolewatch.engine.pairs.pair_keys`: the same keys the local engine makes);
 * the history is cut into as many contiguous key ranges as there are partitions, each range
   one value on the cluster: a :class:`rolewatch.engine.pairs.KnownPairs` the closing process
-  holds is sent cut into ranges of about the same number of keys; an :class:`ArchivedPairs`
-  (every earlier window's first-seen pairs in the Parquet outputs) is read on the workers,
-  each range from the row groups of every window's file that reach into it, so the closing
-  process never holds the history (and kept there for the next close, which adds only the
-  windows closed since: :mod:`rolewatch.scale.held_pairs`); a partition sends each range only the
-  keys that fall in it and gets back which of them are known (a binary search there), so
-  no worker holds more of the history than its ranges;
+  holds is sent cut into ranges of about the same number of keys; a close's history
+  (:class:`PairsOnCluster`) is placed in ranges of the key space and kept there for the next
+  close, which adds only the windows closed since (:mod:`rolewatch.scale.held_pairs`): an
+  :class:`ArchivedPairs` (every earlier window's first-seen pairs in the Parquet outputs) is
+  read on the workers, each range from the row groups of every window's file that reach
+  into it, so the closing process never holds the history; a
+  :class:`rolewatch.scale.stored_pairs.StoredPairs` is read from the store and sent. A
+  partition sends each range only the keys that fall in it and gets back which of them are
+  known (a binary search there), so no worker holds more of the history than its ranges;
 * a pair whose two accounts live in different partitions is looked up by both (each needs
   its own account's cells); the window's new pairs are collected per key range, where
   both copies meet and one is kept, so the ranges' sorted parts laid end to end are the
