@@ -57,8 +57,9 @@ def _add_window(engine, end_us: int, keys: np.ndarray) -> int:
 
 
 @pytest.fixture()
-def store(tmp_path):
-    engine = open_store(load_settings(database_url=f"sqlite:///{tmp_path / 'pairs.db'}"))
+def store(store_url):
+    """An empty store on SQLite and on PostgreSQL (each test's own schema)."""
+    engine = open_store(load_settings(database_url=store_url))
     held_pairs.forget_held_pairs()
     yield engine
     held_pairs.forget_held_pairs()
