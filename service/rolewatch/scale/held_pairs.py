@@ -38,7 +38,6 @@ __all__ = [
     "archived_ranges",
     "even_bounds",
     "forget_held_pairs",
-    "held_windows",
     "keep",
     "kept_for",
 ]
@@ -54,15 +53,6 @@ class _Held:
 
 _LOCK = threading.Lock()
 _held: _Held | None = None
-
-
-def held_windows(client: Any, source: Hashable) -> frozenset[Hashable] | None:
-    """The windows of the history kept for ``client`` and ``source`` (None: none kept)."""
-    with _LOCK:
-        held = _held
-    if held is None or held.client is not client or held.source != source:
-        return None
-    return held.windows
 
 
 def kept_for(

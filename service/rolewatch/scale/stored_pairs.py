@@ -1,18 +1,17 @@
 """The store's known-pair history on the Dask cluster, kept there from one close to the next.
 
 A Dask close without ``output_archive`` counts its tie cells against the history the SQL
-store keeps (:mod:`rolewatch.store.pairs`). The first close of a process reads it whole and
-sends it to the workers in key ranges; the ranges stay there
-(:mod:`rolewatch.scale.held_pairs`), and a later close reads from the store only the parts of
-the windows closed since, sends each range its share of them and merges it in where the
-range lives. So a running service's closing process holds the whole history once, at its
-first close, instead of at every close (8 bytes a pair, and its sort: several times that at
-its peak).
+store keeps (:mod:`rolewatch.store.pairs`). The first close of a process reads it from the
+store one window's part at a time and sends each part to the workers cut by key range (a
+range is then made of its pieces where it lives), so the closing process never holds the
+whole history; the ranges stay on the cluster (:mod:`rolewatch.scale.held_pairs`), and a
+later close reads only the parts of the windows closed since, sends each range its share
+of them and merges it in there.
 
 The kept history is named by each window's end, record and pair count: a part that was
-written again, or a store rebuilt under the same address, does not match it and is read
-whole. A close that finds its ranges lost on the cluster reads the history whole again from
-the store, with a connection of its own.
+written again, or a store rebuilt under the same address, does not match it and the whole
+history is sent again. A close that finds its ranges lost on the cluster sends the whole
+history again.
 """
 
 from __future__ import annotations
@@ -22,67 +21,30 @@ from typing import Any
 import numpy as np
 from sqlalchemy.engine import Connection, Engine
 
-from rolewatch.engine.pairs import KnownPairs
 from rolewatch.engine.sorting import merged_sorted, unique_sorted
-from rolewatch.scale.held_pairs import even_bounds, held_windows, keep, kept_for
+from rolewatch.scale.held_pairs import even_bounds, forget_held_pairs, keep, kept_for
 from rolewatch.scale.ties import KnownRanges, PairsOnCluster
-from rolewatch.store.pairs import PairWindow, known_pair_parts, pair_window_parts, window_pair_keys
+from rolewatch.store.pairs import PairWindow, pair_window_parts, window_pair_keys
 
 __all__ = ["StoredPairs"]
 
 
 class StoredPairs(PairsOnCluster):
-    """The store's known pairs of the windows before ``before_end_us`` (``windows``), to be
-    placed on the cluster: ``whole`` when nothing kept serves them, else ``added``, the
-    pairs of the windows the kept ranges lack (read by :meth:`read`)."""
+    """The store's known pairs of the windows ``windows`` (the parts of the history before a
+    close), placed on the cluster when the close first asks for them, with a connection of
+    their own: the parts the kept ranges lack merged into them, or every part sent."""
 
-    def __init__(
-        self,
-        client: Any,
-        engine: Engine,
-        *,
-        before_end_us: int,
-        windows: list[PairWindow],
-        whole: KnownPairs | None,
-        added: np.ndarray | None,
-    ) -> None:
+    def __init__(self, client: Any, engine: Engine, windows: list[PairWindow]) -> None:
         super().__init__(client)
         self.engine = engine
-        self.before_end_us = before_end_us
         self.windows = list(windows)
-        self._whole = whole
-        self._added = added
 
     @classmethod
     def read(cls, connection: Connection, client: Any, *, before_end_us: int) -> StoredPairs:
-        """What the close before ``before_end_us`` must send: the parts of the windows the
-        ranges kept on the cluster lack, or the whole history."""
+        """The history a close before ``before_end_us`` counts against, its parts named
+        (their keys are read when the close places them)."""
         windows = pair_window_parts(connection, before_end_us=before_end_us)
-        kept = held_windows(client, _source(connection.engine))
-        if kept is not None and kept <= set(windows):
-            parts = [
-                window_pair_keys(connection, end_us=window.end_us)
-                for window in windows
-                if window not in kept
-            ]
-            added = unique_sorted(np.concatenate(parts)) if parts else _no_keys()
-            return cls(
-                client,
-                connection.engine,
-                before_end_us=before_end_us,
-                windows=windows,
-                whole=None,
-                added=added,
-            )
-        whole = KnownPairs.from_parts(known_pair_parts(connection, before_end_us=before_end_us))
-        return cls(
-            client,
-            connection.engine,
-            before_end_us=before_end_us,
-            windows=windows,
-            whole=whole,
-            added=None,
-        )
+        return cls(client, connection.engine, windows)
 
     def _is_empty(self) -> bool:
         return not self.windows
@@ -90,19 +52,45 @@ class StoredPairs(PairsOnCluster):
     def _place(self, client: Any, count: int) -> KnownRanges:
         source = _source(self.engine)
         found = kept_for(client, source, self.windows, count)
-        if found is not None and self._added is not None:
-            ranges = _merged_in(client, found[0], self._added)
+        if found is None:
+            forget_held_pairs()  # let the old ranges go before the new are sent
+            ranges = self._sent_whole(client, count)
         else:
-            whole = self._whole if self._whole is not None else self._read_whole()
-            ranges = _sent(client, whole.keys, count)
-        self._whole = self._added = None  # on the cluster now
+            kept, lacking = found
+            ranges = _merged_in(client, kept, self._keys_of(lacking))
         keep(client, source, self.windows, ranges)
         return ranges
 
-    def _read_whole(self) -> KnownPairs:
+    def _keys_of(self, windows: list[Any]) -> np.ndarray:
+        """The keys of the parts ``windows``, sorted (a few windows' parts: small)."""
+        if not windows:
+            return _no_keys()
         with self.engine.connect() as connection:
-            parts = known_pair_parts(connection, before_end_us=self.before_end_us)
-        return KnownPairs.from_parts(parts)
+            parts = [window_pair_keys(connection, end_us=window.end_us) for window in windows]
+        return unique_sorted(np.concatenate(parts))
+
+    def _sent_whole(self, client: Any, count: int) -> KnownRanges:
+        """Every part sent to the workers, one window's part at a time cut by the ranges'
+        bounds (this process never holds the whole history), each range then made of its
+        pieces where it lives."""
+        bounds = np.array(even_bounds(count), dtype=np.uint64)
+        pieces: list[list[Any]] = [[] for _ in range(count)]
+        with self.engine.connect() as connection:
+            for window in self.windows:
+                part = window_pair_keys(connection, end_us=window.end_us)  # sorted, distinct
+                cuts = [0, *np.searchsorted(part, bounds).tolist(), part.size]
+                sent = client.scatter(
+                    [part[lo:hi] for lo, hi in zip(cuts[:-1], cuts[1:], strict=True)], hash=False
+                )
+                for k, future in enumerate(sent):
+                    pieces[k].append(future)
+        chunks = tuple(client.submit(_joined, *pieces[k], pure=False) for k in range(count))
+        return KnownRanges(chunks, bounds)
+
+
+def _joined(*pieces: np.ndarray) -> np.ndarray:
+    """One range of the history from its pieces, sorted and distinct."""
+    return unique_sorted(np.concatenate(pieces)) if pieces else _no_keys()
 
 
 def _source(engine: Engine) -> tuple[str, str]:
@@ -111,14 +99,6 @@ def _source(engine: Engine) -> tuple[str, str]:
 
 def _no_keys() -> np.ndarray:
     return np.zeros(0, dtype=np.uint64)
-
-
-def _sent(client: Any, keys: np.ndarray, count: int) -> KnownRanges:
-    """The sorted ``keys`` sent to the workers in ``count`` ranges of the key space."""
-    bounds = np.array(even_bounds(count), dtype=np.uint64)
-    cuts = [0, *np.searchsorted(keys, bounds).tolist(), keys.size]
-    parts = [keys[lo:hi] for lo, hi in zip(cuts[:-1], cuts[1:], strict=True)]
-    return KnownRanges(tuple(client.scatter(parts, hash=False)), bounds)
 
 
 def _merged_in(client: Any, ranges: KnownRanges, added: np.ndarray) -> KnownRanges:
