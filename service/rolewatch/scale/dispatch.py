@@ -306,10 +306,11 @@ def known_pairs_for(
     (:class:`rolewatch.scale.ties.ArchivedPairs`): the closing process never holds it. An
     earlier window without its file there (closed before the outputs kept pairs, or before
     ``output_archive`` was set) has it written first from the store, one window at a time.
-    A Dask close without outputs reads the history from the store: whole at the first close
-    of the process, later only the windows closed since, merged into the ranges kept on the
-    cluster (:class:`rolewatch.scale.stored_pairs.StoredPairs`). A local close reads the
-    whole history from the store.
+    A Dask close without outputs sends the history from the store to the workers: one
+    window's part at a time at the first close of the process, later only the windows closed
+    since, merged into the ranges kept on the cluster
+    (:class:`rolewatch.scale.stored_pairs.StoredPairs`). A local close reads the whole
+    history from the store.
     """
     outputs = settings.output_archive
     if not isinstance(measure, DaskMeasure):

@@ -10,9 +10,9 @@ range lives (the older part is never read or sent again):
 * with ``output_archive`` set, the ranges are read on the workers from every window's pair
   file the first time, and later each range reads only the new windows' files
   (:func:`archived_ranges`);
-* without it, the closing process reads the whole history from the store the first time
-  and sends it out range by range, and later only the new windows' parts
-  (:class:`rolewatch.scale.stored_pairs.StoredPairs`).
+* without it, the closing process reads the history from the store one window's part at a
+  time the first time, sending each part out cut by range, and later only the new windows'
+  parts (:class:`rolewatch.scale.stored_pairs.StoredPairs`).
 
 One history is kept per process (one closer runs at a time), for one client and one source
 (the outputs path, or the store), named by its windows (for the store: each window's end,
