@@ -28,8 +28,9 @@ window of 1,000,000 events, and, before the training window, 40 closed windows o
 events whose first-seen pairs make the history (100,000,000 keys in all, drawn at random:
 8 bytes each in the store, 800 MB together). The window is closed twice on copies of one
 store, side by side: with the history read from the store by the closing process and sent
-to the workers by key range (no ``output_archive``), and with ``output_archive`` set, every
-window's pairs already in its Parquet file, so the workers read the history there.
+to the workers one window's part at a time, cut by key range (no ``output_archive``), and
+with ``output_archive`` set, every window's pairs already in its Parquet file, so the
+workers read the history there.
 Reported: both closes' seconds, stages, alerts and the peak resident memory of this process
 and of each worker. ``--quick`` uses 100,000 events and 1,000,000 keys.
 
