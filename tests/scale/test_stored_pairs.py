@@ -34,6 +34,14 @@ def test_merging_sorted_keys_is_numpys_union(sizes):
     np.testing.assert_array_equal(merged_sorted(keys, added), np.union1d(keys, added))
 
 
+def test_a_range_joined_from_its_pieces_is_numpys_unique():
+    rng = np.random.default_rng(3)
+    pieces = [np.sort(rng.integers(0, 1_000, size, dtype=np.uint64)) for size in (50, 0, 80)]
+    pieces = [np.unique(piece) for piece in pieces]  # each window's part: distinct
+    np.testing.assert_array_equal(stored_pairs._joined(*pieces), np.unique(np.concatenate(pieces)))
+    assert stored_pairs._joined().size == 0
+
+
 def _parts(count: int, seed: int = 7) -> list[np.ndarray]:
     rng = np.random.default_rng(seed)
     keys = np.unique(rng.integers(0, 2**64 - 1, 6_000 * count, dtype=np.uint64, endpoint=True))

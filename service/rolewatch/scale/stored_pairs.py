@@ -89,8 +89,15 @@ class StoredPairs(PairsOnCluster):
 
 
 def _joined(*pieces: np.ndarray) -> np.ndarray:
-    """One range of the history from its pieces, sorted and distinct."""
-    return unique_sorted(np.concatenate(pieces)) if pieces else _no_keys()
+    """One range of the history from its pieces (each window's part of it), sorted and
+    distinct: the pieces joined and sorted in place, without a second copy of the range
+    (windows' parts are disjoint; a key in two is kept once all the same)."""
+    if not pieces:
+        return _no_keys()
+    joined = np.concatenate(pieces)
+    joined.sort()
+    repeated = joined[1:] == joined[:-1]
+    return joined[np.r_[True, ~repeated]] if repeated.any() else joined
 
 
 def _source(engine: Engine) -> tuple[str, str]:
