@@ -198,17 +198,21 @@ def upgrade_to_head(engine: Engine) -> None:
     """Run the Alembic migrations up to the newest revision.
 
     On PostgreSQL a session advisory lock serialises concurrent upgrades (on SQLite the
-    write lock taken at BEGIN IMMEDIATE does): the second process waits, then finds the
-    schema at head and does nothing.
+    write lock taken at BEGIN IMMEDIATE, held over every migration step, does): the second
+    process waits, then finds the schema at head and does nothing.
     """
     from alembic import command
 
     with engine.connect() as connection:
         postgres = connection.dialect.name == "postgresql"
         if not postgres:
-            # SQLite: BEGIN IMMEDIATE, so a second process waits for the first upgrade to
-            # commit instead of failing when both read "no version" and then both write.
+            # SQLite: one BEGIN IMMEDIATE around the whole upgrade, so a second process
+            # waits for the first upgrade to commit instead of failing when both read the
+            # same version and then both write. Alembic runs SQLite's migrations in one
+            # transaction each, committing between them (another process could read the
+            # version in between), unless the connection is already in a transaction.
             connection.execution_options(rolewatch_write=True)
+            connection.begin()
         if postgres:
             connection.exec_driver_sql(
                 f"SELECT pg_advisory_lock({store_lock_key(_MIGRATION_LOCK_ID)})"
