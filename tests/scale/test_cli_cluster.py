@@ -40,7 +40,10 @@ def _wait_for_workers(scheduler_file: Path, count: int, timeout: float = 90.0) -
     address = json.loads(scheduler_file.read_text())["address"]
     with Client(address, timeout="30s") as client:
         client.wait_for_workers(count, timeout=max(1.0, deadline - time.monotonic()))
-        limits = [info["memory_limit"] for info in client.scheduler_info()["workers"].values()]
+        # asked of each worker: the client's cached scheduler_info() may list none
+        limits = list(
+            client.run(lambda dask_worker: dask_worker.memory_manager.memory_limit).values()
+        )
     assert limits == [768 * 2**20] * count
     return address
 

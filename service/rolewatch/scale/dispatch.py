@@ -32,6 +32,7 @@ from rolewatch.pipeline.compute import (
 from rolewatch.pipeline.loading import WindowEvents
 from rolewatch.pipeline.model import FrozenModel
 from rolewatch.pipeline.recent import MAX_KEPT_BYTES
+from rolewatch.scale.workers import live_workers
 from rolewatch.store.pairs import known_pair_parts, known_pair_windows, window_pair_keys
 
 __all__ = [
@@ -166,7 +167,7 @@ class DaskMeasure:
         ``partitions`` (fewer, larger blocks: fewer tasks on small windows)."""
         if self.accounts_per_partition is None:
             return self.partitions
-        workers = max(1, len(self.client.scheduler_info().get("workers", {})))
+        workers = max(1, len(live_workers(self.client)))
         wanted = max(workers, -(-accounts // self.accounts_per_partition))
         return max(1, min(self.partitions, wanted))
 

@@ -50,6 +50,7 @@ from rolewatch.engine.features.recipe import FeatureRecipe, FeatureTable
 from rolewatch.scale.graph import TRIANGLES, WindowGraph, egonet_table, fetch_columns
 from rolewatch.scale.graph_steps import Block
 from rolewatch.scale.partitions import Partitioned, split_by_range
+from rolewatch.scale.workers import live_workers
 
 __all__ = [
     "MeasuredWindow",
@@ -121,7 +122,7 @@ def _release_scratch(client: Any, paths: dict[str, list[str]]) -> None:
     from distributed import fire_and_forget
 
     try:
-        alive = set(client.scheduler_info().get("workers", {}))
+        alive = live_workers(client)
         for worker, files in paths.items():
             if worker in alive:
                 fire_and_forget(client.submit(_remove_scratch, files, workers=[worker], pure=False))
@@ -206,13 +207,13 @@ class WorkerFeatureRows:
         """Whether every worker that wrote these values is still in the cluster (and the
         client still connected)."""
         try:
-            alive = set(self.client.scheduler_info().get("workers", {}))
+            alive = live_workers(self.client)
         except Exception:  # noqa: BLE001 - a closed client cannot say, so: not readable
             return False
         return all(s.worker in alive for piece in self.pieces for s in piece if s.path)
 
     def _check_writers(self, scratches: Sequence[ScratchValues]) -> None:
-        alive = set(self.client.scheduler_info().get("workers", {}))
+        alive = live_workers(self.client)
         gone = sorted({s.worker for s in scratches} - alive)
         if gone:
             raise FeatureRowsLost(

@@ -41,6 +41,7 @@ from rolewatch.engine.ties import TieCounts
 from rolewatch.scale import graph_steps as steps
 from rolewatch.scale.graph import WindowGraph
 from rolewatch.scale.partitions import Partitioned, fetch
+from rolewatch.scale.workers import live_workers
 
 __all__ = [
     "ArchivedPairs",
@@ -153,7 +154,7 @@ class PairsOnCluster:
         return distinct[~self.contains(distinct)]
 
     def _default_ranges(self) -> int:
-        return max(1, len(self.client.scheduler_info().get("workers", {})))
+        return max(1, len(live_workers(self.client)))
 
 
 class ArchivedPairs(PairsOnCluster):
