@@ -85,7 +85,7 @@ def test_from_interned_refuses_what_from_events_refuses():
 
 
 def test_stored_mixtures_become_the_row_major_matrix_a_row_by_row_fill_gives():
-    from rolewatch.pipeline.loading import _mixture_matrix
+    from rolewatch.store.memberships import mixture_matrix
 
     mixtures = [{"2": 0.25, "0": 0.75}, {}, {"1": 1.0, "9": 0.5}, {"0": 0.1, "1": 0.2, "2": 0.7}]
     role_ids = ["0", "1", "2"]
@@ -94,7 +94,7 @@ def test_stored_mixtures_become_the_row_major_matrix_a_row_by_row_fill_gives():
         for role_id, weight in shares.items():
             if role_id in role_ids:
                 expected[row, role_ids.index(role_id)] = weight
-    found = _mixture_matrix(mixtures, role_ids)
+    found = mixture_matrix(mixtures, role_ids)
     np.testing.assert_array_equal(found, expected)
     # row sums must add in the same order as for any other row-major matrix
     assert found.flags.c_contiguous

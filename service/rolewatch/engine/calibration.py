@@ -33,6 +33,11 @@ saturate and mean the same in every window and activity level.
   components the account has (Sidak, JASA 1967): the score is the z-score of "at least
   one of m tests this extreme".
 
+Each test with a window-wide statistic (the prior, the population's shares, a median) is
+also given as two halves, the statistic and ``*_given`` that applies it, so a window whose
+accounts are split over workers computes the same scores
+(:mod:`rolewatch.engine.scoring_parts`).
+
 Pure: arrays in, arrays out; vectorised; no loop over accounts.
 """
 
@@ -46,13 +51,25 @@ __all__ = [
     "LOG_TAIL_MIN",
     "MAD_SCALE",
     "Z_FLOOR",
+    "cell_shares",
     "combine_zscores",
     "empirical_null",
+    "empirical_null_given",
     "g_statistic",
     "gamma_prior",
+    "homogeneity_valid",
     "homogeneity_zscore",
+    "homogeneity_zscore_given",
+    "merged_rate_moments",
+    "novelty_law",
+    "novelty_valid",
     "novelty_zscore",
+    "novelty_zscore_given",
+    "rate_moments",
+    "role_shift_statistic",
+    "role_shift_valid",
     "role_shift_zscore",
+    "role_shift_zscore_given",
     "z_from_log_tail",
 ]
 
@@ -90,16 +107,84 @@ def gamma_prior(totals, windows) -> tuple[float, float]:
     -------
     (shape, rate) : floats
     """
+    moments = merged_rate_moments([rate_moments(totals, windows)])
+    return _prior_of(moments)
+
+
+# rate_moments' entries: accounts, summed rates, squared deviations from the part's own
+# mean rate, summed 1 / windows, summed current counts
+_COUNT, _RATES, _SQUARES, _INVERSE, _CURRENT = range(5)
+
+
+def rate_moments(totals, windows, current=None) -> np.ndarray:
+    """The sums :func:`gamma_prior` and :func:`novelty_zscore` need, of one part of the
+    accounts: ``[accounts, sum of rates, sum of squared deviations from this part's mean
+    rate, sum of 1 / windows, sum of current]`` (rate: ``totals / windows``).
+
+    Parts merge exactly by :func:`merged_rate_moments` (the parallel variance update of
+    Chan, Golub & LeVeque, 1979, as recalled), so a window split over workers gets the
+    prior of the whole window: one part gives numpy's own mean and variance to the bit,
+    several differ only by the order of the additions.
+    """
     totals = np.asarray(totals, dtype=np.float64)
     windows = np.asarray(windows, dtype=np.float64)
     rates = totals / windows
-    mean = float(rates.mean()) if rates.size else 0.0
-    if mean <= 0:
+    count = float(rates.size)
+    summed = float(np.sum(rates)) if rates.size else 0.0
+    deviation = rates - (summed / count if rates.size else 0.0)
+    squares = float(np.sum(deviation * deviation)) if rates.size else 0.0
+    inverse = float(np.sum(1.0 / windows)) if rates.size else 0.0
+    now = 0.0 if current is None or not rates.size else float(np.sum(current))
+    return np.array([count, summed, squares, inverse, now])
+
+
+def merged_rate_moments(parts) -> np.ndarray:
+    """:func:`rate_moments` of several parts as one: ``[accounts, mean rate, variance of
+    the rates, mean of 1 / windows, summed rates, summed current]``."""
+    table = np.asarray(list(parts), dtype=np.float64).reshape(-1, 5)
+    count = float(table[:, _COUNT].sum())
+    if count == 0:
+        return np.zeros(6)
+    if table.shape[0] == 1:  # numpy's own arithmetic, to the bit
+        summed, squares = float(table[0, _RATES]), float(table[0, _SQUARES])
+    else:
+        summed = float(np.sum(table[:, _RATES]))
+        held = table[table[:, _COUNT] > 0]
+        shift = held[:, _RATES] / held[:, _COUNT] - summed / count
+        squares = float(np.sum(held[:, _SQUARES]) + np.sum(held[:, _COUNT] * shift * shift))
+    mean = summed / count
+    inverse = float(np.sum(table[:, _INVERSE])) / count
+    current = float(np.sum(table[:, _CURRENT]))
+    return np.array([count, mean, squares / count, inverse, summed, current])
+
+
+def _prior_of(moments: np.ndarray) -> tuple[float, float]:
+    """Gamma shape and rate from :func:`merged_rate_moments`."""
+    count, mean, variance, inverse = (float(v) for v in moments[:4])
+    if count == 0 or mean <= 0:
         return 1e6, 1e6 / 1e-6
-    spread = float(rates.var()) - mean * float(np.mean(1.0 / windows))
+    spread = variance - mean * inverse
     shape = mean * mean / spread if spread > 0 else 1e6
     shape = float(min(shape, 1e6))
     return shape, shape / mean
+
+
+def novelty_law(moments: np.ndarray) -> tuple[float, float, float]:
+    """The window's prior shape and rate and its growth (the valid accounts' count now
+    over their summed mean rates) from :func:`merged_rate_moments` of the valid accounts
+    (with their current counts)."""
+    shape, rate = _prior_of(moments)
+    expected, current = float(moments[4]), float(moments[5])
+    growth = current / expected if expected > 0 else 1.0
+    return shape, rate, max(growth, 1e-9)
+
+
+def novelty_valid(current, history_total, history_windows, valid) -> np.ndarray:
+    """The accounts :func:`novelty_zscore` scores: valid, with an earlier window, finite."""
+    x = np.asarray(current, dtype=np.float64).reshape(-1)
+    total = np.asarray(history_total, dtype=np.float64).reshape(-1)
+    windows = np.asarray(history_windows, dtype=np.float64).reshape(-1)
+    return np.asarray(valid, dtype=bool).reshape(-1) & (windows >= 1) & np.isfinite(x + total)
 
 
 def novelty_zscore(current, history_total, history_windows, valid) -> np.ndarray:
@@ -127,17 +212,27 @@ def novelty_zscore(current, history_total, history_windows, valid) -> np.ndarray
     accounts' total now over their mean rate), is negative binomial with ``r = a + s`` and
     ``p = (b + w) / (b + w + g)``. The mid-p tail is ``P(X > x) + P(X = x) / 2``.
     """
+    ok = novelty_valid(current, history_total, history_windows, valid)
+    x = np.asarray(current, dtype=np.float64).reshape(-1)
+    if not ok.any():
+        return np.full(x.size, np.nan)
+    total = np.asarray(history_total, dtype=np.float64).reshape(-1)
+    windows = np.asarray(history_windows, dtype=np.float64).reshape(-1)
+    moments = rate_moments(total[ok], windows[ok], x[ok])
+    law = novelty_law(merged_rate_moments([moments]))
+    return novelty_zscore_given(x, total, windows, ok, law)
+
+
+def novelty_zscore_given(current, history_total, history_windows, ok, law) -> np.ndarray:
+    """:func:`novelty_zscore` of the accounts ``ok`` (:func:`novelty_valid`) under the
+    window's ``law`` (:func:`novelty_law`: prior shape, rate and growth), NaN elsewhere."""
     x = np.asarray(current, dtype=np.float64).reshape(-1)
     total = np.asarray(history_total, dtype=np.float64).reshape(-1)
     windows = np.asarray(history_windows, dtype=np.float64).reshape(-1)
-    ok = np.asarray(valid, dtype=bool).reshape(-1) & (windows >= 1) & np.isfinite(x + total)
+    shape, rate, growth = law
     z = np.full(x.size, np.nan)
     if not ok.any():
         return z
-    shape, rate = gamma_prior(total[ok], windows[ok])
-    expected = float(np.sum(total[ok] / windows[ok]))
-    growth = float(np.sum(x[ok])) / expected if expected > 0 else 1.0
-    growth = max(growth, 1e-9)
     r = shape + total[ok]
     p = (rate + windows[ok]) / (rate + windows[ok] + growth)
     z[ok] = _by_slices(_mid_p_z, x[ok], r, p)
@@ -197,16 +292,40 @@ def homogeneity_zscore(current, baseline, valid, *, smoothing: float = 2.0) -> n
         z-score of the G-test's p-value (chi-square with ``C - 1`` degrees of freedom);
         NaN where not valid.
     """
+    ok = homogeneity_valid(current, baseline, valid)
+    cur = np.asarray(current, dtype=np.float64)
+    if not ok.any() or cur.shape[1] < 2:
+        return np.full(cur.shape[0], np.nan)
+    shares = cell_shares(cur[ok].sum(axis=0))
+    return homogeneity_zscore_given(cur, baseline, ok, shares, smoothing=smoothing)
+
+
+def homogeneity_valid(current, baseline, valid) -> np.ndarray:
+    """The accounts :func:`homogeneity_zscore` tests: valid, both rows finite."""
     cur = np.asarray(current, dtype=np.float64)
     base = np.asarray(baseline, dtype=np.float64)
     if cur.ndim != 2 or cur.shape != base.shape:
         raise ValueError(f"current and baseline must be n x C of one shape, got {cur.shape}")
-    ok = np.asarray(valid, dtype=bool).reshape(-1) & np.isfinite(cur + base).all(axis=1)
+    return np.asarray(valid, dtype=bool).reshape(-1) & np.isfinite(cur + base).all(axis=1)
+
+
+def cell_shares(totals) -> np.ndarray:
+    """Each cell's share of the tested accounts' current counts (``totals``: their column
+    sums, added up over parts when the accounts are split), even when there are none."""
+    totals = np.asarray(totals, dtype=np.float64)
+    if totals.sum() > 0:
+        return totals / totals.sum()
+    return np.full(totals.size, 1 / totals.size)
+
+
+def homogeneity_zscore_given(current, baseline, ok, shares, *, smoothing: float) -> np.ndarray:
+    """:func:`homogeneity_zscore` of the accounts ``ok`` (:func:`homogeneity_valid`) with
+    the baseline smoothed toward the window's ``shares`` (:func:`cell_shares`)."""
+    cur = np.asarray(current, dtype=np.float64)
+    base = np.asarray(baseline, dtype=np.float64)
     z = np.full(cur.shape[0], np.nan)
     if not ok.any() or cur.shape[1] < 2:
         return z
-    totals = cur[ok].sum(axis=0)
-    shares = totals / totals.sum() if totals.sum() > 0 else np.full(cur.shape[1], 1 / cur.shape[1])
     g = _by_slices(
         lambda now, before: g_statistic(now, before + smoothing * shares), cur[ok], base[ok]
     )
@@ -237,22 +356,43 @@ def role_shift_zscore(
     ndarray, shape (n,)
         NaN where not valid.
     """
+    stat = role_shift_statistic(distance, current_events, baseline_events)
+    groups = np.asarray(strata, dtype=np.int64)
+    ok = role_shift_valid(stat, groups, valid)
+    if not ok.any():
+        return np.full(stat.size, np.nan)
+    medians = np.full(int(groups[ok].max()) + 1, np.nan)
+    for group in np.unique(groups[ok]):
+        medians[group] = np.median(stat[ok & (groups == group)])
+    return role_shift_zscore_given(stat, groups, ok, medians, n_roles=n_roles)
+
+
+def role_shift_statistic(distance, current_events, baseline_events) -> np.ndarray:
+    """``8 n_eff d^2`` per account (``n_eff``: the harmonic sample size of its events)."""
     d = np.asarray(distance, dtype=np.float64)
     a = np.asarray(current_events, dtype=np.float64)
     b = np.asarray(baseline_events, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         n_eff = np.where(a + b > 0, a * b / (a + b), 0.0)
-    stat = 8.0 * n_eff * d * d
+    return 8.0 * n_eff * d * d
+
+
+def role_shift_valid(stat, strata, valid) -> np.ndarray:
+    """The accounts :func:`role_shift_zscore` scores: valid, finite, in a stratum."""
     groups = np.asarray(strata, dtype=np.int64)
-    ok = np.asarray(valid, dtype=bool) & np.isfinite(stat) & (groups >= 0)
-    z = np.full(d.size, np.nan)
-    df = max(int(n_roles) - 1, 1)
+    return np.asarray(valid, dtype=bool) & np.isfinite(stat) & (groups >= 0)
+
+
+def role_shift_zscore_given(stat, strata, ok, medians, *, n_roles: int) -> np.ndarray:
+    """:func:`role_shift_zscore` of the accounts ``ok`` (:func:`role_shift_valid`) given
+    each stratum's median statistic (``medians[stratum]``, over the whole window)."""
+    groups = np.asarray(strata, dtype=np.int64)
+    z = np.full(stat.size, np.nan)
     if not ok.any():
         return z
-    codes, inverse = np.unique(groups[ok], return_inverse=True)
-    medians = np.array([np.median(stat[ok][inverse == c]) for c in range(codes.size)])
-    inflation = np.maximum(medians / chi2.median(df), 1.0)
-    z[ok] = z_from_log_tail(chi2.logsf(stat[ok] / inflation[inverse], df))
+    df = max(int(n_roles) - 1, 1)
+    inflation = np.maximum(np.asarray(medians, dtype=np.float64) / chi2.median(df), 1.0)
+    z[ok] = z_from_log_tail(chi2.logsf(stat[ok] / inflation[groups[ok]], df))
     return z
 
 
@@ -268,12 +408,20 @@ def empirical_null(z, valid) -> tuple[np.ndarray, float, float]:
     """
     values = np.asarray(z, dtype=np.float64)
     ok = np.asarray(valid, dtype=bool) & np.isfinite(values)
-    out = np.full(values.size, np.nan)
     if not ok.any():
-        return out, 0.0, 1.0
-    centre = float(np.median(values[ok]))
-    spread = MAD_SCALE * float(np.median(np.abs(values[ok] - centre)))
-    centre, spread = max(centre, 0.0), max(spread, 1.0)
+        return np.full(values.size, np.nan), 0.0, 1.0
+    median = float(np.median(values[ok]))
+    deviation = float(np.median(np.abs(values[ok] - median)))
+    return empirical_null_given(values, ok, median, deviation)
+
+
+def empirical_null_given(z, ok, median: float, deviation: float):
+    """:func:`empirical_null` of the scores ``ok`` (valid and finite) given the window's
+    median of them and median absolute deviation from it."""
+    values = np.asarray(z, dtype=np.float64)
+    out = np.full(values.size, np.nan)
+    centre = max(float(median), 0.0)
+    spread = max(MAD_SCALE * float(deviation), 1.0)
     out[ok] = (values[ok] - centre) / spread
     return out, centre, spread
 

@@ -33,7 +33,12 @@ from .shift import DISTANCES, activity_change, role_aware_distance
 __all__ = [
     "ShiftPolicy",
     "TieEvidence",
+    "activity_levels",
     "alert_mask",
+    "budget_quota",
+    "status_codes",
+    "status_labels",
+    "strata_of_levels",
     "WindowScores",
     "score_window",
     "stratified_zscore",
@@ -174,6 +179,12 @@ class WindowScores:
         ``"evidence"`` score (empty otherwise)
     strongest : object array of str, the component with the largest z-score ("" where
         none)
+    detail_rows : int array, optional
+        None: every array above holds one value per account. Otherwise ``composition``,
+        ``magnitude``, ``error``, ``bridging``, ``components`` and ``strongest`` hold only
+        these rows (sorted), in this order: a window scored over parts on a cluster
+        brings back the details of its alerted accounts only
+        (:mod:`rolewatch.engine.scoring_parts`); :meth:`detail_index` finds a row.
 
     The two label arrays hold references to a handful of shared strings, 8 bytes an
     account (as numpy fixed-width text they took 4 bytes a character of the longest
@@ -189,6 +200,16 @@ class WindowScores:
     bridging: np.ndarray | None = None
     components: dict[str, np.ndarray] = field(default_factory=dict)
     strongest: np.ndarray | None = None
+    detail_rows: np.ndarray | None = None
+
+    def detail_index(self, row: int) -> int:
+        """Where account ``row``'s details are in the detail arrays (see ``detail_rows``)."""
+        if self.detail_rows is None:
+            return row
+        at = int(np.searchsorted(self.detail_rows, row))
+        if at >= self.detail_rows.size or self.detail_rows[at] != row:
+            raise KeyError(f"account row {row} has no details here (only alerted accounts do)")
+        return at
 
 
 def score_window(
@@ -256,7 +277,9 @@ def score_window(
     # with tie counts, a baseline window counts even where its mixture is unknown (an
     # account with too little structure there still has counts to compare)
     has_prior = has_base if ties is None else np.isfinite(ties.baseline_events).all(axis=1)
-    status = _statuses(has_cur, has_prior, shaped.astype(bool), a, b, policy.min_events)
+    status = status_labels(
+        status_codes(has_cur, has_prior, shaped.astype(bool), a, b, policy.min_events)
+    )
     scored = status == "scored"
     if policy.calibration == "evidence":
         return _evidence_scores(
@@ -374,7 +397,13 @@ def _composition(cur: np.ndarray, base: np.ndarray, F: ArrayLike, measure: str) 
     return np.asarray(DISTANCES[measure](cur, base))
 
 
-def _statuses(
+def status_labels(codes: np.ndarray) -> np.ndarray:
+    """:func:`status_codes` as the strings of :data:`STATUSES`: every row refers to one of
+    the five shared strings, not a copy of its own."""
+    return np.asarray(STATUSES, dtype=object)[codes]
+
+
+def status_codes(
     has_cur: np.ndarray,
     has_base: np.ndarray,
     structured: np.ndarray,
@@ -382,16 +411,15 @@ def _statuses(
     b: np.ndarray,
     min_events: float,
 ) -> np.ndarray:
-    """One of :data:`STATUSES` per account; later rules override earlier ones. The rules
-    pick positions in :data:`STATUSES`, so every row refers to one of its five strings
-    (a string assigned through a mask would be copied into a new object per row)."""
+    """Each account's position in :data:`STATUSES` (int8); later rules override earlier
+    ones."""
     code = np.full(has_cur.size, STATUSES.index("scored"), dtype=np.int8)
     low = ~(a >= min_events) | ~(b >= min_events)
     code[low] = STATUSES.index("low_activity")
     code[~has_base] = STATUSES.index("new")
     code[~structured] = STATUSES.index("too_little")
     code[~has_cur] = STATUSES.index("inactive")
-    return np.asarray(STATUSES, dtype=object)[code]
+    return code
 
 
 def _shift_score(
@@ -439,12 +467,17 @@ def alert_mask(score: np.ndarray, policy: ShiftPolicy) -> np.ndarray:
         alert[finite] = score[finite] >= policy.threshold
         return alert
     idx = np.flatnonzero(finite)
-    quota = int(np.floor(policy.budget * idx.size + 1e-9))
-    if idx.size and quota == 0:
-        quota = 1
+    quota = budget_quota(idx.size, policy.budget)
     top = idx[np.argsort(-score[idx], kind="stable")][:quota]
     alert[top[score[top] >= policy.floor]] = True
     return alert
+
+
+def budget_quota(scored: int, budget: float) -> int:
+    """How many of ``scored`` accounts with a finite score may alert in budget mode:
+    ``floor(budget * scored)``, at least one when any is scored."""
+    quota = int(np.floor(budget * scored + 1e-9))
+    return 1 if scored and quota == 0 else quota
 
 
 def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:
@@ -469,23 +502,40 @@ def activity_strata(activity, valid, *, stratum_size: int = 25) -> np.ndarray:
     ndarray of int64, shape (n,)
         Group id per account, 0 for the busiest group; -1 where not ``valid``.
     """
+    level = activity_levels(activity, valid)
+    held = level >= 0
+    group_of_level = strata_of_levels(np.bincount(level[held]), stratum_size=stratum_size)
+    out = np.full(level.size, -1, dtype=np.int64)
+    out[held] = group_of_level[level[held]]
+    return out
+
+
+def activity_levels(activity, valid) -> np.ndarray:
+    """Each valid account's base stratum ``floor(log2(1 + activity))`` (-1: not valid or
+    activity not finite); :func:`activity_strata` groups them."""
     act = np.asarray(activity, dtype=np.float64)
     valid = np.asarray(valid, dtype=bool) & np.isfinite(act)
     level = np.full(act.size, -1, dtype=np.int64)
     level[valid] = np.floor(np.log2(1.0 + np.maximum(act[valid], 0.0))).astype(np.int64)
-    levels, counts = np.unique(level[valid], return_counts=True)
-    group_of_level = np.empty(levels.size, dtype=np.int64)
+    return level
+
+
+def strata_of_levels(level_counts, *, stratum_size: int = 25) -> np.ndarray:
+    """The group of every base stratum given how many accounts each holds
+    (``level_counts[level]``, summed over parts when the accounts are split): see
+    :func:`activity_strata`. Levels holding nobody get -1."""
+    counts = np.asarray(level_counts, dtype=np.int64)
+    levels = np.flatnonzero(counts > 0)
+    group_of_level = np.full(counts.size, -1, dtype=np.int64)
     group, filled = 0, 0
-    for position in range(levels.size - 1, -1, -1):  # a loop over strata, not accounts
-        group_of_level[position] = group
-        filled += counts[position]
+    for level in levels[::-1]:  # a loop over strata, not accounts
+        group_of_level[level] = group
+        filled += int(counts[level])
         if filled >= stratum_size:
             group, filled = group + 1, 0
     if levels.size and 0 < filled < stratum_size and group > 0:
         group_of_level[group_of_level == group] = group - 1
-    out = np.full(act.size, -1, dtype=np.int64)
-    out[valid] = group_of_level[np.searchsorted(levels, level[valid])]
-    return out
+    return group_of_level
 
 
 def stratified_zscore(

@@ -272,13 +272,13 @@ def read_past_window(
     order (missing roles are 0; accounts with too little activity get NaN rows). A window
     whose memberships the store does not hold (``store_memberships_max_accounts``) is read
     from the Parquet ``outputs``."""
-    column_of = {str(role_id): column for column, role_id in enumerate(model.basis.role_ids)}
-    stored = stored_memberships.window_columns(connection, window_id)
+    role_ids = [str(role_id) for role_id in model.basis.role_ids]
+    stored = stored_memberships.window_columns(connection, window_id, role_ids)
     if not len(stored.accounts) and outputs:
         from rolewatch.scale.output_reads import stored_window
 
-        stored = stored_window(outputs, end_us)
-    mixture = _mixture_matrix(stored.mixtures, list(column_of))
+        stored = stored_window(outputs, end_us, role_ids)
+    mixture = stored.mixture
     totals = mixture.sum(axis=1, keepdims=True)
     np.divide(mixture, totals, out=mixture, where=totals > 0)
     mixture[stored.status == "too_little"] = np.nan
@@ -293,15 +293,3 @@ def read_past_window(
         community=stored.community,
         ref=WindowRef(id=window_id, start=to_rfc3339(start_us), end=to_rfc3339(end_us)),
     )
-
-
-def _mixture_matrix(mixtures: list[dict], role_ids: list[str]) -> np.ndarray:
-    """Stored ``{role_id: weight}`` mixtures as a matrix with one column per role id, in
-    that order (0 where a mixture lacks the role; roles not in the list are dropped)."""
-    import pandas as pd
-
-    frame = pd.DataFrame.from_records(mixtures, columns=role_ids) if mixtures else None
-    if frame is None:
-        return np.zeros((0, len(role_ids)))
-    # row-major, as the sums over each row's roles expect (they round differently otherwise)
-    return np.ascontiguousarray(frame.to_numpy(dtype=np.float64, na_value=0.0))

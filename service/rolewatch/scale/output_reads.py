@@ -14,6 +14,7 @@ process.
 from __future__ import annotations
 
 import threading
+from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
@@ -173,11 +174,11 @@ def account_history(
     return [{**found[end], PARTITION: end} for end in ends]
 
 
-def stored_window(path: str, end_us: int) -> StoredWindow:
+def stored_window(path: str, end_us: int, role_ids: Sequence[str]) -> StoredWindow:
     """One window's memberships read from its file, laid out as
     :func:`rolewatch.store.memberships.window_columns` reads them from the store (mixtures
-    rounded to the store's decimals, NaN for unknown tie cells, -1 for no community); no rows
-    when the window has no file."""
+    in the columns of ``role_ids``, rounded to the store's decimals, NaN for unknown tie
+    cells, -1 for no community); no rows when the window has no file."""
     filesystem, name = window_file(path, end_us)
     try:
         table = pq.read_table(name, filesystem=filesystem, use_threads=False)
@@ -189,7 +190,7 @@ def stored_window(path: str, end_us: int) -> StoredWindow:
 
     return StoredWindow(
         accounts=np.asarray(table.column("account").to_pylist(), dtype=object),
-        mixtures=_mixture_dicts(table.column("mixture")),
+        mixture=_mixture_rows(table.column("mixture"), role_ids),
         status=np.asarray(table.column("status").to_pylist(), dtype=object),
         events_out=numbers("events_out"),
         events_in=numbers("events_in"),
@@ -200,14 +201,20 @@ def stored_window(path: str, end_us: int) -> StoredWindow:
     )
 
 
-def _mixture_dicts(column: pa.ChunkedArray) -> list[dict]:
-    """Each row's ``{role id (str): share}``, shares rounded to the store's decimals."""
+def _mixture_rows(column: pa.ChunkedArray, role_ids: Sequence[str]) -> np.ndarray:
+    """Each row's shares in the columns of ``role_ids``, rounded to the store's decimals
+    (0 where the row lacks a role; roles not in the list are dropped), row-major."""
     flat = pa.concat_arrays(column.chunks) if column.num_chunks else pa.array([], column.type)
     offsets = flat.offsets.to_numpy()
-    roles, at = np.unique(flat.keys.to_numpy(), return_inverse=True)
-    keys = roles.astype(str)[at].tolist()  # a few role ids: one conversion each
-    shares = np.round(flat.items.to_numpy(), MIXTURE_DECIMALS).tolist()
-    return [
-        dict(zip(keys[lo:hi], shares[lo:hi], strict=True))
-        for lo, hi in zip(offsets[:-1].tolist(), offsets[1:].tolist(), strict=True)
-    ]
+    shares = np.zeros((len(flat), len(role_ids)))
+    if not len(flat):
+        return shares
+    entries = slice(int(offsets[0]), int(offsets[-1]))  # keys and items of the rows held
+    roles, at = np.unique(flat.keys.to_numpy()[entries], return_inverse=True)
+    column_of = {role_id: j for j, role_id in enumerate(role_ids)}
+    columns = np.array([column_of.get(role, -1) for role in roles.astype(str)], dtype=np.int64)[at]
+    rows = np.repeat(np.arange(len(flat)), np.diff(offsets))
+    kept = columns >= 0
+    values = np.round(flat.items.to_numpy()[entries], MIXTURE_DECIMALS)
+    shares[rows[kept], columns[kept]] = values[kept]
+    return shares

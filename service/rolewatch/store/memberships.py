@@ -9,7 +9,9 @@ read back from here. An account with too little activity to fit a role (status
 from __future__ import annotations
 
 import json
+from collections.abc import Sequence
 from dataclasses import dataclass, fields
+from typing import Any
 
 import numpy as np
 import orjson
@@ -244,7 +246,8 @@ class StoredWindow:
     """What the next windows read back of one window's memberships, column by column."""
 
     accounts: np.ndarray  # str
-    mixtures: list[dict]  # {role_id: weight}; {} where the account had too little activity
+    mixture: np.ndarray  # n x roles asked for, as stored (0 where a role is absent, all 0
+    # where the account had too little activity), row-major
     status: np.ndarray  # str
     events_out: np.ndarray
     events_in: np.ndarray
@@ -254,25 +257,52 @@ class StoredWindow:
     community: np.ndarray  # int, -1 where none
 
 
-def window_columns(connection: Connection, window_id: int) -> StoredWindow:
-    """Every membership of one window, as columns (read on the DBAPI cursor in one
-    statement; the mixtures' JSON decoded in one call)."""
+READ_BATCH_ROWS = 100_000  # memberships fetched and decoded at once
+
+
+def mixture_matrix(mixtures: list[dict], role_ids: Sequence[str]) -> np.ndarray:
+    """Stored ``{role_id: weight}`` mixtures as a row-major matrix with one column per role
+    id, in that order (0 where a mixture lacks the role; roles not in the list are dropped)."""
+    import pandas as pd
+
+    if not mixtures:
+        return np.zeros((0, len(role_ids)))
+    frame = pd.DataFrame.from_records(mixtures, columns=list(role_ids))
+    # row-major, as the sums over each row's roles expect (they round differently otherwise)
+    return np.ascontiguousarray(frame.to_numpy(dtype=np.float64, na_value=0.0))
+
+
+def window_columns(connection: Connection, window_id: int, role_ids: Sequence[str]) -> StoredWindow:
+    """Every membership of one window, as columns, mixtures in the columns of ``role_ids``
+    (one statement on the DBAPI cursor, fetched and decoded :data:`READ_BATCH_ROWS` rows at
+    a time: a window's rows as Python tuples and its mixtures as dicts, all at once, took
+    several times the columns' memory)."""
     mark = "%s" if connection.dialect.name == "postgresql" else "?"
     cursor = connection.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
+    batches = []
     try:
         cursor.execute(
             f"SELECT {', '.join(_READ_COLUMNS)} FROM memberships WHERE window_id = {mark}",
             (window_id,),
         )
-        rows = cursor.fetchall()
+        while rows := cursor.fetchmany(READ_BATCH_ROWS):
+            batches.append(_decoded(rows, role_ids))
     finally:
         cursor.close()
-    table = np.array(rows, dtype=object).reshape(len(rows), 12)
-    del rows
+    if len(batches) <= 1:  # one batch is the window: no copy
+        return batches[0] if batches else _decoded([], role_ids)
+    return StoredWindow(
+        *(np.concatenate([getattr(b, f.name) for b in batches]) for f in fields(StoredWindow))
+    )
+
+
+def _decoded(rows: Sequence[Any], role_ids: Sequence[str]) -> StoredWindow:
+    """One batch of membership rows (:data:`_READ_COLUMNS`) as columns."""
+    table = np.array(rows, dtype=object).reshape(len(rows), len(_READ_COLUMNS))
     numbers = np.where(table[:, 3:] == None, np.nan, table[:, 3:]).astype(np.float64)  # noqa: E711
     return StoredWindow(
         accounts=table[:, 0].copy(),
-        mixtures=json.loads("[" + ",".join(table[:, 1].tolist()) + "]"),
+        mixture=mixture_matrix(json.loads("[" + ",".join(table[:, 1].tolist()) + "]"), role_ids),
         status=table[:, 2].copy(),
         events_out=numbers[:, 0],
         events_in=numbers[:, 1],
