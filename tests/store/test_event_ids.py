@@ -40,3 +40,28 @@ def test_arrow_stays_arrow_and_anything_else_becomes_objects():
     assert isinstance(as_event_ids(pa.chunked_array([["a"], ["b"]])), pa.Array)
     plain = as_event_ids(["a", "b"])
     assert isinstance(plain, np.ndarray) and plain.dtype == object
+
+
+def test_ids_kept_on_disk_read_like_a_python_list_and_leave_no_file(tmp_path):
+    # The reference is Python's own list of the ids; Arrow's memory pool accounts for every
+    # buffer it allocates, so a mapped array adds nothing to it.
+    import gc
+
+    from rolewatch.store.event_ids import kept_on_disk
+
+    many = [f"e-{i}" for i in range(50_000)] + IDS
+    for name, ids in {**_forms(), "many": pa.array(many, pa.string())}.items():
+        expected = [str(i) for i in ids]
+        gc.collect()
+        before = pa.total_allocated_bytes()
+        kept = kept_on_disk(ids, str(tmp_path))
+        assert pa.total_allocated_bytes() == before, name  # no copy in this process's heap
+        assert list(tmp_path.iterdir()) == [], name  # the file is unlinked once mapped
+        del ids
+        gc.collect()
+        assert kept.to_pylist() == expected, name
+        assert str(kept[len(expected) - 1]) == expected[-1]
+        assert [str(i) for i in ids_at(kept, np.array([0, len(expected) - 1]))] == [
+            expected[0],
+            expected[-1],
+        ]
