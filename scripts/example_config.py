@@ -26,6 +26,7 @@ EXAMPLES = {
     "event_archive": "/var/lib/rolewatch/archive",
     "dask_scheduler": "tcp://127.0.0.1:8786",
     "output_archive": "/var/lib/rolewatch/outputs",
+    "close_scratch_dir": "/var/tmp",
 }
 
 HEAD = """\

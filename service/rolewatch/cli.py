@@ -378,6 +378,7 @@ BENCH_MODULES = (
     "load",
     "detection",
     "scale",
+    "scale_archive",
 )
 
 

@@ -358,6 +358,13 @@ class Settings(BaseSettings):
         description="Path or URL (anything pyarrow/fsspec opens) of the Parquet event archive, "
         "partitioned by window; needed when event_source is archive.",
     )
+    archive_reader: Literal["workers", "closer"] = Field(
+        "workers",
+        description="Who reads a measured window's events from event_archive when compute is "
+        "dask: the Dask workers (they need read access to the archive's storage; the closing "
+        "process then never holds the events), or the closing process, which sends them to "
+        "the workers.",
+    )
     compute: Literal["local", "dask"] = Field(
         "local",
         description="Where a window's features and memberships are computed: in this process, "
@@ -381,6 +388,14 @@ class Settings(BaseSettings):
         description="A window with more accounts than this keeps its memberships and scores "
         "only in output_archive, not in the SQL store (which still gets the window, its alerts "
         "and their evidence); 0 stores every window's memberships.",
+    )
+    close_scratch_dir: str | None = Field(
+        None,
+        description="Directory on the closing machine's local disk where a window of at least "
+        "1,000,000 events keeps its event ids during its close, memory-mapped, instead of in "
+        "memory (the file is unlinked at once; its space returns when the close ends); empty: "
+        "the system's temporary directory (TMPDIR). A memory-backed directory (tmpfs) saves "
+        "nothing.",
     )
     dask_partitions: int = Field(
         64,
@@ -413,6 +428,16 @@ class Settings(BaseSettings):
     def _readable_ca_bundle(cls, path: str | None) -> str | None:
         if path and not Path(path).is_file():
             raise ValueError(f"{path} is not a file: name a PEM file of certificate authorities")
+        return path or None
+
+    @field_validator("close_scratch_dir")
+    @classmethod
+    def _existing_scratch_dir(cls, path: str | None) -> str | None:
+        if path and not Path(path).is_dir():
+            raise ValueError(
+                f"close_scratch_dir {path} is not a directory: create it on a local disk, or "
+                "leave it empty for the system's temporary directory"
+            )
         return path or None
 
     @model_validator(mode="after")

@@ -33,6 +33,24 @@ def sample_events() -> list[dict]:
         return [json.loads(line) for line in handle if line.strip()]
 
 
+def write_archive(archive: str, events: list[dict], period_us: int) -> None:
+    """Append ``events`` (the sample's dicts) to the event archive at ``archive``."""
+    from rolewatch.scale.archive import events_table, write_events
+
+    write_events(
+        archive,
+        events_table(
+            [e["id"] for e in events],
+            [parse_time_us(e["time"]) for e in events],
+            [e["actor"] for e in events],
+            [e["target"] for e in events],
+            [e.get("kind") for e in events],
+            [float(e.get("weight", 1.0)) for e in events],
+        ),
+        period_us,
+    )
+
+
 def sample_settings(path: Path, **overrides):
     values = dict(
         database_url=f"sqlite:///{path}",

@@ -17,7 +17,7 @@ from rolewatch.pipeline.closer import close_due_windows
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
 
-from .conftest import NOW, SAMPLE, sample_events, sample_settings, written
+from .conftest import NOW, SAMPLE, sample_events, sample_settings, write_archive, written
 
 WEEK_US = 7 * 24 * 3600 * 1_000_000
 
@@ -93,22 +93,9 @@ def test_archive_and_store_events_together_close_like_the_store_alone(tmp_path):
 
     # half of the events in the archive, the rest (and a few of the archived ones again)
     # ingested through the store, as a small deployment keeps using the REST ingest
-    from rolewatch.scale.archive import events_table, write_events
-
     archived, ingested = every[::2], every[1::2] + every[:200:2]
     archive = str(tmp_path / "archive")
-    write_events(
-        archive,
-        events_table(
-            [e["id"] for e in archived],
-            [_time_us(e["time"]) for e in archived],
-            [e["actor"] for e in archived],
-            [e["target"] for e in archived],
-            [e.get("kind") for e in archived],
-            [float(e.get("weight", 1.0)) for e in archived],
-        ),
-        WEEK_US,
-    )
+    write_archive(archive, archived, WEEK_US)
     both = sample_settings(tmp_path / "both.db", event_source="archive", event_archive=archive)
     engine = open_store(both)
     ingest(engine, both, ingested, NOW)

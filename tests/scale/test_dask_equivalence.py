@@ -26,6 +26,7 @@ from rolewatch.pipeline.loading import PastWindowFacts, interned
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.scale import dispatch
 from rolewatch.scale import features as dask_features
+from rolewatch.scale import scoring as dask_scoring
 from rolewatch.scale.dispatch import DaskMeasure
 from rolewatch.scale.features import (
     SCRATCH_FOLDER,
@@ -303,18 +304,30 @@ def _closed_sample(dask_cluster, tmp_path, compute: str, events: list[dict]):
 
 
 @pytest.mark.slow
-def test_closing_on_dask_writes_what_closing_locally_writes(dask_cluster, tmp_path):
+def test_closing_on_dask_writes_what_closing_locally_writes(dask_cluster, tmp_path, monkeypatch):
     every = sample_events()
     results = {}
     before = scheduler_transitions(dask_cluster.scheduler.address)
+    scored_on_cluster: list[int] = []
+    on_cluster = dask_scoring.score_on_cluster
+
+    def counting(client, inputs, policy, partitions):
+        scored_on_cluster.append(inputs.mixture.shape[0])
+        return on_cluster(client, inputs, policy, partitions)
+
+    monkeypatch.setattr(dask_scoring, "score_on_cluster", counting)
+    measured = []
     for compute in ("local", "dask"):
-        engine, _ = _closed_sample(dask_cluster, tmp_path, compute, every)
+        engine, summaries = _closed_sample(dask_cluster, tmp_path, compute, every)
+        measured = [summary for summary in summaries if not summary.training]
         results[compute] = written(engine)
         engine.dispose()
     assert results["local"]["alerts"], "the sample raises alerts after training"
     assert_same_closes(results["dask"], results["local"])
-    # the dask close really ran on the cluster
+    # the dask close really ran on the cluster, its scores too (every window measured after
+    # training; the training windows are measured where the model is fitted)
     assert scheduler_transitions(dask_cluster.scheduler.address) > before
+    assert measured and len(scored_on_cluster) == len(measured)
 
 
 def test_a_window_smaller_than_the_partition_count_measures_like_the_local_engine(

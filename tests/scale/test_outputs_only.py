@@ -18,6 +18,7 @@ import sqlalchemy as sa
 
 from rolewatch.config import ConfigError, load_settings
 from rolewatch.pipeline.closer import close_due_windows
+from rolewatch.pipeline.model import load_active_model
 from rolewatch.scale.output_reads import stored_window
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
@@ -130,17 +131,58 @@ def test_a_window_read_back_from_parquet_equals_the_store_read(everything_stored
     engine = sa.create_engine(f"sqlite:///{folder / 'store.db'}")
     with engine.connect() as connection:
         ids = dict(connection.execute(sa.select(windows.c.end_us, windows.c.id)).all())
+        model = load_active_model(connection)
+        assert model is not None
+        # the model's roles in reverse, and a role no mixture holds (its column is 0)
+        role_ids = [str(role) for role in reversed(model.basis.role_ids)] + ["999"]
         for end_us, *_ in everything["windows"]:
-            stored = window_columns(connection, ids[end_us])
-            archived = stored_window(str(folder / "outputs"), end_us)
+            stored = window_columns(connection, ids[end_us], role_ids)
+            archived = stored_window(str(folder / "outputs"), end_us, role_ids)
             order = np.argsort(stored.accounts.astype(str))
             assert list(archived.accounts) == list(stored.accounts[order])
-            assert archived.mixtures == [stored.mixtures[i] for i in order]
+            assert np.array_equal(archived.mixture, stored.mixture[order])
+            assert archived.mixture.flags.c_contiguous and stored.mixture.flags.c_contiguous
+            assert not stored.mixture[:, -1].any() and stored.mixture.sum() > 0
+            # the stored JSON read back row by row (the standard library's decoder)
+            rows = connection.execute(
+                sa.select(memberships.c.account, memberships.c.mixture).where(
+                    memberships.c.window_id == ids[end_us]
+                )
+            ).all()
+            position = {account: i for i, account in enumerate(stored.accounts)}
+            for account, text in rows:
+                shares = json.loads(text)
+                expected = [shares.get(role, 0.0) for role in role_ids]
+                assert stored.mixture[position[account]].tolist() == expected
             assert list(archived.status) == list(stored.status[order])
             for name in ("events_out", "events_in", "counterparts", "new_counterparts"):
                 assert np.array_equal(getattr(archived, name), getattr(stored, name)[order])
             assert np.array_equal(archived.ties, stored.ties[order], equal_nan=True)
             assert np.array_equal(archived.community, stored.community[order])
+    engine.dispose()
+
+
+def test_a_window_read_in_small_batches_equals_the_read_in_one(everything_stored, monkeypatch):
+    from dataclasses import fields
+
+    from rolewatch.store import memberships as stored_memberships
+    from rolewatch.store.memberships import StoredWindow
+
+    folder, everything, _ = everything_stored
+    engine = sa.create_engine(f"sqlite:///{folder / 'store.db'}")
+    with engine.connect() as connection:
+        ids = dict(connection.execute(sa.select(windows.c.end_us, windows.c.id)).all())
+        role_ids = ["2", "0", "1"]
+        for end_us, accounts, *_ in everything["windows"]:
+            whole = window_columns(connection, ids[end_us], role_ids)
+            monkeypatch.setattr(stored_memberships, "READ_BATCH_ROWS", 7)
+            batched = window_columns(connection, ids[end_us], role_ids)
+            monkeypatch.undo()
+            assert len(batched.accounts) == accounts > 7
+            for field in fields(StoredWindow):
+                got, expected = getattr(batched, field.name), getattr(whole, field.name)
+                assert got.dtype == expected.dtype and got.shape == expected.shape
+                assert np.array_equal(got, expected, equal_nan=got.dtype.kind == "f"), field
     engine.dispose()
 
 

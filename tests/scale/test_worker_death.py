@@ -25,7 +25,7 @@ from rolewatch.scale import dispatch
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest, parse_time_us
 
-from .conftest import NOW, sample_events, sample_settings, written
+from .conftest import NOW, sample_events, sample_settings, write_archive, written
 from .helpers import assert_same_closes
 
 
@@ -162,20 +162,27 @@ def test_a_worker_killed_mid_close_leaves_the_window_closed_once(
     assert_same_closes(results["dask"], results["local"])
 
 
-def test_a_worker_killed_holding_a_range_of_the_archived_history_leaves_the_same_close(
-    cluster, tmp_path
+@pytest.mark.parametrize(
+    ("outputs", "prefix"),
+    [(True, "pair_range-"), (False, "_prepared-")],
+    ids=["history", "scoring"],
+)
+def test_a_worker_killed_holding_a_value_the_cluster_recomputes_leaves_the_same_close(
+    cluster, tmp_path, outputs, prefix
 ):
-    # The known pairs read on the workers from the outputs (a range is a task result, read
-    # from the pair files): losing a worker that holds one closes the window all the same.
+    # "history": the known pairs read on the workers from the outputs (a range is a task
+    # result, read from the pair files). "scoring": the window's score inputs sent to the
+    # workers in parts and scored there (rolewatch.scale.scoring); losing a part's prepared
+    # columns scores the window again, or Dask recomputes them from the part's copy. Either
+    # way the window closes as the local engine closes it.
     results = {}
     for compute in ("local", "dask"):
-        engine, settings = _five_weeks_stored(
-            tmp_path, compute, cluster, output_archive=str(tmp_path / f"{compute}-outputs")
-        )
+        extra = {"output_archive": str(tmp_path / f"{compute}-outputs")} if outputs else {}
+        engine, settings = _five_weeks_stored(tmp_path, compute, cluster, **extra)
         if compute == "local":
             close_due_windows(engine, settings, now_us=NOW, drain=True)
         else:
-            closed = _close_killing_a_worker(engine, settings, cluster, prefix="pair_range-")
+            closed = _close_killing_a_worker(engine, settings, cluster, prefix=prefix)
             assert [summary.training for summary in closed].count(False) == 1
         results[compute] = written(engine)
         engine.dispose()
@@ -206,4 +213,33 @@ def test_a_worker_killed_holding_a_kept_range_of_the_history_leaves_the_same_clo
         results[compute] = written(engine)
         engine.dispose()
     assert len(results["local"]["windows"]) == 6
+    assert_same_closes(results["dask"], results["local"])
+
+
+@pytest.mark.parametrize("prefix", ["_kept_once-", "_sorted_accounts-", "_coded-"])
+def test_a_worker_killed_holding_events_it_read_from_the_archive_leaves_the_same_close(
+    cluster, tmp_path, prefix
+):
+    # With the events in the archive the workers read them (rolewatch.scale.archive_events):
+    # every bucket of events is a task reading the archive's files, so Dask computes a lost
+    # one again and the window closes as the local engine closes it from the store.
+    engine, settings = _five_weeks_stored(tmp_path, "local", cluster)
+    close_due_windows(engine, settings, now_us=NOW, drain=True)
+    results = {"local": written(engine)}
+    engine.dispose()
+    archive = str(tmp_path / "archive")
+    write_archive(archive, _weeks(settings, 0, 5), WindowGeometry.from_settings(settings).period_us)
+    settings = sample_settings(
+        tmp_path / "archived.db",
+        compute="dask",
+        dask_scheduler=cluster.scheduler.address,
+        dask_partitions=4,
+        event_source="archive",
+        event_archive=archive,
+    )
+    engine = open_store(settings)
+    closed = _close_killing_a_worker(engine, settings, cluster, prefix=prefix)
+    assert [summary.training for summary in closed].count(False) == 1
+    results["dask"] = written(engine)
+    engine.dispose()
     assert_same_closes(results["dask"], results["local"])

@@ -37,7 +37,7 @@ from rolewatch.pipeline.compute import (
     past_from_result,
     start_window_communities,
 )
-from rolewatch.pipeline.loading import WindowEvents, stored_past_windows
+from rolewatch.pipeline.loading import WindowEvents, read_with_ids_on_disk, stored_past_windows
 from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.stages import StageClock
@@ -223,6 +223,7 @@ def _close_once(
         model = load_active_model(connection)
         if model is None:
             training = stored_windows.unmeasured_training_windows(connection)
+            loaded = read_with_ids_on_disk(finish_events, settings.close_scratch_dir)
         else:
             # listed now, each read in the history stage (one at a time, not all held)
             past = stored_past_windows(
@@ -235,9 +236,11 @@ def _close_once(
             )
             measure = measure_for(settings)
             known = known_pairs_for(connection, settings, measure, before_end_us=end_us)
-        current = finish_events()
+            current = event_source.closing_events(
+                connection, settings, measure, finish_events, start_us, end_us
+            )
     if model is None:
-        return _close_training(engine, settings, geometry, end_us, now_us, current, training, clock)
+        return _close_training(engine, settings, geometry, end_us, now_us, loaded, training, clock)
     window = WindowRef(id=None, start=to_rfc3339(start_us), end=to_rfc3339(end_us))
     started = time.perf_counter()
     result = compute_window(
@@ -248,10 +251,11 @@ def _close_once(
         known,
         window=window,
         raise_alerts=True,
-        events_of=event_source.stored_events_reader(engine, settings),
+        events_of=event_source.stored_events_reader(engine, settings, measure),
         clock=clock,
         measure=measure,
         recent=_recent_features(engine),
+        keep_score_inputs=False,
     )
     seconds = time.perf_counter() - started
     with clock.stage("store"), write_transaction(engine) as connection:
@@ -425,7 +429,7 @@ def _load_training(
                 span.id,
                 span.start_us,
                 span.end_us,
-                event_source.window_events(connection, settings, span.start_us, span.end_us),
+                event_source.read_window_events(connection, settings, span.start_us, span.end_us),
             )
             for span in training
         ]
@@ -462,6 +466,7 @@ def _measure_training(
             clock=own,
             recent=recent,
             communities=window_communities,
+            keep_score_inputs=False,
         )
         measured.append(_Measured(window, result, time.perf_counter() - started, own))
         past = (past + [past_from_result(result, ref)])[-lookback_windows(settings) :]

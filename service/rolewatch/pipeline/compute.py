@@ -22,6 +22,7 @@ from rolewatch.config import Settings
 from rolewatch.engine.activity import Activity
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.bridging import bridging_zscore, undirected_ties
+from rolewatch.engine.calibration import SLICE_ROWS
 from rolewatch.engine.features.recipe import FeatureTable
 from rolewatch.engine.pairs import PairHistory
 from rolewatch.engine.scoring import ShiftPolicy, TieEvidence, WindowScores, score_window
@@ -30,7 +31,7 @@ from rolewatch.engine.ties import TieCounts, tie_counts
 from rolewatch.pipeline.communities import CommunityJob, start_communities
 from rolewatch.pipeline.evidence import REVIEW_NOTICE, AlertContext, alerts_with_evidence
 from rolewatch.pipeline.history import AccountHistory, account_history, novelty_history
-from rolewatch.pipeline.loading import PastWindow, WindowEvents
+from rolewatch.pipeline.loading import ClosingEvents, PastWindow
 from rolewatch.pipeline.model import FrozenModel
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.stages import StageClock
@@ -42,6 +43,7 @@ __all__ = [
     "Measured",
     "PastWindow",
     "ScoreInputs",
+    "ScoringMeasure",
     "TieMeasure",
     "WindowRef",
     "WindowResult",
@@ -55,10 +57,10 @@ __all__ = [
 ]
 
 # Reads the events of an earlier window (its start and end), or None when they are gone.
-EventsOf = Callable[[WindowRef], WindowEvents | None]
+EventsOf = Callable[[WindowRef], ClosingEvents | None]
 # A window's feature table and memberships against the frozen model, from its snapshot and
 # events: in this process by default; rolewatch.scale.dispatch picks a Dask cluster instead.
-Measure = Callable[[FrozenModel, Snapshot, WindowEvents], tuple[FeatureTable, Memberships]]
+Measure = Callable[[FrozenModel, Snapshot, ClosingEvents], tuple[FeatureTable, Memberships]]
 # A window's feature table, memberships and tie cells.
 Measured = tuple[FeatureTable, Memberships, TieCounts]
 
@@ -70,16 +72,25 @@ class TieMeasure(Protocol):
     looked up there)."""
 
     def __call__(
-        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
+        self, model: FrozenModel, snapshot: Snapshot, events: ClosingEvents
     ) -> tuple[FeatureTable, Memberships]: ...
 
     def with_ties(
-        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents, known: PairHistory
+        self, model: FrozenModel, snapshot: Snapshot, events: ClosingEvents, known: PairHistory
     ) -> Measured: ...
 
 
+@runtime_checkable
+class ScoringMeasure(Protocol):
+    """A :data:`Measure` that also scores the window where it measured it (a cluster: the
+    window's sums, medians and top-k computed over parts of its accounts, the details of
+    the alerted accounts only: ``WindowScores.detail_rows``)."""
+
+    def score(self, inputs: ScoreInputs, policy: ShiftPolicy) -> WindowScores: ...
+
+
 def measure_locally(
-    model: FrozenModel, snapshot: Snapshot, events: WindowEvents
+    model: FrozenModel, snapshot: Snapshot, events: ClosingEvents
 ) -> tuple[FeatureTable, Memberships]:
     """The frozen recipe's features of ``snapshot`` and their memberships, in this process."""
     table = model.recipe.transform(snapshot)
@@ -223,7 +234,7 @@ def policy_from_settings(settings: Settings) -> ShiftPolicy:
 def compute_window(
     model: FrozenModel,
     settings: Settings,
-    current: WindowEvents,
+    current: ClosingEvents,
     past: Sequence[PastWindow],
     known: PairHistory,
     *,
@@ -234,6 +245,7 @@ def compute_window(
     measure: Measure = measure_locally,
     recent: RecentFeatures | None = None,
     communities: CommunityJob | None = None,
+    keep_score_inputs: bool = True,
 ) -> WindowResult:
     """Measure every active account of one window against its own history.
 
@@ -266,6 +278,11 @@ def compute_window(
         The window's communities, started earlier by the caller
         (:func:`start_window_communities`: the training close starts them before it fits
         the model, so they are ready when it measures); None starts them here.
+    keep_score_inputs
+        Keep the score inputs in the result (``WindowResult.inputs``) for a re-scoring under
+        other policies (the detection benchmark). The closer never re-scores: without them
+        they go once the window is scored, before the evidence, and take the look-back's
+        baselines with them (hundreds of MB at millions of accounts).
     """
     clock = clock if clock is not None else StageClock()
     with clock.stage("features"):
@@ -294,7 +311,7 @@ def compute_window(
     with clock.stage("bridging"):
         bridging = _bridging(graph, history, policy)
     del graph
-    step = _Step(model, settings, policy, snapshot, clock, measure, recent)
+    step = _Step(model, settings, policy, snapshot, clock, measure, recent, keep_score_inputs)
     return _measure(
         step,
         current,
@@ -333,12 +350,13 @@ class _Step:
     clock: StageClock
     measure: Measure
     recent: RecentFeatures | None
+    keep_score_inputs: bool
 
 
-def _features_by(step: _Step) -> Callable[[Snapshot, WindowEvents], FeatureTable]:
+def _features_by(step: _Step) -> Callable[[Snapshot, ClosingEvents], FeatureTable]:
     """The feature table of another window by the close's own ``measure``."""
 
-    def features(snapshot: Snapshot, events: WindowEvents) -> FeatureTable:
+    def features(snapshot: Snapshot, events: ClosingEvents) -> FeatureTable:
         return step.measure(step.model, snapshot, events)[0]
 
     return features
@@ -346,7 +364,7 @@ def _features_by(step: _Step) -> Callable[[Snapshot, WindowEvents], FeatureTable
 
 def _measure(
     step: _Step,
-    current: WindowEvents,
+    current: ClosingEvents,
     known: PairHistory,
     counts: TieCounts | None,
     communities: CommunityJob,
@@ -364,7 +382,12 @@ def _measure(
         activity = _activity(snapshot, counts)
     with clock.stage("scoring"):
         inputs = _score_inputs(model, members, activity, counts, history, policy, bridging)
-        scores = inputs.score(policy)
+        if isinstance(step.measure, ScoringMeasure):  # where the features were measured
+            scores = step.measure.score(inputs, policy)
+        else:
+            scores = inputs.score(policy)
+        kept_inputs = inputs if step.keep_score_inputs else None
+        del inputs
     alerts: list[NewAlert] = []
     if raise_alerts and np.any(scores.alert):
         settings = step.settings
@@ -406,12 +429,12 @@ def _measure(
         history,
         counts,
         community,
-        inputs,
+        kept_inputs,
     )
 
 
 def _features(
-    step: _Step, current: WindowEvents, known: PairHistory, counts: TieCounts | None
+    step: _Step, current: ClosingEvents, known: PairHistory, counts: TieCounts | None
 ) -> Measured:
     """The window's feature table and memberships, and its tie cells (``counts``, or
     counted by the measure with the features when None)."""
@@ -440,9 +463,17 @@ def _activity(snapshot: Snapshot, counts: TieCounts) -> Activity:
 
 def _structured(members: Memberships) -> np.ndarray:
     """Accounts whose membership fit holds something: a finite, non-empty loading (an
-    account whose binned features are all zero gets an all-zero fit)."""
-    loadings = np.asarray(members.loadings, dtype=np.float64)
-    return np.isfinite(loadings).all(axis=1) & (np.nan_to_num(loadings).sum(axis=1) > 0)
+    account whose binned features are all zero gets an all-zero fit). Row by row in slices
+    of :data:`~rolewatch.engine.calibration.SLICE_ROWS` accounts, so the NaN-free copy of
+    the loadings is never as long as the window."""
+    loadings = members.loadings
+    out = np.empty(loadings.shape[0], dtype=bool)
+    for start in range(0, loadings.shape[0], SLICE_ROWS):
+        block = np.asarray(loadings[start : start + SLICE_ROWS], dtype=np.float64)
+        out[start : start + SLICE_ROWS] = np.isfinite(block).all(axis=1) & (
+            np.nan_to_num(block).sum(axis=1) > 0
+        )
+    return out
 
 
 def _history(
@@ -542,7 +573,7 @@ def _measured_result(
     history: AccountHistory,
     counts: TieCounts,
     community: np.ndarray,
-    inputs: ScoreInputs,
+    inputs: ScoreInputs | None,
 ) -> WindowResult:
     status = scores.status
     role_ids = np.asarray(model.basis.role_ids)

@@ -26,7 +26,7 @@ from rolewatch.engine.scoring import ShiftPolicy, WindowScores
 from rolewatch.engine.shift import feature_moves
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.pipeline.history import AccountHistory
-from rolewatch.pipeline.loading import PastWindowFacts, WindowEvents
+from rolewatch.pipeline.loading import ClosingEvents, EventsElsewhere, PastWindowFacts
 from rolewatch.pipeline.model import FrozenModel
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.store.alerts import (
@@ -66,14 +66,14 @@ class AlertContext:
     ties: np.ndarray  # n x 4 tie cells of this window
     history: AccountHistory
     known: PairHistory
-    events_of: Callable[[WindowRef], WindowEvents | None] | None
+    events_of: Callable[[WindowRef], ClosingEvents | None] | None
     recent: RecentFeatures | None = None
     # Features of a baseline window recomputed from its events: None transforms it here;
     # a cluster close passes its own measure, so that window is computed on the workers too.
-    features_of: Callable[[Snapshot, WindowEvents], FeatureTable] | None = None
+    features_of: Callable[[Snapshot, ClosingEvents], FeatureTable] | None = None
 
 
-def alerts_with_evidence(context: AlertContext, current: WindowEvents) -> list[NewAlert]:
+def alerts_with_evidence(context: AlertContext, current: ClosingEvents) -> list[NewAlert]:
     """One alert, with its evidence, per account the scores flagged."""
     rows = np.flatnonzero(context.scores.alert)
     samples = _sample_event_ids(context.snapshot, current, rows)
@@ -252,13 +252,14 @@ def _activity_evidence(context: AlertContext, row: int) -> ActivityEvidence:
 
 
 def _components(scores: WindowScores, row: int) -> ShiftComponents:
-    parts = {name: _finite(values[row]) for name, values in scores.components.items()}
-    strongest = str(scores.strongest[row]) if scores.strongest is not None else ""
+    at = scores.detail_index(row)  # the account's place among the details brought back
+    parts = {name: _finite(values[at]) for name, values in scores.components.items()}
+    strongest = str(scores.strongest[at]) if scores.strongest is not None else ""
     return ShiftComponents(
-        composition=_finite(scores.composition[row]),
-        magnitude=_finite(scores.magnitude[row]),
-        error=_finite(scores.error[row]),
-        bridging=_finite(scores.bridging[row]) if scores.bridging is not None else None,
+        composition=_finite(scores.composition[at]),
+        magnitude=_finite(scores.magnitude[at]),
+        error=_finite(scores.error[at]),
+        bridging=_finite(scores.bridging[at]) if scores.bridging is not None else None,
         role=parts.get("role"),
         novelty_out=parts.get("novelty_out"),
         novelty_in=parts.get("novelty_in"),
@@ -315,12 +316,15 @@ SAMPLE_CHUNK_EVENTS = 1 << 22
 
 
 def _sample_event_ids(
-    snapshot: Snapshot, current: WindowEvents, rows: np.ndarray, per_account: int = 5
+    snapshot: Snapshot, current: ClosingEvents, rows: np.ndarray, per_account: int = 5
 ) -> dict[int, list[str]]:
     """The first few event ids (in time order) that involve each of ``rows``, found over
-    chunks of events in time order (an account's quota filled, later events skip it)."""
+    chunks of events in time order (an account's quota filled, later events skip it); of
+    events the workers hold, looked up where they are."""
     if len(rows) == 0:
         return {}
+    if isinstance(current, EventsElsewhere):
+        return current.sample_event_ids(rows, per_account)
     wanted = np.zeros(snapshot.n_nodes, dtype=bool)
     wanted[rows] = True
     taken = np.zeros(snapshot.n_nodes, dtype=np.int64)

@@ -4,8 +4,8 @@ events, and the stored memberships of the windows before it."""
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
-from typing import overload
+from dataclasses import dataclass, replace
+from typing import Protocol, TypeAlias, overload, runtime_checkable
 
 import numpy as np
 from sqlalchemy.engine import Engine
@@ -17,7 +17,11 @@ from rolewatch.store import memberships as stored_memberships
 from rolewatch.store.alerts import WindowRef
 from rolewatch.store.db import Connection
 from rolewatch.store.event_columns import start_event_columns
-from rolewatch.store.event_ids import EventIds, as_event_ids, reordered
+from rolewatch.store.event_ids import EventIds, as_event_ids, kept_on_disk, reordered
+
+# A window of at least this many events keeps its ids on local disk during its close (about
+# 20 MB of ids at this size; smaller windows' are not worth a file; common practice, no source).
+IDS_ON_DISK_MIN_EVENTS = 1_000_000
 
 
 @dataclass(frozen=True)
@@ -69,6 +73,50 @@ class WindowEvents:
             return self.actor_index, self.target_index
         row_of = snapshot.index_of(self.accounts)
         return row_of[self.actor_index], row_of[self.target_index]
+
+
+@runtime_checkable
+class EventsElsewhere(Protocol):
+    """A window's events this process does not hold (read and kept by a Dask cluster's
+    workers, :class:`rolewatch.scale.archive_events.WorkerEvents`): what a close asks of
+    them instead of the events themselves."""
+
+    from_store: int  # how many came from the store (what the close's re-check counts)
+
+    def __len__(self) -> int: ...
+
+    def snapshot(self) -> Snapshot: ...
+
+    def account_count(self) -> int: ...
+
+    def sample_event_ids(self, rows: np.ndarray, per_account: int = 5) -> dict[int, list[str]]:
+        """The first ``per_account`` event ids (in (time, id) order) of each of ``rows``."""
+        ...
+
+
+# The events a close measures: held here, or held by the workers.
+ClosingEvents: TypeAlias = WindowEvents | EventsElsewhere
+
+
+def read_with_ids_on_disk(
+    read: Callable[[], WindowEvents], directory: str | None = None
+) -> WindowEvents:
+    """The events ``read()`` gives, a large window's ids moved to a memory-mapped file in
+    ``directory`` (:func:`rolewatch.store.event_ids.kept_on_disk`; the close reads only the
+    few an alert quotes; a window under :data:`IDS_ON_DISK_MIN_EVENTS` events keeps them in
+    memory), then the memory Arrow freed meanwhile handed back to the operating system.
+
+    Arrow's allocator keeps what it frees for its own next allocations, and a close's later
+    stages allocate mostly outside Arrow (numpy): without the hand-back the read's Arrow
+    buffers (the ids among them) would stay in the process's memory until the close ends.
+    """
+    import pyarrow as pa
+
+    events = read()
+    if len(events) >= IDS_ON_DISK_MIN_EVENTS:
+        events = replace(events, event_id=kept_on_disk(events.event_id, directory))
+    pa.default_memory_pool().release_unused()
+    return events
 
 
 def interned(event_id, actor, target, weight, *, order=None) -> WindowEvents:

@@ -9,7 +9,8 @@ microseconds since the Unix epoch is read the same way), ``actor``, ``target``, 
 (strings, ``kind`` may be null) and ``weight`` (float64). The hive partition
 ``window_end_us`` is the end, in microseconds since the epoch, of the ``window_period`` slot
 holding the event (``(time // period + 1) * period``); a window whose span covers several
-periods reads several slots. An ``id`` seen twice is read once (the first file wins).
+periods reads several slots. An ``id`` seen twice is read once: its earliest row, and at equal
+times the row of the file whose path sorts first (the dataset's order).
 """
 
 from __future__ import annotations

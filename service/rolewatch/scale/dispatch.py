@@ -11,8 +11,9 @@ from __future__ import annotations
 import logging
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import fields
-from typing import Any
+from typing import Any, TypeVar
 
 from sqlalchemy.engine import Connection
 
@@ -20,18 +21,22 @@ from rolewatch.config import Settings
 from rolewatch.engine.basis import Memberships
 from rolewatch.engine.features.recipe import FeatureTable
 from rolewatch.engine.pairs import KnownPairs, PairHistory
+from rolewatch.engine.scoring import ShiftPolicy, WindowScores
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.engine.ties import TieCounts, tie_counts
 from rolewatch.pipeline.compute import (
     Measure,
     Measured,
+    ScoreInputs,
     WindowResult,
     measure_locally,
     membership_columns,
 )
-from rolewatch.pipeline.loading import WindowEvents
+from rolewatch.pipeline.loading import ClosingEvents, WindowEvents
 from rolewatch.pipeline.model import FrozenModel
 from rolewatch.pipeline.recent import MAX_KEPT_BYTES
+from rolewatch.scale.archive_events import WorkerEvents
+from rolewatch.scale.partitions import Partitioned
 from rolewatch.scale.workers import live_workers
 from rolewatch.store.pairs import known_pair_parts, known_pair_windows, window_pair_keys
 
@@ -67,6 +72,7 @@ RETRY_PAUSE_S = 1.0
 # evidence reads the alerted accounts' rows from there.
 RAW_HERE_MAX_BYTES = MAX_KEPT_BYTES
 log = logging.getLogger("rolewatch.scale")
+_Result = TypeVar("_Result")
 
 
 class ScaleExtraMissing(RuntimeError):
@@ -139,12 +145,16 @@ class DaskMeasure:
     """Computes a window's feature table and memberships on a Dask cluster
     (:func:`rolewatch.pipeline.compute.measure_locally` is the in-process equivalent), and
     with :meth:`with_ties` its tie cells too (:mod:`rolewatch.scale.ties`; in-process:
-    :func:`rolewatch.engine.ties.tie_counts`).
+    :func:`rolewatch.engine.ties.tie_counts`), and with :meth:`score` the window's shift
+    scores (:mod:`rolewatch.scale.scoring`; in-process:
+    :func:`rolewatch.engine.scoring.score_window`).
 
     A worker that dies mid-computation loses its intermediate tables (Dask recomputes them
     on the other workers) and the window's event chunks and known-pair ranges this process
     scattered to it (which Dask cannot recompute: the computation's futures are cancelled).
     The computation is then started again from the events, up to ``attempts`` times in all.
+    Events the workers read from the archive (:class:`WorkerEvents`) are task results instead,
+    which Dask reads again when a worker holding one is lost.
     """
 
     def __init__(
@@ -172,7 +182,7 @@ class DaskMeasure:
         return max(1, min(self.partitions, wanted))
 
     def __call__(
-        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents
+        self, model: FrozenModel, snapshot: Snapshot, events: ClosingEvents
     ) -> tuple[FeatureTable, Memberships]:
         if snapshot.n_nodes == 0:
             return measure_locally(model, snapshot, events)
@@ -180,7 +190,7 @@ class DaskMeasure:
         return table, members
 
     def with_ties(
-        self, model: FrozenModel, snapshot: Snapshot, events: WindowEvents, known: PairHistory
+        self, model: FrozenModel, snapshot: Snapshot, events: ClosingEvents, known: PairHistory
     ) -> Measured:
         """The feature table, memberships and the tie cells against ``known``, all counted
         on the cluster from the same partitioned graph."""
@@ -191,17 +201,41 @@ class DaskMeasure:
         assert ties is not None
         return table, members, ties
 
+    def score(self, inputs: ScoreInputs, policy: ShiftPolicy) -> WindowScores:
+        """The window's shift scores computed on the cluster over parts of its accounts
+        (:mod:`rolewatch.scale.scoring`); a calibration other than ``"evidence"`` scores in
+        this process."""
+        accounts = int(inputs.mixture.shape[0])
+        if policy.calibration != "evidence" or accounts == 0:
+            return inputs.score(policy)
+        from rolewatch.scale.scoring import score_on_cluster
+
+        partitions = self.partitions_for(accounts)
+        return self._attempted(
+            lambda: score_on_cluster(self.client, inputs, policy, partitions), None
+        )
+
+    def retried(self, work: Callable[[], _Result]) -> _Result:
+        """``work()`` on the cluster, started again when the cluster loses its data (as the
+        measure is), up to ``attempts`` times in all."""
+        return self._attempted(work, None)
+
     def _measure(
         self,
         model: FrozenModel,
         snapshot: Snapshot,
-        events: WindowEvents,
+        events: ClosingEvents,
         known: PairHistory | None,
     ) -> tuple[FeatureTable, Memberships, TieCounts | None]:
+        return self._attempted(lambda: self._measure_once(model, snapshot, events, known), known)
+
+    def _attempted(self, work: Callable[[], _Result], known: PairHistory | None) -> _Result:
+        """``work()``, started again when the cluster loses its data, up to ``attempts``
+        times in all."""
         lost = _lost_data_errors()
         for attempt in range(1, self.attempts + 1):
             try:
-                return self._measure_once(model, snapshot, events, known)
+                return work()
             except lost as error:
                 log.warning(
                     "the Dask cluster lost the window's data; computing it again",
@@ -220,7 +254,7 @@ class DaskMeasure:
         self,
         model: FrozenModel,
         snapshot: Snapshot,
-        events: WindowEvents,
+        events: ClosingEvents,
         known: PairHistory | None,
     ) -> tuple[FeatureTable, Memberships, TieCounts | None]:
         from distributed import wait
@@ -229,18 +263,25 @@ class DaskMeasure:
         from rolewatch.scale.graph import build_graph, scatter_events
         from rolewatch.scale.ties import count_ties
 
-        actor, target = events.rows_in(snapshot)
-        scattered, n = scatter_events(
-            self.client,
-            actor,
-            target,
-            events.weight,
-            snapshot.n_nodes,
-            self.partitions_for(snapshot.n_nodes),
-        )
-        held = list(scattered.futures)
+        scattered: Partitioned | None = None
+        if isinstance(events, WorkerEvents):  # read by the workers: chunks they can recompute
+            graph = events.take_graph() or build_graph((events.chunks, snapshot.n_nodes))
+            held: list[Any] = []
+        else:
+            assert isinstance(events, WindowEvents)  # held here: sent from this process
+            actor, target = events.rows_in(snapshot)
+            scattered, n = scatter_events(
+                self.client,
+                actor,
+                target,
+                events.weight,
+                snapshot.n_nodes,
+                self.partitions_for(snapshot.n_nodes),
+            )
+            held = list(scattered.futures)
         try:
-            graph = build_graph((scattered, n))
+            if scattered is not None:
+                graph = build_graph((scattered, n))
             built = [*graph.blocks.futures, *graph.base.futures]
             held += built
             with self.client.as_current():  # a client made for one scheduler is no default

@@ -32,13 +32,14 @@ TRIANGLES = "triangles"  # a block column beside the features, not one of them
 class WindowGraph:
     """The window's blocks (:class:`~rolewatch.scale.graph_steps.Block`, one per
     partition), their base features (``base``: one dict of float64 columns per
-    partition), ``n`` accounts in all, and ``wanted[i][j]``: the rows partition ``i`` needs
-    from partition ``j`` (futures)."""
+    partition), ``n`` accounts in all, ``wanted[i][j]``: the rows partition ``i`` needs
+    from partition ``j`` (futures), and when asked for, each partition's out-arcs."""
 
     blocks: Partitioned
     base: Partitioned
     n: int
     wanted: list[list[Any]]
+    out_arcs: Partitioned | None = None
 
 
 def scatter_events(
@@ -68,30 +69,34 @@ def scatter_events(
     return Partitioned(client, tuple(client.scatter(chunks)), bounds), n
 
 
-def build_graph(events: tuple[Partitioned, int]) -> WindowGraph:
-    """Route the scattered events to their accounts' partitions and build the blocks."""
+def build_graph(events: tuple[Partitioned, int], *, out_arcs: bool = False) -> WindowGraph:
+    """Route the events' chunks (any number of them) to their accounts' partitions and
+    build the blocks; with ``out_arcs`` also each partition's summed out-arcs (the rows of
+    the window's snapshot it owns, :func:`rolewatch.scale.graph_steps.out_arcs`)."""
     chunks, n = events
-    client, bounds, p = chunks.client, chunks.bounds, chunks.partitions
+    client, bounds = chunks.client, chunks.bounds
+    p = len(bounds) - 1
     routed = chunks.map(steps.route_events, bounds).pieces(p)
-    built = Partitioned(
-        client,
-        tuple(
+
+    def per_partition(step: Any) -> tuple[Any, ...]:
+        return tuple(
             client.submit(
-                steps.build_block,
+                step,
                 int(bounds[j]),
                 int(bounds[j + 1]),
                 n,
-                *[routed[i][j] for i in range(p)],
+                *[routed[i][j] for i in range(chunks.partitions)],
                 pure=False,
             )
             for j in range(p)
-        ),
-        bounds,
-    ).pieces(2)
+        )
+
+    built = Partitioned(client, per_partition(steps.build_block), bounds).pieces(2)
+    arcs = Partitioned(client, per_partition(steps.out_arcs), bounds) if out_arcs else None
     blocks = Partitioned(client, tuple(item[0] for item in built), bounds)
     base = Partitioned(client, tuple(item[1] for item in built), bounds)
     wanted = blocks.map(steps.need_parts, bounds).pieces(p)
-    return WindowGraph(blocks, base, n, wanted)
+    return WindowGraph(blocks, base, n, wanted, arcs)
 
 
 def fetch_columns(graph: WindowGraph, owners: Partitioned, names: Sequence[str]) -> list:

@@ -36,6 +36,7 @@ __all__ = [
     "egonet_columns",
     "need_parts",
     "orient",
+    "out_arcs",
     "route_events",
     "take_columns",
     "take_upper",
@@ -188,6 +189,13 @@ def build_block(lo: int, hi: int, n: int, *pieces: tuple) -> tuple[Block, dict[s
         columns={name: columns[name].copy() for name in BLOCK_COLUMNS},
     )
     return block, columns
+
+
+def out_arcs(lo: int, hi: int, n: int, *pieces: tuple) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+    """Partition ``[lo, hi)``'s rows of the window's snapshot: each account's events to each
+    counterpart, counted and their weights summed (CSR, ``rows x n``, sorted columns, one
+    pattern for both), from the routed events as :func:`build_block` takes them."""
+    return _summed(hi - lo, n, [p[0] for p in pieces])
 
 
 def need_parts(block: Block, bounds: np.ndarray) -> tuple[np.ndarray, ...]:

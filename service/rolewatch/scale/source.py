@@ -7,10 +7,10 @@ are exactly the store's reads.
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable
 from dataclasses import dataclass, fields
 from datetime import datetime, timedelta
-from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -18,7 +18,13 @@ import pyarrow.compute as pc
 
 from rolewatch.clock import EPOCH
 from rolewatch.config import Settings
-from rolewatch.pipeline.loading import WindowEvents, from_codes
+from rolewatch.pipeline.loading import (
+    ClosingEvents,
+    EventsElsewhere,
+    WindowEvents,
+    from_codes,
+    read_with_ids_on_disk,
+)
 from rolewatch.pipeline.loading import start_window_events as start_window_events_in_store
 from rolewatch.store import windows as stored_windows
 from rolewatch.store.account_codes import coded_accounts
@@ -31,7 +37,10 @@ _COLUMNS = ["id", "time", "actor", "target", "weight"]
 
 __all__ = [
     "ArchivedWindowEvents",
+    "closing_events",
     "first_event_time_from",
+    "read_on_cluster",
+    "read_window_events",
     "stored_part",
     "start_window_events",
     "stored_events_reader",
@@ -111,11 +120,12 @@ def _archived_window_events(
     connection: Connection, archive: str, start_us: int, end_us: int
 ) -> ArchivedWindowEvents:
     from rolewatch.scale.archive import read_window
+    from rolewatch.scale.archive_events import stored_table
     from rolewatch.store.event_times import timed_events_between
 
     table = read_window(archive, start_us, end_us).select(_COLUMNS)
     rows = timed_events_between(connection, start_us, end_us)
-    both = pa.concat_tables([table, _stored_table(rows, table.schema)])
+    both = pa.concat_tables([table, stored_table(rows).cast(table.schema)])
     # (time, id) order, stable: of an id in both, the archive's row (first) comes first
     order = pc.sort_indices(both, [("time", "ascending"), ("id", "ascending")]).to_numpy()
     id_code = both.column("id").combine_chunks().dictionary_encode().indices.to_numpy()
@@ -135,30 +145,94 @@ def _archived_window_events(
     )
 
 
-def _stored_table(rows: list[Any], schema: pa.Schema) -> pa.Table:
-    """The store's ``(event_id, time_us, actor, target, weight)`` rows as a table of the
-    archive's columns and types."""
-    columns: list[tuple[Any, ...]] = list(zip(*rows, strict=True)) if rows else [()] * 5
-    return pa.table(
-        [pa.array(values, type=field.type) for values, field in zip(columns, schema, strict=True)],
-        schema=schema,
+def read_window_events(
+    connection: Connection, settings: Settings, start_us: int, end_us: int
+) -> WindowEvents:
+    """:func:`window_events`, a large window's ids kept on disk and the memory Arrow freed
+    meanwhile handed back (:func:`rolewatch.pipeline.loading.read_with_ids_on_disk`)."""
+    return read_with_ids_on_disk(
+        lambda: window_events(connection, settings, start_us, end_us), settings.close_scratch_dir
     )
 
 
-def stored_part(events: WindowEvents) -> int:
+def stored_part(events: ClosingEvents) -> int:
     """How many of the window's events the store holds (what the close re-check counts)."""
-    return events.from_store if isinstance(events, ArchivedWindowEvents) else len(events)
+    if isinstance(events, ArchivedWindowEvents | EventsElsewhere):
+        return events.from_store
+    return len(events)
+
+
+def closing_events(
+    connection: Connection,
+    settings: Settings,
+    measure: object,
+    finish: Callable[[], WindowEvents],
+    start_us: int,
+    end_us: int,
+) -> ClosingEvents:
+    """The events of the window a measured close computes: read by the Dask workers when
+    they can be (:func:`read_on_cluster`), else by ``finish`` (what
+    :func:`start_window_events` started) with a large window's ids kept on disk."""
+    on_cluster = read_on_cluster(connection, settings, measure, start_us, end_us)
+    if on_cluster is not None:
+        return on_cluster
+    return read_with_ids_on_disk(finish, settings.close_scratch_dir)
+
+
+def read_on_cluster(
+    connection: Connection, settings: Settings, measure: object, start_us: int, end_us: int
+) -> EventsElsewhere | None:
+    """The window's events read by the Dask workers (the archive's files there, the store's
+    few events sent along: :mod:`rolewatch.scale.archive_events`) when they come from the
+    archive and ``measure`` is a Dask cluster; None otherwise (the caller reads them)."""
+    archive = _archive(settings)
+    if archive is None or settings.compute != "dask" or settings.archive_reader != "workers":
+        return None
+    from rolewatch.scale.archive import window_paths
+    from rolewatch.scale.archive_events import read_on_workers, stored_table
+    from rolewatch.scale.dispatch import DaskMeasure
+    from rolewatch.scale.workers import live_workers
+    from rolewatch.store.event_times import timed_events_between
+
+    if not isinstance(measure, DaskMeasure):
+        return None
+    stored = stored_table(timed_events_between(connection, start_us, end_us))
+    # a path the workers open as this process does, wherever they were started
+    archive = archive if "://" in archive else os.path.abspath(archive)
+    paths = window_paths(archive, start_us, end_us)
+    workers = len(live_workers(measure.client))
+    buckets = max(1, min(measure.partitions, 2 * workers))
+    found = measure.retried(
+        lambda: read_on_workers(
+            measure.client,
+            archive,
+            paths,
+            stored,
+            start_us,
+            end_us,
+            measure.partitions_for,
+            buckets,
+        )
+    )
+    pa.default_memory_pool().release_unused()  # the accounts' Arrow buffers, gathered and let go
+    return found
 
 
 def stored_events_reader(
-    engine: Engine, settings: Settings
-) -> Callable[[WindowRef], WindowEvents | None]:
-    """Reads an earlier window's events back (for the features an alert shows as "before");
-    None once retention purged them."""
+    engine: Engine, settings: Settings, measure: object = None
+) -> Callable[[WindowRef], ClosingEvents | None]:
+    """Reads an earlier window's events back (for the features an alert shows as "before"):
+    on the Dask workers as the closing window's when they can be (:func:`read_on_cluster`,
+    ``measure`` the close's), else here, a large window's ids kept on disk; None once
+    retention purged them."""
 
-    def read(ref: WindowRef) -> WindowEvents | None:
+    def read(ref: WindowRef) -> ClosingEvents | None:
+        start_us, end_us = _micros(ref.start), _micros(ref.end)
         with engine.connect() as connection:
-            events = window_events(connection, settings, _micros(ref.start), _micros(ref.end))
+            elsewhere = read_on_cluster(connection, settings, measure, start_us, end_us)
+            if elsewhere is not None:
+                return elsewhere if len(elsewhere) else None
+            events = read_window_events(connection, settings, start_us, end_us)
         return events if len(events) else None
 
     return read

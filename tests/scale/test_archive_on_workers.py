@@ -1,0 +1,272 @@
+"""A window's events read from the archive by the Dask workers give what the closing
+process reads itself: the same events kept (each id once, by the archive's and the store's
+rule), the same snapshot, the same close (memberships, scores, alerts) and the same sample
+events in the evidence. The reference is the closing process's own read
+(:func:`rolewatch.scale.source.window_events`) and a close of the same events from the
+store alone with ``compute = "local"``.
+
+Events: the fictional marketplace sample in fixtures/sample (invented data).
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import sqlalchemy as sa
+
+from rolewatch.scale import source as event_source
+from rolewatch.scale.archive import window_paths
+from rolewatch.scale.archive_events import WorkerEvents, read_on_workers, stored_table
+from rolewatch.store.db import open_store
+from rolewatch.store.event_times import timed_events_between
+from rolewatch.store.events import ingest, parse_time_us
+from rolewatch.store.schema import alerts
+
+from .conftest import NOW, sample_events, sample_settings, write_archive, written
+from .helpers import assert_same_closes
+
+WEEK_US = 7 * 86_400 * 1_000_000
+
+
+def _moved(event: dict, **changes) -> dict:
+    return {**event, **changes}
+
+
+def _conflicting(every: list[dict]) -> tuple[list[list[dict]], list[dict]]:
+    """Archive files and store events that hold some ids more than once, with other
+    contents: which row is kept decides the window's graph."""
+    first, second, third = every[::3], every[1::3], every[2::3]
+    # an id again in a later file: the same content (kept once) ...
+    later = [dict(e) for e in first[:150:3]]
+    # ... and with another target, later in time (the earlier row wins) ...
+    retimed = [
+        _moved(e, target=every[(i + 7) % len(every)]["actor"], time=_later(e["time"], 60))
+        for i, e in enumerate(second[:120:4])
+    ]
+    retimed = [e for e in retimed if e["target"] != e["actor"]]
+    # ... and with another weight at the same time (the earlier file wins)
+    reweighted = [_moved(e, weight=float(e.get("weight", 1.0)) + 5.0) for e in first[300:360:5]]
+    files = [first, second + later, reweighted + retimed]
+    # the store: the third share, some archived ids again (the archive's row wins at equal
+    # times) and one archived id earlier in time (the store's earlier row wins)
+    earlier = [_moved(second[500], time=_later(second[500]["time"], -30), weight=99.0)]
+    store = third + [_moved(e, weight=42.0) for e in first[30:90:6]] + earlier
+    return files, store
+
+
+def _later(text: str, seconds: int) -> str:
+    from rolewatch.clock import to_rfc3339
+
+    return to_rfc3339(parse_time_us(text) + seconds * 1_000_000)
+
+
+def _setup(tmp_path, name: str, files, store, **settings):
+    """A store of its own with ``store``'s events, reading the archive of ``files`` (written
+    once per test: of an id twice at equal times the file whose path sorts first wins, and
+    each write names its file at random)."""
+    archive = str(tmp_path / "archive")
+    if not (tmp_path / "archive").exists():
+        for events in files:
+            write_archive(archive, events, WEEK_US)
+    config = sample_settings(
+        tmp_path / f"{name}.db", event_source="archive", event_archive=archive, **settings
+    )
+    engine = open_store(config)
+    ingest(engine, config, store, NOW)
+    return engine, config
+
+
+def _kept_on_workers(client, events: WorkerEvents) -> set[tuple]:
+    """(id, actor, target, weight) of every event the workers kept."""
+    kept = set()
+    for chunk, samples in zip(
+        client.gather(list(events.chunks.futures)), client.gather(list(events.samples)), strict=True
+    ):
+        actor, target, weight = chunk
+        ids = samples.column("id").to_pylist()
+        assert samples.num_rows == len(actor)
+        for i, a, t, w in zip(ids, actor.tolist(), target.tolist(), weight.tolist(), strict=True):
+            kept.add((i, events.accounts[a], events.accounts[t], w))
+    return kept
+
+
+def test_the_workers_keep_the_events_the_closing_process_keeps(dask_cluster, tmp_path):
+    files, store = _conflicting(sample_events())
+    engine, config = _setup(tmp_path, "read", files, store)
+    assert sum(1 for _ in (tmp_path / "archive").rglob("*.parquet")) >= 3
+    times = [parse_time_us(e["time"]) for e in sample_events()]
+    first_end = (min(times) // WEEK_US + 1) * WEEK_US
+    checked = 0
+    try:
+        for end_us in range(first_end, max(times) + WEEK_US, WEEK_US):
+            start_us = end_us - WEEK_US
+            with engine.connect() as connection:
+                here = event_source.window_events(connection, config, start_us, end_us)
+                stored = stored_table(timed_events_between(connection, start_us, end_us))
+            paths = window_paths(config.event_archive, start_us, end_us)
+            for buckets in (1, 3):
+                there = read_on_workers(
+                    dask_cluster,
+                    config.event_archive,
+                    paths,
+                    stored,
+                    start_us,
+                    end_us,
+                    lambda n: 4,
+                    buckets,
+                )
+                assert len(there) == len(here)
+                assert there.from_store == event_source.stored_part(here)
+                expected = {
+                    (str(i), a, t, float(w))
+                    for i, a, t, w in zip(
+                        here.event_id, here.actor, here.target, here.weight, strict=True
+                    )
+                }
+                assert _kept_on_workers(dask_cluster, there) == expected
+                local = here.snapshot()
+                window = there.snapshot()
+                assert list(window.nodes) == list(local.nodes)
+                assert (window.counts != local.counts).nnz == 0
+                np.testing.assert_array_equal(window.weights.indices, local.weights.indices)
+                np.testing.assert_array_equal(window.weights.indptr, local.weights.indptr)
+                np.testing.assert_allclose(window.weights.data, local.weights.data, rtol=1e-12)
+                # the evidence's samples, against the closing process's own search
+                from rolewatch.pipeline.evidence import _sample_event_ids
+
+                rows = np.arange(0, local.n_nodes, 7)
+                assert there.sample_event_ids(rows, 5) == _sample_event_ids(local, here, rows, 5)
+                checked += 1
+    finally:
+        engine.dispose()
+    assert checked >= 8
+
+
+def _evidence(engine) -> dict[tuple, dict]:
+    with engine.connect() as connection:
+        rows = connection.execute(
+            sa.select(alerts.c.window_end_us, alerts.c.account, alerts.c.evidence)
+        ).all()
+    return {(end, account): json.loads(text) for end, account, text in rows}
+
+
+def _same(ours, theirs, where: str = "evidence") -> None:
+    """Equal, numbers within 1e-9 relative (sums that may add in another order)."""
+    if isinstance(ours, dict):
+        assert isinstance(theirs, dict) and ours.keys() == theirs.keys(), where
+        for key in ours:
+            _same(ours[key], theirs[key], f"{where}.{key}")
+    elif isinstance(ours, list):
+        assert isinstance(theirs, list) and len(ours) == len(theirs), where
+        for i, (a, b) in enumerate(zip(ours, theirs, strict=True)):
+            _same(a, b, f"{where}[{i}]")
+    elif isinstance(ours, float) and not isinstance(theirs, str):
+        assert ours == pytest.approx(theirs, rel=1e-9, abs=1e-12), where
+    else:
+        assert ours == theirs, where
+
+
+@pytest.mark.slow
+def test_a_close_read_on_the_workers_writes_what_the_store_alone_writes(
+    dask_cluster, tmp_path, monkeypatch
+):
+    files, store = _conflicting(sample_events())
+    # the reference: the events each close keeps, from the store alone, closed locally
+    reference_engine, reference = _setup(tmp_path, "reference", files, store)
+    with reference_engine.connect() as connection:
+        kept = []
+        span = event_source.stream_state(connection, reference)
+        start = (span.min_event_us // WEEK_US) * WEEK_US
+        for end_us in range(start + WEEK_US, span.max_event_us + WEEK_US, WEEK_US):
+            events = event_source.window_events(connection, reference, end_us - WEEK_US, end_us)
+            kept += [
+                {"id": str(i), "time": None, "actor": a, "target": t, "weight": float(w)}
+                for i, a, t, w in zip(
+                    events.event_id, events.actor, events.target, events.weight, strict=True
+                )
+            ]
+    reference_engine.dispose()
+    times = {e["id"]: e["time"] for e in sample_events()}
+    for e in store:
+        times[e["id"]] = min(times.get(e["id"], e["time"]), e["time"], key=parse_time_us)
+    for group in files:
+        for e in group:
+            times[e["id"]] = min(times[e["id"]], e["time"], key=parse_time_us)
+    alone = sample_settings(tmp_path / "alone.db")
+    engine = open_store(alone)
+    ingest(engine, alone, [{**e, "time": times[e["id"]]} for e in kept], NOW)
+    from rolewatch.pipeline.closer import close_due_windows
+
+    close_due_windows(engine, alone, now_us=NOW, drain=True)
+    expected, expected_evidence = written(engine), _evidence(engine)
+    engine.dispose()
+
+    read = []
+    on_workers = event_source.read_on_cluster
+
+    def counted(*args, **kwargs):
+        found = on_workers(*args, **kwargs)
+        read.append(found)
+        return found
+
+    monkeypatch.setattr(event_source, "read_on_cluster", counted)
+    # keep no window's features between closes: every "before" is measured again, its
+    # window read on the workers too
+    from rolewatch.pipeline import closer
+    from rolewatch.pipeline.recent import RecentFeatures
+
+    monkeypatch.setattr(closer, "_recent_features", lambda engine: RecentFeatures(max_bytes=0))
+    engine, config = _setup(
+        tmp_path,
+        "dask",
+        files,
+        store,
+        compute="dask",
+        dask_scheduler=dask_cluster.scheduler.address,
+        dask_partitions=4,
+    )
+    closed = close_due_windows(engine, config, now_us=NOW, drain=True)
+    got, got_evidence = written(engine), _evidence(engine)
+    engine.dispose()
+    assert expected["alerts"], "the sample raises alerts after training"
+    assert_same_closes(got, expected)
+    # the whole evidence: sample events, counterparts, features before and after
+    assert got_evidence.keys() == expected_evidence.keys()
+    for key, evidence in got_evidence.items():
+        _same(evidence, expected_evidence[key])
+    assert any(e["sample_event_ids"] for e in got_evidence.values())
+    assert any(e.get("feature_moves") for e in got_evidence.values())
+    # every measured window was read by the workers (training windows are read here), and
+    # so were the baseline windows the evidence measured again
+    measured = [summary for summary in closed if not summary.training]
+    assert measured and len(read) > len(measured)
+    assert all(isinstance(found, WorkerEvents) for found in read)
+
+
+def test_with_the_closer_as_reader_the_closing_process_reads_the_archive(dask_cluster, tmp_path):
+    from rolewatch.scale.dispatch import measure_for
+
+    files, store = _conflicting(sample_events())
+    engine, config = _setup(
+        tmp_path,
+        "closer",
+        files,
+        store,
+        compute="dask",
+        dask_scheduler=dask_cluster.scheduler.address,
+        archive_reader="closer",
+    )
+    try:
+        measure = measure_for(config)
+        with engine.connect() as connection:
+            start, end = 0, 2**62
+            assert event_source.read_on_cluster(connection, config, measure, start, end) is None
+            on_workers = config.model_copy(update={"archive_reader": "workers"})
+            found = event_source.read_on_cluster(connection, on_workers, measure, start, end)
+            assert isinstance(found, WorkerEvents) and len(found) == len(
+                event_source.window_events(connection, config, start, end)
+            )
+    finally:
+        engine.dispose()
