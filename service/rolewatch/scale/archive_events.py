@@ -8,13 +8,13 @@ keeps every id once, by the archive's and the store's rule (an id's earliest row
 times the archive's before the store's, of two files the one whose path sorts first: what
 :func:`rolewatch.scale.source.window_events` keeps), and lists its accounts. One task joins
 the lists into the window's distinct accounts, sorted (the snapshot's nodes, their
-positions the account codes); the closing process gathers that list, and each bucket codes
-its events against it: the chunks the graph is built from (:func:`rolewatch.scale.graph.build_graph`,
-as from events this process would scatter). The snapshot this process keeps for the
-communities, the baselines and the evidence is assembled from each partition's out-arcs
-(one row of summed counts and weights per account and counterpart: the window's distinct
-pairs, not its events); the evidence's sample event ids are looked up in the buckets, which
-stay on the workers until the close ends.
+positions the account codes); the closing process gathers that list, and each bucket
+codes its events against it: the chunks the graph is built from
+(:func:`rolewatch.scale.graph.build_graph`, as from events this process would scatter).
+The snapshot this process keeps for the communities, the baselines and the evidence is
+assembled from each partition's out-arcs (one row of summed counts and weights per account
+and counterpart: the window's distinct pairs, not its events); the evidence's sample
+event ids are looked up in the buckets, which stay on the workers until the close ends.
 
 A worker lost mid-close loses nothing that cannot be computed again: every chunk and the
 account list are tasks reading the archive (the store's events travel in the tasks). No
