@@ -51,6 +51,7 @@ __all__ = [
     "dask_client",
     "keeps_memberships",
     "known_pairs_for",
+    "lost_data",
     "measure_for",
     "record_outputs",
 ]
@@ -139,6 +140,21 @@ def _lost_data_errors() -> tuple[type[BaseException], ...]:
     from distributed.scheduler import KilledWorker
 
     return (CancelledError, KilledWorker, CommClosedError)
+
+
+def lost_data(error: BaseException) -> bool:
+    """Whether ``error`` is what a dying worker makes a close raise: one of
+    :func:`_lost_data_errors`, or the scheduler's ``KeyError`` naming a worker's address
+    (a request, such as a scatter's replication, looking up a worker the scheduler had just
+    removed: distributed raises the missing address itself)."""
+    if isinstance(error, _lost_data_errors()):
+        return True
+    return (
+        type(error) is KeyError
+        and len(error.args) == 1
+        and isinstance(error.args[0], str)
+        and "://" in error.args[0]
+    )
 
 
 class DaskMeasure:
@@ -232,11 +248,12 @@ class DaskMeasure:
     def _attempted(self, work: Callable[[], _Result], known: PairHistory | None) -> _Result:
         """``work()``, started again when the cluster loses its data, up to ``attempts``
         times in all."""
-        lost = _lost_data_errors()
         for attempt in range(1, self.attempts + 1):
             try:
                 return work()
-            except lost as error:
+            except BaseException as error:  # as broad as the lost-data classes
+                if not lost_data(error):
+                    raise
                 log.warning(
                     "the Dask cluster lost the window's data; computing it again",
                     extra={"fields": {"attempt": attempt, "error": repr(error)[:300]}},
