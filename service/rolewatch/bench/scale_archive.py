@@ -12,7 +12,8 @@ with ``archive_reader = "closer"`` (the closing process reads the files and send
 events). Reported for each: the close's seconds and stages, the peak resident memory of the
 closing process during the close (and what it held as the close began), each worker's peak
 (sampled every 0.2 s with psutil), the alerts; and the ratios workers / closer.
-``--quick`` uses 300,000 events.
+``close-dask-archive-30m`` is the same with a window of 30,000,000 events. ``--quick`` uses
+300,000 events.
 """
 
 from __future__ import annotations
@@ -37,9 +38,9 @@ from rolewatch.bench.scale import (
     _timed_close,
 )
 
-CASES = ("close-dask-archive",)
-SIZES = {"close-dask-archive": 10_000_000}
-QUICK = {"close-dask-archive": 300_000}
+CASES = ("close-dask-archive", "close-dask-archive-30m")
+SIZES = {"close-dask-archive": 10_000_000, "close-dask-archive-30m": 30_000_000}
+QUICK = {"close-dask-archive": 300_000, "close-dask-archive-30m": 300_000}
 READERS = ("workers", "closer")
 
 
