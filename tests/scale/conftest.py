@@ -33,8 +33,11 @@ def sample_events() -> list[dict]:
         return [json.loads(line) for line in handle if line.strip()]
 
 
-def write_archive(archive: str, events: list[dict], period_us: int) -> None:
-    """Append ``events`` (the sample's dicts) to the event archive at ``archive``."""
+def write_archive(
+    archive: str, events: list[dict], period_us: int, rows_per_group: int | None = None
+) -> None:
+    """Append ``events`` (the sample's dicts) to the event archive at ``archive`` (Parquet
+    row groups of at most ``rows_per_group`` rows when given)."""
     from rolewatch.scale.archive import events_table, write_events
 
     write_events(
@@ -48,6 +51,7 @@ def write_archive(archive: str, events: list[dict], period_us: int) -> None:
             [float(e.get("weight", 1.0)) for e in events],
         ),
         period_us,
+        rows_per_group,
     )
 
 

@@ -18,7 +18,13 @@ import sqlalchemy as sa
 
 from rolewatch.scale import source as event_source
 from rolewatch.scale.archive import window_paths
-from rolewatch.scale.archive_events import WorkerEvents, read_on_workers, stored_table
+from rolewatch.scale.archive_events import (
+    READ_ROWS,
+    WorkerEvents,
+    file_parts,
+    read_on_workers,
+    stored_table,
+)
 from rolewatch.store.db import open_store
 from rolewatch.store.event_times import timed_events_between
 from rolewatch.store.events import ingest, parse_time_us
@@ -28,6 +34,7 @@ from .conftest import NOW, sample_events, sample_settings, write_archive, writte
 from .helpers import assert_same_closes
 
 WEEK_US = 7 * 86_400 * 1_000_000
+ROWS_PER_GROUP = 40  # small row groups, so a file's rows can be read in several parts
 
 
 def _moved(event: dict, **changes) -> dict:
@@ -48,7 +55,12 @@ def _conflicting(every: list[dict]) -> tuple[list[list[dict]], list[dict]]:
     retimed = [e for e in retimed if e["target"] != e["actor"]]
     # ... and with another weight at the same time (the earlier file wins)
     reweighted = [_moved(e, weight=float(e.get("weight", 1.0)) + 5.0) for e in first[300:360:5]]
-    files = [first, second + later, reweighted + retimed]
+    # ... and at the same time in the same file, rows later: at the start of a later row
+    # group than their first rows, near its end (the earlier row wins: a file read in
+    # several parts must number its rows across them, not within each part)
+    twins = [_moved(e, weight=float(e.get("weight", 1.0)) + 7.0) for e in first[31:40:2]]
+    at = 2 * ROWS_PER_GROUP
+    files = [first[:at] + twins + first[at:], second + later, reweighted + retimed]
     # the store: the third share, some archived ids again (the archive's row wins at equal
     # times) and one archived id earlier in time (the store's earlier row wins)
     earlier = [_moved(second[500], time=_later(second[500]["time"], -30), weight=99.0)]
@@ -69,7 +81,7 @@ def _setup(tmp_path, name: str, files, store, **settings):
     archive = str(tmp_path / "archive")
     if not (tmp_path / "archive").exists():
         for events in files:
-            write_archive(archive, events, WEEK_US)
+            write_archive(archive, events, WEEK_US, rows_per_group=ROWS_PER_GROUP)
     config = sample_settings(
         tmp_path / f"{name}.db", event_source="archive", event_archive=archive, **settings
     )
@@ -98,7 +110,7 @@ def test_the_workers_keep_the_events_the_closing_process_keeps(dask_cluster, tmp
     assert sum(1 for _ in (tmp_path / "archive").rglob("*.parquet")) >= 3
     times = [parse_time_us(e["time"]) for e in sample_events()]
     first_end = (min(times) // WEEK_US + 1) * WEEK_US
-    checked = 0
+    checked = files_split = 0
     try:
         for end_us in range(first_end, max(times) + WEEK_US, WEEK_US):
             start_us = end_us - WEEK_US
@@ -106,7 +118,10 @@ def test_the_workers_keep_the_events_the_closing_process_keeps(dask_cluster, tmp
                 here = event_source.window_events(connection, config, start_us, end_us)
                 stored = stored_table(timed_events_between(connection, start_us, end_us))
             paths = window_paths(config.event_archive, start_us, end_us)
-            for buckets in (1, 3):
+            split = file_parts(config.event_archive, paths, read_rows=ROWS_PER_GROUP)
+            files_split += len(split) > len(paths)
+            # one part per file and one bucket; each row group a part, 3 buckets
+            for buckets, read_rows in ((1, READ_ROWS), (3, ROWS_PER_GROUP)):
                 there = read_on_workers(
                     dask_cluster,
                     config.event_archive,
@@ -116,6 +131,7 @@ def test_the_workers_keep_the_events_the_closing_process_keeps(dask_cluster, tmp
                     end_us,
                     lambda n: 4,
                     buckets,
+                    read_rows,
                 )
                 assert len(there) == len(here)
                 assert there.from_store == event_source.stored_part(here)
@@ -142,6 +158,7 @@ def test_the_workers_keep_the_events_the_closing_process_keeps(dask_cluster, tmp
     finally:
         engine.dispose()
     assert checked >= 8
+    assert files_split >= 3, "windows whose files were read in several parts"
 
 
 def _evidence(engine) -> dict[tuple, dict]:
@@ -270,3 +287,43 @@ def test_with_the_closer_as_reader_the_closing_process_reads_the_archive(dask_cl
             )
     finally:
         engine.dispose()
+
+
+def test_a_files_parts_are_its_row_groups_in_order_within_the_row_limit(tmp_path):
+    # Against the file's own footer as pyarrow reads it: every row group in exactly one
+    # part, in order, each part's first row the rows of the groups before it.
+    import pyarrow.parquet as pq
+
+    archive = str(tmp_path / "archive")
+    write_archive(archive, sample_events(), WEEK_US, rows_per_group=ROWS_PER_GROUP)
+    paths = sorted(str(p) for p in (tmp_path / "archive").rglob("*.parquet"))
+    parts = file_parts(archive, paths, read_rows=100)
+    for rank, path in enumerate(paths):
+        sizes = [
+            pq.ParquetFile(path).metadata.row_group(g).num_rows
+            for g in range(pq.ParquetFile(path).metadata.num_row_groups)
+        ]
+        mine = [part for part in parts if part.path == path]
+        assert all(part.rank == rank for part in mine)
+        assert [g for part in mine for g in part.row_groups] == list(range(len(sizes)))
+        for part in mine:
+            assert part.rows == sum(sizes[g] for g in part.row_groups)
+            assert part.first_row == sum(sizes[: part.row_groups[0]])
+            assert part.rows <= 100 or len(part.row_groups) == 1
+    assert len(parts) > len(paths)
+    # a limit below one row group: each group is a part of its own
+    assert len(file_parts(archive, paths, read_rows=1)) == sum(
+        pq.ParquetFile(p).metadata.num_row_groups for p in paths
+    )
+
+
+def test_the_bucket_count_follows_the_window_between_its_bounds():
+    # At least two buckets a worker, about one per BUCKET_EVENTS events, at most
+    # MAX_BUCKETS (the rule's own numbers; the sizes behind them are in the module).
+    from rolewatch.scale.archive_events import BUCKET_EVENTS, MAX_BUCKETS, bucket_count
+
+    assert bucket_count(0, 2) == 4
+    assert bucket_count(10 * BUCKET_EVENTS, 2) == 10
+    assert bucket_count(10 * BUCKET_EVENTS + 1, 2) == 11
+    assert bucket_count(30 * BUCKET_EVENTS, 0) == 30
+    assert bucket_count(10**12, 8) == MAX_BUCKETS

@@ -97,11 +97,14 @@ def _micros(column: pa.ChunkedArray | pa.Array) -> np.ndarray:
     return np.asarray(column.to_numpy(zero_copy_only=False), dtype=np.int64)
 
 
-def write_events(archive: str, table: pa.Table, period_us: int) -> int:
+def write_events(
+    archive: str, table: pa.Table, period_us: int, rows_per_group: int | None = None
+) -> int:
     """Append ``table`` (the archive's columns) to the archive; return the rows written.
 
     Each call writes new files (a fresh name per call), so earlier files are never
     overwritten: appending the same events twice stores them twice, and reading keeps one.
+    ``rows_per_group`` caps a Parquet row group's rows (None: pyarrow's default).
     """
     if table.num_rows == 0:
         return 0
@@ -115,6 +118,11 @@ def write_events(archive: str, table: pa.Table, period_us: int) -> int:
         partitioning=_PARTITIONING,
         basename_template=f"part-{uuid.uuid4().hex}-{{i}}.parquet",
         existing_data_behavior="overwrite_or_ignore",
+        **(
+            {}
+            if rows_per_group is None
+            else {"max_rows_per_group": rows_per_group, "min_rows_per_group": 0}
+        ),
     )
     return table.num_rows
 

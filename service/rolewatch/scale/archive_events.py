@@ -1,8 +1,10 @@
 """A window's events read from the Parquet event archive by the Dask workers, so the
 closing process never holds them (``event_source = "archive"`` with ``compute = "dask"``).
 
-Each archive file of the window's slots is read by one task on a worker, its rows split
-into buckets by a hash of the event id (:mod:`rolewatch.scale.id_hash`); the events the
+Each archive file of the window's slots is read by tasks on the workers, one per run of
+whole row groups of at most about :data:`READ_ROWS` rows, their rows split into buckets by a
+hash of the event id (:mod:`rolewatch.scale.id_hash`; about :data:`BUCKET_EVENTS` events a
+bucket, :func:`bucket_count`); the events the
 store holds (the REST ingest beside the archive) join as one more source. Each bucket then
 keeps every id once, by the archive's and the store's rule (an id's earliest row; at equal
 times the archive's before the store's, of two files the one whose path sorts first: what
@@ -37,10 +39,24 @@ from rolewatch.scale.graph import WindowGraph, build_graph
 from rolewatch.scale.graph_steps import EVENT_DTYPE
 from rolewatch.scale.id_hash import hash_buckets
 from rolewatch.scale.partitions import Partitioned, balanced_bounds
+from rolewatch.scale.workers import live_workers
 
-__all__ = ["WorkerEvents", "read_on_workers", "stored_table"]
+__all__ = [
+    "FilePart",
+    "WorkerEvents",
+    "bucket_count",
+    "file_parts",
+    "read_on_workers",
+    "stored_table",
+]
 
 _READ = ["id", "time", "actor", "target", "weight"]
+# Rows one read task takes at most (whole row groups), and the events a bucket holds about:
+# a 30,000,000-event window read in files of 2,000,000 rows into 4 buckets had its workers
+# restarted over their 3 GB limit, into 32 buckets it read at 2.2-2.5 GB (measured here).
+READ_ROWS = 1_000_000
+BUCKET_EVENTS = 1_000_000
+MAX_BUCKETS = 1024  # files' parts times buckets is the number of tasks that split the reads
 
 
 @dataclass(eq=False)
@@ -115,16 +131,22 @@ def read_on_workers(
     start_us: int,
     end_us: int,
     partitions_for: Callable[[int], int],
-    buckets: int,
+    buckets: int | None = None,
+    read_rows: int = READ_ROWS,
 ) -> WorkerEvents:
     """Read the events of ``[start_us, end_us)`` on the workers (see the module's
-    description): from the archive's files ``paths`` (in the archive's order) and the
-    store's events ``stored`` (:func:`stored_table`); ``partitions_for(accounts)`` gives
-    the graph's partition count, ``buckets`` how many buckets the ids are hashed into."""
+    description): from the archive's files ``paths`` (in the archive's order), each read in
+    parts of whole row groups of at most about ``read_rows`` rows, and the store's events
+    ``stored`` (:func:`stored_table`); ``partitions_for(accounts)`` gives the graph's
+    partition count, ``buckets`` how many buckets the ids are hashed into (None:
+    :func:`bucket_count` of the files' rows)."""
+    parts = file_parts(archive, paths, read_rows)
+    if buckets is None:
+        rows = sum(part.rows for part in parts) + stored.num_rows
+        buckets = bucket_count(rows, len(live_workers(client)))
     submit = client.submit
     read = [
-        submit(_read_file, archive, path, rank, start_us, end_us, buckets, pure=False)
-        for rank, path in enumerate(paths)
+        submit(_read_part, archive, part, start_us, end_us, buckets, pure=False) for part in parts
     ]
     store_parts = _bucketed(_ranked(stored, len(paths)), buckets)
     kept = [
@@ -171,6 +193,53 @@ def read_on_workers(
     )
 
 
+@dataclass(frozen=True)
+class FilePart:
+    """Whole row groups of one archive file, read by one task: the file's ``rank`` in the
+    archive's order and the file's row number of the part's first row (an id's rows at
+    equal times are kept in (rank, row) order)."""
+
+    path: str
+    rank: int
+    row_groups: tuple[int, ...]
+    first_row: int
+    rows: int
+
+
+def file_parts(archive: str, paths: Sequence[str], read_rows: int = READ_ROWS) -> list[FilePart]:
+    """The read tasks' parts of ``paths``: each file's row groups in order, cut into runs of
+    at most ``read_rows`` rows (a row group larger than that is a part of its own). Reads
+    the files' footers only."""
+    import pyarrow.parquet as pq
+
+    filesystem = _filesystem(archive)
+    parts: list[FilePart] = []
+    for rank, path in enumerate(paths):
+        with filesystem.open_input_file(path) as source:
+            metadata = pq.ParquetFile(source).metadata
+        first, rows = 0, 0
+        groups: list[int] = []
+        for group in range(metadata.num_row_groups):
+            size = metadata.row_group(group).num_rows
+            if groups and rows + size > read_rows:
+                parts.append(FilePart(path, rank, tuple(groups), first, rows))
+                first, groups, rows = first + rows, [], 0
+            groups.append(group)
+            rows += size
+        if groups:
+            parts.append(FilePart(path, rank, tuple(groups), first, rows))
+    return parts
+
+
+def bucket_count(events: int, workers: int) -> int:
+    """How many buckets a window of about ``events`` events is hashed into: about
+    :data:`BUCKET_EVENTS` events each (a bucket is deduplicated by one task, whose
+    temporaries are a few times its size), at least two per worker, at most
+    :data:`MAX_BUCKETS`."""
+    wanted = max(2 * max(workers, 1), -(-events // BUCKET_EVENTS))
+    return max(1, min(MAX_BUCKETS, wanted))
+
+
 def stored_table(rows: Sequence[Any]) -> pa.Table:
     """The store's ``(event_id, time_us, actor, target, weight)`` rows as a table of the
     columns the workers read."""
@@ -198,21 +267,25 @@ def _filesystem(archive: str) -> Any:
     return fs.LocalFileSystem()
 
 
-def _read_file(
-    archive: str, path: str, rank: int, start_us: int, end_us: int, buckets: int
+def _read_part(
+    archive: str, part: FilePart, start_us: int, end_us: int, buckets: int
 ) -> list[pa.Table]:
-    """One archive file's events of ``[start_us, end_us)``, ranked by file and row, split
-    by the bucket of their id."""
+    """One part of an archive file: its events of ``[start_us, end_us)``, ranked by file
+    and row, split by the bucket of their id."""
     import pyarrow.parquet as pq
 
     from rolewatch.scale.archive import _micros
 
-    table = pq.read_table(path, columns=_READ, filesystem=_filesystem(archive))
+    with _filesystem(archive).open_input_file(part.path) as source:
+        table = pq.ParquetFile(source).read_row_groups(list(part.row_groups), columns=_READ)
     time = _micros(table.column("time"))
     inside = np.flatnonzero((time >= start_us) & (time < end_us))
     table = table.set_column(1, "time", pa.array(time, pa.int64())).take(pa.array(inside))
-    table = _ranked(table, rank, rows=inside)
-    return _bucketed(table, buckets)
+    table = _ranked(table, part.rank, rows=inside + part.first_row)
+    pieces = _bucketed(table, buckets)
+    del table, time, inside
+    _hand_back_freed_memory()
+    return pieces
 
 
 def _ranked(table: pa.Table, rank: int, rows: np.ndarray | None = None) -> pa.Table:
@@ -254,8 +327,17 @@ def _kept_once(*pieces: pa.Table) -> pa.Table:
         differs = pc.not_equal(ids.slice(1), ids.slice(0, len(ids) - 1))
         first[1:] = pc.fill_null(differs, True).to_numpy(zero_copy_only=False)
     kept = table.filter(pa.array(first)).select(_READ)
+    del table, ids, first
+    _hand_back_freed_memory()
     _check(kept)
     return kept
+
+
+def _hand_back_freed_memory() -> None:
+    """Return what Arrow's allocator freed to the system: it keeps freed memory for its own
+    next allocations, which Dask counts as the worker's unmanaged memory (it restarted
+    workers over their limit for it) and cannot spill."""
+    pa.default_memory_pool().release_unused()
 
 
 def _check(table: pa.Table) -> None:

@@ -191,7 +191,6 @@ def read_on_cluster(
     from rolewatch.scale.archive import window_paths
     from rolewatch.scale.archive_events import read_on_workers, stored_table
     from rolewatch.scale.dispatch import DaskMeasure
-    from rolewatch.scale.workers import live_workers
     from rolewatch.store.event_times import timed_events_between
 
     if not isinstance(measure, DaskMeasure):
@@ -200,18 +199,9 @@ def read_on_cluster(
     # a path the workers open as this process does, wherever they were started
     archive = archive if "://" in archive else os.path.abspath(archive)
     paths = window_paths(archive, start_us, end_us)
-    workers = len(live_workers(measure.client))
-    buckets = max(1, min(measure.partitions, 2 * workers))
     found = measure.retried(
         lambda: read_on_workers(
-            measure.client,
-            archive,
-            paths,
-            stored,
-            start_us,
-            end_us,
-            measure.partitions_for,
-            buckets,
+            measure.client, archive, paths, stored, start_us, end_us, measure.partitions_for
         )
     )
     pa.default_memory_pool().release_unused()  # the accounts' Arrow buffers, gathered and let go
