@@ -25,7 +25,7 @@ value is scattered: a broadcast racing a worker's death failed inside Dask's sch
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -47,6 +47,7 @@ __all__ = [
     "bucket_count",
     "file_parts",
     "read_on_workers",
+    "stored_batches_table",
     "stored_table",
 ]
 
@@ -249,6 +250,14 @@ def stored_table(rows: Sequence[Any]) -> pa.Table:
         [pa.array(values, type=kind) for values, kind in zip(columns, types, strict=True)],
         names=_READ,
     )
+
+
+def stored_batches_table(batches: Iterable[Sequence[Any]]) -> pa.Table:
+    """:func:`stored_table` of rows that come in batches
+    (:func:`rolewatch.store.event_times.timed_event_batches`): each batch becomes columns
+    before the next is fetched."""
+    tables = [stored_table(batch) for batch in batches]
+    return pa.concat_tables(tables) if tables else stored_table([])
 
 
 # --- tasks (run on the workers) -------------------------------------------------------

@@ -41,6 +41,7 @@ __all__ = [
     "first_event_time_from",
     "read_on_cluster",
     "read_window_events",
+    "stored_events",
     "stored_part",
     "start_window_events",
     "stored_events_reader",
@@ -120,12 +121,10 @@ def _archived_window_events(
     connection: Connection, archive: str, start_us: int, end_us: int
 ) -> ArchivedWindowEvents:
     from rolewatch.scale.archive import read_window
-    from rolewatch.scale.archive_events import stored_table
-    from rolewatch.store.event_times import timed_events_between
 
     table = read_window(archive, start_us, end_us).select(_COLUMNS)
-    rows = timed_events_between(connection, start_us, end_us)
-    both = pa.concat_tables([table, stored_table(rows).cast(table.schema)])
+    stored = stored_events(connection, start_us, end_us)
+    both = pa.concat_tables([table, stored.cast(table.schema)])
     # (time, id) order, stable: of an id in both, the archive's row (first) comes first
     order = pc.sort_indices(both, [("time", "ascending"), ("id", "ascending")]).to_numpy()
     id_code = both.column("id").combine_chunks().dictionary_encode().indices.to_numpy()
@@ -141,8 +140,20 @@ def _archived_window_events(
     )
     return ArchivedWindowEvents(
         **{field.name: getattr(events, field.name) for field in fields(events)},
-        from_store=len(rows),
+        from_store=stored.num_rows,
     )
+
+
+def stored_events(connection: Connection, start_us: int, end_us: int) -> pa.Table:
+    """The store's events of ``[start_us, end_us)`` as a table of the archive's columns,
+    read in batches (:func:`rolewatch.store.event_times.timed_event_batches`): with the
+    archive as source, the store may still hold whole windows from before the switch (a
+    baseline the evidence reads again), and a window's rows as Python objects would cost
+    the closing process several times the table."""
+    from rolewatch.scale.archive_events import stored_batches_table
+    from rolewatch.store.event_times import timed_event_batches
+
+    return stored_batches_table(timed_event_batches(connection, start_us, end_us))
 
 
 def read_window_events(
@@ -189,13 +200,12 @@ def read_on_cluster(
     if archive is None or settings.compute != "dask" or settings.archive_reader != "workers":
         return None
     from rolewatch.scale.archive import window_paths
-    from rolewatch.scale.archive_events import read_on_workers, stored_table
+    from rolewatch.scale.archive_events import read_on_workers
     from rolewatch.scale.dispatch import DaskMeasure
-    from rolewatch.store.event_times import timed_events_between
 
     if not isinstance(measure, DaskMeasure):
         return None
-    stored = stored_table(timed_events_between(connection, start_us, end_us))
+    stored = stored_events(connection, start_us, end_us)
     # a path the workers open as this process does, wherever they were started
     archive = archive if "://" in archive else os.path.abspath(archive)
     paths = window_paths(archive, start_us, end_us)
