@@ -161,6 +161,74 @@ def test_the_workers_keep_the_events_the_closing_process_keeps(dask_cluster, tmp
     assert files_split >= 3, "windows whose files were read in several parts"
 
 
+def test_a_window_read_again_gathers_only_the_arcs_of_the_accounts_asked_for(
+    dask_cluster, tmp_path
+):
+    """An earlier window read again for the evidence leaves its arcs on the workers: the
+    snapshot around some accounts holds exactly their arcs, both ways, as the whole
+    snapshot has them (reference: networkx's multigraph of the kept events counts each
+    account's events out and in), and the whole snapshot still comes when asked for."""
+    import networkx as nx
+
+    files, store = _conflicting(sample_events())
+    engine, config = _setup(tmp_path, "again", files, store)
+    times = [parse_time_us(e["time"]) for e in sample_events()]
+    first_end = (min(times) // WEEK_US + 1) * WEEK_US
+    checked = 0
+    try:
+        for end_us in range(first_end, max(times) + WEEK_US, WEEK_US):
+            start_us = end_us - WEEK_US
+            with engine.connect() as connection:
+                here = event_source.window_events(connection, config, start_us, end_us)
+                stored = stored_table(timed_events_between(connection, start_us, end_us))
+            if len(here) < 50:
+                continue
+            paths = window_paths(config.event_archive, start_us, end_us)
+            there = read_on_workers(
+                dask_cluster,
+                config.event_archive,
+                paths,
+                stored,
+                start_us,
+                end_us,
+                lambda n: 3,
+                2,
+                ROWS_PER_GROUP,
+                whole_snapshot=False,
+            )
+            assert there.window is None  # nothing gathered by the read
+            local = here.snapshot()
+            asked = np.asarray([*local.nodes[::5], "not-in-this-window"], dtype=object)
+            around = there.snapshot_around(asked)
+            assert list(around.nodes) == list(local.nodes)
+            rows = np.arange(0, local.n_nodes, 5)
+            touching = np.zeros(local.n_nodes, dtype=bool)
+            touching[rows] = True
+            coo = local.counts.tocoo()
+            expected = touching[coo.row] | touching[coo.col]
+            assert around.counts.nnz == int(expected.sum())
+            # counts exact; weights summed on the workers in another order (1e-12)
+            for matrix, full, rtol in (
+                (around.counts, local.counts, 0.0),
+                (around.weights, local.weights, 1e-12),
+            ):
+                assert matrix.has_sorted_indices
+                for mine, theirs in ((matrix[rows], full[rows]), (matrix[:, rows], full[:, rows])):
+                    np.testing.assert_allclose(mine.toarray(), theirs.toarray(), rtol=rtol)
+            graph = nx.MultiDiGraph()
+            graph.add_edges_from(zip(here.actor, here.target, strict=True))
+            for row in rows[:20]:
+                account = local.nodes[row]
+                assert around.counts[row].sum() == graph.out_degree(account)
+                assert around.counts[:, row].sum() == graph.in_degree(account)
+            whole = there.snapshot()
+            assert (whole.counts != local.counts).nnz == 0
+            checked += 1
+    finally:
+        engine.dispose()
+    assert checked >= 3
+
+
 def _evidence(engine) -> dict[tuple, dict]:
     with engine.connect() as connection:
         rows = connection.execute(

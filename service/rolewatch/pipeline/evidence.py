@@ -26,7 +26,12 @@ from rolewatch.engine.scoring import ShiftPolicy, WindowScores
 from rolewatch.engine.shift import feature_moves
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.pipeline.history import AccountHistory
-from rolewatch.pipeline.loading import ClosingEvents, EventsElsewhere, PastWindowFacts
+from rolewatch.pipeline.loading import (
+    ClosingEvents,
+    EventsElsewhere,
+    PastWindowFacts,
+    WindowEvents,
+)
 from rolewatch.pipeline.model import FrozenModel
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.store.alerts import (
@@ -160,7 +165,7 @@ def _baseline_rows(
                 extra={"fields": {"window": past.ref and past.ref.end, "error": repr(error)}},
             )
             recent.forget()
-    measured = _recomputed_features(context, past)
+    measured = _recomputed_features(context, past, context.snapshot.nodes[wanted])
     return {} if measured is None else _rows_of(context, *measured, wanted)
 
 
@@ -180,19 +185,26 @@ def _rows_of(
 
 
 def _recomputed_features(
-    context: AlertContext, past: PastWindowFacts
+    context: AlertContext, past: PastWindowFacts, accounts: np.ndarray
 ) -> tuple[Snapshot, FeatureTable] | None:
     """An earlier window's snapshot and feature table from its stored events, or None when
-    its events are gone."""
+    its events are gone. Events the workers hold give a snapshot of ``accounts``' own arcs
+    only (what :func:`_rows_of` reads of them), not the whole window's graph here."""
     if context.events_of is None or past.ref is None:
         return None
     events = context.events_of(past.ref)
     if events is None or not len(events):
         return None
-    snapshot = events.snapshot()
-    if context.features_of is not None:
-        return snapshot, context.features_of(snapshot, events)
-    return snapshot, context.model.recipe.transform(snapshot)
+    if context.features_of is None:  # the whole graph here, for the transform
+        snapshot = events.snapshot()
+        return snapshot, context.model.recipe.transform(snapshot)
+    # the measure reads a held window's events by the snapshot's node index, and builds
+    # the graph of events the workers hold there
+    if isinstance(events, WindowEvents):
+        snapshot = events.snapshot()
+    else:
+        snapshot = events.snapshot_around(accounts)
+    return snapshot, context.features_of(snapshot, events)
 
 
 def _alert(

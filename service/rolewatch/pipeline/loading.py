@@ -87,6 +87,10 @@ class EventsElsewhere(Protocol):
 
     def snapshot(self) -> Snapshot: ...
 
+    def snapshot_around(self, accounts: np.ndarray) -> Snapshot:
+        """The snapshot holding only the arcs into and out of ``accounts`` (ids)."""
+        ...
+
     def account_count(self) -> int: ...
 
     def sample_event_ids(self, rows: np.ndarray, per_account: int = 5) -> dict[int, list[str]]:

@@ -17,6 +17,9 @@ The snapshot this process keeps for the communities, the baselines and the evide
 assembled from each partition's out-arcs (one row of summed counts and weights per account
 and counterpart: the window's distinct pairs, not its events); the evidence's sample
 event ids are looked up in the buckets, which stay on the workers until the close ends.
+An earlier window read again for the evidence's "before" (an alerted account's baseline)
+leaves its out-arcs on the workers, and this process gathers only the alerted accounts'
+arcs (:meth:`WorkerEvents.snapshot_around`).
 
 A worker lost mid-close loses nothing that cannot be computed again: every chunk and the
 account list are tasks reading the archive (the store's events travel in the tasks). No
@@ -69,23 +72,53 @@ class WorkerEvents:
     measure builds them again from ``chunks``); ``samples`` one future per bucket of its
     events' times and ids (in the chunk's order), for the evidence; ``account_list`` the
     future of the sorted accounts the buckets were coded against, held so Dask can code a
-    lost bucket again.
+    lost bucket again; ``arcs`` each partition's out-arcs when the read left them on the
+    workers (``window`` is then None until :meth:`snapshot` gathers it).
     """
 
     accounts: np.ndarray  # sorted distinct ids, object array: the snapshot's nodes
-    window: Snapshot
+    window: Snapshot | None  # None: gathered from ``arcs`` when first asked for
     chunks: Partitioned
     samples: tuple[Any, ...]
     count: int
     from_store: int
     graph: WindowGraph | None = field(default=None, repr=False)
     account_list: Any = field(default=None, repr=False)
+    arcs: Partitioned | None = field(default=None, repr=False)  # each partition's out-arcs
 
     def __len__(self) -> int:
         return self.count
 
     def snapshot(self) -> Snapshot:
+        """The window's snapshot (gathered from the partitions' out-arcs the first time
+        when the read left them on the workers)."""
+        if self.window is None:
+            assert self.arcs is not None
+            self.window = _snapshot(self.accounts, self.arcs.gather())
         return self.window
+
+    def snapshot_around(self, accounts: np.ndarray) -> Snapshot:
+        """The window's snapshot (every account a node) holding only the arcs into and out
+        of ``accounts`` (ids; those not in the window are left out): all that the evidence
+        reads of a window for some accounts (their own ties, both ways: the readable
+        measures and counterparts) without the whole graph in this process. The whole
+        snapshot when it is here already."""
+        if self.window is not None:
+            return self.window
+        assert self.arcs is not None
+        ids = np.asarray(accounts, dtype=object)
+        at = np.searchsorted(self.accounts, ids)
+        inside = at < len(self.accounts)
+        at, ids = at[inside], ids[inside]
+        codes = np.unique(at[self.accounts[at] == ids]).astype(np.int64)
+        client = self.arcs.client
+        touching = client.gather(
+            [
+                client.submit(_arcs_touching, arcs, int(lo), codes, pure=False)
+                for arcs, lo in zip(self.arcs.futures, self.arcs.bounds[:-1], strict=True)
+            ]
+        )
+        return _snapshot_of_arcs(self.accounts, touching)
 
     def account_count(self) -> int:
         return len(self.accounts)
@@ -134,13 +167,16 @@ def read_on_workers(
     partitions_for: Callable[[int], int],
     buckets: int | None = None,
     read_rows: int = READ_ROWS,
+    whole_snapshot: bool = True,
 ) -> WorkerEvents:
     """Read the events of ``[start_us, end_us)`` on the workers (see the module's
     description): from the archive's files ``paths`` (in the archive's order), each read in
     parts of whole row groups of at most about ``read_rows`` rows, and the store's events
     ``stored`` (:func:`stored_table`); ``partitions_for(accounts)`` gives the graph's
     partition count, ``buckets`` how many buckets the ids are hashed into (None:
-    :func:`bucket_count` of the files' rows)."""
+    :func:`bucket_count` of the files' rows). Without ``whole_snapshot`` the partitions'
+    out-arcs stay on the workers until :meth:`WorkerEvents.snapshot` asks for them, and
+    :meth:`WorkerEvents.snapshot_around` gathers only some accounts' arcs."""
     parts = file_parts(archive, paths, read_rows)
     if buckets is None:
         rows = sum(part.rows for part in parts) + stored.num_rows
@@ -181,7 +217,7 @@ def read_on_workers(
     del load
     graph = build_graph((Partitioned(client, chunk_futures, bounds), n), out_arcs=True)
     assert graph.out_arcs is not None
-    window = _snapshot(names, graph.out_arcs.gather())
+    window = _snapshot(names, graph.out_arcs.gather()) if whole_snapshot else None
     return WorkerEvents(
         accounts=names,
         window=window,
@@ -191,6 +227,7 @@ def read_on_workers(
         from_store=stored.num_rows,
         graph=replace(graph, out_arcs=None),
         account_list=listed,
+        arcs=None if whole_snapshot else graph.out_arcs,
     )
 
 
@@ -436,6 +473,18 @@ def _first_events(
     )
 
 
+def _arcs_touching(
+    arcs: tuple[sp.csr_matrix, sp.csr_matrix], lo: int, codes: np.ndarray
+) -> tuple[np.ndarray, ...]:
+    """A partition's out-arcs (rows from code ``lo``) from or to one of ``codes`` (sorted):
+    ``(actor, target, count, weight)``, codes of the whole window."""
+    counts, weights = arcs
+    actor = np.repeat(np.arange(counts.shape[0], dtype=np.int64) + lo, np.diff(counts.indptr))
+    target = counts.indices.astype(np.int64)
+    keep = np.isin(actor, codes) | np.isin(target, codes)
+    return actor[keep], target[keep], counts.data[keep], weights.data[keep]
+
+
 # --- in the closing process ------------------------------------------------------------
 
 
@@ -450,3 +499,21 @@ def _snapshot(nodes: np.ndarray, arcs: Sequence[tuple[sp.csr_matrix, sp.csr_matr
         matrix.indptr = matrix.indptr.astype(index, copy=False)
         matrix.sort_indices()
     return Snapshot(nodes=nodes, counts=counts, weights=weights)
+
+
+def _snapshot_of_arcs(nodes: np.ndarray, pieces: Sequence[tuple[np.ndarray, ...]]) -> Snapshot:
+    """The snapshot of ``nodes`` holding only the arcs ``pieces`` (each partition's
+    ``(actor, target, count, weight)``, every arc in one piece), counts and weights on one
+    pattern as a snapshot's are."""
+    n = len(nodes)
+    index = np.int32 if n < 2**31 - 1 else np.int64
+    actor, target, count, weight = (np.concatenate(column) for column in zip(*pieces, strict=True))
+    order = np.lexsort((target, actor))
+    indptr = np.zeros(n + 1, dtype=index)
+    indptr[1:] = np.cumsum(np.bincount(actor, minlength=n))
+    columns = target[order].astype(index)
+    return Snapshot(
+        nodes=nodes,
+        counts=sp.csr_matrix((count[order], columns, indptr), shape=(n, n)),
+        weights=sp.csr_matrix((weight[order], columns.copy(), indptr.copy()), shape=(n, n)),
+    )

@@ -191,11 +191,19 @@ def closing_events(
 
 
 def read_on_cluster(
-    connection: Connection, settings: Settings, measure: object, start_us: int, end_us: int
+    connection: Connection,
+    settings: Settings,
+    measure: object,
+    start_us: int,
+    end_us: int,
+    *,
+    whole_snapshot: bool = True,
 ) -> EventsElsewhere | None:
     """The window's events read by the Dask workers (the archive's files there, the store's
     few events sent along: :mod:`rolewatch.scale.archive_events`) when they come from the
-    archive and ``measure`` is a Dask cluster; None otherwise (the caller reads them)."""
+    archive and ``measure`` is a Dask cluster; None otherwise (the caller reads them).
+    Without ``whole_snapshot`` the window's arcs stay on the workers until asked for
+    (:meth:`~rolewatch.scale.archive_events.WorkerEvents.snapshot_around`)."""
     archive = _archive(settings)
     if archive is None or settings.compute != "dask" or settings.archive_reader != "workers":
         return None
@@ -211,7 +219,14 @@ def read_on_cluster(
     paths = window_paths(archive, start_us, end_us)
     found = measure.retried(
         lambda: read_on_workers(
-            measure.client, archive, paths, stored, start_us, end_us, measure.partitions_for
+            measure.client,
+            archive,
+            paths,
+            stored,
+            start_us,
+            end_us,
+            measure.partitions_for,
+            whole_snapshot=whole_snapshot,
         )
     )
     pa.default_memory_pool().release_unused()  # the accounts' Arrow buffers, gathered and let go
@@ -223,13 +238,16 @@ def stored_events_reader(
 ) -> Callable[[WindowRef], ClosingEvents | None]:
     """Reads an earlier window's events back (for the features an alert shows as "before"):
     on the Dask workers as the closing window's when they can be (:func:`read_on_cluster`,
-    ``measure`` the close's), else here, a large window's ids kept on disk; None once
-    retention purged them."""
+    ``measure`` the close's; the window's arcs left there, the evidence gathers its alerted
+    accounts' only), else here, a large window's ids kept on disk; None once retention
+    purged them."""
 
     def read(ref: WindowRef) -> ClosingEvents | None:
         start_us, end_us = _micros(ref.start), _micros(ref.end)
         with engine.connect() as connection:
-            elsewhere = read_on_cluster(connection, settings, measure, start_us, end_us)
+            elsewhere = read_on_cluster(
+                connection, settings, measure, start_us, end_us, whole_snapshot=False
+            )
             if elsewhere is not None:
                 return elsewhere if len(elsewhere) else None
             events = read_window_events(connection, settings, start_us, end_us)
