@@ -8,9 +8,11 @@ a local cluster of two worker processes, one thread and ``memory_limit`` 3 GB ea
 with ``compute = "local"`` when the in-process close would fit in the memory this machine
 has free (see :data:`LOCAL_MB_PER_MILLION_EVENTS`). Reported: both close times and their
 ratio, the seconds of each stage of both closes, the peak resident memory of the closing
-process during each close, and the peak of each Dask worker (sampled every 0.2 s with
-psutil). A size whose Dask close fails on every attempt (workers restarted over their
-limit) gives a line with ``dask_closed: false`` and the error, and the run goes on.
+process during each close, of its helper processes (the communities' child, SQLite's window
+reader: the closing machine holds them too), and the peak of each Dask worker (all sampled
+every 0.2 s with psutil). A size whose Dask close fails on every attempt (workers restarted
+over their limit) gives a line with ``dask_closed: false`` and the error, and the run goes
+on.
 ``--quick`` uses 100,000 and 300,000 events.
 
 ``close-dask-next``: the window after one closed on Dask by the same process, as a running
@@ -105,9 +107,18 @@ LOAD_CHUNK = 2_000_000  # events generated and stored at once (smaller windows: 
 LOCAL_MB_PER_MILLION_EVENTS = 750
 
 
+def _helpers() -> dict[str, Any]:
+    """The helper processes a close may start (the communities' child, SQLite's window
+    reader): their peaks are the closing machine's too."""
+    from rolewatch.pipeline import communities
+    from rolewatch.store import sqlite_window_reader
+
+    return {"communities": communities.HELPER, "window_reader": sqlite_window_reader.HELPER}
+
+
 class _PeakMemory:
-    """Highest resident memory of this process and of the given worker processes while
-    the block runs."""
+    """Highest resident memory of this process, of its helper processes and of the given
+    worker processes while the block runs."""
 
     def __init__(self, worker_pids: list[int]) -> None:
         import psutil
@@ -118,6 +129,7 @@ class _PeakMemory:
         self.peak_mb = 0.0
         self.worker_peak_mb = [0.0] * len(worker_pids)
         self.worker_restarts = 0
+        self.helper_peak_mb = dict.fromkeys(_helpers(), 0.0)
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._sample, daemon=True)
 
@@ -136,6 +148,15 @@ class _PeakMemory:
                     self.workers[i] = None
                     continue
                 self.worker_peak_mb[i] = max(self.worker_peak_mb[i], rss)
+            for name, helper in _helpers().items():
+                process = helper.process
+                if process is None or process.poll() is not None:
+                    continue
+                try:
+                    rss = psutil.Process(process.pid).memory_info().rss / 2**20
+                except psutil.NoSuchProcess:
+                    continue
+                self.helper_peak_mb[name] = max(self.helper_peak_mb[name], rss)
             self._stop.wait(0.2)
 
     def __enter__(self) -> _PeakMemory:
@@ -186,6 +207,7 @@ def _timed_close(
         "peak_rss_mb": round(memory.peak_mb, 1),
         "worker_peak_mb": [round(m, 1) for m in memory.worker_peak_mb],
         "worker_restarts": memory.worker_restarts,
+        "helper_peak_rss_mb": {name: round(m, 1) for name, m in memory.helper_peak_mb.items()},
         "accounts": summaries[-1].accounts,
         "alerts": summaries[-1].alert_count,
         "stage_seconds": summaries[-1].stage_seconds,
@@ -236,6 +258,7 @@ def _one_size(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
         "dask_closer_peak_rss_mb": on_dask["peak_rss_mb"],
         "dask_worker_peak_mb": on_dask["worker_peak_mb"],
         "dask_worker_restarts": on_dask["worker_restarts"],
+        "dask_helper_peak_rss_mb": on_dask["helper_peak_rss_mb"],
         "dask_stage_seconds": on_dask["stage_seconds"],
     }
     skipped = _local_would_not_fit(events)
@@ -249,6 +272,7 @@ def _one_size(events: int, client: Any, scheduler: str, tmp: Path) -> dict:
         "local_seconds": local["seconds"],
         "ratio": round(on_dask["seconds"] / max(local["seconds"], 1e-9), 2),
         "local_peak_rss_mb": local["peak_rss_mb"],
+        "local_helper_peak_rss_mb": local["helper_peak_rss_mb"],
         "same_alert_count": local["alerts"] == on_dask["alerts"],
         "local_stage_seconds": local["stage_seconds"],
     }

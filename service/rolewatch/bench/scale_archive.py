@@ -10,8 +10,9 @@ memory is its own), on a local cluster of two worker processes (one thread and
 files; the closing process gets the window's distinct accounts and its distinct pairs) and
 with ``archive_reader = "closer"`` (the closing process reads the files and sends the
 events). Reported for each: the close's seconds and stages, the peak resident memory of the
-closing process during the close (and what it held as the close began), each worker's peak
-(sampled every 0.2 s with psutil), the alerts; and the ratios workers / closer.
+closing process during the close (and what it held as the close began) and of its helper
+processes (the communities' child), each worker's peak (sampled every 0.2 s with psutil),
+the alerts; and the ratios workers / closer.
 ``close-dask-archive-30m`` is the same with a window of 30,000,000 events. ``--quick`` uses
 300,000 events.
 """
