@@ -198,6 +198,35 @@ def test_leiden_recovers_networkx_planted_partition():
     assert leiden_communities(sp.csr_matrix((0, 0))).size == 0
 
 
+def test_leiden_gives_what_igraph_gives_from_python_lists():
+    # Reference: igraph's community_leiden called with its edges and weights as Python lists
+    # (the forms its documentation shows), on networkx's weighted Les Miserables
+    # co-appearance graph: the arrays handed to igraph make the same graph and weights.
+    import random
+
+    import igraph
+
+    graph = nx.les_miserables_graph()
+    A = _adjacency(graph)  # its "weight" attribute: co-appearances
+    upper = sp.triu(A, k=1).tocoo()
+    reference = igraph.Graph(
+        n=A.shape[0], edges=list(zip(upper.row.tolist(), upper.col.tolist(), strict=True))
+    )
+    previous = igraph.set_random_number_generator(random.Random(0))
+    try:
+        expected = reference.community_leiden(
+            objective_function="modularity",
+            weights=upper.data.tolist(),
+            resolution=0.5,
+            n_iterations=2,
+        ).membership
+    finally:
+        igraph.set_random_number_generator(previous if previous is not None else random)
+    labels = leiden_communities(A, resolution=0.5, seed=0)
+    np.testing.assert_array_equal(labels, expected)
+    assert len(set(expected)) > 1
+
+
 def test_a_new_broker_stands_out_against_the_window_before():
     # The groups of the window before (reference communities, found by Leiden there) are
     # used to judge this window, in which one extra node ties to ten members of group 0
