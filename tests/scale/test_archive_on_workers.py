@@ -104,20 +104,27 @@ def _kept_on_workers(client, events: WorkerEvents) -> set[tuple]:
     return kept
 
 
+def _windows(engine, config):
+    """Each week of the sample: ``(start_us, end_us, the closing process's own read, the
+    store's events as the workers get them, the archive's files)``."""
+    times = [parse_time_us(e["time"]) for e in sample_events()]
+    first_end = (min(times) // WEEK_US + 1) * WEEK_US
+    for end_us in range(first_end, max(times) + WEEK_US, WEEK_US):
+        start_us = end_us - WEEK_US
+        with engine.connect() as connection:
+            here = event_source.window_events(connection, config, start_us, end_us)
+            stored = stored_table(timed_events_between(connection, start_us, end_us))
+        paths = window_paths(config.event_archive, start_us, end_us)
+        yield start_us, end_us, here, stored, paths
+
+
 def test_the_workers_keep_the_events_the_closing_process_keeps(dask_cluster, tmp_path):
     files, store = _conflicting(sample_events())
     engine, config = _setup(tmp_path, "read", files, store)
     assert sum(1 for _ in (tmp_path / "archive").rglob("*.parquet")) >= 3
-    times = [parse_time_us(e["time"]) for e in sample_events()]
-    first_end = (min(times) // WEEK_US + 1) * WEEK_US
     checked = files_split = 0
     try:
-        for end_us in range(first_end, max(times) + WEEK_US, WEEK_US):
-            start_us = end_us - WEEK_US
-            with engine.connect() as connection:
-                here = event_source.window_events(connection, config, start_us, end_us)
-                stored = stored_table(timed_events_between(connection, start_us, end_us))
-            paths = window_paths(config.event_archive, start_us, end_us)
+        for start_us, end_us, here, stored, paths in _windows(engine, config):
             split = file_parts(config.event_archive, paths, read_rows=ROWS_PER_GROUP)
             files_split += len(split) > len(paths)
             # one part per file and one bucket; each row group a part, 3 buckets
@@ -172,18 +179,11 @@ def test_a_window_read_again_gathers_only_the_arcs_of_the_accounts_asked_for(
 
     files, store = _conflicting(sample_events())
     engine, config = _setup(tmp_path, "again", files, store)
-    times = [parse_time_us(e["time"]) for e in sample_events()]
-    first_end = (min(times) // WEEK_US + 1) * WEEK_US
     checked = 0
     try:
-        for end_us in range(first_end, max(times) + WEEK_US, WEEK_US):
-            start_us = end_us - WEEK_US
-            with engine.connect() as connection:
-                here = event_source.window_events(connection, config, start_us, end_us)
-                stored = stored_table(timed_events_between(connection, start_us, end_us))
+        for start_us, end_us, here, stored, paths in _windows(engine, config):
             if len(here) < 50:
                 continue
-            paths = window_paths(config.event_archive, start_us, end_us)
             there = read_on_workers(
                 dask_cluster,
                 config.event_archive,
