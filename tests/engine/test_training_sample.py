@@ -16,6 +16,8 @@ import pytest
 from rolewatch.config import load_settings
 from rolewatch.engine import FeatureRecipe, Snapshot
 from rolewatch.engine.features import apply_bins, bin_edges
+from rolewatch.engine.features.discovery import GraphColumns
+from rolewatch.engine.features.graph import SnapshotGraph
 from rolewatch.engine.rowkeys import account_sample
 from rolewatch.pipeline.model import fit_model
 
@@ -132,3 +134,34 @@ def test_fit_model_fits_on_the_sample_and_measures_every_account():
     assert model.basis.summary["rows"] == 40
     memberships = model.basis.memberships(model.recipe.transform(snapshot))
     assert memberships.mixture.shape == (77, 3)
+
+
+def test_a_recipe_read_at_the_sampled_rows_equals_the_whole_table_at_those_rows():
+    snapshot, graph = les_miserables_snapshot()
+    rows = account_sample([snapshot.nodes], 40, seed=3)
+    assert rows is not None
+    recipe = FeatureRecipe.discover(snapshot, max_rounds=2, rows=rows)
+    assert max(d.round for d in recipe.features) >= 1
+    expected = recipe.transform(snapshot).take(rows[0])
+    at_rows = recipe.transform_at(
+        GraphColumns(SnapshotGraph(snapshot), rows[0]), snapshot.nodes[rows[0]]
+    )
+    assert at_rows.names == expected.names
+    np.testing.assert_array_equal(at_rows.nodes, expected.nodes)
+    np.testing.assert_array_equal(at_rows.raw, expected.raw)
+    np.testing.assert_array_equal(at_rows.binned, expected.binned)
+    assert at_rows.binned.dtype == expected.binned.dtype
+    # a sampled account's mean over its in-neighbours of their in-degree, from the whole
+    # graph: with one event each way, networkx's neighbours and degrees of the undirected
+    # Les Misérables graph
+    assert "mean_in(in_degree)" in recipe.names
+    degree = dict(graph.degree())
+    means = [np.mean([degree[v] for v in graph[u]]) for u in at_rows.nodes]
+    np.testing.assert_allclose(at_rows.column("mean_in(in_degree)"), means, rtol=1e-12)
+
+
+def test_a_relatively_binned_recipe_is_not_read_at_sampled_rows():
+    snapshot, _ = les_miserables_snapshot()
+    recipe = FeatureRecipe.discover(snapshot, max_rounds=1, binning="relative")
+    with pytest.raises(ValueError, match="relative binning"):
+        recipe.transform_at(GraphColumns(SnapshotGraph(snapshot)), snapshot.nodes)

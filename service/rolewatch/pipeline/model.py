@@ -3,8 +3,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -12,6 +13,8 @@ from rolewatch.config import Settings
 from rolewatch.engine.activity import activity_counts
 from rolewatch.engine.basis import RoleBasis
 from rolewatch.engine.features import FeatureRecipe, FeatureTable
+from rolewatch.engine.features.discovery import GraphColumns, ReferenceColumns
+from rolewatch.engine.features.graph import SnapshotGraph
 from rolewatch.engine.naming import RoleProfile, describe_roles
 from rolewatch.engine.readable import readable_measures
 from rolewatch.engine.rowkeys import account_sample
@@ -19,7 +22,15 @@ from rolewatch.engine.snapshot import Snapshot
 from rolewatch.store.db import Connection
 from rolewatch.store.models import RoleInfo, StoredModel, active_model, save_model
 
-__all__ = ["FrozenModel", "RoleInfo", "fit_model", "load_active_model", "store_model"]
+__all__ = [
+    "FrozenModel",
+    "InProcessFeatures",
+    "RoleInfo",
+    "TrainingFeatures",
+    "fit_model",
+    "load_active_model",
+    "store_model",
+]
 
 
 @dataclass(frozen=True)
@@ -37,8 +48,50 @@ class FrozenModel:
         return f"role {role_id}"
 
 
+class TrainingFeatures(Protocol):
+    """Where the training windows' features are computed: on each window's whole graph,
+    read at the sampled rows (``rows[k]``: window ``k``'s sampled positions, None for all)."""
+
+    def references(self, rows: Sequence[np.ndarray | None]) -> Sequence[ReferenceColumns]:
+        """Each window, for discovery."""
+        ...
+
+    def tables(
+        self, recipe: FeatureRecipe, rows: Sequence[np.ndarray | None]
+    ) -> list[FeatureTable]:
+        """Each window's ``recipe`` features at its sampled rows, for the basis fit."""
+        ...
+
+
+@dataclass(frozen=True)
+class InProcessFeatures:
+    """The training windows' features computed in this process, from their snapshots."""
+
+    snapshots: Sequence[Snapshot]
+
+    def references(self, rows: Sequence[np.ndarray | None]) -> list[ReferenceColumns]:
+        return [
+            GraphColumns(SnapshotGraph(snapshot), picked)
+            for snapshot, picked in zip(self.snapshots, rows, strict=True)
+        ]
+
+    def tables(
+        self, recipe: FeatureRecipe, rows: Sequence[np.ndarray | None]
+    ) -> list[FeatureTable]:
+        return [
+            recipe.transform(snapshot)
+            if picked is None
+            else recipe.transform(snapshot).take(picked)
+            for snapshot, picked in zip(self.snapshots, rows, strict=True)
+        ]
+
+
 def fit_model(
-    settings: Settings, snapshots: list[Snapshot], previous: FrozenModel | None = None
+    settings: Settings,
+    snapshots: list[Snapshot],
+    previous: FrozenModel | None = None,
+    *,
+    features: TrainingFeatures | None = None,
 ) -> FrozenModel:
     """Discover the recipe, fit the basis and describe its roles on reference snapshots.
 
@@ -47,27 +100,31 @@ def fit_model(
     from the whole graph, but the bins, the pruning, the basis and the role descriptions
     see the sample only, so training's memory stops growing with the window past one full
     feature table. With a ``previous`` model, the new roles are matched to the old ones so
-    ids persist, and names an operator gave to persisting roles are kept.
+    ids persist, and names an operator gave to persisting roles are kept. ``features``
+    says where the features are computed (None: in this process, from ``snapshots``; a
+    Dask close passes :class:`rolewatch.scale.training.ClusterTraining`); the readable
+    measures that describe the roles are read off ``snapshots`` at the sampled rows.
     """
+    if not snapshots:
+        raise ValueError("discover needs at least one reference snapshot")
     sample = account_sample(
         [snapshot.nodes for snapshot in snapshots],
         settings.training_sample_accounts,
         settings.seed,
     )
-    recipe = FeatureRecipe.discover(
-        snapshots,
+    rows_of: list[np.ndarray | None] = [None] * len(snapshots) if sample is None else [*sample]
+    features = features if features is not None else InProcessFeatures(snapshots)
+    recipe = FeatureRecipe.discover_on(
+        features.references(rows_of),
+        accounts=int(sum(snapshot.n_nodes for snapshot in snapshots)),
+        sampled=sample is not None,
         max_rounds=settings.feature_rounds,
         bin_fraction=settings.bin_fraction,
         tolerance=settings.prune_tolerance,
         tolerance_step=settings.prune_tolerance_step,
         binning=settings.binning,
-        rows=sample,
     )
-    rows_of: list[np.ndarray | None] = [None] * len(snapshots) if sample is None else [*sample]
-    tables = [
-        recipe.transform(snapshot) if rows is None else recipe.transform(snapshot).take(rows)
-        for snapshot, rows in zip(snapshots, rows_of, strict=True)
-    ]
+    tables = features.tables(recipe, rows_of)
     basis = RoleBasis.fit(
         tables,
         n_roles=settings.roles,
@@ -83,13 +140,13 @@ def fit_model(
     descriptions = _describe(basis, snapshots, tables, rows_of)
     kept_names = {info.role_id: info.name for info in previous.roles} if previous else {}
     infos = []
-    for description, features in zip(descriptions, basis.F, strict=True):
+    for description, weights in zip(descriptions, basis.F, strict=True):
         infos.append(
             RoleInfo(
                 role_id=int(description.role_id),
                 name=kept_names.get(int(description.role_id), description.name),
                 description=description.description,
-                profile=_profile(description, basis.feature_names, features),
+                profile=_profile(description, basis.feature_names, weights),
             )
         )
     return FrozenModel(recipe=recipe, basis=basis, roles=tuple(infos))

@@ -20,7 +20,7 @@ import numpy as np
 from ..snapshot import Snapshot
 from .binning import apply_bins, bin_dtype, bin_edges
 from .definitions import FeatureDef, compute_features, parse_feature
-from .discovery import discover_features
+from .discovery import GraphColumns, ReferenceColumns, discover_features
 from .graph import SnapshotGraph
 from .parameters import check_binning, check_parameters
 
@@ -256,21 +256,77 @@ class FeatureRecipe:
             max_rounds=max_rounds,
         )
         snaps = _as_snapshots(snapshots)
-        found = discover_features(
-            [SnapshotGraph(s) for s in snaps],
+        picked: list[np.ndarray | None] = [None] * len(snaps) if rows is None else list(rows)
+        if len(picked) != len(snaps):
+            raise ValueError(f"{len(snaps)} snapshots but row samples for {len(picked)}")
+        return cls.discover_on(
+            [GraphColumns(SnapshotGraph(s), r) for s, r in zip(snaps, picked, strict=True)],
+            accounts=int(sum(s.n_nodes for s in snaps)),
+            sampled=rows is not None,
             max_rounds=max_rounds,
             bin_fraction=bin_fraction,
             tolerance=tolerance,
             tolerance_step=tolerance_step,
-            rows=rows,
+            binning=binning,
         )
-        reference = {
-            "snapshots": len(snaps),
-            "rows": int(sum(s.n_nodes for s in snaps)),
-            "rounds": found.rounds,
-        }
-        if rows is not None:
-            reference["sampled_rows"] = int(sum(np.size(r) for r in rows))
+
+    @classmethod
+    def discover_on(
+        cls,
+        windows: Sequence[ReferenceColumns],
+        *,
+        accounts: int,
+        sampled: bool,
+        max_rounds: int = 3,
+        bin_fraction: float = 0.5,
+        tolerance: float = 1.0,
+        tolerance_step: float = 1.0,
+        binning: str = "frozen",
+    ) -> FeatureRecipe:
+        """:meth:`discover` on reference windows wherever their graphs are held: in this
+        process (:class:`~rolewatch.engine.features.discovery.GraphColumns`, what
+        :meth:`discover` passes) or elsewhere, e.g. partitioned on a cluster, read at the
+        sampled rows (ReFeX, Henderson et al., KDD 2011).
+
+        Parameters
+        ----------
+        windows : sequence of ReferenceColumns
+            One per reference window, in order.
+        accounts : int
+            Accounts of all the windows together (the recipe's reference notes it).
+        sampled : bool
+            Whether the windows' rows are a sample (noted with their count).
+        max_rounds, bin_fraction, tolerance, tolerance_step, binning
+            As for :meth:`discover`.
+
+        Returns
+        -------
+        FeatureRecipe
+
+        Raises
+        ------
+        ValueError
+            A parameter is out of range (the message names it), or no window is given.
+        """
+        check_parameters(
+            bin_fraction=bin_fraction,
+            tolerance=tolerance,
+            tolerance_step=tolerance_step,
+            binning=binning,
+            max_rounds=max_rounds,
+        )
+        if not windows:
+            raise ValueError("discovery needs at least one reference window")
+        found = discover_features(
+            windows,
+            max_rounds=max_rounds,
+            bin_fraction=bin_fraction,
+            tolerance=tolerance,
+            tolerance_step=tolerance_step,
+        )
+        reference = {"snapshots": len(windows), "rows": accounts, "rounds": found.rounds}
+        if sampled:
+            reference["sampled_rows"] = int(sum(w.rows for w in windows))
         return cls(
             features=tuple(found.features),
             feature_edges=tuple(found.edges),
@@ -312,17 +368,62 @@ class FeatureRecipe:
             edges = self.feature_edges
         else:
             edges = [bin_edges(raw[:, j], self.bin_fraction) for j in range(raw.shape[1])]
-        n_bins = 1 + max((e.size for e in edges), default=0)
-        binned = np.empty(raw.shape, dtype=bin_dtype(n_bins), order="F")
-        for j, e in enumerate(edges):
-            apply_bins(raw[:, j], e, out=binned[:, j])
         return FeatureTable(
             nodes=snapshot.nodes,
             names=self.names,
             raw=raw,
-            binned=binned,
+            binned=_binned(raw, edges),
             recipe_version=self.version,
             triangles=graph.counted_triangles(),
+        )
+
+    def transform_at(self, window: ReferenceColumns, nodes: np.ndarray) -> FeatureTable:
+        """This recipe's features of a window held elsewhere (e.g. partitioned on a
+        cluster), at the window's sampled rows, binned with the frozen edges: the rows
+        ``transform(snapshot).take(rows)`` gives, each feature computed on the whole graph
+        by the same evaluation (ReFeX, Henderson et al., KDD 2011).
+
+        Parameters
+        ----------
+        window : ReferenceColumns
+            The window, read at its sampled rows; its kept parents are replaced round by
+            round.
+        nodes : numpy.ndarray
+            The sampled rows' account ids, in the rows' order.
+
+        Returns
+        -------
+        FeatureTable
+            ``triangles`` is None.
+
+        Raises
+        ------
+        ValueError
+            The recipe bins relatively (each window on its own values, which the sampled
+            rows alone cannot give), or ``nodes`` is not one id per row.
+        """
+        if self.binning != "frozen":
+            raise ValueError(
+                "a recipe with relative binning bins each window on all its values: "
+                "compute its tables with transform on the whole snapshot"
+            )
+        if len(nodes) != window.rows:
+            raise ValueError(f"{len(nodes)} account ids for {window.rows} rows")
+        raw = np.zeros((window.rows, len(self.features)), order="F")
+        column = {name: j for j, name in enumerate(self.names)}
+        rounds = sorted({d.round for d in self.features})
+        for rnd in rounds:
+            layer = [d for d in self.features if d.round == rnd]
+            for d, values in zip(layer, window.at_rows(layer), strict=True):
+                raw[:, column[d.name]] = values
+            if rnd != rounds[-1]:
+                window.keep(layer)
+        return FeatureTable(
+            nodes=np.asarray(nodes),
+            names=self.names,
+            raw=raw,
+            binned=_binned(raw, self.feature_edges),
+            recipe_version=self.version,
         )
 
     # ---------------------------------------------------------------- serialisation
@@ -424,6 +525,16 @@ def _canonical(body: dict[str, Any]) -> str:
     return json.dumps(
         body, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False
     )
+
+
+def _binned(raw: np.ndarray, edges: Sequence[np.ndarray]) -> np.ndarray:
+    """Bin indices of every column of ``raw`` by its edges, in the smallest dtype that
+    holds them (Fortran order, as ``raw``)."""
+    n_bins = 1 + max((e.size for e in edges), default=0)
+    binned = np.empty(raw.shape, dtype=bin_dtype(n_bins), order="F")
+    for j, e in enumerate(edges):
+        apply_bins(raw[:, j], e, out=binned[:, j])
+    return binned
 
 
 def _as_snapshots(snapshots: Snapshot | Iterable[Snapshot]) -> list[Snapshot]:
