@@ -194,7 +194,7 @@ class Settings(BaseSettings):
     binning: Literal["frozen", "relative"] = Field(
         "frozen",
         description="frozen: bin edges learnt on the training windows; relative: each window "
-        "binned by its own quantiles.",
+        "binned by its own quantiles (compute = local only).",
     )
     roles: int | None = Field(
         None,
@@ -458,6 +458,11 @@ class Settings(BaseSettings):
                 "store_memberships_max_accounts keeps large windows' memberships only in the "
                 "Parquet outputs: set ROLEWATCH_OUTPUT_ARCHIVE to their path or URL, or set "
                 "store_memberships_max_accounts to 0"
+            )
+        if self.compute == "dask" and self.binning == "relative":
+            raise ValueError(
+                "compute = dask bins every window with the bin edges frozen at training: set "
+                "binning = frozen (ROLEWATCH_BINNING), or compute = local for relative binning"
             )
         return self
 

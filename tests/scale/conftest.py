@@ -22,6 +22,7 @@ from rolewatch.pipeline.model import fit_model  # noqa: E402
 from rolewatch.pipeline.offline import split_windows  # noqa: E402
 from rolewatch.pipeline.windows import WindowGeometry  # noqa: E402
 from rolewatch.store.events import parse_time_us  # noqa: E402
+from rolewatch.store.models import active_model  # noqa: E402
 from rolewatch.store.schema import alerts, memberships, pair_history, windows  # noqa: E402
 
 SAMPLE = Path(__file__).resolve().parents[2] / "fixtures" / "sample"
@@ -90,8 +91,9 @@ def sample_windows(tmp_path_factory):
 
 
 def written(engine) -> dict:
-    """Everything a close writes, without ids and wall-clock times: windows, memberships,
-    each account's activity and tie cells, the known-pair history and the alerts."""
+    """Everything a close writes, without ids and wall-clock times: the active model (its
+    recipe, basis and roles), windows, memberships, each account's activity and tie cells,
+    the known-pair history and the alerts."""
     with engine.connect() as connection:
         window_rows = connection.execute(
             sa.select(
@@ -142,7 +144,9 @@ def written(engine) -> dict:
                 alerts.c.window_end_us, alerts.c.account
             )
         ).all()
+        model = active_model(connection)
     return {
+        "model": None if model is None else (model.recipe, model.basis, model.roles),
         "windows": [tuple(row) for row in window_rows],
         "memberships": [tuple(row) for row in member_rows],
         "counts": [tuple(row) for row in count_rows],

@@ -319,7 +319,11 @@ def test_a_close_read_on_the_workers_writes_what_the_store_alone_writes(
     assert_same_closes(got, expected)
     # the whole evidence: sample events, counterparts, features before and after
     assert got_evidence.keys() == expected_evidence.keys()
+    # the models are the same but for their versions (the training's sums ran in another
+    # order on the cluster; assert_same_closes compared them)
+    version = {got["model"][1]["version"]: expected["model"][1]["version"]}
     for key, evidence in got_evidence.items():
+        evidence = {**evidence, "basis_version": version[evidence["basis_version"]]}
         _same(evidence, expected_evidence[key])
     assert any(e["sample_event_ids"] for e in got_evidence.values())
     assert any(e.get("feature_moves") for e in got_evidence.values())

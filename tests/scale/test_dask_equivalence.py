@@ -35,9 +35,11 @@ from rolewatch.scale.features import (
     WorkerFeatureRows,
 )
 from rolewatch.scale.graph import build_graph, scatter_events, triangle_table
+from rolewatch.scale.training import ClusterColumns
 from rolewatch.store.alerts import WindowRef
 from rolewatch.store.db import open_store
 from rolewatch.store.events import ingest
+from rolewatch.store.models import active_model
 from rolewatch.store.schema import alerts
 
 from .conftest import NOW, sample_events, sample_settings, written
@@ -316,18 +318,28 @@ def test_closing_on_dask_writes_what_closing_locally_writes(dask_cluster, tmp_pa
         return on_cluster(client, inputs, policy, partitions)
 
     monkeypatch.setattr(dask_scoring, "score_on_cluster", counting)
-    measured = []
+    read_on_cluster: list[int] = []
+    at_rows = ClusterColumns.at_rows
+
+    def reading(self, defs):
+        read_on_cluster.append(len(defs))
+        return at_rows(self, defs)
+
+    monkeypatch.setattr(ClusterColumns, "at_rows", reading)
+    summaries = []
     for compute in ("local", "dask"):
         engine, summaries = _closed_sample(dask_cluster, tmp_path, compute, every)
-        measured = [summary for summary in summaries if not summary.training]
         results[compute] = written(engine)
         engine.dispose()
     assert results["local"]["alerts"], "the sample raises alerts after training"
     assert_same_closes(results["dask"], results["local"])
-    # the dask close really ran on the cluster, its scores too (every window measured after
-    # training; the training windows are measured where the model is fitted)
+    # the dask close really ran on the cluster: the training's features (discovery and the
+    # basis fit's tables, for each of the 4 training windows) and every window's scores,
+    # the training windows' back-fill included
     assert scheduler_transitions(dask_cluster.scheduler.address) > before
-    assert measured and len(scored_on_cluster) == len(measured)
+    assert any(summary.training for summary in summaries)
+    assert summaries and len(scored_on_cluster) == len(summaries)
+    assert len(read_on_cluster) >= 2 * 4
 
 
 def test_a_window_smaller_than_the_partition_count_measures_like_the_local_engine(
@@ -348,16 +360,21 @@ def test_a_window_smaller_than_the_partition_count_measures_like_the_local_engin
 
 
 def _alert_evidence(engine) -> list[tuple]:
+    """Every alert's evidence, without the window's id and the basis version, checked to be
+    the store's active one (a model fitted on the cluster is the local one but for its
+    version, docs/scale.md)."""
     with engine.connect() as connection:
         rows = connection.execute(
             sa.select(alerts.c.account, alerts.c.window_end_us, alerts.c.evidence).order_by(
                 alerts.c.window_end_us, alerts.c.account
             )
         ).all()
+        model = active_model(connection)
     found = []
     for account, end, evidence in rows:
         document = json.loads(evidence)
         document["window"].pop("id")
+        assert model is not None and document.pop("basis_version") == model.basis_version
         found.append((account, end, document))
     return found
 

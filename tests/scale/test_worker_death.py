@@ -1,5 +1,6 @@
-"""A Dask worker killed while a window closes with ``compute = "dask"``: the lost event
-chunks make Dask cancel the computation, the close computes the window again on the
+"""A Dask worker killed while a window closes with ``compute = "dask"`` (a window after
+training, or the training close, whose fit and back-fill run on the cluster too): the lost
+event chunks make Dask cancel the computation, the close computes the window again on the
 remaining and restarted workers, and the window is closed exactly once with what the local
 engine writes. When every attempt loses its data, the close fails before writing anything
 and the next close of the window succeeds.
@@ -20,7 +21,7 @@ import time
 import pytest
 from distributed.diagnostics.plugin import SchedulerPlugin
 
-from rolewatch.pipeline.closer import close_due_windows
+from rolewatch.pipeline.closer import close_due_windows, close_window
 from rolewatch.pipeline.windows import WindowGeometry
 from rolewatch.scale import dispatch
 from rolewatch.store.db import open_store
@@ -168,25 +169,37 @@ def _close_killing_a_worker(engine, settings, client, prefix: str = "tuple-"):
         assert kills.killed, "a worker holding the window's events was killed"
 
 
+@pytest.mark.parametrize("killed_in", ["training", "measured"])
 def test_a_worker_killed_mid_close_leaves_the_window_closed_once(
-    cluster, tmp_path, caplog, monkeypatch
+    cluster, tmp_path, caplog, monkeypatch, killed_in
 ):
+    # "training": the worker dies while the training close computes the training windows'
+    # features on the cluster (the fit, then the back-fill); "measured": while a window
+    # after training is measured.
     results = {}
     for compute in ("local", "dask"):
         engine, settings = _five_weeks_stored(tmp_path, compute, cluster)
         if compute == "local":
             close_due_windows(engine, settings, now_us=NOW, drain=True)
         else:
+            if killed_in == "measured":  # the training close first, on the cluster, untouched
+                for end_us in [row[0] for row in results["local"]["windows"]][:4]:
+                    close_window(engine, settings, end_us, now_us=NOW)
+            before = len(written(engine)["windows"])
+            assert before == (4 if killed_in == "measured" else 0)
             # One attempt only: the lost chunks fail the close, before anything is written.
             monkeypatch.setattr(dispatch, "DASK_ATTEMPTS", 1)
             with pytest.raises(dispatch.DaskDataLost, match="next tick"):
                 _close_killing_a_worker(engine, settings, cluster)
-            assert len(written(engine)["windows"]) == 4  # the training windows only
+            # the windows recorded before the failed close (training windows are recorded
+            # as they close, the fourth one fits the model)
+            assert len(written(engine)["windows"]) == (4 if killed_in == "measured" else 3)
             monkeypatch.setattr(dispatch, "DASK_ATTEMPTS", 3)
             caplog.clear()
             with caplog.at_level(logging.WARNING, logger="rolewatch.scale"):
                 closed = _close_killing_a_worker(engine, settings, cluster)
-            assert [summary.training for summary in closed] == [False]
+            assert [summary.training for summary in closed][-1:] == [False]
+            assert all(summary.training for summary in closed[:-1])
         results[compute] = written(engine)
         engine.dispose()
     retried = [r for r in caplog.records if "lost the window's data" in r.getMessage()]

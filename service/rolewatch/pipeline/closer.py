@@ -28,6 +28,7 @@ from rolewatch.config import Settings
 from rolewatch.engine.pairs import KnownPairs
 from rolewatch.pipeline.communities import CommunityJob
 from rolewatch.pipeline.compute import (
+    Measure,
     PastWindow,
     WindowRef,
     WindowResult,
@@ -38,13 +39,14 @@ from rolewatch.pipeline.compute import (
     start_window_communities,
 )
 from rolewatch.pipeline.loading import WindowEvents, read_with_ids_on_disk, stored_past_windows
-from rolewatch.pipeline.model import FrozenModel, fit_model, load_active_model, store_model
+from rolewatch.pipeline.model import FrozenModel, load_active_model, store_model
 from rolewatch.pipeline.recent import RecentFeatures
 from rolewatch.pipeline.stages import StageClock
 from rolewatch.pipeline.windows import WindowGeometry, is_due, next_window_end
 from rolewatch.review.intake import file_window_alerts, screen_alerts
 from rolewatch.scale import source as event_source
 from rolewatch.scale.dispatch import (
+    fit_for,
     keeps_memberships,
     known_pairs_for,
     measure_for,
@@ -367,9 +369,10 @@ def _close_training(
     snapshots = [window.events.snapshot() for window in loaded]
     # The communities need only the events: they are computed while the model is fitted.
     communities = [start_window_communities(settings, snapshot) for snapshot in snapshots]
-    model = fit_model(settings, snapshots)
+    measure = measure_for(settings)
+    model = fit_for(settings, measure, snapshots, [window.events for window in loaded])
     measured = _measure_training(
-        model, settings, loaded, communities, clock, _recent_features(engine)
+        model, settings, loaded, communities, clock, _recent_features(engine), measure
     )
     with write_transaction(engine) as connection:
         _claim_window(connection, start_us, end_us, event_source.stored_part(current))
@@ -442,6 +445,7 @@ def _measure_training(
     communities: list[CommunityJob],
     clock: StageClock,
     recent: RecentFeatures,
+    measure: Measure,
 ) -> list[_Measured]:
     """Measure the training windows in order, each against the history of those before it
     (the known pairs start empty at the first training window). ``clock`` holds the load
@@ -467,6 +471,7 @@ def _measure_training(
             recent=recent,
             communities=window_communities,
             keep_score_inputs=False,
+            measure=measure,
         )
         measured.append(_Measured(window, result, time.perf_counter() - started, own))
         past = (past + [past_from_result(result, ref)])[-lookback_windows(settings) :]

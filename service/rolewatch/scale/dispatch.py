@@ -11,7 +11,7 @@ from __future__ import annotations
 import logging
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import fields
 from typing import Any, TypeVar
 
@@ -33,10 +33,9 @@ from rolewatch.pipeline.compute import (
     membership_columns,
 )
 from rolewatch.pipeline.loading import ClosingEvents, WindowEvents
-from rolewatch.pipeline.model import FrozenModel
+from rolewatch.pipeline.model import FrozenModel, fit_model
 from rolewatch.pipeline.recent import MAX_KEPT_BYTES
 from rolewatch.scale.archive_events import WorkerEvents
-from rolewatch.scale.partitions import Partitioned
 from rolewatch.scale.workers import live_workers
 from rolewatch.store.pairs import known_pair_parts, known_pair_windows, window_pair_keys
 
@@ -49,6 +48,7 @@ __all__ = [
     "ScaleExtraMissing",
     "close_clients",
     "dask_client",
+    "fit_for",
     "keeps_memberships",
     "known_pairs_for",
     "lost_data",
@@ -267,6 +267,26 @@ class DaskMeasure:
             "tick closes the window again"
         )
 
+    def window_graph(self, snapshot: Snapshot, events: ClosingEvents) -> tuple[Any, list[Any]]:
+        """The window's graph on the cluster (:class:`rolewatch.scale.graph.WindowGraph`,
+        its tasks submitted), and the futures of the event chunks this process sent for it
+        (none when the workers read the events): let them go once the blocks are built."""
+        from rolewatch.scale.graph import build_graph, scatter_events
+
+        if isinstance(events, WorkerEvents):  # read by the workers: chunks they can recompute
+            return events.take_graph() or build_graph((events.chunks, snapshot.n_nodes)), []
+        assert isinstance(events, WindowEvents)  # held here: sent from this process
+        actor, target = events.rows_in(snapshot)
+        scattered, n = scatter_events(
+            self.client,
+            actor,
+            target,
+            events.weight,
+            snapshot.n_nodes,
+            self.partitions_for(snapshot.n_nodes),
+        )
+        return build_graph((scattered, n)), list(scattered.futures)
+
     def _measure_once(
         self,
         model: FrozenModel,
@@ -277,28 +297,10 @@ class DaskMeasure:
         from distributed import wait
 
         from rolewatch.scale.features import measure_window
-        from rolewatch.scale.graph import build_graph, scatter_events
         from rolewatch.scale.ties import count_ties
 
-        scattered: Partitioned | None = None
-        if isinstance(events, WorkerEvents):  # read by the workers: chunks they can recompute
-            graph = events.take_graph() or build_graph((events.chunks, snapshot.n_nodes))
-            held: list[Any] = []
-        else:
-            assert isinstance(events, WindowEvents)  # held here: sent from this process
-            actor, target = events.rows_in(snapshot)
-            scattered, n = scatter_events(
-                self.client,
-                actor,
-                target,
-                events.weight,
-                snapshot.n_nodes,
-                self.partitions_for(snapshot.n_nodes),
-            )
-            held = list(scattered.futures)
+        graph, held = self.window_graph(snapshot, events)
         try:
-            if scattered is not None:
-                graph = build_graph((scattered, n))
             built = [*graph.blocks.futures, *graph.base.futures]
             held += built
             with self.client.as_current():  # a client made for one scheduler is no default
@@ -306,7 +308,6 @@ class DaskMeasure:
             # The blocks hold the events now: free the workers' copies of the chunks (a
             # worker lost from here on fails the attempt either way: chunks scattered from
             # this process cannot be recomputed).
-            del scattered
             held = built
             # counted beside the features: the cluster works on both at once
             pending = None if known is None else count_ties(graph, snapshot.node_keys, known)
@@ -352,6 +353,26 @@ def measure_for(settings: Settings) -> Measure:
         ACCOUNTS_PER_PARTITION,
         attempts=DASK_ATTEMPTS,
         raw_here_max_bytes=RAW_HERE_MAX_BYTES,
+    )
+
+
+def fit_for(
+    settings: Settings,
+    measure: Measure,
+    snapshots: list[Snapshot],
+    events: Sequence[ClosingEvents],
+) -> FrozenModel:
+    """The model fitted on the training windows (their snapshots and events), their
+    features computed where the close computes: in this process, or on the cluster of a
+    :class:`DaskMeasure` (:class:`rolewatch.scale.training.ClusterTraining`: only the
+    training sample's rows come back), started again when the cluster loses its data."""
+    windows = list(zip(snapshots, events, strict=True))
+    if not isinstance(measure, DaskMeasure):
+        return fit_model(settings, snapshots)
+    from rolewatch.scale.training import ClusterTraining
+
+    return measure.retried(
+        lambda: fit_model(settings, snapshots, features=ClusterTraining(measure, windows))
     )
 
 

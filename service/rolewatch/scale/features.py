@@ -53,7 +53,11 @@ from rolewatch.scale.partitions import Partitioned, split_by_range
 from rolewatch.scale.workers import live_workers
 
 __all__ = [
+    "Columns",
+    "Layer",
     "MeasuredWindow",
+    "aggregate_columns",
+    "parent_group",
     "FeatureRowsLost",
     "ScratchValues",
     "WorkerFeatureRows",
@@ -266,7 +270,15 @@ def _aggregates(
     settle: tuple,
     *pieces: np.ndarray,
 ) -> tuple[Columns, Columns, Columns | ScratchValues]:
-    """One group of a round's aggregates on one partition, settled (:func:`_settle`).
+    """One group of a round's aggregates on one partition (:func:`aggregate_columns`),
+    settled (:func:`_settle`)."""
+    return _settle(aggregate_columns(block, layer, sources, *pieces), *settle)
+
+
+def aggregate_columns(
+    block: Block, layer: Layer, sources: Sequence[Sequence[str]], *pieces: np.ndarray
+) -> Columns:
+    """One group of a round's aggregates on one partition, in float64.
 
     ``pieces`` are the parents' values at the block's neighbours, one piece per partition
     for each source (a Dask result holding some of the parents, ``sources`` naming them
@@ -297,7 +309,7 @@ def _aggregates(
             inverse = np.divide(1.0, degree, out=np.zeros_like(degree), where=degree > 0)
             summed = summed * inverse
         columns[name] = summed
-    return _settle(columns, *settle)
+    return columns
 
 
 def _need_size(block: Block) -> int:
