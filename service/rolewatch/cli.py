@@ -379,6 +379,7 @@ BENCH_MODULES = (
     "detection",
     "scale",
     "scale_archive",
+    "scale_training",
 )
 
 
