@@ -15,6 +15,7 @@ import pytest
 
 from rolewatch.config import load_settings
 from rolewatch.engine import FeatureRecipe, Snapshot
+from rolewatch.engine.basis import RoleBasis
 from rolewatch.engine.features import apply_bins, bin_edges
 from rolewatch.engine.features.discovery import GraphColumns
 from rolewatch.engine.features.graph import SnapshotGraph
@@ -136,32 +137,57 @@ def test_fit_model_fits_on_the_sample_and_measures_every_account():
     assert memberships.mixture.shape == (77, 3)
 
 
-def test_a_recipe_read_at_the_sampled_rows_equals_the_whole_table_at_those_rows():
+def test_discoverys_bins_of_the_sampled_rows_are_the_recipes_bins_at_those_rows():
+    # fit_model fits the basis on these bins instead of computing the recipe again
     snapshot, graph = les_miserables_snapshot()
     rows = account_sample([snapshot.nodes], 40, seed=3)
     assert rows is not None
-    recipe = FeatureRecipe.discover(snapshot, max_rounds=2, rows=rows)
-    assert max(d.round for d in recipe.features) >= 1
-    expected = recipe.transform(snapshot).take(rows[0])
-    at_rows = recipe.transform_at(
-        GraphColumns(SnapshotGraph(snapshot), rows[0]), snapshot.nodes[rows[0]]
+    recipe, binned = FeatureRecipe.discover_on(
+        [GraphColumns(SnapshotGraph(snapshot), rows[0])],
+        accounts=snapshot.n_nodes,
+        sampled=True,
+        max_rounds=2,
     )
-    assert at_rows.names == expected.names
-    np.testing.assert_array_equal(at_rows.nodes, expected.nodes)
-    np.testing.assert_array_equal(at_rows.raw, expected.raw)
-    np.testing.assert_array_equal(at_rows.binned, expected.binned)
-    assert at_rows.binned.dtype == expected.binned.dtype
-    # a sampled account's mean over its in-neighbours of their in-degree, from the whole
-    # graph: with one event each way, networkx's neighbours and degrees of the undirected
-    # Les Misérables graph
+    assert recipe == FeatureRecipe.discover(snapshot, max_rounds=2, rows=rows)
+    assert max(d.round for d in recipe.features) >= 1
+    table = recipe.transform(snapshot).take(rows[0])
+    assert binned.shape == table.binned.shape
+    np.testing.assert_array_equal(binned, table.binned)
+    # a sampled account's mean over its in-neighbours of their in-degree comes from the
+    # whole graph: with one event each way, networkx's neighbours and degrees of the
+    # undirected Les Misérables graph
     assert "mean_in(in_degree)" in recipe.names
     degree = dict(graph.degree())
-    means = [np.mean([degree[v] for v in graph[u]]) for u in at_rows.nodes]
-    np.testing.assert_allclose(at_rows.column("mean_in(in_degree)"), means, rtol=1e-12)
+    means = [np.mean([degree[v] for v in graph[u]]) for u in table.nodes]
+    np.testing.assert_allclose(table.column("mean_in(in_degree)"), means, rtol=1e-12)
 
 
-def test_a_relatively_binned_recipe_is_not_read_at_sampled_rows():
-    snapshot, _ = les_miserables_snapshot()
-    recipe = FeatureRecipe.discover(snapshot, max_rounds=1, binning="relative")
-    with pytest.raises(ValueError, match="relative binning"):
-        recipe.transform_at(GraphColumns(SnapshotGraph(snapshot)), snapshot.nodes)
+def test_fit_model_fits_the_basis_on_each_windows_sampled_rows():
+    # two windows: Les Misérables, and its co-appearances of weight at least 2
+    snapshot, graph = les_miserables_snapshot()
+    heavy = [(u, v) for u, v, w in graph.edges(data="weight") if w >= 2]
+    actor = np.array([u for u, v in heavy] + [v for u, v in heavy])
+    target = np.array([v for u, v in heavy] + [u for u, v in heavy])
+    second = Snapshot.from_events(actor, target)
+    snapshots = [snapshot, second]
+    settings = load_settings(
+        database_url="sqlite://", training_sample_accounts=50, roles=3, feature_rounds=1
+    )
+    rows = account_sample([s.nodes for s in snapshots], 50, settings.seed)
+    assert rows is not None and all(
+        0 < r.size < s.n_nodes for r, s in zip(rows, snapshots, strict=True)
+    )
+    model = fit_model(settings, snapshots)
+    # the basis a fit on the recipe's whole tables, taken at the sampled rows, gives
+    tables = [model.recipe.transform(s).take(r) for s, r in zip(snapshots, rows, strict=True)]
+    expected = RoleBasis.fit(
+        tables,
+        n_roles=settings.roles,
+        k_range=(settings.roles_min, settings.roles_max),
+        seed=settings.seed,
+        sample_rows=settings.roles_sample_rows,
+        stability_min=settings.roles_stability_min,
+        tolerance=settings.roles_mdl_tolerance,
+        resamples=settings.roles_resamples,
+    )
+    assert model.basis.to_dict() == expected.to_dict()

@@ -50,16 +50,10 @@ class FrozenModel:
 
 class TrainingFeatures(Protocol):
     """Where the training windows' features are computed: on each window's whole graph,
-    read at the sampled rows (``rows[k]``: window ``k``'s sampled positions, None for all)."""
+    read at its sampled rows."""
 
     def references(self, rows: Sequence[np.ndarray | None]) -> Sequence[ReferenceColumns]:
-        """Each window, for discovery."""
-        ...
-
-    def tables(
-        self, recipe: FeatureRecipe, rows: Sequence[np.ndarray | None]
-    ) -> list[FeatureTable]:
-        """Each window's ``recipe`` features at its sampled rows, for the basis fit."""
+        """Each window, read at ``rows[k]`` (its sampled positions; None: every row)."""
         ...
 
 
@@ -72,16 +66,6 @@ class InProcessFeatures:
     def references(self, rows: Sequence[np.ndarray | None]) -> list[ReferenceColumns]:
         return [
             GraphColumns(SnapshotGraph(snapshot), picked)
-            for snapshot, picked in zip(self.snapshots, rows, strict=True)
-        ]
-
-    def tables(
-        self, recipe: FeatureRecipe, rows: Sequence[np.ndarray | None]
-    ) -> list[FeatureTable]:
-        return [
-            recipe.transform(snapshot)
-            if picked is None
-            else recipe.transform(snapshot).take(picked)
             for snapshot, picked in zip(self.snapshots, rows, strict=True)
         ]
 
@@ -114,7 +98,7 @@ def fit_model(
     )
     rows_of: list[np.ndarray | None] = [None] * len(snapshots) if sample is None else [*sample]
     features = features if features is not None else InProcessFeatures(snapshots)
-    recipe = FeatureRecipe.discover_on(
+    recipe, binned = FeatureRecipe.discover_on(
         features.references(rows_of),
         accounts=int(sum(snapshot.n_nodes for snapshot in snapshots)),
         sampled=sample is not None,
@@ -124,7 +108,7 @@ def fit_model(
         tolerance_step=settings.prune_tolerance_step,
         binning=settings.binning,
     )
-    tables = features.tables(recipe, rows_of)
+    tables = _training_tables(settings, recipe, binned, snapshots, rows_of)
     basis = RoleBasis.fit(
         tables,
         n_roles=settings.roles,
@@ -150,6 +134,39 @@ def fit_model(
             )
         )
     return FrozenModel(recipe=recipe, basis=basis, roles=tuple(infos))
+
+
+def _training_tables(
+    settings: Settings,
+    recipe: FeatureRecipe,
+    binned: np.ndarray,
+    snapshots: list[Snapshot],
+    rows_of: list[np.ndarray | None],
+) -> list[FeatureTable]:
+    """Each training window's table at its sampled rows, for the basis fit and the role
+    descriptions, which read only the bins: with frozen binning, discovery's own bins of the
+    sampled rows (the recipe is not computed again); with relative binning, each window
+    binned on all its values in this process (:meth:`FeatureRecipe.transform`)."""
+    if settings.binning != "frozen":
+        return [
+            recipe.transform(snapshot) if rows is None else recipe.transform(snapshot).take(rows)
+            for snapshot, rows in zip(snapshots, rows_of, strict=True)
+        ]
+    tables, start = [], 0
+    for snapshot, rows in zip(snapshots, rows_of, strict=True):
+        nodes = snapshot.nodes if rows is None else snapshot.nodes[rows]
+        stop = start + len(nodes)
+        tables.append(
+            FeatureTable(
+                nodes=nodes,
+                names=recipe.names,
+                raw=np.empty((len(nodes), 0)),  # the raw values are not read in training
+                binned=binned[start:stop],
+                recipe_version=recipe.version,
+            )
+        )
+        start = stop
+    return tables
 
 
 def _describe(

@@ -259,7 +259,7 @@ class FeatureRecipe:
         picked: list[np.ndarray | None] = [None] * len(snaps) if rows is None else list(rows)
         if len(picked) != len(snaps):
             raise ValueError(f"{len(snaps)} snapshots but row samples for {len(picked)}")
-        return cls.discover_on(
+        recipe, _ = cls.discover_on(
             [GraphColumns(SnapshotGraph(s), r) for s, r in zip(snaps, picked, strict=True)],
             accounts=int(sum(s.n_nodes for s in snaps)),
             sampled=rows is not None,
@@ -269,6 +269,7 @@ class FeatureRecipe:
             tolerance_step=tolerance_step,
             binning=binning,
         )
+        return recipe
 
     @classmethod
     def discover_on(
@@ -282,11 +283,11 @@ class FeatureRecipe:
         tolerance: float = 1.0,
         tolerance_step: float = 1.0,
         binning: str = "frozen",
-    ) -> FeatureRecipe:
+    ) -> tuple[FeatureRecipe, np.ndarray]:
         """:meth:`discover` on reference windows wherever their graphs are held: in this
         process (:class:`~rolewatch.engine.features.discovery.GraphColumns`, what
         :meth:`discover` passes) or elsewhere, e.g. partitioned on a cluster, read at the
-        sampled rows (ReFeX, Henderson et al., KDD 2011).
+        sampled rows (ReFeX, Henderson et al., KDD 2011); with the sampled rows' bins.
 
         Parameters
         ----------
@@ -301,7 +302,11 @@ class FeatureRecipe:
 
         Returns
         -------
-        FeatureRecipe
+        recipe : FeatureRecipe
+        binned : numpy.ndarray
+            The windows' sampled rows, stacked in order, x the recipe's features: their bins
+            by the frozen edges, what ``transform(snapshot).take(rows)`` bins with
+            ``"frozen"`` binning (training's tables need nothing else).
 
         Raises
         ------
@@ -327,7 +332,7 @@ class FeatureRecipe:
         reference = {"snapshots": len(windows), "rows": accounts, "rounds": found.rounds}
         if sampled:
             reference["sampled_rows"] = int(sum(w.rows for w in windows))
-        return cls(
+        recipe = cls(
             features=tuple(found.features),
             feature_edges=tuple(found.edges),
             bin_fraction=bin_fraction,
@@ -337,6 +342,7 @@ class FeatureRecipe:
             reference=reference,
             tolerance_step=tolerance_step,
         )
+        return recipe, found.binned
 
     # ---------------------------------------------------------------- transform
 
@@ -375,55 +381,6 @@ class FeatureRecipe:
             binned=_binned(raw, edges),
             recipe_version=self.version,
             triangles=graph.counted_triangles(),
-        )
-
-    def transform_at(self, window: ReferenceColumns, nodes: np.ndarray) -> FeatureTable:
-        """This recipe's features of a window held elsewhere (e.g. partitioned on a
-        cluster), at the window's sampled rows, binned with the frozen edges: the rows
-        ``transform(snapshot).take(rows)`` gives, each feature computed on the whole graph
-        by the same evaluation (ReFeX, Henderson et al., KDD 2011).
-
-        Parameters
-        ----------
-        window : ReferenceColumns
-            The window, read at its sampled rows; its kept parents are replaced round by
-            round.
-        nodes : numpy.ndarray
-            The sampled rows' account ids, in the rows' order.
-
-        Returns
-        -------
-        FeatureTable
-            ``triangles`` is None.
-
-        Raises
-        ------
-        ValueError
-            The recipe bins relatively (each window on its own values, which the sampled
-            rows alone cannot give), or ``nodes`` is not one id per row.
-        """
-        if self.binning != "frozen":
-            raise ValueError(
-                "a recipe with relative binning bins each window on all its values: "
-                "compute its tables with transform on the whole snapshot"
-            )
-        if len(nodes) != window.rows:
-            raise ValueError(f"{len(nodes)} account ids for {window.rows} rows")
-        raw = np.zeros((window.rows, len(self.features)), order="F")
-        column = {name: j for j, name in enumerate(self.names)}
-        rounds = sorted({d.round for d in self.features})
-        for rnd in rounds:
-            layer = [d for d in self.features if d.round == rnd]
-            for d, values in zip(layer, window.at_rows(layer), strict=True):
-                raw[:, column[d.name]] = values
-            if rnd != rounds[-1]:
-                window.keep(layer)
-        return FeatureTable(
-            nodes=np.asarray(nodes),
-            names=self.names,
-            raw=raw,
-            binned=_binned(raw, self.feature_edges),
-            recipe_version=self.version,
         )
 
     # ---------------------------------------------------------------- serialisation
