@@ -293,3 +293,51 @@ def test_a_worker_killed_holding_events_it_read_from_the_archive_leaves_the_same
     results["dask"] = written(engine)
     engine.dispose()
     assert_same_closes(results["dask"], results["local"])
+
+
+def _blocked_until(name: str) -> bool:
+    from distributed import Event
+
+    return Event(name).wait()
+
+
+def test_blocks_waiting_on_a_chunk_whose_worker_died_fail_the_attempt(cluster, monkeypatch):
+    # Blocks whose event chunk was lost before they were built could wait for ever: the
+    # wait asks whether each chunk still has a holder among the workers alive, and gives
+    # the attempt up (a cancelled computation, which the close retries) when one has none.
+    # The blocks here do not depend on the chunks, so only that check ends the wait.
+    from concurrent.futures import CancelledError
+
+    from distributed import Event
+
+    monkeypatch.setattr(dispatch, "BUILD_POLL_S", 0.1)
+    cluster.wait_for_workers(2, timeout=60)
+    first, second = sorted(cluster.scheduler_info()["workers"])
+    measure = dispatch.DaskMeasure(cluster, partitions=2)
+    release = Event("rolewatch-test-blocks", client=cluster)
+    built = [cluster.submit(_blocked_until, "rolewatch-test-blocks", workers=[first], pure=False)]
+    chunks = [
+        *cluster.scatter([[1, 2, 3]], workers=[first], hash=False),
+        *cluster.scatter([[4, 5]], workers=[second], hash=False),
+    ]
+    outcome: list[BaseException | None] = []
+    waiting = threading.Thread(
+        target=lambda: outcome.append(_waited(measure, built, chunks)), daemon=True
+    )
+    waiting.start()
+    waiting.join(1.0)
+    assert waiting.is_alive(), "blocks still building and every chunk held: the wait goes on"
+    os.kill(cluster.run(os.getpid)[second], signal.SIGKILL)
+    waiting.join(30)
+    assert not waiting.is_alive(), "a chunk without a holder ends the wait"
+    assert isinstance(outcome[0], CancelledError) and dispatch.lost_data(outcome[0])
+    release.set()
+    assert built[0].result(timeout=30) is True
+
+
+def _waited(measure, built, chunks) -> BaseException | None:
+    try:
+        measure.wait_built(built, chunks)
+    except BaseException as error:  # noqa: BLE001 - the test inspects it
+        return error
+    return None

@@ -72,6 +72,9 @@ RETRY_PAUSE_S = 1.0
 # closer keeps for the next window's evidence); above it they stay on the workers and the
 # evidence reads the alerted accounts' rows from there.
 RAW_HERE_MAX_BYTES = MAX_KEPT_BYTES
+# Seconds between two checks that a window's event chunks still have a holder while its
+# blocks are built (common practice, no source).
+BUILD_POLL_S = 5.0
 log = logging.getLogger("rolewatch.scale")
 _Result = TypeVar("_Result")
 
@@ -287,6 +290,39 @@ class DaskMeasure:
         )
         return build_graph((scattered, n)), list(scattered.futures)
 
+    def wait_built(self, built: list[Any], chunks: list[Any]) -> None:
+        """Wait for a window's blocks, built from the event ``chunks`` this process sent.
+
+        A chunk lost with its worker before its blocks were built can leave them waiting
+        for ever (nothing can compute it again): every :data:`BUILD_POLL_S` seconds the
+        wait asks the scheduler whether each chunk still has a holder, and when one has
+        none it raises ``CancelledError``, which starts the computation again
+        (:meth:`retried`)."""
+        from concurrent.futures import CancelledError
+
+        from distributed import wait
+
+        while True:
+            try:
+                with self.client.as_current():  # a client made for one scheduler is no default
+                    wait(built, timeout=BUILD_POLL_S)
+                return
+            except TimeoutError:
+                if self._chunk_lost(chunks):
+                    raise CancelledError(
+                        "a worker holding the window's events left before its blocks were built"
+                    ) from None
+
+    def _chunk_lost(self, chunks: list[Any]) -> bool:
+        """Whether any of ``chunks`` is lost (as this client has heard) or has no holder
+        among the workers alive (as the scheduler knows)."""
+        if not chunks:
+            return False
+        if any(future.status != "finished" for future in chunks):
+            return True
+        holders, alive = self.client.who_has(chunks), live_workers(self.client)
+        return any(not alive.intersection(holders.get(future.key, ())) for future in chunks)
+
     def _measure_once(
         self,
         model: FrozenModel,
@@ -294,7 +330,6 @@ class DaskMeasure:
         events: ClosingEvents,
         known: PairHistory | None,
     ) -> tuple[FeatureTable, Memberships, TieCounts | None]:
-        from distributed import wait
 
         from rolewatch.scale.features import measure_window
         from rolewatch.scale.ties import count_ties
@@ -302,12 +337,12 @@ class DaskMeasure:
         graph, held = self.window_graph(snapshot, events)
         try:
             built = [*graph.blocks.futures, *graph.base.futures]
-            held += built
-            with self.client.as_current():  # a client made for one scheduler is no default
-                wait(built)
+            chunks, held = held, held + built
+            self.wait_built(built, chunks)
             # The blocks hold the events now: free the workers' copies of the chunks (a
             # worker lost from here on fails the attempt either way: chunks scattered from
             # this process cannot be recomputed).
+            del chunks
             held = built
             # counted beside the features: the cluster works on both at once
             pending = None if known is None else count_ties(graph, snapshot.node_keys, known)
@@ -371,9 +406,15 @@ def fit_for(
         return fit_model(settings, snapshots)
     from rolewatch.scale.training import ClusterTraining
 
-    return measure.retried(
-        lambda: fit_model(settings, snapshots, features=ClusterTraining(measure, windows))
-    )
+    def attempt() -> FrozenModel:
+        training = ClusterTraining(measure, windows)
+        try:
+            return fit_model(settings, snapshots, features=training)
+        except BaseException:
+            training.cancel()
+            raise
+
+    return measure.retried(attempt)
 
 
 def known_pairs_for(

@@ -8,9 +8,9 @@ with the same neighbour aggregate (:func:`rolewatch.scale.features.aggregate_col
 partition sends back only the values of its sampled accounts. The features a round keeps
 are computed once more, whole, and stay on the workers as the next round's parents. The
 bins, the pruning and the basis fit see the sample only, as in
-:meth:`rolewatch.engine.features.FeatureRecipe.discover`: the closing process holds the
-sample's rows (at most ``training_sample_accounts`` a window), never a window's feature
-table.
+:meth:`rolewatch.engine.features.FeatureRecipe.discover`, and the basis is fitted on
+discovery's own bins of the sampled rows: the closing process holds the sample's rows (at
+most ``training_sample_accounts`` in all), never a window's feature table.
 """
 
 from __future__ import annotations
@@ -20,10 +20,9 @@ from typing import Any
 
 import numpy as np
 
-from rolewatch.engine.features import FeatureRecipe, FeatureTable
 from rolewatch.engine.features.definitions import FeatureDef
-from rolewatch.engine.features.discovery import ReferenceColumns
-from rolewatch.engine.features.graph import EGONET_FEATURES
+from rolewatch.engine.features.discovery import GraphColumns, ReferenceColumns
+from rolewatch.engine.features.graph import EGONET_FEATURES, SnapshotGraph
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.pipeline.loading import ClosingEvents
 from rolewatch.scale.dispatch import DaskMeasure
@@ -196,8 +195,7 @@ class ClusterColumns:
 class ClusterTraining:
     """The training windows' features on the cluster of ``measure``
     (:class:`rolewatch.pipeline.model.TrainingFeatures`): each window's graph is built
-    there once, from its events as a close builds it, and serves both discovery and the
-    sampled tables of the basis fit; the graphs are let go with this object.
+    there from its events as a close builds it, and let go when discovery ends.
 
     Parameters
     ----------
@@ -211,44 +209,32 @@ class ClusterTraining:
     ) -> None:
         self.measure = measure
         self.windows = list(windows)
-        self._references: list[ReferenceColumns] | None = None
+        self.graphs: list[WindowGraph] = []
+
+    def cancel(self) -> None:
+        """Free the windows' graphs on the workers now (after a failed fit, whose
+        traceback would keep them until collected)."""
+        futures = [f for g in self.graphs for f in (*g.blocks.futures, *g.base.futures)]
+        self.measure.client.cancel(futures)
 
     def references(self, rows: Sequence[np.ndarray | None]) -> list[ReferenceColumns]:
-        if self._references is None:
-            self._references = [
-                self._reference(snapshot, events, picked)
-                for (snapshot, events), picked in zip(self.windows, rows, strict=True)
-            ]
-        return self._references
+        return [
+            self._reference(snapshot, events, picked)
+            for (snapshot, events), picked in zip(self.windows, rows, strict=True)
+        ]
 
     def _reference(
         self, snapshot: Snapshot, events: ClosingEvents, picked: np.ndarray | None
     ) -> ReferenceColumns:
         if snapshot.n_nodes == 0:
-            from rolewatch.engine.features.discovery import GraphColumns
-            from rolewatch.engine.features.graph import SnapshotGraph
-
             return GraphColumns(SnapshotGraph(snapshot))
-        from distributed import wait
-
         graph, chunks = self.measure.window_graph(snapshot, events)
-        with self.measure.client.as_current():
-            wait([*graph.blocks.futures, *graph.base.futures])
+        self.graphs.append(graph)
+        try:
+            self.measure.wait_built([*graph.blocks.futures, *graph.base.futures], chunks)
+        except BaseException:
+            self.measure.client.cancel(chunks)  # the events too, not only the graphs
+            raise
         del chunks  # the blocks hold the events now
         rows = np.arange(snapshot.n_nodes) if picked is None else np.asarray(picked)
         return ClusterColumns(graph, rows)
-
-    def tables(
-        self, recipe: FeatureRecipe, rows: Sequence[np.ndarray | None]
-    ) -> list[FeatureTable]:
-        tables = [
-            recipe.transform_at(
-                reference,
-                snapshot.nodes if picked is None else snapshot.nodes[picked],
-            )
-            for reference, (snapshot, _), picked in zip(
-                self.references(rows), self.windows, rows, strict=True
-            )
-        ]
-        self._references = None
-        return tables
