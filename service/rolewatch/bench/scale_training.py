@@ -11,9 +11,9 @@ sample's rows gathered) and with ``compute = "local"`` (all of it in the closing
 Both fit on the default sample of ``training_sample_accounts`` accounts. Reported for each:
 the close's seconds and stages, the peak resident memory of the closing process (and what it
 held as the close began), of its helper processes (the communities' child) and of each
-worker (sampled every 0.2 s with psutil); the fit's own seconds (timed around the closer's
-call of it); whether the two models keep the same features and roles; and the ratios
-dask / local. ``--quick`` uses 300,000 events.
+worker (sampled every 0.2 s with psutil); the fit's own seconds and the closing process's
+peak during it (measured around the closer's call of it); whether the two models keep the
+same features and roles; and the ratios dask / local. ``--quick`` uses 300,000 events.
 """
 
 from __future__ import annotations
@@ -30,7 +30,13 @@ from typing import Any
 import numpy as np
 
 from rolewatch.bench.close import FIRST_END, WEEK_US
-from rolewatch.bench.scale import WORKER_MEMORY, _load_in_chunks, _settings, _timed_close
+from rolewatch.bench.scale import (
+    WORKER_MEMORY,
+    _load_in_chunks,
+    _PeakMemory,
+    _settings,
+    _timed_close,
+)
 
 CASES = ("train-dask",)
 SIZES = {"train-dask": 10_000_000}
@@ -87,14 +93,17 @@ def _close_fresh(path: str, compute: str, scheduler: str, pids: list[int]) -> di
     from rolewatch.store.db import open_store
 
     fitted: list[float] = []
+    fit_peaks: list[float] = []
     fit_for = closer.fit_for
 
     def timed_fit(*args: Any) -> Any:
-        started = time.perf_counter()
-        try:
-            return fit_for(*args)
-        finally:
-            fitted.append(time.perf_counter() - started)
+        with _PeakMemory([]) as memory:
+            started = time.perf_counter()
+            try:
+                return fit_for(*args)
+            finally:
+                fitted.append(time.perf_counter() - started)
+                fit_peaks.append(memory.peak_mb)
 
     closer.fit_for = timed_fit  # type: ignore[assignment]
     settings = _settings(Path(path), compute=compute, dask_scheduler=scheduler)
@@ -107,6 +116,7 @@ def _close_fresh(path: str, compute: str, scheduler: str, pids: list[int]) -> di
         return {
             **closed,
             "fit_seconds": round(sum(fitted), 2),
+            "fit_peak_rss_mb": round(max(fit_peaks, default=0.0), 1),
             "features": list(model.recipe.names),
             "roles": [info.name for info in model.roles],
         }
