@@ -5,15 +5,16 @@ and in the closing process, side by side in one run.
 generator's power-law window, :func:`rolewatch.bench.close._power_law_events`), and the
 window is closed twice on copies of the store, each time by a fresh process (so each
 close's peak memory is its own): with ``compute = "dask"`` on a local cluster of two worker
-processes (one thread and ``memory_limit`` 3 GB each: discovery's candidates, the sampled
-tables of the basis fit and the back-fill computed on the workers, only the training
-sample's rows gathered) and with ``compute = "local"`` (all of it in the closing process).
+processes (one thread and ``memory_limit`` 3 GB each: discovery's candidates and the
+back-fill computed on the workers, only the training sample's rows gathered) and with
+``compute = "local"`` (all of it in the closing process).
 Both fit on the default sample of ``training_sample_accounts`` accounts. Reported for each:
 the close's seconds and stages, the peak resident memory of the closing process (and what it
 held as the close began), of its helper processes (the communities' child) and of each
 worker (sampled every 0.2 s with psutil); the fit's own seconds and the closing process's
-peak during it (measured around the closer's call of it); whether the two models keep the
-same features and roles; and the ratios dask / local. ``--quick`` uses 300,000 events.
+memory as it began and its peak during it (measured around the closer's call of it);
+whether the two models keep the same features and roles; and the ratios dask / local.
+``--quick`` uses 300,000 events.
 """
 
 from __future__ import annotations
@@ -94,10 +95,12 @@ def _close_fresh(path: str, compute: str, scheduler: str, pids: list[int]) -> di
 
     fitted: list[float] = []
     fit_peaks: list[float] = []
+    fit_starts: list[float] = []
     fit_for = closer.fit_for
 
     def timed_fit(*args: Any) -> Any:
         with _PeakMemory([]) as memory:
+            fit_starts.append(memory.start_mb)
             started = time.perf_counter()
             try:
                 return fit_for(*args)
@@ -116,6 +119,7 @@ def _close_fresh(path: str, compute: str, scheduler: str, pids: list[int]) -> di
         return {
             **closed,
             "fit_seconds": round(sum(fitted), 2),
+            "fit_start_rss_mb": round(min(fit_starts, default=0.0), 1),
             "fit_peak_rss_mb": round(max(fit_peaks, default=0.0), 1),
             "features": list(model.recipe.names),
             "roles": [info.name for info in model.roles],
