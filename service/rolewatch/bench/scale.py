@@ -61,7 +61,6 @@ from __future__ import annotations
 import os
 import shutil
 import tempfile
-import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -70,6 +69,7 @@ from typing import Any
 import numpy as np
 
 from rolewatch.bench.close import FIRST_END, WEEK_US, _load, _power_law_events
+from rolewatch.bench.memory import PeakMemory
 
 CASES = (
     "close-dask-10m",
@@ -107,67 +107,6 @@ LOAD_CHUNK = 2_000_000  # events generated and stored at once (smaller windows: 
 LOCAL_MB_PER_MILLION_EVENTS = 750
 
 
-def _helpers() -> dict[str, Any]:
-    """The helper processes a close may start (the communities' child, SQLite's window
-    reader): their peaks are the closing machine's too."""
-    from rolewatch.pipeline import communities
-    from rolewatch.store import sqlite_window_reader
-
-    return {"communities": communities.HELPER, "window_reader": sqlite_window_reader.HELPER}
-
-
-class _PeakMemory:
-    """Highest resident memory of this process, of its helper processes and of the given
-    worker processes while the block runs."""
-
-    def __init__(self, worker_pids: list[int]) -> None:
-        import psutil
-
-        self.me = psutil.Process()
-        self.workers: list[Any] = [psutil.Process(pid) for pid in worker_pids]
-        self.start_mb = self.me.memory_info().rss / 2**20
-        self.peak_mb = 0.0
-        self.worker_peak_mb = [0.0] * len(worker_pids)
-        self.worker_restarts = 0
-        self.helper_peak_mb = dict.fromkeys(_helpers(), 0.0)
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._sample, daemon=True)
-
-    def _sample(self) -> None:
-        import psutil
-
-        while not self._stop.is_set():
-            self.peak_mb = max(self.peak_mb, self.me.memory_info().rss / 2**20)
-            for i, worker in enumerate(self.workers):
-                if worker is None:
-                    continue
-                try:
-                    rss = worker.memory_info().rss / 2**20
-                except psutil.NoSuchProcess:  # Dask restarted a worker over its memory limit
-                    self.worker_restarts += 1
-                    self.workers[i] = None
-                    continue
-                self.worker_peak_mb[i] = max(self.worker_peak_mb[i], rss)
-            for name, helper in _helpers().items():
-                process = helper.process
-                if process is None or process.poll() is not None:
-                    continue
-                try:
-                    rss = psutil.Process(process.pid).memory_info().rss / 2**20
-                except psutil.NoSuchProcess:
-                    continue
-                self.helper_peak_mb[name] = max(self.helper_peak_mb[name], rss)
-            self._stop.wait(0.2)
-
-    def __enter__(self) -> _PeakMemory:
-        self._thread.start()
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self._stop.set()
-        self._thread.join()
-
-
 def _settings(path: Path, **extra: Any):
     from rolewatch.config import load_settings
 
@@ -197,7 +136,7 @@ def _timed_close(
     """Close the window ending at ``end_us``: its seconds, alerts, stages and memory."""
     from rolewatch.pipeline.closer import close_window
 
-    with _PeakMemory(worker_pids) as memory:
+    with PeakMemory(worker_pids) as memory:
         started = time.perf_counter()
         summaries = close_window(engine, settings, end_us, now_us=now_us)
         seconds = time.perf_counter() - started

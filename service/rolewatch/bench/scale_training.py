@@ -31,13 +31,8 @@ from typing import Any
 import numpy as np
 
 from rolewatch.bench.close import FIRST_END, WEEK_US
-from rolewatch.bench.scale import (
-    WORKER_MEMORY,
-    _load_in_chunks,
-    _PeakMemory,
-    _settings,
-    _timed_close,
-)
+from rolewatch.bench.memory import PeakMemory
+from rolewatch.bench.scale import WORKER_MEMORY, _load_in_chunks, _settings, _timed_close
 
 CASES = ("train-dask",)
 SIZES = {"train-dask": 10_000_000}
@@ -99,7 +94,7 @@ def _close_fresh(path: str, compute: str, scheduler: str, pids: list[int]) -> di
     fit_for = closer.fit_for
 
     def timed_fit(*args: Any) -> Any:
-        with _PeakMemory([]) as memory:
+        with PeakMemory([]) as memory:
             fit_starts.append(memory.start_mb)
             started = time.perf_counter()
             try:
