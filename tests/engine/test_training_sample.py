@@ -15,12 +15,11 @@ import pytest
 
 from rolewatch.config import load_settings
 from rolewatch.engine import FeatureRecipe, Snapshot
-from rolewatch.engine.basis import RoleBasis
 from rolewatch.engine.features import apply_bins, bin_edges
 from rolewatch.engine.features.discovery import GraphColumns
 from rolewatch.engine.features.graph import SnapshotGraph
 from rolewatch.engine.rowkeys import account_sample
-from rolewatch.pipeline.model import fit_model
+from rolewatch.pipeline.model import fit_basis, fit_model
 
 UNPRUNED = {"tolerance": 0.0, "tolerance_step": 0.0}
 
@@ -180,14 +179,5 @@ def test_fit_model_fits_the_basis_on_each_windows_sampled_rows():
     model = fit_model(settings, snapshots)
     # the basis a fit on the recipe's whole tables, taken at the sampled rows, gives
     tables = [model.recipe.transform(s).take(r) for s, r in zip(snapshots, rows, strict=True)]
-    expected = RoleBasis.fit(
-        tables,
-        n_roles=settings.roles,
-        k_range=(settings.roles_min, settings.roles_max),
-        seed=settings.seed,
-        sample_rows=settings.roles_sample_rows,
-        stability_min=settings.roles_stability_min,
-        tolerance=settings.roles_mdl_tolerance,
-        resamples=settings.roles_resamples,
-    )
+    expected = fit_basis(settings, tables)
     assert model.basis.to_dict() == expected.to_dict()

@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 
 from rolewatch.config import load_settings
-from rolewatch.engine.basis import RoleBasis
 from rolewatch.engine.features import FeatureRecipe
 from rolewatch.engine.snapshot import Snapshot
+from rolewatch.pipeline.model import fit_basis
 from rolewatch.pipeline.offline import split_windows
 from rolewatch.pipeline.windows import WindowGeometry
 from rolewatch.scenario import SCENARIOS, generate_scenario
@@ -43,15 +43,8 @@ def fitted_roles(snapshots, keep_accounts=None) -> int:
     tables = [recipe.transform(snapshot) for snapshot in snapshots]
     if keep_accounts is not None:
         tables = [subset(table, np.isin(table.nodes, keep_accounts)) for table in tables]
-    basis = RoleBasis.fit(
-        tables,
-        k_range=(s.roles_min, s.roles_max),
-        seed=s.seed,
-        sample_rows=s.roles_sample_rows,
-        stability_min=s.roles_stability_min,
-        tolerance=s.roles_mdl_tolerance,
-        resamples=s.roles_resamples,
-    )
+    assert s.roles is None  # the number of roles is selected, as in training
+    basis = fit_basis(s, tables)
     return basis.n_roles
 
 

@@ -27,6 +27,7 @@ __all__ = [
     "InProcessFeatures",
     "RoleInfo",
     "TrainingFeatures",
+    "fit_basis",
     "fit_model",
     "load_active_model",
     "store_model",
@@ -109,16 +110,7 @@ def fit_model(
         binning=settings.binning,
     )
     tables = _training_tables(settings, recipe, binned, snapshots, rows_of)
-    basis = RoleBasis.fit(
-        tables,
-        n_roles=settings.roles,
-        k_range=(settings.roles_min, settings.roles_max),
-        seed=settings.seed,
-        sample_rows=settings.roles_sample_rows,
-        stability_min=settings.roles_stability_min,
-        tolerance=settings.roles_mdl_tolerance,
-        resamples=settings.roles_resamples,
-    )
+    basis = fit_basis(settings, tables)
     if previous is not None:
         basis = basis.aligned_to(previous.basis)
     descriptions = _describe(basis, snapshots, tables, rows_of)
@@ -134,6 +126,21 @@ def fit_model(
             )
         )
     return FrozenModel(recipe=recipe, basis=basis, roles=tuple(infos))
+
+
+def fit_basis(settings: Settings, tables: Sequence[FeatureTable]) -> RoleBasis:
+    """The role basis (RolX) fitted on training ``tables`` with the settings' number of
+    roles (or its selection range), seed, resampling and tolerance."""
+    return RoleBasis.fit(
+        tables,
+        n_roles=settings.roles,
+        k_range=(settings.roles_min, settings.roles_max),
+        seed=settings.seed,
+        sample_rows=settings.roles_sample_rows,
+        stability_min=settings.roles_stability_min,
+        tolerance=settings.roles_mdl_tolerance,
+        resamples=settings.roles_resamples,
+    )
 
 
 def _training_tables(

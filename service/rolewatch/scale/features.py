@@ -57,6 +57,7 @@ __all__ = [
     "Layer",
     "MeasuredWindow",
     "aggregate_columns",
+    "fetch_parents",
     "parent_group",
     "FeatureRowsLost",
     "ScratchValues",
@@ -312,6 +313,22 @@ def aggregate_columns(
     return columns
 
 
+def fetch_parents(
+    graph: WindowGraph, where: dict[str, Partitioned], parents: Sequence[str]
+) -> tuple[list[list[list[Any]]], list[list[str]]]:
+    """The values of ``parents`` each partition's neighbours hold, fetched from the
+    results holding them (``where``: the Dask result of each parent), one fetch per such
+    result: ``(fetched, names)``, ``fetched[s][i][j]`` the piece partition ``i`` gets from
+    partition ``j`` of source ``s``, ``names[s]`` that source's parents in order (what
+    :func:`aggregate_columns` takes)."""
+    sources: dict[int, tuple[Partitioned, list[str]]] = {}
+    for parent in parents:
+        table = where[parent]
+        sources.setdefault(id(table), (table, []))[1].append(parent)
+    fetched = [fetch_columns(graph, table, names) for table, names in sources.values()]
+    return fetched, [names for _, names in sources.values()]
+
+
 def _need_size(block: Block) -> int:
     return int(block.need.size)
 
@@ -405,12 +422,7 @@ class _Rounds:
         for g in range(0, len(parents), group_size):
             group = parents[g : g + group_size]
             part = [entry for entry in layer if entry[3] in group]
-            sources: dict[int, tuple[Partitioned, list[str]]] = {}
-            for parent in group:
-                table = self.where[parent]
-                sources.setdefault(id(table), (table, []))[1].append(parent)
-            fetched = [fetch_columns(self.graph, table, names) for table, names in sources.values()]
-            names = [names for _, names in sources.values()]
+            fetched, names = fetch_parents(self.graph, self.where, group)
             settled = [
                 self.client.submit(
                     _aggregates,

@@ -26,8 +26,14 @@ from rolewatch.engine.features.graph import EGONET_FEATURES, SnapshotGraph
 from rolewatch.engine.snapshot import Snapshot
 from rolewatch.pipeline.loading import ClosingEvents
 from rolewatch.scale.dispatch import DaskMeasure
-from rolewatch.scale.features import Columns, Layer, aggregate_columns, parent_group
-from rolewatch.scale.graph import WindowGraph, egonet_table, fetch_columns
+from rolewatch.scale.features import (
+    Columns,
+    Layer,
+    aggregate_columns,
+    fetch_parents,
+    parent_group,
+)
+from rolewatch.scale.graph import WindowGraph, egonet_table
 from rolewatch.scale.graph_steps import Block
 from rolewatch.scale.partitions import Partitioned, split_by_range
 
@@ -132,12 +138,7 @@ class ClusterColumns:
     def _submit_aggregates(self, part: Layer, group: list[str], at_rows: bool) -> list[Any]:
         """One task per partition computing ``part`` from the parents in ``group``: only
         the sampled rows (``at_rows``) or the whole columns."""
-        sources: dict[int, tuple[Partitioned, list[str]]] = {}
-        for parent in group:
-            table = self.parents[parent]
-            sources.setdefault(id(table), (table, []))[1].append(parent)
-        fetched = [fetch_columns(self.graph, table, names) for table, names in sources.values()]
-        names = [names for _, names in sources.values()]
+        fetched, names = fetch_parents(self.graph, self.parents, group)
         tasks = []
         for i, block in enumerate(self.graph.blocks.futures):
             pieces = [piece for per_source in fetched for piece in per_source[i]]

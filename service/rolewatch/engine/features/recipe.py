@@ -248,13 +248,14 @@ class FeatureRecipe:
         ValueError
             A parameter is out of range (the message names it), or no snapshot is given.
         """
-        check_parameters(
-            bin_fraction=bin_fraction,
-            tolerance=tolerance,
-            tolerance_step=tolerance_step,
-            binning=binning,
-            max_rounds=max_rounds,
-        )
+        parameters: dict[str, Any] = {
+            "bin_fraction": bin_fraction,
+            "tolerance": tolerance,
+            "tolerance_step": tolerance_step,
+            "binning": binning,
+            "max_rounds": max_rounds,
+        }
+        check_parameters(**parameters)  # before the graphs are built
         snaps = _as_snapshots(snapshots)
         picked: list[np.ndarray | None] = [None] * len(snaps) if rows is None else list(rows)
         if len(picked) != len(snaps):
@@ -263,11 +264,7 @@ class FeatureRecipe:
             [GraphColumns(SnapshotGraph(s), r) for s, r in zip(snaps, picked, strict=True)],
             accounts=int(sum(s.n_nodes for s in snaps)),
             sampled=rows is not None,
-            max_rounds=max_rounds,
-            bin_fraction=bin_fraction,
-            tolerance=tolerance,
-            tolerance_step=tolerance_step,
-            binning=binning,
+            **parameters,
         )
         return recipe
 
