@@ -62,7 +62,7 @@ import os
 import shutil
 import tempfile
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -105,6 +105,37 @@ LOAD_CHUNK = 2_000_000  # events generated and stored at once (smaller windows: 
 # GB at 10,000,000 events, 3.2 GB at 3,000,000 (this bench, docs/scale.md). A size whose
 # in-process close would need more than the memory free is closed on Dask only.
 LOCAL_MB_PER_MILLION_EVENTS = 750
+
+
+def side_by_side_on_cluster(
+    case: str, events: int, order: Sequence[str], side_by_side: Callable[..., dict]
+) -> Iterator[dict]:
+    """One record of ``side_by_side(events, client, scheduler_address, folder)`` run on a
+    local cluster of two worker processes (one thread, :data:`WORKER_MEMORY` each) in a
+    temporary folder, with the machine's core count and the closes' ``order``."""
+    from distributed import Client, LocalCluster
+
+    from rolewatch.scale.dispatch import close_clients
+
+    cluster = LocalCluster(
+        n_workers=2, threads_per_worker=1, memory_limit=WORKER_MEMORY, dashboard_address=None
+    )
+    client = Client(cluster)
+    try:
+        with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
+            measured = side_by_side(events, client, cluster.scheduler_address, Path(tmp))
+            yield {
+                "case": case,
+                "cores": os.cpu_count(),
+                "workers": 2,
+                "worker_memory_limit": WORKER_MEMORY,
+                "order": list(order),
+                **measured,
+            }
+    finally:
+        close_clients()
+        client.close()
+        cluster.close()
 
 
 def _settings(path: Path, **extra: Any):

@@ -21,7 +21,6 @@ from __future__ import annotations
 
 import os
 import shutil
-import tempfile
 from collections.abc import Iterator
 from concurrent.futures import ProcessPoolExecutor
 from multiprocessing import get_context
@@ -32,7 +31,12 @@ import numpy as np
 
 from rolewatch.bench.close import FIRST_END, WEEK_US
 from rolewatch.bench.memory import PeakMemory
-from rolewatch.bench.scale import WORKER_MEMORY, _load_in_chunks, _settings, _timed_close
+from rolewatch.bench.scale import (
+    _load_in_chunks,
+    _settings,
+    _timed_close,
+    side_by_side_on_cluster,
+)
 
 CASES = ("train-dask",)
 SIZES = {"train-dask": 10_000_000}
@@ -125,29 +129,7 @@ def _close_fresh(path: str, compute: str, scheduler: str, pids: list[int]) -> di
 
 
 def run(case: str, *, quick: bool = False) -> Iterator[dict]:
-    from distributed import Client, LocalCluster
-
     if case not in CASES:
         raise ValueError(f"unknown case {case!r}")
-    cluster = LocalCluster(
-        n_workers=2, threads_per_worker=1, memory_limit=WORKER_MEMORY, dashboard_address=None
-    )
-    client = Client(cluster)
-    try:
-        with tempfile.TemporaryDirectory(prefix="rolewatch-bench-") as tmp:
-            events = (QUICK if quick else SIZES)[case]
-            measured = _side_by_side(events, client, cluster.scheduler_address, Path(tmp))
-            yield {
-                "case": case,
-                "cores": os.cpu_count(),
-                "workers": 2,
-                "worker_memory_limit": WORKER_MEMORY,
-                "order": list(COMPUTES),
-                **measured,
-            }
-    finally:
-        from rolewatch.scale.dispatch import close_clients
-
-        close_clients()
-        client.close()
-        cluster.close()
+    events = (QUICK if quick else SIZES)[case]
+    yield from side_by_side_on_cluster(case, events, COMPUTES, _side_by_side)
